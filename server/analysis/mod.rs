@@ -1,0 +1,5 @@
+//! One function per question: project + settings -> one serialisable result, rendered
+//! alike by pages, JSON twins, the command line and the report.
+
+pub mod cautions;
+pub mod overview;

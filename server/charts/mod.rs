@@ -1,0 +1,41 @@
+//! One function per chart: an analysis result in, an SVG string out (plotters).
+//! Sized for slides (16:9); colour is never the only cue: series also differ by marker.
+
+pub mod coverage;
+
+use plotters::style::RGBColor;
+
+/// Chart size in pixels, 16:9 for slides.
+pub const SLIDE: (u32, u32) = (960, 540);
+
+/// Our palette: six hues that stay distinct under the common colour-vision deficiencies
+/// (they differ in lightness as well as hue), chosen for this project.
+pub const PALETTE: [RGBColor; 6] = [
+    RGBColor(0x1B, 0x6F, 0x7A), // deep teal
+    RGBColor(0xD9, 0x8E, 0x04), // amber
+    RGBColor(0x7B, 0x3F, 0x8C), // plum
+    RGBColor(0x5A, 0xA9, 0xE6), // sky
+    RGBColor(0xB5, 0x47, 0x3A), // brick
+    RGBColor(0x4A, 0x4A, 0x4A), // graphite
+];
+
+/// Colour of series `i` (cycling).
+pub fn colour(i: usize) -> RGBColor {
+    PALETTE[i % PALETTE.len()]
+}
+
+/// A chart that could not be drawn becomes a short SVG saying so, never an empty box.
+pub fn failed_chart(title: &str, reason: &str) -> String {
+    let (w, h) = SLIDE;
+    format!(
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img"><title>{title}</title><text x="24" y="48" font-family="sans-serif" font-size="22">{title}</text><text x="24" y="90" font-family="sans-serif" font-size="18">{reason}</text></svg>"#,
+        title = escape(title),
+        reason = escape(reason)
+    )
+}
+
+fn escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+}

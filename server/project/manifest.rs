@@ -1,0 +1,288 @@
+//! `project.toml`: which columns mean what, which indicators to use, and who is eligible.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use super::problem::Problem;
+
+/// The manifest's file name inside a project folder.
+pub const MANIFEST_FILE: &str = "project.toml";
+
+/// A project's manifest. See the README's "Project folder" section for every field.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct Manifest {
+    pub title: String,
+    #[serde(default)]
+    pub description: Option<String>,
+    pub columns: ColumnRoles,
+    #[serde(default)]
+    pub indicators: Indicators,
+    #[serde(default)]
+    pub eligibility: Vec<EligibilityRule>,
+    #[serde(default)]
+    pub recruitment: Recruitment,
+    #[serde(default)]
+    pub microdata: Option<MicrodataRoles>,
+}
+
+/// Which frame columns carry the country code, name, wave and participation flag.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct ColumnRoles {
+    pub code: String,
+    #[serde(default)]
+    pub name: Option<String>,
+    pub wave: String,
+    pub participation: String,
+    /// The categorical indicator used to break coverage down (usually a region);
+    /// defaults to the first categorical indicator.
+    #[serde(default)]
+    pub group: Option<String>,
+}
+
+/// The country indicators: numeric ones and categories.
+#[derive(Debug, Clone, Default, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct Indicators {
+    #[serde(default)]
+    pub numeric: Vec<String>,
+    #[serde(default)]
+    pub categorical: Vec<String>,
+    /// Reference level per categorical indicator (the level left out of the dummies);
+    /// defaults to the first level in sorted order.
+    #[serde(default)]
+    pub reference: BTreeMap<String, String>,
+    /// Readable labels, with units, used on pages and charts.
+    #[serde(default)]
+    pub labels: BTreeMap<String, String>,
+}
+
+/// A rule that every eligible country must meet in the waves it applies to.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct EligibilityRule {
+    pub indicator: String,
+    #[serde(default)]
+    pub at_least: Option<Threshold>,
+    #[serde(default)]
+    pub at_most: Option<Threshold>,
+    /// The waves the rule applies to; all waves when absent.
+    #[serde(default)]
+    pub waves: Option<Vec<i64>>,
+}
+
+/// A cut-off: a fixed number, or one taken from the wave's participants.
+#[derive(Debug, Clone, PartialEq, Deserialize, Serialize)]
+#[serde(untagged)]
+pub enum Threshold {
+    Value(f64),
+    /// `"lowest-participant"` or `"highest-participant"`: the lowest (highest) value of
+    /// the indicator among the wave's participants.
+    FromParticipants(ParticipantCut),
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum ParticipantCut {
+    LowestParticipant,
+    HighestParticipant,
+}
+
+/// Optional frame columns used when planning recruitment.
+#[derive(Debug, Clone, Default, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct Recruitment {
+    /// Cost of recruiting a country, in any unit (larger is costlier).
+    #[serde(default)]
+    pub cost: Option<String>,
+    /// A probability or 0/1 judgement that the country could take part.
+    #[serde(default)]
+    pub feasibility: Option<String>,
+}
+
+/// Which microdata columns carry the country code, wave and design weight.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct MicrodataRoles {
+    pub country: String,
+    pub wave: String,
+    pub design_weight: String,
+    /// Numeric survey variables to load; every other column when empty.
+    #[serde(default)]
+    pub variables: Vec<String>,
+}
+
+impl Manifest {
+    /// Parses manifest text; syntax and type errors name the line and column.
+    pub fn parse(text: &str) -> Result<Manifest, Vec<Problem>> {
+        let manifest: Manifest = toml::from_str(text).map_err(|e| {
+            let (row, column) = e
+                .span()
+                .map(|span| line_and_column(text, span.start))
+                .map_or((None, None), |(l, c)| (Some(l), Some(c)));
+            let message = e.message().trim().to_string();
+            vec![Problem::at(
+                MANIFEST_FILE,
+                row,
+                column.map(|c| format!("char {c}")).as_deref(),
+                format!("{message}; see the README's table of project.toml fields"),
+            )]
+        })?;
+        let problems = manifest.check_consistency();
+        if problems.is_empty() {
+            Ok(manifest)
+        } else {
+            Err(problems)
+        }
+    }
+
+    /// Checks that do not need the data: every rule has a cut-off, no column plays two roles.
+    fn check_consistency(&self) -> Vec<Problem> {
+        let mut problems = Vec::new();
+        for (i, rule) in self.eligibility.iter().enumerate() {
+            if rule.at_least.is_none() && rule.at_most.is_none() {
+                problems.push(Problem::at(
+                    MANIFEST_FILE,
+                    None,
+                    Some(&format!("eligibility[{}]", i + 1)),
+                    format!(
+                        "the rule on '{}' has neither at_least nor at_most; give one of them a number or \"lowest-participant\"/\"highest-participant\"",
+                        rule.indicator
+                    ),
+                ));
+            }
+        }
+        let mut seen: BTreeMap<&str, &str> = BTreeMap::new();
+        let roles = [
+            (self.columns.code.as_str(), "columns.code"),
+            (self.columns.wave.as_str(), "columns.wave"),
+            (self.columns.participation.as_str(), "columns.participation"),
+        ];
+        let indicators = self
+            .indicators
+            .numeric
+            .iter()
+            .map(|c| (c.as_str(), "indicators.numeric"))
+            .chain(
+                self.indicators
+                    .categorical
+                    .iter()
+                    .map(|c| (c.as_str(), "indicators.categorical")),
+            );
+        for (column, role) in roles.into_iter().chain(indicators) {
+            if let Some(previous) = seen.insert(column, role) {
+                problems.push(Problem::at(
+                    MANIFEST_FILE,
+                    None,
+                    Some(role),
+                    format!("column '{column}' is listed both in {previous} and in {role}; list it once"),
+                ));
+            }
+        }
+        if let Some(group) = &self.columns.group {
+            if !self.indicators.categorical.contains(group) {
+                problems.push(Problem::at(
+                    MANIFEST_FILE,
+                    None,
+                    Some("columns.group"),
+                    format!("'{group}' must also be listed in indicators.categorical"),
+                ));
+            }
+        }
+        problems
+    }
+
+    /// The categorical indicator that coverage is broken down by, if any.
+    pub fn group_column(&self) -> Option<&str> {
+        self.columns
+            .group
+            .as_deref()
+            .or(self.indicators.categorical.first().map(String::as_str))
+    }
+
+    /// The readable label of an indicator, or its column name.
+    pub fn label<'a>(&'a self, column: &'a str) -> &'a str {
+        self.indicators
+            .labels
+            .get(column)
+            .map_or(column, String::as_str)
+    }
+}
+
+impl EligibilityRule {
+    pub fn applies_to(&self, wave: i64) -> bool {
+        self.waves.as_ref().is_none_or(|w| w.contains(&wave))
+    }
+}
+
+/// 1-based line and character of a byte offset.
+pub(crate) fn line_and_column(text: &str, offset: usize) -> (usize, usize) {
+    let before = &text.as_bytes()[..offset.min(text.len())];
+    let line = before.iter().filter(|&&b| b == b'\n').count() + 1;
+    let line_start = before
+        .iter()
+        .rposition(|&b| b == b'\n')
+        .map_or(0, |p| p + 1);
+    let column = String::from_utf8_lossy(&before[line_start..])
+        .chars()
+        .count()
+        + 1;
+    (line, column)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const MINIMAL: &str = r#"
+title = "t"
+[columns]
+code = "iso"
+wave = "wave"
+participation = "took_part"
+[indicators]
+numeric = ["gdp"]
+categorical = ["region"]
+[[eligibility]]
+indicator = "gdp"
+at_least = "lowest-participant"
+[[eligibility]]
+indicator = "gdp"
+at_most = 12.5
+waves = [2]
+"#;
+
+    #[test]
+    fn parses_both_kinds_of_threshold() {
+        let m = Manifest::parse(MINIMAL).expect("valid manifest");
+        assert_eq!(
+            m.eligibility[0].at_least,
+            Some(Threshold::FromParticipants(
+                ParticipantCut::LowestParticipant
+            ))
+        );
+        assert_eq!(m.eligibility[1].at_most, Some(Threshold::Value(12.5)));
+        assert!(!m.eligibility[1].applies_to(1));
+        assert_eq!(m.group_column(), Some("region"));
+    }
+
+    #[test]
+    fn unknown_field_names_line() {
+        let text = MINIMAL.replace("participation =", "participate =");
+        let problems = Manifest::parse(&text).unwrap_err();
+        assert_eq!(problems[0].row, Some(6));
+        assert!(problems[0].to_string().starts_with("project.toml:6:"));
+    }
+
+    #[test]
+    fn column_in_two_roles_is_reported() {
+        let text = MINIMAL.replace("numeric = [\"gdp\"]", "numeric = [\"gdp\", \"wave\"]");
+        let problems = Manifest::parse(&text).unwrap_err();
+        assert!(
+            problems[0].message.contains("'wave' is listed both"),
+            "{problems:?}"
+        );
+    }
+}

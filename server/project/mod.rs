@@ -1,0 +1,451 @@
+//! A project folder: its manifest, its frame of countries and waves, and optional
+//! microdata, loaded with polars and validated. Every problem is reported as
+//! `file:row:column: message`; nothing here panics on bad input.
+
+pub mod eligibility;
+pub mod manifest;
+pub mod problem;
+pub mod table;
+pub mod wave;
+
+use std::collections::{BTreeMap, HashMap};
+use std::path::{Path, PathBuf};
+
+pub use eligibility::{Eligibility, RowStatus};
+pub use manifest::{Manifest, MANIFEST_FILE};
+pub use problem::{Problem, ProblemList};
+pub use table::{ColumnKind, ColumnSpec, Table};
+pub use wave::WaveView;
+
+/// The frame's file name stem (`frame.csv` or `frame.parquet`).
+pub const FRAME_STEM: &str = "frame";
+/// The microdata's file name stem (`microdata.csv` or `microdata.parquet`).
+pub const MICRODATA_STEM: &str = "microdata";
+
+/// A loaded, validated project. Immutable: reloading builds a new one.
+#[derive(Debug)]
+pub struct Project {
+    pub dir: PathBuf,
+    pub manifest: Manifest,
+    /// One row per country and wave, typed columns (see [`table::load_table`]).
+    pub frame: Table,
+    pub microdata: Option<Table>,
+    /// Distinct waves, ascending.
+    pub waves: Vec<i64>,
+    pub eligibility: Eligibility,
+    /// Things worth knowing that do not stop the analysis (participants failing a rule...).
+    pub warnings: Vec<Problem>,
+}
+
+impl Project {
+    /// Loads and validates the project in `dir`; returns every problem found.
+    pub fn load(dir: &Path) -> Result<Project, Vec<Problem>> {
+        let manifest_path = dir.join(MANIFEST_FILE);
+        let text = match std::fs::read(&manifest_path) {
+            Ok(bytes) => String::from_utf8(bytes).map_err(|_| {
+                vec![Problem::file(
+                    MANIFEST_FILE,
+                    "the manifest is not UTF-8 text; save it as UTF-8",
+                )]
+            })?,
+            Err(e) => return Err(vec![Problem::file(
+                MANIFEST_FILE,
+                format!(
+                    "cannot read {} ({e}); a project folder needs a project.toml (see the README)",
+                    manifest_path.display()
+                ),
+            )]),
+        };
+        let manifest = Manifest::parse(&text)?;
+
+        let frame_path = match table::find_data_file(dir, FRAME_STEM) {
+            Ok(Some(p)) => p,
+            Ok(None) => {
+                return Err(vec![Problem::file(
+                    "frame.csv",
+                    format!("no frame.csv or frame.parquet in {}; the frame (one row per country and wave) is required", dir.display()),
+                )])
+            }
+            Err(p) => return Err(vec![p]),
+        };
+        let frame_label = file_label(&frame_path);
+        let frame = table::load_table(&frame_path, &frame_label, &frame_specs(&manifest))?;
+
+        let mut problems = ProblemList::new();
+        let codes = frame.texts(&manifest.columns.code);
+        let waves_col = frame.integers(&manifest.columns.wave);
+        let flags = frame.integers(&manifest.columns.participation);
+        let keys: Vec<(String, i64)> = codes
+            .iter()
+            .zip(&waves_col)
+            .map(|(c, w)| (c.clone().unwrap_or_default(), w.unwrap_or_default()))
+            .collect();
+        let participated: Vec<bool> = flags.iter().map(|f| *f == Some(1)).collect();
+        check_duplicates(&frame, &manifest, &keys, &mut problems);
+        check_reference_levels(&frame, &manifest, &mut problems);
+
+        let rule_values: Vec<Vec<Option<f64>>> = manifest
+            .eligibility
+            .iter()
+            .map(|r| frame.numbers(&r.indicator))
+            .collect();
+        let rules: Vec<eligibility::RuleValues<'_>> = manifest
+            .eligibility
+            .iter()
+            .zip(&rule_values)
+            .map(|(rule, values)| eligibility::RuleValues { rule, values })
+            .collect();
+        let wave_of_row: Vec<i64> = keys.iter().map(|k| k.1).collect();
+        let eligibility = eligibility::evaluate(&wave_of_row, &participated, &rules);
+
+        let mut warnings = eligibility_warnings(&frame, &keys, &participated, &eligibility);
+
+        let microdata = match table::find_data_file(dir, MICRODATA_STEM) {
+            Err(p) => {
+                problems.push(p);
+                None
+            }
+            Ok(None) => {
+                if manifest.microdata.is_some() {
+                    warnings.push(Problem::file(
+                        "microdata.csv",
+                        "project.toml has a [microdata] section but there is no microdata.csv or microdata.parquet; the microdata pages stay empty",
+                    ));
+                }
+                None
+            }
+            Ok(Some(path)) => match &manifest.microdata {
+                None => {
+                    problems.push(Problem::file(
+                        &file_label(&path),
+                        "the project has microdata but project.toml has no [microdata] section naming its country, wave and design-weight columns; add one (see the README)",
+                    ));
+                    None
+                }
+                Some(roles) => {
+                    match table::load_table(&path, &file_label(&path), &microdata_specs(roles)) {
+                        Err(p) => {
+                            problems.extend(p);
+                            None
+                        }
+                        Ok(micro) => {
+                            check_microdata(
+                                &micro,
+                                roles,
+                                &frame,
+                                &keys,
+                                &participated,
+                                &mut problems,
+                                &mut warnings,
+                            );
+                            Some(micro)
+                        }
+                    }
+                }
+            },
+        };
+
+        if !problems.is_empty() {
+            return Err(problems.into_vec());
+        }
+        let mut waves = wave_of_row;
+        waves.sort_unstable();
+        waves.dedup();
+        Ok(Project {
+            dir: dir.to_path_buf(),
+            manifest,
+            frame,
+            microdata,
+            waves,
+            eligibility,
+            warnings,
+        })
+    }
+
+    /// Country codes of the frame's rows.
+    pub fn codes(&self) -> Vec<String> {
+        self.frame
+            .texts(&self.manifest.columns.code)
+            .into_iter()
+            .map(Option::unwrap_or_default)
+            .collect()
+    }
+
+    /// Country names of the frame's rows (the code where there is no name column).
+    pub fn names(&self) -> Vec<String> {
+        let column = self
+            .manifest
+            .columns
+            .name
+            .as_deref()
+            .unwrap_or(&self.manifest.columns.code);
+        let codes = self.codes();
+        self.frame
+            .texts(column)
+            .into_iter()
+            .zip(codes)
+            .map(|(n, c)| n.unwrap_or(c))
+            .collect()
+    }
+
+    /// The wave of each frame row.
+    pub fn row_waves(&self) -> Vec<i64> {
+        self.frame
+            .integers(&self.manifest.columns.wave)
+            .into_iter()
+            .map(Option::unwrap_or_default)
+            .collect()
+    }
+
+    /// Whether each frame row took part.
+    pub fn participated(&self) -> Vec<bool> {
+        self.frame
+            .integers(&self.manifest.columns.participation)
+            .into_iter()
+            .map(|f| f == Some(1))
+            .collect()
+    }
+
+    /// One wave's eligible universe, ready for analysis.
+    pub fn wave(&self, wave: i64) -> Option<WaveView> {
+        WaveView::new(self, wave)
+    }
+}
+
+/// The name shown in messages: the file name within the project folder.
+fn file_label(path: &Path) -> String {
+    path.file_name().map_or_else(
+        || path.display().to_string(),
+        |n| n.to_string_lossy().to_string(),
+    )
+}
+
+fn frame_specs(m: &Manifest) -> Vec<ColumnSpec> {
+    let mut specs = vec![
+        ColumnSpec::new(
+            &m.columns.code,
+            ColumnKind::RequiredText,
+            "columns.code (the country code)",
+        ),
+        ColumnSpec::new(&m.columns.wave, ColumnKind::Integer, "columns.wave"),
+        ColumnSpec::new(
+            &m.columns.participation,
+            ColumnKind::Flag,
+            "columns.participation (the participation flag)",
+        ),
+    ];
+    if let Some(name) = &m.columns.name {
+        specs.push(ColumnSpec::new(name, ColumnKind::Text, "columns.name"));
+    }
+    for c in &m.indicators.numeric {
+        specs.push(ColumnSpec::new(c, ColumnKind::Number, "indicators.numeric"));
+    }
+    for c in &m.indicators.categorical {
+        specs.push(ColumnSpec::new(
+            c,
+            ColumnKind::Text,
+            "indicators.categorical",
+        ));
+    }
+    for (i, r) in m.eligibility.iter().enumerate() {
+        specs.push(ColumnSpec::new(
+            &r.indicator,
+            ColumnKind::Number,
+            &format!("eligibility rule {}", i + 1),
+        ));
+    }
+    if let Some(c) = &m.recruitment.cost {
+        specs.push(ColumnSpec::new(c, ColumnKind::Number, "recruitment.cost"));
+    }
+    if let Some(c) = &m.recruitment.feasibility {
+        specs.push(ColumnSpec::new(
+            c,
+            ColumnKind::Number,
+            "recruitment.feasibility",
+        ));
+    }
+    specs
+}
+
+fn microdata_specs(roles: &manifest::MicrodataRoles) -> Vec<ColumnSpec> {
+    let mut specs = vec![
+        ColumnSpec::new(
+            &roles.country,
+            ColumnKind::RequiredText,
+            "microdata.country (the country code)",
+        ),
+        ColumnSpec::new(&roles.wave, ColumnKind::Integer, "microdata.wave"),
+        ColumnSpec::new(
+            &roles.design_weight,
+            ColumnKind::Number,
+            "microdata.design_weight",
+        ),
+    ];
+    for v in &roles.variables {
+        specs.push(ColumnSpec::new(
+            v,
+            ColumnKind::Number,
+            "microdata.variables",
+        ));
+    }
+    specs
+}
+
+fn check_duplicates(
+    frame: &Table,
+    m: &Manifest,
+    keys: &[(String, i64)],
+    problems: &mut ProblemList,
+) {
+    let mut first: HashMap<&(String, i64), usize> = HashMap::new();
+    for (i, key) in keys.iter().enumerate() {
+        if let Some(&j) = first.get(key) {
+            problems.push_kind(
+                "duplicate country-wave",
+                Problem::at(
+                    &frame.file,
+                    Some(frame.row_number(i)),
+                    Some(&m.columns.code),
+                    format!(
+                        "{} appears twice in wave {} (also on row {}); keep one row per country and wave",
+                        key.0,
+                        key.1,
+                        frame.row_number(j)
+                    ),
+                ),
+            );
+        } else {
+            first.insert(key, i);
+        }
+    }
+}
+
+fn check_reference_levels(frame: &Table, m: &Manifest, problems: &mut ProblemList) {
+    for (column, level) in &m.indicators.reference {
+        if !m.indicators.categorical.contains(column) {
+            problems.push(Problem::at(
+                MANIFEST_FILE,
+                None,
+                Some("indicators.reference"),
+                format!(
+                    "'{column}' has a reference level but is not listed in indicators.categorical"
+                ),
+            ));
+            continue;
+        }
+        let values = frame.texts(column);
+        if !values.iter().flatten().any(|v| v == level) {
+            problems.push(Problem::at(
+                MANIFEST_FILE,
+                None,
+                Some("indicators.reference"),
+                format!("the reference level '{level}' of '{column}' does not occur in {}; use one of its levels", frame.file),
+            ));
+        }
+    }
+}
+
+fn eligibility_warnings(
+    frame: &Table,
+    keys: &[(String, i64)],
+    participated: &[bool],
+    e: &Eligibility,
+) -> Vec<Problem> {
+    let mut warnings = Vec::new();
+    for (i, status) in e.status.iter().enumerate() {
+        let (code, wave) = &keys[i];
+        let row = Some(frame.row_number(i));
+        match (status, participated[i]) {
+            (RowStatus::Fails { indicator, value, cut }, true) => warnings.push(Problem::at(
+                &frame.file,
+                row,
+                Some(indicator),
+                format!("{code} took part in wave {wave} although its {indicator} ({value}) fails the rule '{cut}'; it is kept in the universe"),
+            )),
+            (RowStatus::Unknown { indicator }, true) => warnings.push(Problem::at(
+                &frame.file,
+                row,
+                Some(indicator),
+                format!("{code} took part in wave {wave} but has no {indicator}, so the eligibility rule cannot be checked; it is kept in the universe"),
+            )),
+            (RowStatus::Unknown { indicator }, false) => warnings.push(Problem::at(
+                &frame.file,
+                row,
+                Some(indicator),
+                format!("{code} has no {indicator} in wave {wave}, so its eligibility cannot be judged and it is left out of the universe; fill the value to include it"),
+            )),
+            _ => {}
+        }
+    }
+    warnings
+}
+
+fn check_microdata(
+    micro: &Table,
+    roles: &manifest::MicrodataRoles,
+    frame: &Table,
+    frame_keys: &[(String, i64)],
+    participated: &[bool],
+    problems: &mut ProblemList,
+    warnings: &mut Vec<Problem>,
+) {
+    let frame_rows: HashMap<(&str, i64), usize> = frame_keys
+        .iter()
+        .enumerate()
+        .map(|(i, (c, w))| ((c.as_str(), *w), i))
+        .collect();
+    let countries = micro.texts(&roles.country);
+    let waves = micro.integers(&roles.wave);
+    let weights = micro.numbers(&roles.design_weight);
+    // First row and respondent count of each country-wave in the microdata.
+    let mut groups: BTreeMap<(&str, i64), (usize, usize)> = BTreeMap::new();
+    for (i, (c, w)) in countries.iter().zip(&waves).enumerate() {
+        if let (Some(c), Some(w)) = (c, w) {
+            groups.entry((c.as_str(), *w)).or_insert((i, 0)).1 += 1;
+        }
+    }
+    for (&(code, wave), &(first, count)) in &groups {
+        let row = Some(micro.row_number(first));
+        match frame_rows.get(&(code, wave)) {
+            None => problems.push(Problem::at(
+                &micro.file,
+                row,
+                Some(&roles.country),
+                format!("{count} respondents of {code} in wave {wave}, but the frame has no row for {code} in wave {wave}; add the country-wave to {} or correct the code", frame.file),
+            )),
+            Some(&j) if !participated[j] => problems.push(Problem::at(
+                &micro.file,
+                row,
+                Some(&roles.country),
+                format!(
+                    "{count} respondents of {code} in wave {wave}, but {} row {} says {code} did not take part in wave {wave}; set its flag to 1 or remove these respondents",
+                    frame.file,
+                    frame.row_number(j)
+                ),
+            )),
+            Some(_) => {}
+        }
+    }
+    for (i, key) in frame_keys.iter().enumerate() {
+        if participated[i] && !groups.contains_key(&(key.0.as_str(), key.1)) {
+            warnings.push(Problem::at(
+                &frame.file,
+                Some(frame.row_number(i)),
+                None,
+                format!(
+                    "{} took part in wave {} but has no respondents in {}",
+                    key.0, key.1, micro.file
+                ),
+            ));
+        }
+    }
+    for (i, w) in weights.iter().enumerate() {
+        let row = Some(micro.row_number(i));
+        let column = Some(roles.design_weight.as_str());
+        match w {
+            None => problems.push_kind("missing design weight", Problem::at(&micro.file, row, column, "the design weight is missing; every respondent needs a positive weight (use 1 when the sample is self-weighting)")),
+            Some(x) if *x <= 0.0 => problems.push_kind("non-positive design weight", Problem::at(&micro.file, row, column, format!("the design weight is {x}; design weights must be positive (drop the respondent instead of giving weight 0)"))),
+            Some(_) => {}
+        }
+    }
+}

@@ -1,0 +1,139 @@
+//! One wave's eligible universe as plain vectors: the seam between loading and analysis.
+
+use serde::Serialize;
+
+use super::Project;
+
+/// A numeric indicator over the wave's eligible countries.
+#[derive(Debug, Clone, Serialize)]
+pub struct NumericIndicator {
+    pub column: String,
+    pub label: String,
+    pub values: Vec<Option<f64>>,
+}
+
+/// A categorical indicator: levels (reference first) and each country's level index.
+#[derive(Debug, Clone, Serialize)]
+pub struct CategoricalIndicator {
+    pub column: String,
+    pub label: String,
+    pub levels: Vec<String>,
+    pub values: Vec<Option<usize>>,
+}
+
+/// The eligible countries of one wave, aligned by position in every vector.
+#[derive(Debug, Clone, Serialize)]
+pub struct WaveView {
+    pub wave: i64,
+    /// Frame row of each country.
+    pub rows: Vec<usize>,
+    pub codes: Vec<String>,
+    pub names: Vec<String>,
+    pub participated: Vec<bool>,
+    pub numeric: Vec<NumericIndicator>,
+    pub categorical: Vec<CategoricalIndicator>,
+    /// Index into `categorical` of the grouping indicator (usually region).
+    pub group: Option<usize>,
+    pub cost: Option<Vec<Option<f64>>>,
+    pub feasibility: Option<Vec<Option<f64>>>,
+}
+
+impl WaveView {
+    /// `None` when the project has no such wave.
+    pub fn new(project: &Project, wave: i64) -> Option<WaveView> {
+        if !project.waves.contains(&wave) {
+            return None;
+        }
+        let m = &project.manifest;
+        let row_waves = project.row_waves();
+        let rows: Vec<usize> = (0..row_waves.len())
+            .filter(|&i| row_waves[i] == wave && project.eligibility.eligible[i])
+            .collect();
+        let pick = |all: Vec<Option<f64>>| rows.iter().map(|&i| all[i]).collect::<Vec<_>>();
+        let codes = project.codes();
+        let names = project.names();
+        let participated = project.participated();
+        let numeric = m
+            .indicators
+            .numeric
+            .iter()
+            .map(|c| NumericIndicator {
+                column: c.clone(),
+                label: m.label(c).to_string(),
+                values: pick(project.frame.numbers(c)),
+            })
+            .collect();
+        let categorical: Vec<CategoricalIndicator> = m
+            .indicators
+            .categorical
+            .iter()
+            .map(|c| {
+                let all = project.frame.texts(c);
+                let levels = levels(&all, m.indicators.reference.get(c).map(String::as_str));
+                let values = rows
+                    .iter()
+                    .map(|&i| {
+                        all[i]
+                            .as_ref()
+                            .and_then(|v| levels.iter().position(|l| l == v))
+                    })
+                    .collect();
+                CategoricalIndicator {
+                    column: c.clone(),
+                    label: m.label(c).to_string(),
+                    levels,
+                    values,
+                }
+            })
+            .collect();
+        let group = m
+            .group_column()
+            .and_then(|g| categorical.iter().position(|c| c.column == g));
+        Some(WaveView {
+            wave,
+            codes: rows.iter().map(|&i| codes[i].clone()).collect(),
+            names: rows.iter().map(|&i| names[i].clone()).collect(),
+            participated: rows.iter().map(|&i| participated[i]).collect(),
+            numeric,
+            categorical,
+            group,
+            cost: m
+                .recruitment
+                .cost
+                .as_ref()
+                .map(|c| pick(project.frame.numbers(c))),
+            feasibility: m
+                .recruitment
+                .feasibility
+                .as_ref()
+                .map(|c| pick(project.frame.numbers(c))),
+            rows,
+        })
+    }
+
+    pub fn len(&self) -> usize {
+        self.rows.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.rows.is_empty()
+    }
+
+    pub fn n_participants(&self) -> usize {
+        self.participated.iter().filter(|&&p| p).count()
+    }
+}
+
+/// Distinct levels in sorted order, the reference level (when given and present) first.
+pub fn levels(values: &[Option<String>], reference: Option<&str>) -> Vec<String> {
+    let mut levels: Vec<String> = values.iter().flatten().cloned().collect();
+    levels.sort();
+    levels.dedup();
+    if let Some(r) = reference {
+        if let Some(pos) = levels.iter().position(|l| l == r) {
+            let level = levels.remove(pos);
+            levels.insert(0, level);
+        }
+    }
+    levels
+}

@@ -1,0 +1,101 @@
+//! The web layer: thin axum handlers over the analysis results, one module per page.
+
+pub mod error;
+pub mod overview;
+pub mod state;
+
+use std::net::SocketAddr;
+use std::path::Path;
+use std::sync::Arc;
+
+use axum::extract::State;
+use axum::http::header;
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use axum::{Json, Router};
+use tower_http::services::ServeDir;
+
+use error::{AppError, AppResult};
+pub use state::AppState;
+
+/// The folder of our own CSS, next to the crate.
+fn static_dir() -> std::path::PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("static")
+}
+
+/// Every route, grouped by page.
+pub fn router(state: Arc<AppState>) -> Router {
+    Router::new()
+        // Overview
+        .route("/", get(overview::page))
+        .route("/api/overview", get(overview::json))
+        .route("/charts/coverage.svg", get(overview::coverage_svg))
+        // Project
+        .route("/api/reload", post(reload))
+        .nest_service("/static", ServeDir::new(static_dir()))
+        .fallback(not_found)
+        .with_state(state)
+}
+
+async fn not_found() -> AppError {
+    AppError::NotFound("no such page; start from / (the overview)".to_string())
+}
+
+#[derive(serde::Serialize)]
+struct Reloaded {
+    title: String,
+    waves: Vec<i64>,
+    warnings: usize,
+}
+
+/// Reloads the project from disk; the old project stays when the files have problems.
+async fn reload(State(state): State<Arc<AppState>>) -> AppResult<Json<Reloaded>> {
+    let state = Arc::clone(&state);
+    let fresh = tokio::task::spawn_blocking(move || state.reload())
+        .await
+        .map_err(|e| AppError::Internal(e.to_string()))?
+        .map_err(AppError::InvalidProject)?;
+    Ok(Json(Reloaded {
+        title: fresh.manifest.title.clone(),
+        waves: fresh.waves.clone(),
+        warnings: fresh.warnings.len(),
+    }))
+}
+
+/// An SVG chart, offered for download under `filename` when `?download` is asked.
+pub fn svg_response(filename: &str, svg: String) -> Response {
+    (
+        [
+            (header::CONTENT_TYPE, "image/svg+xml".to_string()),
+            (
+                header::CONTENT_DISPOSITION,
+                format!("inline; filename=\"{filename}\""),
+            ),
+        ],
+        svg,
+    )
+        .into_response()
+}
+
+/// Binds `addr` and serves until Ctrl-C. A taken port gets a clear message.
+pub async fn serve(state: Arc<AppState>, addr: SocketAddr) -> Result<(), String> {
+    let listener = tokio::net::TcpListener::bind(addr).await.map_err(|e| {
+        if e.kind() == std::io::ErrorKind::AddrInUse {
+            format!("{addr} is already in use (another gapwise, or another program, is listening there); stop it or choose another port with --addr 127.0.0.1:PORT")
+        } else {
+            format!("cannot listen on {addr}: {e}")
+        }
+    })?;
+    let local = listener.local_addr().map_err(|e| e.to_string())?;
+    println!(
+        "gapwise {} serving \"{}\" at http://{local}/  (Ctrl-C stops)",
+        crate::VERSION,
+        state.project().manifest.title
+    );
+    axum::serve(listener, router(state))
+        .with_graceful_shutdown(async {
+            let _ = tokio::signal::ctrl_c().await;
+        })
+        .await
+        .map_err(|e| format!("the server stopped: {e}"))
+}

@@ -1,0 +1,205 @@
+//! Helpers shared by the integration tests: temporary project folders, running the
+//! binary, and a minimal HTTP client over loopback.
+#![allow(dead_code)]
+
+use std::io::{Read, Write};
+use std::net::TcpStream;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+static COUNTER: AtomicUsize = AtomicUsize::new(0);
+
+/// A fresh empty folder under the system temp dir, removed when dropped.
+pub struct TempDir(pub PathBuf);
+
+impl TempDir {
+    pub fn new(tag: &str) -> Self {
+        let n = COUNTER.fetch_add(1, Ordering::SeqCst);
+        let dir =
+            std::env::temp_dir().join(format!("gapwise-test-{}-{tag}-{n}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).expect("create temp dir");
+        TempDir(dir)
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.0
+    }
+
+    pub fn write(&self, name: &str, contents: impl AsRef<[u8]>) {
+        std::fs::write(self.0.join(name), contents).expect("write test file");
+    }
+}
+
+impl Drop for TempDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+pub const MANIFEST: &str = r#"
+title = "Test programme"
+[columns]
+code = "iso"
+name = "name"
+wave = "wave"
+participation = "took_part"
+[indicators]
+numeric = ["gdp", "democracy"]
+categorical = ["region"]
+[[eligibility]]
+indicator = "democracy"
+at_least = "lowest-participant"
+[microdata]
+country = "iso"
+wave = "wave"
+design_weight = "dweight"
+variables = ["trust"]
+"#;
+
+pub const FRAME: &str = "iso,name,wave,took_part,gdp,democracy,region
+XAA,Aland,1,1,9.5,8.0,North
+XAB,Bland,1,0,8.1,6.5,South
+XAC,Cland,1,1,,7.0,South
+XAD,Dland,1,0,7.0,3.0,North
+XAA,Aland,2,1,9.6,8.1,North
+XAB,Bland,2,1,8.2,6.6,South
+XAC,Cland,2,0,8.8,7.1,South
+XAD,Dland,2,0,7.1,3.2,North
+";
+
+pub const MICRODATA: &str = "iso,wave,dweight,trust
+XAA,1,1.0,5
+XAA,1,0.8,6
+XAC,1,1.2,4
+XAA,2,1.0,7
+XAB,2,1.1,3
+";
+
+/// A valid small project; tests overwrite one file to make it invalid.
+pub fn valid_project(tag: &str) -> TempDir {
+    let dir = TempDir::new(tag);
+    dir.write("project.toml", MANIFEST);
+    dir.write("frame.csv", FRAME);
+    dir.write("microdata.csv", MICRODATA);
+    dir
+}
+
+pub struct Output {
+    pub code: i32,
+    pub stdout: String,
+    pub stderr: String,
+}
+
+/// Runs the gapwise binary with arguments.
+pub fn gapwise(args: &[&str]) -> Output {
+    let out = Command::new(env!("CARGO_BIN_EXE_gapwise"))
+        .args(args)
+        .output()
+        .expect("run gapwise");
+    Output {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).to_string(),
+        stderr: String::from_utf8_lossy(&out.stderr).to_string(),
+    }
+}
+
+pub fn demo_dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data")
+}
+
+/// A response: status code, headers (lower-case names) and body.
+pub struct Response {
+    pub status: u16,
+    pub headers: Vec<(String, String)>,
+    pub body: String,
+}
+
+impl Response {
+    pub fn header(&self, name: &str) -> Option<&str> {
+        self.headers
+            .iter()
+            .find(|(n, _)| n == name)
+            .map(|(_, v)| v.as_str())
+    }
+}
+
+/// One HTTP/1.1 request over a fresh connection (Connection: close).
+pub fn http(
+    addr: std::net::SocketAddr,
+    method: &str,
+    path: &str,
+    extra_headers: &[(&str, &str)],
+) -> Response {
+    let mut stream = TcpStream::connect(addr).expect("connect");
+    let mut request = format!(
+        "{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\nContent-Length: 0\r\n"
+    );
+    for (k, v) in extra_headers {
+        request.push_str(&format!("{k}: {v}\r\n"));
+    }
+    request.push_str("\r\n");
+    stream.write_all(request.as_bytes()).expect("send");
+    let mut raw = Vec::new();
+    stream.read_to_end(&mut raw).expect("read");
+    let text = String::from_utf8_lossy(&raw).to_string();
+    let (head, body) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
+    let mut lines = head.lines();
+    let status = lines
+        .next()
+        .and_then(|l| l.split_whitespace().nth(1))
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(0);
+    let headers: Vec<(String, String)> = lines
+        .filter_map(|l| l.split_once(':'))
+        .map(|(k, v)| (k.trim().to_ascii_lowercase(), v.trim().to_string()))
+        .collect();
+    let body = if headers
+        .iter()
+        .any(|(k, v)| k == "transfer-encoding" && v.contains("chunked"))
+    {
+        dechunk(body)
+    } else {
+        body.to_string()
+    };
+    Response {
+        status,
+        headers,
+        body,
+    }
+}
+
+fn dechunk(mut body: &str) -> String {
+    let mut out = String::new();
+    while let Some((size, rest)) = body.split_once("\r\n") {
+        let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
+        if n == 0 || rest.len() < n {
+            break;
+        }
+        out.push_str(&rest[..n]);
+        body = rest[n..].trim_start_matches("\r\n");
+    }
+    out
+}
+
+/// Starts the server on an ephemeral loopback port in a background thread.
+pub fn start_server(dir: &Path) -> std::net::SocketAddr {
+    let project = gapwise::project::Project::load(dir).expect("project loads");
+    let state = std::sync::Arc::new(gapwise::web::AppState::new(project));
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        let runtime = tokio::runtime::Runtime::new().expect("runtime");
+        runtime.block_on(async move {
+            let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+                .await
+                .expect("bind");
+            tx.send(listener.local_addr().expect("addr"))
+                .expect("send addr");
+            axum::serve(listener, gapwise::web::router(state))
+                .await
+                .expect("serve");
+        });
+    });
+    rx.recv().expect("server address")
+}

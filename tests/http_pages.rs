@@ -1,0 +1,73 @@
+//! The server: the overview answers with its tables, chart and cautions; the JSON twin
+//! carries the same numbers; reload swaps the project and keeps the old one on errors.
+
+mod common;
+use common::*;
+
+#[test]
+fn overview_page_and_json_twin_agree() {
+    let addr = start_server(&demo_dir());
+    let page = http(addr, "GET", "/", &[]);
+    assert_eq!(page.status, 200);
+    assert!(page
+        .header("content-type")
+        .unwrap_or("")
+        .starts_with("text/html"));
+    for needle in [
+        "<svg",
+        "Coverage by region",
+        "Eligible and participating countries per wave",
+        "Weights correct only for what the indicators measure",
+        "/static/gapwise.css",
+    ] {
+        assert!(page.body.contains(needle), "page lacks {needle}");
+    }
+    let api = http(addr, "GET", "/api/overview", &[]);
+    assert_eq!(api.status, 200);
+    let v: serde_json::Value = serde_json::from_str(&api.body).unwrap();
+    for w in v["waves"].as_array().unwrap() {
+        let row = format!(
+            "<tr><th scope=\"row\">{}</th><td>{}</td><td>{}</td><td>{}</td>",
+            w["wave"], w["rows"], w["eligible"], w["participating"]
+        );
+        assert!(page.body.contains(&row), "page lacks {row}");
+    }
+    let svg = http(addr, "GET", "/charts/coverage.svg", &[]);
+    assert_eq!(svg.status, 200);
+    assert_eq!(svg.header("content-type"), Some("image/svg+xml"));
+    assert!(svg.body.contains("Savanna Belt"));
+    let css = http(addr, "GET", "/static/gapwise.css", &[]);
+    assert_eq!(css.status, 200);
+    assert_eq!(http(addr, "GET", "/nowhere", &[]).status, 404);
+}
+
+#[test]
+fn reload_swaps_project_and_keeps_old_on_error() {
+    let dir = valid_project("reload");
+    let addr = start_server(dir.path());
+    let before: serde_json::Value =
+        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    assert_eq!(before["title"], "Test programme");
+
+    dir.write(
+        "project.toml",
+        MANIFEST.replace("Test programme", "Renamed programme"),
+    );
+    let r = http(addr, "POST", "/api/reload", &[]);
+    assert_eq!(r.status, 200, "{}", r.body);
+    let after: serde_json::Value =
+        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    assert_eq!(after["title"], "Renamed programme");
+
+    dir.write("frame.csv", "");
+    let r = http(addr, "POST", "/api/reload", &[]);
+    assert_eq!(r.status, 422);
+    assert!(
+        r.body.contains("frame.csv:-:-: the file is empty"),
+        "{}",
+        r.body
+    );
+    let kept: serde_json::Value =
+        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    assert_eq!(kept["title"], "Renamed programme");
+}
