@@ -7,7 +7,10 @@ use std::path::Path;
 use std::sync::Arc;
 
 use crate::analysis::overview::{overview, Overview};
+use crate::analysis::participation::{self, FitReport};
+use crate::analysis::Settings;
 use crate::project::Project;
+use crate::project::WaveView;
 use crate::web;
 
 /// `gapwise check DIR`: a summary and exit 0, or one line per problem and exit 1.
@@ -153,4 +156,163 @@ pub fn make_demo(dir: &Path, seed: u64) -> i32 {
             1
         }
     }
+}
+
+/// Where `gapwise fit` and `gapwise plan` take their universe from.
+pub struct UniverseSource {
+    pub path: std::path::PathBuf,
+    pub wave: Option<i64>,
+    pub id: Option<String>,
+    pub flag: Option<String>,
+}
+
+/// Loads the wave view named by the source: a project folder (manifest columns, one wave)
+/// or a bare frame file whose rows are all eligible. Returns the view and the settings
+/// completed with the defaults that apply.
+pub fn load_universe(source: &UniverseSource, settings: &mut Settings) -> Result<WaveView, String> {
+    if source.path.is_dir() {
+        let project = Project::load(&source.path).map_err(|p| problems_text(&p, &source.path))?;
+        let wave = match source.wave {
+            Some(w) => w,
+            None => *project.waves.last().ok_or("the project has no waves")?,
+        };
+        settings.wave = Some(wave);
+        project.wave(wave).ok_or_else(|| {
+            format!(
+                "the project has no wave {wave}; its waves are {}",
+                project
+                    .waves
+                    .iter()
+                    .map(i64::to_string)
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            )
+        })
+    } else {
+        let id = source
+            .id
+            .as_deref()
+            .ok_or("a frame file needs --id COLUMN (the unit identifier)")?;
+        let flag = source
+            .flag
+            .as_deref()
+            .ok_or("a frame file needs --flag COLUMN (1 took part, 0 did not)")?;
+        let covariates = settings.covariates.clone().unwrap_or_default();
+        let factors = settings.factors.clone().unwrap_or_default();
+        if covariates.is_empty() && factors.is_empty() {
+            return Err(
+                "a frame file needs --covariates a,b,c (and optionally --factors f,g)".to_string(),
+            );
+        }
+        WaveView::from_file(&source.path, id, flag, &covariates, &factors)
+            .map_err(|p| problems_text(&p, &source.path))
+    }
+}
+
+fn problems_text(problems: &[crate::project::Problem], path: &Path) -> String {
+    let mut out: Vec<String> = problems.iter().map(ToString::to_string).collect();
+    out.push(format!(
+        "{} problem{} in {}",
+        problems.len(),
+        if problems.len() == 1 { "" } else { "s" },
+        path.display()
+    ));
+    out.join("\n")
+}
+
+/// `gapwise fit`: the participation model, the weights and the balance they achieve.
+pub fn fit(source: &UniverseSource, mut settings: Settings, json: bool) -> i32 {
+    let view = match load_universe(source, &mut settings) {
+        Ok(v) => v,
+        Err(message) => {
+            eprintln!("{message}");
+            return 1;
+        }
+    };
+    match participation::fit(&view, &settings) {
+        Ok(mut report) => {
+            if !source.path.is_dir() {
+                report.wave = None;
+            }
+            if json {
+                println!(
+                    "{}",
+                    serde_json::to_string_pretty(&report).unwrap_or_default()
+                );
+            } else {
+                print!("{}", fit_text(&report));
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
+fn opt(x: Option<f64>, decimals: usize) -> String {
+    x.map_or_else(|| "-".to_string(), |v| format!("{v:.decimals$}"))
+}
+
+/// The readable form of a fit.
+pub fn fit_text(r: &FitReport) -> String {
+    let mut out = String::new();
+    let wave = r.wave.map(|w| format!("wave {w}: ")).unwrap_or_default();
+    let _ = writeln!(
+        out,
+        "{wave}{} eligible, {} took part; {}",
+        r.n_eligible, r.n_participants, r.missing_note
+    );
+    let m = &r.model;
+    let _ = writeln!(
+        out,
+        "\n{} model (log-likelihood {:.4}, {}converged; AUC {}, leave-one-out AUC {})",
+        m.kind,
+        m.log_likelihood,
+        if m.converged { "" } else { "NOT " },
+        opt(m.auc, 3),
+        opt(m.auc_loo, 3)
+    );
+    let _ = writeln!(
+        out,
+        "  {:<34} {:>12} {:>12}",
+        "term", "coefficient", "std. error"
+    );
+    for ((t, c), s) in m.terms.iter().zip(&m.coef).zip(&m.se) {
+        let _ = writeln!(out, "  {t:<34} {c:>12.5} {s:>12.5}");
+    }
+    for w in &m.warnings {
+        let _ = writeln!(out, "  warning: {w}");
+    }
+    let wr = &r.weighting;
+    let _ = writeln!(
+        out,
+        "\n{} weights: effective number of countries {:.1} of {}, largest weight {:.1}% of the total, CV {:.3}",
+        wr.kind,
+        wr.effective_n,
+        r.n_participants,
+        100.0 * wr.max_weight_share,
+        wr.cv
+    );
+    for w in &wr.warnings {
+        let _ = writeln!(out, "  warning: {w}");
+    }
+    let _ = writeln!(
+        out,
+        "\n  {:<34} {:>10} {:>10} {:>10} {:>10}",
+        "balance", "SMD before", "SMD after", "VR before", "VR after"
+    );
+    for b in &r.balance {
+        let _ = writeln!(
+            out,
+            "  {:<34} {:>10} {:>10} {:>10} {:>10}",
+            b.covariate,
+            opt(b.smd_before, 3),
+            opt(b.smd_after, 3),
+            opt(b.variance_ratio_before, 2),
+            opt(b.variance_ratio_after, 2)
+        );
+    }
+    out
 }

@@ -39,12 +39,85 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Model participation in one wave and weight the participants to the eligible universe.
+    Fit {
+        /// A project folder, or a CSV/Parquet frame in which every row is an eligible unit.
+        source: PathBuf,
+        #[command(flatten)]
+        universe: UniverseArgs,
+        #[command(flatten)]
+        analysis: AnalysisArgs,
+        /// Print one JSON object instead of tables.
+        #[arg(long)]
+        json: bool,
+    },
     /// Write the invented demo project into a folder.
     MakeDemo {
         dir: PathBuf,
         #[arg(long, default_value_t = gapwise::demo::SEED)]
         seed: u64,
     },
+}
+
+#[derive(clap::Args)]
+struct UniverseArgs {
+    /// The wave to analyse (project folders; default: the latest).
+    #[arg(long)]
+    wave: Option<i64>,
+    /// Unit identifier column (frame files).
+    #[arg(long)]
+    id: Option<String>,
+    /// Participation flag column, 1 took part, 0 did not (frame files).
+    #[arg(long)]
+    flag: Option<String>,
+}
+
+#[derive(clap::Args)]
+struct AnalysisArgs {
+    /// Numeric indicators, comma-separated (default for projects: all).
+    #[arg(long)]
+    covariates: Option<String>,
+    /// Categorical indicators, comma-separated (default for projects: all).
+    #[arg(long)]
+    factors: Option<String>,
+    /// logit, firth or probit.
+    #[arg(long, default_value = "logit")]
+    model: String,
+    /// inverse-probability, covariate-balancing, covariate-balancing-gmm, entropy or raking.
+    #[arg(long, default_value = "inverse-probability")]
+    weighting: String,
+    /// Cap weights at this quantile of participants' weights (e.g. 0.95).
+    #[arg(long)]
+    trim: Option<String>,
+    /// complete-cases or median-fill.
+    #[arg(long, default_value = "complete-cases")]
+    missing: String,
+    /// Entropy balancing also matches the universe's variances.
+    #[arg(long)]
+    variances: bool,
+}
+
+impl AnalysisArgs {
+    fn settings(&self) -> Result<gapwise::analysis::Settings, String> {
+        let mut pairs: Vec<(&str, &str)> = vec![
+            ("model", &self.model),
+            ("weighting", &self.weighting),
+            ("missing", &self.missing),
+        ];
+        if let Some(c) = &self.covariates {
+            pairs.push(("covariates", c));
+        }
+        if let Some(f) = &self.factors {
+            pairs.push(("factors", f));
+        }
+        if let Some(t) = &self.trim {
+            pairs.push(("trim", t));
+        }
+        if self.variances {
+            pairs.push(("variances", "1"));
+        }
+        gapwise::analysis::Settings::from_pairs(pairs).map_err(|e| e.to_string())
+    }
 }
 
 fn main() -> ExitCode {
@@ -58,6 +131,27 @@ fn main() -> ExitCode {
         }) => cli::serve(&dir.unwrap_or_else(gapwise::demo_dir), addr, allow_remote),
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
+        Some(Command::Fit {
+            source,
+            universe,
+            analysis,
+            json,
+        }) => match analysis.settings() {
+            Ok(settings) => cli::fit(
+                &cli::UniverseSource {
+                    path: source,
+                    wave: universe.wave,
+                    id: universe.id,
+                    flag: universe.flag,
+                },
+                settings,
+                json,
+            ),
+            Err(message) => {
+                eprintln!("{message}");
+                2
+            }
+        },
     };
     ExitCode::from(code.clamp(0, 255) as u8)
 }

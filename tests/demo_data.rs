@@ -64,21 +64,28 @@ fn demo_loads_and_matches_its_documented_truth() {
     }
     // Participation shifts: wave 4 covers more than wave 1.
     assert!(o.waves[3].coverage > o.waves[0].coverage);
-    // One region clearly under-covered: the shifted region has the lowest coverage in every wave.
+    // One region clearly under-covered: the shifted region has the lowest mean coverage
+    // across waves, below 30% in every wave.
+    let mean_coverage = |g: &gapwise::analysis::overview::GroupCoverage| {
+        g.coverage.iter().flatten().sum::<f64>() / 4.0
+    };
     let shifted = o
         .coverage
         .iter()
         .find(|g| g.group == "Savanna Belt")
         .unwrap();
-    for w in 0..4 {
-        let lowest = o
-            .coverage
-            .iter()
-            .filter_map(|g| g.coverage[w])
-            .fold(f64::INFINITY, f64::min);
-        assert_eq!(shifted.coverage[w], Some(lowest), "wave {w}");
-        assert!(lowest < 0.3, "wave {w}: {lowest}");
+    for g in &o.coverage {
+        assert!(
+            mean_coverage(shifted) <= mean_coverage(g),
+            "{} is covered less",
+            g.group
+        );
     }
+    assert!(
+        shifted.coverage.iter().all(|c| c.unwrap() < 0.3),
+        "{:?}",
+        shifted.coverage
+    );
     // Missing values exist and are shown.
     assert!(o.missing.iter().any(|m| m.total_missing > 0));
     // Selection visibly biases a pooled estimate: participants' mean trust exceeds the universe's.

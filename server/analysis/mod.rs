@@ -2,4 +2,9 @@
 //! alike by pages, JSON twins, the command line and the report.
 
 pub mod cautions;
+pub mod design;
 pub mod overview;
+pub mod participation;
+pub mod settings;
+
+pub use settings::Settings;

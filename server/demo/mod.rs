@@ -26,7 +26,7 @@ pub const REGIONS: [(&str, usize, f64); 6] = [
     ("Central Highlands", 26, 0.0),
     ("Amber Steppe", 24, -0.1),
     ("Lagoon Archipelago", 22, -0.6),
-    ("Savanna Belt", 28, -1.2),
+    ("Savanna Belt", 28, -0.7),
 ];
 
 pub const ELECTORAL_SYSTEMS: [&str; 3] = ["proportional", "majoritarian", "mixed"];
@@ -41,7 +41,7 @@ impl SelectionModel {
     pub const YEARS: f64 = 0.03;
     pub const DEMOCRACY: f64 = 0.45;
     pub const REGION_SHIFTED: &'static str = "Savanna Belt";
-    pub const REGION_SHIFT: f64 = -1.0;
+    pub const REGION_SHIFT: f64 = -0.4;
 
     pub fn linear_predictor(wave_index: usize, c: &CountryWave, region: &str) -> f64 {
         let shift = if region == Self::REGION_SHIFTED {
@@ -324,8 +324,9 @@ fn frame_csv(s: &Scenario) -> String {
         "code,country,wave,took_part,region,electoral_system,log_gdp_pc,years_since_transition,democracy_index,log_population,literacy,internet_use,urban_share,recruitment_cost,has_study_team\n",
     );
     // A few missing values, at fixed places, so that pages and checks show them.
-    let missing =
-        |c: usize, w: usize, column: usize| (c * 7 + w * 3 + column * 11).is_multiple_of(97) && column >= 4;
+    let missing = |c: usize, w: usize, column: usize| {
+        (c * 7 + w * 3 + column * 11).is_multiple_of(97) && column >= 4
+    };
     for (w, rows) in s.waves.iter().enumerate() {
         for (c, country) in s.countries.iter().enumerate() {
             let r = &rows[c];

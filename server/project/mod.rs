@@ -48,13 +48,15 @@ impl Project {
                     "the manifest is not UTF-8 text; save it as UTF-8",
                 )]
             })?,
-            Err(e) => return Err(vec![Problem::file(
-                MANIFEST_FILE,
-                format!(
+            Err(e) => {
+                return Err(vec![Problem::file(
+                    MANIFEST_FILE,
+                    format!(
                     "cannot read {} ({e}); a project folder needs a project.toml (see the README)",
                     manifest_path.display()
                 ),
-            )]),
+                )])
+            }
         };
         let manifest = Manifest::parse(&text)?;
 

@@ -137,3 +137,99 @@ pub fn levels(values: &[Option<String>], reference: Option<&str>) -> Vec<String>
     }
     levels
 }
+
+impl WaveView {
+    /// A universe read from a bare CSV or Parquet file in which every row is an eligible
+    /// unit: `id` names the units, `flag` says who took part (1/0).
+    pub fn from_file(
+        path: &std::path::Path,
+        id: &str,
+        flag: &str,
+        covariates: &[String],
+        factors: &[String],
+    ) -> Result<WaveView, Vec<super::Problem>> {
+        use super::table::{load_table, ColumnKind, ColumnSpec};
+        let label = path.file_name().map_or_else(
+            || path.display().to_string(),
+            |n| n.to_string_lossy().to_string(),
+        );
+        let mut specs = vec![
+            ColumnSpec::new(id, ColumnKind::RequiredText, "--id"),
+            ColumnSpec::new(flag, ColumnKind::Flag, "--flag"),
+        ];
+        specs.extend(
+            covariates
+                .iter()
+                .map(|c| ColumnSpec::new(c, ColumnKind::Number, "--covariates")),
+        );
+        specs.extend(
+            factors
+                .iter()
+                .map(|f| ColumnSpec::new(f, ColumnKind::Text, "--factors")),
+        );
+        let table = load_table(path, &label, &specs)?;
+        let codes: Vec<String> = table
+            .texts(id)
+            .into_iter()
+            .map(Option::unwrap_or_default)
+            .collect();
+        let mut seen = std::collections::HashMap::new();
+        let mut problems = Vec::new();
+        for (i, c) in codes.iter().enumerate() {
+            if let Some(first) = seen.insert(c.clone(), i) {
+                problems.push(super::Problem::at(
+                    &label,
+                    Some(table.row_number(i)),
+                    Some(id),
+                    format!(
+                        "{c} appears twice (also on row {}); give every unit one row",
+                        table.row_number(first)
+                    ),
+                ));
+            }
+        }
+        if !problems.is_empty() {
+            return Err(problems);
+        }
+        let n = codes.len();
+        Ok(WaveView {
+            wave: 0,
+            rows: (0..n).collect(),
+            names: codes.clone(),
+            codes,
+            participated: table
+                .integers(flag)
+                .into_iter()
+                .map(|f| f == Some(1))
+                .collect(),
+            numeric: covariates
+                .iter()
+                .map(|c| NumericIndicator {
+                    column: c.clone(),
+                    label: c.clone(),
+                    values: table.numbers(c),
+                })
+                .collect(),
+            categorical: factors
+                .iter()
+                .map(|f| {
+                    let all = table.texts(f);
+                    let levels = levels(&all, None);
+                    let values = all
+                        .iter()
+                        .map(|v| v.as_ref().and_then(|v| levels.iter().position(|l| l == v)))
+                        .collect();
+                    CategoricalIndicator {
+                        column: f.clone(),
+                        label: f.clone(),
+                        levels,
+                        values,
+                    }
+                })
+                .collect(),
+            group: None,
+            cost: None,
+            feasibility: None,
+        })
+    }
+}

@@ -1,4 +1,9 @@
 //! Pure numerical code over slices and ndarray: no polars, no files, no HTTP.
 //! Each estimator's doc comment states its formula and its published source.
 
+pub mod balance;
+pub mod binary;
 pub mod describe;
+pub mod linalg;
+pub mod normal;
+pub mod weights;

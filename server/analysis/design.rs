@@ -1,0 +1,258 @@
+//! From a wave view and the settings to the numbers the estimators take: the design
+//! matrix (intercept, numeric indicators, dummies), the balance columns, the margins.
+
+use ndarray::Array2;
+use serde::Serialize;
+
+use super::settings::{MissingRule, Settings};
+use crate::project::WaveView;
+use crate::stats::describe;
+
+/// A column whose balance is checked: a numeric indicator or one level of a category.
+#[derive(Debug, Clone, Serialize)]
+pub struct BalanceColumn {
+    /// Column name, or `factor=level`.
+    pub name: String,
+    pub label: String,
+    pub values: Vec<f64>,
+    /// A 0/1 level indicator (SMD uses sqrt(p(1-p)) of the universe).
+    pub is_level: bool,
+}
+
+/// A categorical indicator as level codes (for raking and coverage).
+#[derive(Debug, Clone, Serialize)]
+pub struct Margin {
+    pub name: String,
+    pub levels: Vec<String>,
+    pub codes: Vec<usize>,
+}
+
+/// Everything the estimators need for one wave's analysis universe.
+#[derive(Debug, Clone)]
+pub struct Design {
+    /// Term names, intercept first.
+    pub terms: Vec<String>,
+    /// Design matrix on the original scale, intercept column first.
+    pub x: Array2<f64>,
+    pub participated: Vec<bool>,
+    pub ids: Vec<String>,
+    pub names: Vec<String>,
+    /// Index into the wave view of each analysed unit.
+    pub units: Vec<usize>,
+    /// Countries left out for a missing value: "CODE (indicator)".
+    pub dropped: Vec<String>,
+    /// Indicators filled with the median: (indicator, count, median).
+    pub filled: Vec<(String, usize, f64)>,
+    pub balance: Vec<BalanceColumn>,
+    pub margins: Vec<Margin>,
+    /// Column means and standard deviations used to standardise (intercept: 0 and 1).
+    pub centre: Vec<f64>,
+    pub scale: Vec<f64>,
+}
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{0}")]
+pub struct DesignError(pub String);
+
+pub const INTERCEPT: &str = "intercept";
+
+/// Builds the design for the settings' covariates and factors.
+pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError> {
+    let covariates: Vec<usize> = match &settings.covariates {
+        None => (0..view.numeric.len()).collect(),
+        Some(names) => names
+            .iter()
+            .map(|n| {
+                view.numeric
+                    .iter()
+                    .position(|c| &c.column == n)
+                    .ok_or_else(|| {
+                        DesignError(format!(
+                            "'{n}' is not a numeric indicator; the numeric indicators are: {}",
+                            view.numeric
+                                .iter()
+                                .map(|c| c.column.as_str())
+                                .collect::<Vec<_>>()
+                                .join(", ")
+                        ))
+                    })
+            })
+            .collect::<Result<_, _>>()?,
+    };
+    let factors: Vec<usize> = match &settings.factors {
+        None => (0..view.categorical.len()).collect(),
+        Some(names) => names
+            .iter()
+            .map(|n| {
+                view.categorical.iter().position(|c| &c.column == n).ok_or_else(|| {
+                    DesignError(format!(
+                        "'{n}' is not a categorical indicator; the categorical indicators are: {}",
+                        view.categorical.iter().map(|c| c.column.as_str()).collect::<Vec<_>>().join(", ")
+                    ))
+                })
+            })
+            .collect::<Result<_, _>>()?,
+    };
+    if covariates.is_empty() && factors.is_empty() {
+        return Err(DesignError(
+            "choose at least one indicator for the participation model".to_string(),
+        ));
+    }
+
+    // Which units stay, and how missing values are handled.
+    let mut units: Vec<usize> = Vec::new();
+    let mut dropped = Vec::new();
+    for i in 0..view.len() {
+        let missing: Vec<&str> = covariates
+            .iter()
+            .filter(|&&c| view.numeric[c].values[i].is_none())
+            .map(|&c| view.numeric[c].column.as_str())
+            .chain(
+                factors
+                    .iter()
+                    .filter(|&&f| view.categorical[f].values[i].is_none())
+                    .map(|&f| view.categorical[f].column.as_str()),
+            )
+            .collect();
+        if missing.is_empty() || settings.missing == MissingRule::MedianFill {
+            units.push(i);
+        } else {
+            dropped.push(format!("{} ({})", view.codes[i], missing.join(", ")));
+        }
+    }
+    let n = units.len();
+
+    let mut terms = vec![INTERCEPT.to_string()];
+    let mut columns: Vec<Vec<f64>> = vec![vec![1.0; n]];
+    let mut balance = Vec::new();
+    let mut filled = Vec::new();
+    let mut missing_dummies = Vec::new();
+    for &c in &covariates {
+        let ind = &view.numeric[c];
+        let raw: Vec<Option<f64>> = units.iter().map(|&i| ind.values[i]).collect();
+        let present: Vec<f64> = raw.iter().flatten().copied().collect();
+        let n_missing = n - present.len();
+        let values: Vec<f64> = if n_missing > 0 {
+            let median = describe::median(&present).ok_or_else(|| {
+                DesignError(format!("'{}' has no values in this wave", ind.column))
+            })?;
+            filled.push((ind.column.clone(), n_missing, median));
+            missing_dummies.push((
+                format!("{} missing", ind.column),
+                raw.iter()
+                    .map(|v| f64::from(u8::from(v.is_none())))
+                    .collect::<Vec<_>>(),
+            ));
+            raw.iter().map(|v| v.unwrap_or(median)).collect()
+        } else {
+            present
+        };
+        terms.push(ind.column.clone());
+        columns.push(values.clone());
+        balance.push(BalanceColumn {
+            name: ind.column.clone(),
+            label: ind.label.clone(),
+            values,
+            is_level: false,
+        });
+    }
+    let mut margins = Vec::new();
+    for &f in &factors {
+        let cat = &view.categorical[f];
+        let mut levels = cat.levels.clone();
+        let missing_level = units.iter().any(|&i| cat.values[i].is_none());
+        if missing_level {
+            levels.push("(missing)".to_string());
+        }
+        let codes: Vec<usize> = units
+            .iter()
+            .map(|&i| cat.values[i].unwrap_or(levels.len() - 1))
+            .collect();
+        // Keep only the levels present among the analysed units; the first present is the reference.
+        let present: Vec<usize> = (0..levels.len()).filter(|l| codes.contains(l)).collect();
+        for (k, &l) in present.iter().enumerate() {
+            let indicator: Vec<f64> = codes.iter().map(|&c| f64::from(u8::from(c == l))).collect();
+            let name = format!("{}={}", cat.column, levels[l]);
+            if k > 0 {
+                terms.push(name.clone());
+                columns.push(indicator.clone());
+            }
+            balance.push(BalanceColumn {
+                name,
+                label: format!("{}: {}", cat.label, levels[l]),
+                values: indicator,
+                is_level: true,
+            });
+        }
+        let remap: Vec<usize> = codes
+            .iter()
+            .map(|c| present.iter().position(|p| p == c).unwrap_or(0))
+            .collect();
+        margins.push(Margin {
+            name: cat.column.clone(),
+            levels: present.iter().map(|&l| levels[l].clone()).collect(),
+            codes: remap,
+        });
+    }
+    for (name, values) in missing_dummies {
+        terms.push(name);
+        columns.push(values);
+    }
+
+    let k = columns.len();
+    let mut x = Array2::<f64>::zeros((n, k));
+    let mut centre = vec![0.0; k];
+    let mut scale = vec![1.0; k];
+    for (j, col) in columns.iter().enumerate() {
+        for (i, &v) in col.iter().enumerate() {
+            x[[i, j]] = v;
+        }
+        if j > 0 {
+            let mean = col.iter().sum::<f64>() / n.max(1) as f64;
+            let sd = (col.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n.max(2) - 1) as f64)
+                .sqrt();
+            if sd == 0.0 || !sd.is_finite() {
+                return Err(DesignError(format!(
+                    "'{}' takes a single value among the {n} countries analysed in this wave, so it cannot explain participation; leave it out",
+                    terms[j]
+                )));
+            }
+            centre[j] = mean;
+            scale[j] = sd;
+        }
+    }
+    Ok(Design {
+        terms,
+        x,
+        participated: units.iter().map(|&i| view.participated[i]).collect(),
+        ids: units.iter().map(|&i| view.codes[i].clone()).collect(),
+        names: units.iter().map(|&i| view.names[i].clone()).collect(),
+        units,
+        dropped,
+        filled,
+        balance,
+        margins,
+        centre,
+        scale,
+    })
+}
+
+impl Design {
+    pub fn n(&self) -> usize {
+        self.ids.len()
+    }
+
+    pub fn n_participants(&self) -> usize {
+        self.participated.iter().filter(|&&p| p).count()
+    }
+
+    /// The design with every non-intercept column standardised (mean 0, sd 1).
+    pub fn standardised(&self) -> Array2<f64> {
+        let mut z = self.x.clone();
+        for j in 1..z.ncols() {
+            let (m, s) = (self.centre[j], self.scale[j]);
+            z.column_mut(j).mapv_inplace(|v| (v - m) / s);
+        }
+        z
+    }
+}

