@@ -113,14 +113,14 @@ pub fn fit(kind: ModelKind, x: ArrayView2<f64>, y: &[bool]) -> Result<BinaryFit,
     check_inputs(x, y)?;
     match kind {
         ModelKind::Logit => fit_logit(x, y),
-        ModelKind::Firth => newton(kind, x, y, None, true),
+        ModelKind::Firth => newton(kind, x, y, None, true, SCORE_TOLERANCE),
         ModelKind::Probit => {
             // Start from the logit solution scaled by 1/1.6 (Amemiya 1981's rule of thumb).
-            let start = newton(ModelKind::Logit, x, y, None, false)
+            let start = newton(ModelKind::Logit, x, y, None, false, SCORE_TOLERANCE)
                 .ok()
                 .filter(|f| f.converged)
                 .map(|f| f.coef / 1.6);
-            newton(kind, x, y, start, false)
+            newton(kind, x, y, start, false, SCORE_TOLERANCE)
         }
     }
 }
@@ -131,9 +131,17 @@ pub fn refit(
     x: ArrayView2<f64>,
     y: &[bool],
     start: &Array1<f64>,
+    tolerance: f64,
 ) -> Result<BinaryFit, FitError> {
     check_inputs(x, y)?;
-    newton(kind, x, y, Some(start.clone()), kind == ModelKind::Firth)
+    newton(
+        kind,
+        x,
+        y,
+        Some(start.clone()),
+        kind == ModelKind::Firth,
+        tolerance,
+    )
 }
 
 fn check_inputs(x: ArrayView2<f64>, y: &[bool]) -> Result<(), FitError> {
@@ -179,7 +187,7 @@ fn fit_logit(x: ArrayView2<f64>, y: &[bool]) -> Result<BinaryFit, FitError> {
             coef
         })
         .filter(|c| c.iter().all(|v| v.is_finite()));
-    newton(ModelKind::Logit, x, y, start, false)
+    newton(ModelKind::Logit, x, y, start, false, SCORE_TOLERANCE)
 }
 
 /// Per-unit log-likelihood, score weight s_i (score = X's) and information weight w_i
@@ -234,14 +242,12 @@ fn evaluate(
         // Firth (1993); Heinze & Schemper (2002): modified score
         // U*(b) = X'(y - p + h (1/2 - p)), h = diag(W^1/2 X (X'WX)^-1 X' W^1/2),
         // maximising l(b) + 1/2 log|X'WX|.
-        let l = linalg::cholesky(information.view())?;
-        objective += 0.5 * 2.0 * l.diag().iter().map(|d| d.ln()).sum::<f64>();
+        objective += 0.5 * linalg::log_det_spd(information.view())?;
+        let inverse = linalg::inverse_spd(information.view())?;
+        let xa = x.dot(&inverse);
         for i in 0..n {
-            let xi = x.row(i);
-            let v = linalg::cholesky_solve(&l, xi);
-            let h = w[i] * xi.dot(&v);
-            let p = logistic(eta[i]);
-            s[i] += h * (0.5 - p);
+            let h = w[i] * xa.row(i).dot(&x.row(i));
+            s[i] += h * (0.5 - logistic(eta[i]));
         }
     }
     let score = x.t().dot(&s);
@@ -258,13 +264,14 @@ fn max_abs(v: ArrayView1<f64>) -> f64 {
 }
 
 /// Newton-Raphson (Fisher scoring for Firth's modified score) with step halving on the
-/// objective. Stops at [`SCORE_TOLERANCE`] or after a fixed number of iterations.
+/// objective. Stops when the score is below `tolerance` or after a fixed number of iterations.
 fn newton(
     kind: ModelKind,
     x: ArrayView2<f64>,
     y: &[bool],
     start: Option<Array1<f64>>,
     firth: bool,
+    tolerance: f64,
 ) -> Result<BinaryFit, FitError> {
     let k = x.ncols();
     let mut beta = start.unwrap_or_else(|| null_start(kind, y, k));
@@ -278,7 +285,7 @@ fn newton(
         }
     };
     let mut iterations = 0;
-    let mut converged = max_abs(current.score.view()) < SCORE_TOLERANCE;
+    let mut converged = max_abs(current.score.view()) < tolerance;
     while !converged && iterations < MAX_ITERATIONS {
         iterations += 1;
         // Under separation the information degenerates as the estimates run off; stop
@@ -303,7 +310,7 @@ fn newton(
             }
             t *= 0.5;
         }
-        converged = max_abs(current.score.view()) < SCORE_TOLERANCE;
+        converged = max_abs(current.score.view()) < tolerance;
         if !accepted || max_abs(step.view()) * t < 1e-15 {
             break;
         }
@@ -440,14 +447,38 @@ pub fn leave_one_out(
     full: &BinaryFit,
 ) -> Vec<Option<f64>> {
     let n = y.len();
-    (0..n)
-        .map(|i| {
-            let keep: Vec<usize> = (0..n).filter(|&j| j != i).collect();
-            let xs = x.select(Axis(0), &keep);
-            let ys: Vec<bool> = keep.iter().map(|&j| y[j]).collect();
-            refit(kind, xs.view(), &ys, &full.coef)
-                .ok()
-                .map(|f| kind.probability(x.row(i).dot(&f.coef)))
-        })
-        .collect()
+    let refit_without = |i: usize| {
+        let keep: Vec<usize> = (0..n).filter(|&j| j != i).collect();
+        let xs = x.select(Axis(0), &keep);
+        let ys: Vec<bool> = keep.iter().map(|&j| y[j]).collect();
+        // A looser tolerance suffices: the refits only rank units for the AUC.
+        refit(kind, xs.view(), &ys, &full.coef, 1e-7)
+            .ok()
+            .map(|f| kind.probability(x.row(i).dot(&f.coef)))
+    };
+    // The refits are independent: share them among the available cores.
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |t| t.get())
+        .min(n.max(1));
+    let chunk = n.div_ceil(threads.max(1)).max(1);
+    let mut out = vec![None; n];
+    std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..n)
+            .step_by(chunk)
+            .map(|start| {
+                let refit_without = &refit_without;
+                scope.spawn(move || {
+                    (start..(start + chunk).min(n))
+                        .map(refit_without)
+                        .collect::<Vec<_>>()
+                })
+            })
+            .collect();
+        for (h, start) in handles.into_iter().zip((0..n).step_by(chunk)) {
+            if let Ok(values) = h.join() {
+                out[start..start + values.len()].clone_from_slice(&values);
+            }
+        }
+    });
+    out
 }
