@@ -495,22 +495,52 @@ fn demo_selection_model_is_recovered() {
     // The generator's documented truth (demo-data/truth.json): slopes on log GDP, years since
     // transition and democracy, and the under-covered region's shift. With about 130
     // countries per wave the estimates are noisy, so each must lie within 3 standard errors.
-    let truth: Value = serde_json::from_str(&std::fs::read_to_string(demo_dir().join("truth.json")).unwrap()).unwrap();
+    let truth: Value =
+        serde_json::from_str(&std::fs::read_to_string(demo_dir().join("truth.json")).unwrap())
+            .unwrap();
     let demo = demo_dir();
     for wave in truth["waves"].as_array().unwrap() {
         let w = wave["wave"].as_i64().unwrap().to_string();
-        let r = fit_json(&[demo.to_str().unwrap(), "--wave", &w, "--covariates", "log_gdp_pc,years_since_transition,democracy_index", "--factors", "region"]);
-        let terms: Vec<&str> = r["model"]["terms"].as_array().unwrap().iter().map(|t| t.as_str().unwrap()).collect();
+        let r = fit_json(&[
+            demo.to_str().unwrap(),
+            "--wave",
+            &w,
+            "--covariates",
+            "log_gdp_pc,years_since_transition,democracy_index",
+            "--factors",
+            "region",
+        ]);
+        let terms: Vec<&str> = r["model"]["terms"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|t| t.as_str().unwrap())
+            .collect();
         let coef = floats(&r["model"]["coef"]);
         let se = floats(&r["model"]["se"]);
         let expected = [
             ("log_gdp_pc", wave["log_gdp_pc"].as_f64().unwrap()),
-            ("years_since_transition", truth["selection_model"]["years_since_transition"].as_f64().unwrap()),
-            ("democracy_index", truth["selection_model"]["democracy_index"].as_f64().unwrap()),
+            (
+                "years_since_transition",
+                truth["selection_model"]["years_since_transition"]
+                    .as_f64()
+                    .unwrap(),
+            ),
+            (
+                "democracy_index",
+                truth["selection_model"]["democracy_index"]
+                    .as_f64()
+                    .unwrap(),
+            ),
         ];
         for (term, value) in expected {
             let j = terms.iter().position(|t| *t == term).unwrap();
-            assert!((coef[j] - value).abs() < 3.0 * se[j], "wave {w} {term}: {} ± {} vs {value}", coef[j], se[j]);
+            assert!(
+                (coef[j] - value).abs() < 3.0 * se[j],
+                "wave {w} {term}: {} ± {} vs {value}",
+                coef[j],
+                se[j]
+            );
         }
     }
 }
@@ -519,12 +549,27 @@ fn demo_selection_model_is_recovered() {
 fn median_fill_keeps_every_country_and_says_so() {
     let demo = demo_dir();
     let complete = fit_json(&[demo.to_str().unwrap(), "--wave", "2"]);
-    let filled = fit_json(&[demo.to_str().unwrap(), "--wave", "2", "--missing", "median-fill"]);
+    let filled = fit_json(&[
+        demo.to_str().unwrap(),
+        "--wave",
+        "2",
+        "--missing",
+        "median-fill",
+    ]);
     let dropped = complete["dropped"].as_array().unwrap().len();
     assert!(dropped > 0);
-    assert_eq!(filled["n_eligible"].as_u64().unwrap(), complete["n_eligible"].as_u64().unwrap() + dropped as u64);
-    assert!(complete["missing_note"].as_str().unwrap().starts_with("complete cases:"));
-    assert!(filled["missing_note"].as_str().unwrap().starts_with("median fill"));
+    assert_eq!(
+        filled["n_eligible"].as_u64().unwrap(),
+        complete["n_eligible"].as_u64().unwrap() + dropped as u64
+    );
+    assert!(complete["missing_note"]
+        .as_str()
+        .unwrap()
+        .starts_with("Complete cases:"));
+    assert!(filled["missing_note"]
+        .as_str()
+        .unwrap()
+        .starts_with("Median fill"));
     let terms = filled["model"]["terms"].to_string();
     assert!(terms.contains("literacy missing"), "{terms}");
 }

@@ -1,10 +1,13 @@
 //! One function per question: project + settings -> one serialisable result, rendered
 //! alike by pages, JSON twins, the command line and the report.
 
+pub mod balance;
 pub mod cautions;
+pub mod coverage;
 pub mod design;
 pub mod overview;
 pub mod participation;
+pub mod sensitivity;
 pub mod settings;
 
 pub use settings::Settings;

@@ -99,33 +99,61 @@ pub fn fit(view: &WaveView, settings: &Settings) -> Result<FitReport, AnalysisEr
     fit_design(&design, settings, Some(view.wave))
 }
 
-/// The same on a ready design (used by the planner and by frames without a project).
-pub fn fit_design(
+/// A fitted participation model: its report, each unit's propensity, and the
+/// standardised design it was fitted on (reused by the weighting methods).
+#[derive(Debug, Clone)]
+pub struct FittedModel {
+    pub report: ModelReport,
+    pub propensity: Vec<f64>,
+    pub standardised: Array2<f64>,
+}
+
+/// Fits the participation model; `leave_one_out` adds the leave-one-out AUC (n refits).
+pub fn fit_model(
+    design: &Design,
+    kind: ModelKind,
+    leave_one_out: bool,
+) -> Result<FittedModel, AnalysisError> {
+    let z = design.standardised();
+    let fit = binary::fit(kind, z.view(), &design.participated)?;
+    let propensity = binary::predict(kind, z.view(), &fit.coef);
+    let report = model_report(design, kind, &z, &fit, &propensity, leave_one_out);
+    Ok(FittedModel {
+        report,
+        propensity,
+        standardised: z,
+    })
+}
+
+/// Participants' weights from one method, normalised to sum to the number of eligible units.
+#[derive(Debug, Clone)]
+pub struct Weighted {
+    pub report: WeightingReport,
+    /// Aligned with the design's units; zero for non-participants.
+    pub weights: Vec<f64>,
+}
+
+/// Weights the participants by the settings' method (and trimming).
+pub fn weigh(
     design: &Design,
     settings: &Settings,
-    wave: Option<i64>,
-) -> Result<FitReport, AnalysisError> {
-    let z = design.standardised();
+    model: &FittedModel,
+) -> Result<Weighted, AnalysisError> {
     let y = &design.participated;
-    let model_fit = binary::fit(settings.model, z.view(), y)?;
-    let propensity = binary::predict(settings.model, z.view(), &model_fit.coef);
-    let model = model_report(design, settings.model, &z, &model_fit, &propensity);
-
-    let (raw_weights, weighting_converged, cbps_coef) =
-        compute_weights(design, settings, &z, &propensity)?;
-    let n = design.n() as f64;
+    let (raw_weights, converged, cbps_coef) =
+        compute_weights(design, settings, &model.standardised, &model.propensity)?;
     let mut w = raw_weights;
-    let mut weighting_warnings = Vec::new();
+    let mut warnings = Vec::new();
     if let Some(q) = settings.trim {
         w = weights::trim(&w, y, q);
         if matches!(
             settings.weighting,
             WeightingKind::Entropy | WeightingKind::Raking | WeightingKind::CovariateBalancing
         ) {
-            weighting_warnings.push(format!("trimming at the {:.0}th percentile undoes part of the exact balance this method achieves", 100.0 * q));
+            warnings.push(format!("trimming at the {:.0}th percentile undoes part of the exact balance this method achieves", 100.0 * q));
         }
     }
-    let w = weights::normalise(&w, n);
+    let w = weights::normalise(&w, design.n() as f64);
     let participant_weights: Vec<f64> = w
         .iter()
         .zip(y)
@@ -134,50 +162,60 @@ pub fn fit_design(
         .collect();
     let effective_n = balance::effective_n(&participant_weights);
     let max_weight_share = balance::max_share(&participant_weights);
-    let n_part = design.n_participants();
-    weighting_warnings.extend(concentration_warnings(
+    warnings.extend(concentration_warnings(
         effective_n,
         max_weight_share,
-        n_part,
+        design.n_participants(),
         design,
         &w,
     ));
-    if !weighting_converged {
-        weighting_warnings
-            .push("the weighting did not converge; its balance is approximate".to_string());
+    if !converged {
+        warnings.push("the weighting did not converge; its balance is approximate".to_string());
     }
-
-    let balance_rows = balance_table(design, &w);
-    let units = (0..design.n())
-        .map(|i| UnitReport {
-            id: design.ids[i].clone(),
-            name: design.names[i].clone(),
-            participated: y[i],
-            propensity: propensity[i],
-            weight: w[i],
-        })
-        .collect();
-    let missing_note = missing_note(design, settings);
-    Ok(FitReport {
-        wave,
-        settings: settings.clone(),
-        n_eligible: design.n(),
-        n_participants: n_part,
-        dropped: design.dropped.clone(),
-        missing_note,
-        model,
-        weighting: WeightingReport {
+    Ok(Weighted {
+        report: WeightingReport {
             kind: settings.weighting.as_str(),
             effective_n,
             max_weight_share,
             cv: balance::coefficient_of_variation(&participant_weights),
             trim: settings.trim,
-            converged: weighting_converged,
+            converged,
             coef: cbps_coef,
-            warnings: weighting_warnings,
+            warnings,
         },
+        weights: w,
+    })
+}
+
+/// The same on a ready design (used by the planner and by frames without a project).
+pub fn fit_design(
+    design: &Design,
+    settings: &Settings,
+    wave: Option<i64>,
+) -> Result<FitReport, AnalysisError> {
+    let model = fit_model(design, settings.model, true)?;
+    let weighted = weigh(design, settings, &model)?;
+    let y = &design.participated;
+    let units = (0..design.n())
+        .map(|i| UnitReport {
+            id: design.ids[i].clone(),
+            name: design.names[i].clone(),
+            participated: y[i],
+            propensity: model.propensity[i],
+            weight: weighted.weights[i],
+        })
+        .collect();
+    Ok(FitReport {
+        wave,
+        settings: settings.clone(),
+        n_eligible: design.n(),
+        n_participants: design.n_participants(),
+        dropped: design.dropped.clone(),
+        missing_note: missing_note(design, settings),
+        balance: balance_table(design, &weighted.weights),
+        model: model.report,
+        weighting: weighted.report,
         units,
-        balance: balance_rows,
     })
 }
 
@@ -213,11 +251,17 @@ fn model_report(
     z: &Array2<f64>,
     fit: &binary::BinaryFit,
     propensity: &[f64],
+    leave_one_out: bool,
 ) -> ModelReport {
     let y = &design.participated;
     let (coef, se) = to_original_scale(design, &fit.coef, Some(&fit.cov));
-    let loo = binary::leave_one_out(kind, z.view(), y, fit);
-    let loo_complete: Option<Vec<f64>> = loo.iter().copied().collect();
+    let loo_complete: Option<Vec<f64>> = if leave_one_out {
+        binary::leave_one_out(kind, z.view(), y, fit)
+            .into_iter()
+            .collect()
+    } else {
+        None
+    };
     let mut warnings = Vec::new();
     let n1 = design.n_participants();
     let n0 = design.n() - n1;
@@ -254,7 +298,7 @@ fn model_report(
             fit.iterations
         ));
     }
-    if loo_complete.is_none() {
+    if leave_one_out && loo_complete.is_none() {
         warnings.push(
             "some leave-one-out refits failed, so the leave-one-out AUC is not reported"
                 .to_string(),
@@ -423,13 +467,13 @@ fn concentration_warnings(
     out
 }
 
-fn missing_note(design: &Design, settings: &Settings) -> String {
+pub fn missing_note(design: &Design, settings: &Settings) -> String {
     match settings.missing {
         super::settings::MissingRule::CompleteCases if design.dropped.is_empty() => {
-            "no missing values among the chosen indicators".to_string()
+            "No missing values among the chosen indicators".to_string()
         }
         super::settings::MissingRule::CompleteCases => format!(
-            "complete cases: {} countr{} left out for missing values: {}",
+            "Complete cases: {} countr{} left out for missing values: {}",
             design.dropped.len(),
             if design.dropped.len() == 1 {
                 "y"
@@ -439,10 +483,10 @@ fn missing_note(design: &Design, settings: &Settings) -> String {
             design.dropped.join("; ")
         ),
         super::settings::MissingRule::MedianFill if design.filled.is_empty() => {
-            "no missing values among the chosen indicators".to_string()
+            "No missing values among the chosen indicators".to_string()
         }
         super::settings::MissingRule::MedianFill => format!(
-            "median fill with a missingness indicator per filled indicator: {}",
+            "Median fill with a missingness indicator per filled indicator: {}",
             design
                 .filled
                 .iter()

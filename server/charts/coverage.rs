@@ -39,6 +39,7 @@ fn draw(overview: &Overview, svg: &mut String) -> Result<(), Box<dyn std::error:
             .build_cartesian_2d((first - 0.3)..(last + 1.6), 0.0..100.0)?;
         chart
             .configure_mesh()
+            .light_line_style(WHITE.mix(0.0))
             .x_desc("Wave")
             .y_desc("Eligible countries that took part (%)")
             .x_labels(waves.len() + 2)
@@ -52,7 +53,6 @@ fn draw(overview: &Overview, svg: &mut String) -> Result<(), Box<dyn std::error:
             .y_label_formatter(&|y| format!("{y:.0}"))
             .label_style(("sans-serif", 18))
             .axis_desc_style(("sans-serif", 18))
-            .light_line_style(WHITE.mix(0.0))
             .draw()?;
         for (i, g) in overview.coverage.iter().enumerate() {
             let points: Vec<(f64, f64)> = waves

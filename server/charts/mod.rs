@@ -1,9 +1,13 @@
 //! One function per chart: an analysis result in, an SVG string out (plotters).
 //! Sized for slides (16:9); colour is never the only cue: series also differ by marker.
 
+pub mod balance;
 pub mod coverage;
+pub mod map;
+pub mod model;
+pub mod sensitivity;
 
-use plotters::style::RGBColor;
+use plotters::style::{FontDesc, FontFamily, FontStyle, RGBColor};
 
 /// Chart size in pixels, 16:9 for slides.
 pub const SLIDE: (u32, u32) = (960, 540);
@@ -18,6 +22,14 @@ pub const PALETTE: [RGBColor; 6] = [
     RGBColor(0xB5, 0x47, 0x3A), // brick
     RGBColor(0x4A, 0x4A, 0x4A), // graphite
 ];
+
+/// Neutral grey for "before" and "absent" marks.
+pub const GREY: RGBColor = RGBColor(0x7A, 0x7A, 0x7A);
+
+/// Sans-serif text of the given pixel size.
+pub fn font(size: u32) -> FontDesc<'static> {
+    FontDesc::new(FontFamily::SansSerif, f64::from(size), FontStyle::Normal)
+}
 
 /// Colour of series `i` (cycling).
 pub fn colour(i: usize) -> RGBColor {
@@ -38,4 +50,17 @@ fn escape(s: &str) -> String {
     s.replace('&', "&amp;")
         .replace('<', "&lt;")
         .replace('>', "&gt;")
+}
+
+/// An axis tick label with `decimals` decimals and no negative zero.
+pub fn tick(x: f64, decimals: usize) -> String {
+    let s = format!("{x:.decimals$}");
+    if s.trim_start_matches('-')
+        .chars()
+        .all(|c| c == '0' || c == '.')
+    {
+        s.trim_start_matches('-').to_string()
+    } else {
+        s
+    }
 }

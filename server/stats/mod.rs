@@ -6,4 +6,5 @@ pub mod binary;
 pub mod describe;
 pub mod linalg;
 pub mod normal;
+pub mod pca;
 pub mod weights;

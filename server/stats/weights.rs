@@ -201,7 +201,7 @@ pub fn cbps_over_identified(
         .filter(|f| f.converged)
         .map(|f| f.coef);
     let b0 = just.unwrap_or_else(|| start.clone());
-    let (coef, converged, iterations) = bfgs(&objective, b0, 500, 1e-10);
+    let (coef, converged, iterations) = bfgs(&objective, b0, 500, 1e-8);
     let propensity: Vec<f64> = x.dot(&coef).iter().map(|&e| logistic(e)).collect();
     let max_imbalance = balance_conditions(x, t, &propensity)
         .iter()

@@ -1,7 +1,13 @@
 //! The web layer: thin axum handlers over the analysis results, one module per page.
 
+pub mod balance;
+pub mod context;
+pub mod coverage;
 pub mod error;
+pub mod format;
+pub mod model;
 pub mod overview;
+pub mod sensitivity;
 pub mod state;
 
 use std::net::SocketAddr;
@@ -30,6 +36,22 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/", get(overview::page))
         .route("/api/overview", get(overview::json))
         .route("/charts/coverage.svg", get(overview::coverage_svg))
+        // Balance
+        .route("/balance", get(balance::page))
+        .route("/api/balance", get(balance::json))
+        .route("/balance/{item}", get(balance::artifact))
+        // Participation model
+        .route("/model", get(model::page))
+        .route("/api/model", get(model::json))
+        .route("/model/{item}", get(model::artifact))
+        // Coverage
+        .route("/coverage", get(coverage::page))
+        .route("/api/coverage", get(coverage::json))
+        .route("/coverage/{item}", get(coverage::artifact))
+        // Sensitivity
+        .route("/sensitivity", get(sensitivity::page))
+        .route("/api/sensitivity", get(sensitivity::json))
+        .route("/sensitivity/{item}", get(sensitivity::artifact))
         // Project
         .route("/api/reload", post(reload))
         .nest_service("/static", ServeDir::new(static_dir()))
@@ -62,7 +84,22 @@ async fn reload(State(state): State<Arc<AppState>>) -> AppResult<Json<Reloaded>>
     }))
 }
 
-/// An SVG chart, offered for download under `filename` when `?download` is asked.
+/// A CSV table, offered for download under `filename`.
+pub fn csv_response(filename: &str, text: String) -> Response {
+    (
+        [
+            (header::CONTENT_TYPE, "text/csv; charset=utf-8".to_string()),
+            (
+                header::CONTENT_DISPOSITION,
+                format!("attachment; filename=\"{filename}\""),
+            ),
+        ],
+        text,
+    )
+        .into_response()
+}
+
+/// An SVG chart, shown inline and saved under `filename`.
 pub fn svg_response(filename: &str, svg: String) -> Response {
     (
         [

@@ -18,6 +18,7 @@ use crate::charts;
 #[template(path = "overview.html")]
 struct OverviewPage<'a> {
     page: &'static str,
+    nav_query: String,
     o: &'a Overview,
     coverage_chart: String,
     cautions: &'a [Caution],
@@ -64,6 +65,7 @@ pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResp
     let o = overview(&project);
     let html = OverviewPage {
         page: "overview",
+        nav_query: String::new(),
         coverage_chart: charts::coverage::coverage_by_group(&o),
         cautions: &o.cautions,
         o: &o,

@@ -1,0 +1,122 @@
+//! The dot chart of standardised mean differences before and after weighting.
+
+use plotters::prelude::*;
+
+use super::{colour, failed_chart, font, GREY, SLIDE};
+use crate::analysis::balance::BalanceComparison;
+
+const TITLE: &str = "Standardised mean differences, before and after weighting";
+
+/// One row per indicator (and category level): a hollow grey circle before weighting, a
+/// filled diamond after the chosen method; dashed lines at 0.1 and 0.25 (common
+/// thresholds: Austin 2009; Stuart 2010).
+pub fn smd_dots(b: &BalanceComparison) -> String {
+    if b.rows.is_empty() {
+        return failed_chart(TITLE, "No indicators chosen.");
+    }
+    let mut svg = String::new();
+    match draw(b, &mut svg) {
+        Ok(()) => svg,
+        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
+    }
+}
+
+fn draw(b: &BalanceComparison, svg: &mut String) -> Result<(), Box<dyn std::error::Error>> {
+    let n = b.rows.len();
+    let height = (110 + 30 * n as u32).max(SLIDE.1);
+    let extent = b
+        .rows
+        .iter()
+        .flat_map(|r| [r.smd_before, r.smd_after])
+        .flatten()
+        .fold(0.3f64, |m, v| m.max(v.abs() * 1.1));
+    let method = b.methods.get(b.chosen).map_or("", |m| m.label);
+    let labels: Vec<String> = b.rows.iter().map(|r| r.label.clone()).collect();
+    {
+        let root = SVGBackend::with_string(svg, (SLIDE.0, height)).into_drawing_area();
+        root.fill(&WHITE)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(TITLE, font(24))
+            .margin(16)
+            .x_label_area_size(50)
+            .y_label_area_size(300)
+            .build_cartesian_2d(-extent..extent, -0.5..(n as f64 + 0.8))?;
+        chart
+            .configure_mesh()
+            .light_line_style(WHITE.mix(0.0))
+            .disable_y_mesh()
+            .y_labels(n)
+            .y_label_formatter(&|y| {
+                let i = y.round();
+                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < labels.len() {
+                    labels[n - 1 - i as usize].clone()
+                } else {
+                    String::new()
+                }
+            })
+            .x_label_formatter(&|x| super::tick(*x, 1))
+            .x_desc(
+                "Standardised mean difference (participants − eligible universe, in universe SDs)",
+            )
+            .label_style(font(15))
+            .axis_desc_style(font(16))
+            .draw()?;
+        for (threshold, shade) in [(0.1, 0.35), (0.25, 0.7)] {
+            for sign in [-1.0, 1.0] {
+                let x = sign * threshold;
+                chart.draw_series(DashedLineSeries::new(
+                    vec![(x, -0.5), (x, n as f64 - 0.5)],
+                    6,
+                    4,
+                    GREY.mix(shade).stroke_width(2),
+                ))?;
+            }
+        }
+        chart.draw_series(LineSeries::new(
+            vec![(0.0, -0.5), (0.0, n as f64 - 0.5)],
+            BLACK.stroke_width(1),
+        ))?;
+        let y_of = |i: usize| (n - 1 - i) as f64;
+        // A thin line joins before and after, so the movement reads at a glance.
+        chart.draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
+            let (Some(a), Some(z)) = (r.smd_before, r.smd_after) else {
+                return None;
+            };
+            Some(PathElement::new(
+                vec![(a, y_of(i)), (z, y_of(i))],
+                GREY.mix(0.5).stroke_width(2),
+            ))
+        }))?;
+        chart
+            .draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
+                r.smd_before
+                    .map(|v| Circle::new((v, y_of(i)), 7, GREY.stroke_width(3)))
+            }))?
+            .label("Before weighting")
+            .legend(|(x, y)| Circle::new((x, y), 7, GREY.stroke_width(3)));
+        let after = colour(0);
+        chart
+            .draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
+                r.smd_after.map(|v| {
+                    EmptyElement::at((v, y_of(i)))
+                        + Polygon::new(vec![(0, -8), (8, 0), (0, 8), (-8, 0)], after.filled())
+                })
+            }))?
+            .label(format!("After: {method}"))
+            .legend(move |(x, y)| {
+                Polygon::new(
+                    vec![(x, y - 8), (x + 8, y), (x, y + 8), (x - 8, y)],
+                    after.filled(),
+                )
+            });
+        chart
+            .configure_series_labels()
+            .position(SeriesLabelPosition::UpperRight)
+            .label_font(font(15))
+            .background_style(WHITE.mix(0.9))
+            .border_style(BLACK.mix(0.3))
+            .draw()?;
+        root.present()?;
+    }
+    Ok(())
+}

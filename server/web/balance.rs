@@ -1,0 +1,131 @@
+//! The balance page: SMDs and variance ratios before and after each weighting method.
+
+use std::sync::Arc;
+
+use askama::Template;
+use axum::extract::{Path, Query, State};
+use axum::response::{Html, Response};
+use axum::Json;
+
+use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::error::{AppError, AppResult};
+use super::format::Fmt;
+use super::state::AppState;
+use super::{csv_response, svg_response};
+use crate::analysis::balance::{compare, BalanceComparison};
+use crate::analysis::cautions::{Caution, STANDING};
+use crate::charts;
+
+#[derive(Template)]
+#[template(path = "balance.html")]
+struct BalancePage<'a> {
+    page: &'static str,
+    nav_query: String,
+    form: SettingsForm,
+    f: Fmt,
+    b: &'a BalanceComparison,
+    chart: String,
+    cautions: &'a [Caution],
+    /// Each participant's share of the total without weighting.
+    equal_share: f64,
+    before_max: Option<f64>,
+    /// Per row, (SMD, variance ratio) after each method.
+    cells: Vec<Vec<(Option<f64>, Option<f64>)>>,
+}
+
+fn compute(
+    state: &AppState,
+    query: &super::context::Query,
+) -> AppResult<(SettingsForm, BalanceComparison)> {
+    let (project, settings, view) = resolve(state, query)?;
+    let form = SettingsForm::new("/balance", &project, &settings);
+    let b = compare(&view, &settings).map_err(|e| AppError::BadRequest(e.to_string()))?;
+    Ok((form, b))
+}
+
+pub async fn page(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Html<String>> {
+    let (form, b) = compute(&state, &query)?;
+    let cells = (0..b.rows.len())
+        .map(|i| {
+            b.methods
+                .iter()
+                .map(|m| (m.smd_after[i], m.variance_ratio_after[i]))
+                .collect()
+        })
+        .collect();
+    let html = BalancePage {
+        equal_share: 1.0 / b.n_participants.max(1) as f64,
+        before_max: Some(b.max_abs_smd_before),
+        cells,
+        page: "balance",
+        nav_query: form.query.clone(),
+        form,
+        f: Fmt,
+        chart: charts::balance::smd_dots(&b),
+        b: &b,
+        cautions: &STANDING,
+    }
+    .render()?;
+    Ok(Html(html))
+}
+
+pub async fn json(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Json<BalanceComparison>> {
+    Ok(Json(compute(&state, &query)?.1))
+}
+
+pub async fn artifact(
+    State(state): State<Arc<AppState>>,
+    Path(item): Path<String>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Response> {
+    let (_, b) = compute(&state, &query)?;
+    match item.as_str() {
+        "smd.svg" => Ok(svg_response(
+            "balance-smd.svg",
+            charts::balance::smd_dots(&b),
+        )),
+        "table.csv" => Ok(csv_response("balance.csv", table_csv(&b))),
+        _ => Err(AppError::NotFound(format!(
+            "no {item} here; try smd.svg or table.csv"
+        ))),
+    }
+}
+
+/// One row per indicator: before weighting, then SMD and variance ratio after each method.
+pub fn table_csv(b: &BalanceComparison) -> String {
+    let mut header = vec![
+        "covariate".to_string(),
+        "label".into(),
+        "universe_mean".into(),
+        "participant_mean".into(),
+        "smd_before".into(),
+        "variance_ratio_before".into(),
+    ];
+    for m in &b.methods {
+        header.push(format!("smd_after_{}", m.kind));
+        header.push(format!("variance_ratio_after_{}", m.kind));
+    }
+    let header_refs: Vec<&str> = header.iter().map(String::as_str).collect();
+    let rows = b.rows.iter().enumerate().map(|(i, r)| {
+        let mut row = vec![
+            r.covariate.clone(),
+            r.label.clone(),
+            cell(Some(r.universe_mean)),
+            cell(Some(r.participant_mean)),
+            cell(r.smd_before),
+            cell(r.variance_ratio_before),
+        ];
+        for m in &b.methods {
+            row.push(cell(m.smd_after[i]));
+            row.push(cell(m.variance_ratio_after[i]));
+        }
+        row
+    });
+    csv_text(&header_refs, rows)
+}

@@ -1,0 +1,159 @@
+//! The coverage page: which kinds of countries are missing.
+
+use std::sync::Arc;
+
+use askama::Template;
+use axum::extract::{Path, Query, State};
+use axum::response::{Html, Response};
+use axum::Json;
+
+use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::error::{AppError, AppResult};
+use super::format::Fmt;
+use super::state::AppState;
+use super::{csv_response, svg_response};
+use crate::analysis::cautions::{Caution, STANDING};
+use crate::analysis::coverage::{coverage, CoverageReport};
+use crate::charts;
+
+#[derive(Template)]
+#[template(path = "coverage.html")]
+struct CoveragePage<'a> {
+    page: &'static str,
+    nav_query: String,
+    form: SettingsForm,
+    f: Fmt,
+    c: &'a CoverageReport,
+    map_chart: String,
+    spread_chart: String,
+    cautions: &'a [Caution],
+}
+
+fn compute(
+    state: &AppState,
+    query: &super::context::Query,
+) -> AppResult<(SettingsForm, CoverageReport)> {
+    let (project, settings, view) = resolve(state, query)?;
+    Ok((
+        SettingsForm::new("/coverage", &project, &settings),
+        coverage(&view),
+    ))
+}
+
+pub async fn page(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Html<String>> {
+    let (form, c) = compute(&state, &query)?;
+    let html = CoveragePage {
+        page: "coverage",
+        nav_query: form.query.clone(),
+        form,
+        f: Fmt,
+        map_chart: charts::map::component_map(&c),
+        spread_chart: charts::map::spreads(&c),
+        c: &c,
+        cautions: &STANDING,
+    }
+    .render()?;
+    Ok(Html(html))
+}
+
+pub async fn json(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Json<CoverageReport>> {
+    Ok(Json(compute(&state, &query)?.1))
+}
+
+pub async fn artifact(
+    State(state): State<Arc<AppState>>,
+    Path(item): Path<String>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Response> {
+    let (_, c) = compute(&state, &query)?;
+    match item.as_str() {
+        "map.svg" => Ok(svg_response(
+            "component-map.svg",
+            charts::map::component_map(&c),
+        )),
+        "spreads.svg" => Ok(svg_response(
+            "indicator-spreads.svg",
+            charts::map::spreads(&c),
+        )),
+        "points.csv" => Ok(csv_response(
+            "component-scores.csv",
+            csv_text(
+                &[
+                    "code",
+                    "name",
+                    "group",
+                    "took_part",
+                    "component_1",
+                    "component_2",
+                ],
+                c.points.iter().map(|p| {
+                    vec![
+                        p.id.clone(),
+                        p.name.clone(),
+                        p.group.clone().unwrap_or_default(),
+                        u8::from(p.participated).to_string(),
+                        cell(Some(p.pc1)),
+                        cell(Some(p.pc2)),
+                    ]
+                }),
+            ),
+        )),
+        "loadings.csv" => {
+            let shown = c.loadings.first().map_or(0, |l| l.values.len());
+            let mut header = vec!["indicator".to_string(), "label".to_string()];
+            header.extend((1..=shown).map(|k| format!("component_{k}")));
+            let refs: Vec<&str> = header.iter().map(String::as_str).collect();
+            Ok(csv_response(
+                "component-loadings.csv",
+                csv_text(
+                    &refs,
+                    c.loadings.iter().map(|l| {
+                        [
+                            vec![l.indicator.clone(), l.label.clone()],
+                            l.values.iter().map(|v| cell(Some(*v))).collect(),
+                        ]
+                        .concat()
+                    }),
+                ),
+            ))
+        }
+        "rates.csv" => {
+            let group_rows = c.groups.iter().map(|g| {
+                vec![
+                    c.group_label.clone().unwrap_or_default(),
+                    g.label.clone(),
+                    g.eligible.to_string(),
+                    g.participating.to_string(),
+                    cell(g.rate),
+                ]
+            });
+            let tercile_rows = c.terciles.iter().flat_map(|t| {
+                t.cells.iter().map(move |g| {
+                    vec![
+                        t.label.clone(),
+                        g.label.clone(),
+                        g.eligible.to_string(),
+                        g.participating.to_string(),
+                        cell(g.rate),
+                    ]
+                })
+            });
+            Ok(csv_response(
+                "coverage-rates.csv",
+                csv_text(
+                    &["breakdown", "level", "eligible", "took_part", "coverage"],
+                    group_rows.chain(tercile_rows),
+                ),
+            ))
+        }
+        _ => Err(AppError::NotFound(format!(
+            "no {item} here; try map.svg, spreads.svg, points.csv, loadings.csv or rates.csv"
+        ))),
+    }
+}

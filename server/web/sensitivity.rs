@@ -1,0 +1,120 @@
+//! The sensitivity page: trimming levels, models and weighting methods compared.
+
+use std::sync::Arc;
+
+use askama::Template;
+use axum::extract::{Path, Query, State};
+use axum::response::{Html, Response};
+use axum::Json;
+
+use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::error::{AppError, AppResult};
+use super::format::Fmt;
+use super::state::AppState;
+use super::{csv_response, svg_response};
+use crate::analysis::cautions::{Caution, STANDING};
+use crate::analysis::sensitivity::{sensitivity, Sensitivity};
+use crate::charts;
+
+#[derive(Template)]
+#[template(path = "sensitivity.html")]
+struct SensitivityPage<'a> {
+    page: &'static str,
+    nav_query: String,
+    form: SettingsForm,
+    f: Fmt,
+    s: &'a Sensitivity,
+    chart: String,
+    cautions: &'a [Caution],
+}
+
+fn compute(
+    state: &AppState,
+    query: &super::context::Query,
+) -> AppResult<(SettingsForm, Sensitivity)> {
+    let (project, settings, view) = resolve(state, query)?;
+    let form = SettingsForm::new("/sensitivity", &project, &settings);
+    let s = sensitivity(&view, &settings).map_err(|e| AppError::BadRequest(e.to_string()))?;
+    Ok((form, s))
+}
+
+pub async fn page(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Html<String>> {
+    let (form, s) = compute(&state, &query)?;
+    let html = SensitivityPage {
+        page: "sensitivity",
+        nav_query: form.query.clone(),
+        form,
+        f: Fmt,
+        chart: charts::sensitivity::trimming(&s),
+        s: &s,
+        cautions: &STANDING,
+    }
+    .render()?;
+    Ok(Html(html))
+}
+
+pub async fn json(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Json<Sensitivity>> {
+    Ok(Json(compute(&state, &query)?.1))
+}
+
+pub async fn artifact(
+    State(state): State<Arc<AppState>>,
+    Path(item): Path<String>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Response> {
+    let (_, s) = compute(&state, &query)?;
+    match item.as_str() {
+        "trimming.svg" => Ok(svg_response(
+            "trimming.svg",
+            charts::sensitivity::trimming(&s),
+        )),
+        "table.csv" => {
+            let trims = s.trims.iter().map(|t| {
+                vec![
+                    s.settings.model.as_str().to_string(),
+                    s.settings.weighting.as_str().to_string(),
+                    t.trim.map_or(String::new(), |q| q.to_string()),
+                    cell(t.outcome.effective_n),
+                    cell(t.outcome.max_abs_smd),
+                    cell(t.outcome.max_weight_share),
+                    t.outcome.error.clone().unwrap_or_default(),
+                ]
+            });
+            let grid = s.grid.iter().map(|g| {
+                vec![
+                    g.model.to_string(),
+                    g.weighting.to_string(),
+                    String::new(),
+                    cell(g.outcome.effective_n),
+                    cell(g.outcome.max_abs_smd),
+                    cell(g.outcome.max_weight_share),
+                    g.outcome.error.clone().unwrap_or_default(),
+                ]
+            });
+            Ok(csv_response(
+                "sensitivity.csv",
+                csv_text(
+                    &[
+                        "model",
+                        "weighting",
+                        "trim",
+                        "effective_n",
+                        "max_abs_smd",
+                        "max_weight_share",
+                        "error",
+                    ],
+                    trims.chain(grid),
+                ),
+            ))
+        }
+        _ => Err(AppError::NotFound(format!(
+            "no {item} here; try trimming.svg or table.csv"
+        ))),
+    }
+}

@@ -1,0 +1,201 @@
+//! The analysis pages: each answers with its tables and charts, its JSON twin and its
+//! downloads; the numbers equal those of `gapwise fit`; the components agree with numpy.
+
+mod common;
+use common::*;
+
+use serde_json::Value;
+
+fn get_json(addr: std::net::SocketAddr, path: &str) -> Value {
+    let r = http(addr, "GET", path, &[]);
+    assert_eq!(r.status, 200, "{path}: {}", r.body);
+    serde_json::from_str(&r.body).unwrap()
+}
+
+#[test]
+fn every_page_answers_with_tables_charts_and_downloads() {
+    let addr = start_server(&demo_dir());
+    let pages: [(&str, &[&str]); 4] = [
+        (
+            "/coverage",
+            &[
+                "map.svg",
+                "spreads.svg",
+                "points.csv",
+                "loadings.csv",
+                "rates.csv",
+            ],
+        ),
+        (
+            "/model",
+            &[
+                "propensity.svg",
+                "overlap.svg",
+                "coefficients.csv",
+                "weights.csv",
+            ],
+        ),
+        ("/balance", &["smd.svg", "table.csv"]),
+        ("/sensitivity", &["trimming.svg", "table.csv"]),
+    ];
+    for (page, items) in pages {
+        for query in ["", "?wave=2&model=firth&weighting=raking&trim=0.95"] {
+            let r = http(addr, "GET", &format!("{page}{query}"), &[]);
+            assert_eq!(r.status, 200, "{page}{query}: {}", r.body);
+            assert!(r.body.contains("<table"), "{page} has no table");
+            assert!(r.body.contains("<svg"), "{page} has no chart");
+            assert!(
+                r.body
+                    .contains("Weights correct only for what the indicators measure"),
+                "{page} lacks the cautions"
+            );
+            assert!(!r.body.contains("NaN"), "{page}{query} shows NaN");
+            get_json(addr, &format!("/api{page}{query}"));
+            for item in items {
+                let a = http(addr, "GET", &format!("{page}/{item}{query}"), &[]);
+                assert_eq!(a.status, 200, "{page}/{item}");
+                if item.ends_with(".svg") {
+                    assert_eq!(a.header("content-type"), Some("image/svg+xml"));
+                    assert!(
+                        a.body.contains("<svg") && !a.body.contains("could not be drawn"),
+                        "{page}/{item}"
+                    );
+                } else {
+                    assert!(a
+                        .header("content-type")
+                        .unwrap_or("")
+                        .starts_with("text/csv"));
+                    assert!(a.body.lines().count() > 1, "{page}/{item} is empty");
+                }
+            }
+        }
+    }
+    assert_eq!(http(addr, "GET", "/balance/nothing.txt", &[]).status, 404);
+    let bad = http(addr, "GET", "/balance?weighting=magic", &[]);
+    assert_eq!(bad.status, 400);
+    assert!(bad.body.contains("weighting must be one of"));
+    assert_eq!(http(addr, "GET", "/model?wave=17", &[]).status, 404);
+}
+
+#[test]
+fn page_numbers_equal_the_command_line() {
+    let addr = start_server(&demo_dir());
+    let demo = demo_dir();
+    for (wave, model, weighting) in [
+        ("4", "logit", "entropy"),
+        ("2", "firth", "covariate-balancing-gmm"),
+        ("3", "probit", "inverse-probability"),
+    ] {
+        let page = get_json(
+            addr,
+            &format!("/api/balance?wave={wave}&model={model}&weighting={weighting}"),
+        );
+        let out = gapwise(&[
+            "fit",
+            demo.to_str().unwrap(),
+            "--wave",
+            wave,
+            "--model",
+            model,
+            "--weighting",
+            weighting,
+            "--json",
+        ]);
+        assert_eq!(out.code, 0, "{}", out.stderr);
+        let cli: Value = serde_json::from_str(&out.stdout).unwrap();
+        let page_rows = page["rows"].as_array().unwrap();
+        let cli_rows = cli["balance"].as_array().unwrap();
+        assert_eq!(page_rows.len(), cli_rows.len());
+        for (p, c) in page_rows.iter().zip(cli_rows) {
+            assert_eq!(p["covariate"], c["covariate"]);
+            for key in [
+                "smd_before",
+                "smd_after",
+                "variance_ratio_before",
+                "variance_ratio_after",
+            ] {
+                assert_eq!(
+                    p[key], c[key],
+                    "{wave} {weighting} {} {key}",
+                    p["covariate"]
+                );
+            }
+        }
+        let model_page = get_json(
+            addr,
+            &format!("/api/model?wave={wave}&model={model}&weighting={weighting}"),
+        );
+        assert_eq!(model_page["model"]["coef"], cli["model"]["coef"]);
+        assert_eq!(
+            model_page["weighting"]["effective_n"],
+            cli["weighting"]["effective_n"]
+        );
+    }
+}
+
+#[test]
+fn components_agree_with_numpy_up_to_sign() {
+    // Fixture: numpy.linalg.eigh of the correlation matrix of the demo's wave-4 eligible
+    // universe (tests/fixtures/make_fixtures.py, eligibility recomputed independently).
+    let reference: Value = serde_json::from_str(
+        &std::fs::read_to_string(
+            std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/reference.json"),
+        )
+        .unwrap(),
+    )
+    .unwrap();
+    let fx = &reference["demo_pca_wave4"];
+    let addr = start_server(&demo_dir());
+    let c = get_json(addr, "/api/coverage?wave=4");
+    assert_eq!(c["n_eligible"], fx["n_eligible"]);
+    let eigen: Vec<f64> = c["components"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|k| k["eigenvalue"].as_f64().unwrap())
+        .collect();
+    for (a, e) in eigen.iter().zip(fx["eigenvalues"].as_array().unwrap()) {
+        assert!((a - e.as_f64().unwrap()).abs() < 1e-9, "{a} vs {e}");
+    }
+    for k in 0..2 {
+        let ours: Vec<f64> = c["loadings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|l| l["values"][k].as_f64().unwrap())
+            .collect();
+        let theirs: Vec<f64> = fx["loadings"][k]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| v.as_f64().unwrap())
+            .collect();
+        let sign = if ours.iter().zip(&theirs).map(|(a, b)| a * b).sum::<f64>() < 0.0 {
+            -1.0
+        } else {
+            1.0
+        };
+        for (a, b) in ours.iter().zip(&theirs) {
+            assert!((a - sign * b).abs() < 1e-8, "component {k}: {a} vs {b}");
+        }
+        let codes: Vec<&str> = fx["codes"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| v.as_str().unwrap())
+            .collect();
+        for p in c["points"].as_array().unwrap() {
+            let i = codes
+                .iter()
+                .position(|code| *code == p["id"].as_str().unwrap())
+                .expect("same countries");
+            let ours = p[if k == 0 { "pc1" } else { "pc2" }].as_f64().unwrap();
+            let theirs = fx["scores"][k][i].as_f64().unwrap();
+            assert!(
+                (ours - sign * theirs).abs() < 1e-8,
+                "{} component {k}",
+                p["id"]
+            );
+        }
+    }
+}
