@@ -1,0 +1,65 @@
+// Real-browser checks of gapwise's pages in Debian's headless Chromium.
+// Usage: node run.mjs BASE_URL ARTEFACT_DIR   (exit code 0 when every check passes)
+import { chromium } from 'playwright-core';
+import fs from 'node:fs';
+import path from 'node:path';
+
+const [base, out] = process.argv.slice(2);
+fs.mkdirSync(out, { recursive: true });
+const failures = [];
+const check = (ok, what) => { if (!ok) failures.push(what); };
+
+const browser = await chromium.launch({
+  executablePath: process.env.CHROMIUM || '/usr/bin/chromium',
+  args: ['--headless', '--no-sandbox', '--disable-gpu', '--disable-background-networking', '--disable-component-update', '--no-first-run'],
+});
+const context = await browser.newContext({ viewport: { width: 1366, height: 768 }, acceptDownloads: true });
+const page = await context.newPage();
+const consoleErrors = [];
+page.on('console', (m) => { if (m.type() === 'error') consoleErrors.push(m.text()); });
+page.on('requestfailed', (r) => consoleErrors.push(`request failed: ${r.url()}`));
+
+const pages = ['/', '/coverage', '/model', '/balance', '/sensitivity'];
+for (const p of pages) {
+  const response = await page.goto(base + p);
+  check(response && response.status() === 200, `${p} answered ${response && response.status()}`);
+  const svgs = await page.locator('figure svg').count();
+  check(svgs > 0, `${p} shows no chart`);
+  check(await page.locator('table').count() > 0, `${p} shows no table`);
+  check(!(await page.content()).includes('NaN'), `${p} shows NaN`);
+  await page.screenshot({ path: path.join(out, `page${p === '/' ? '-overview' : p.replace('/', '-')}.png`), fullPage: true });
+}
+
+// Change a setting through the form: the URL carries it and the chart changes.
+await page.goto(base + '/balance');
+const before = await page.locator('figure svg').first().innerHTML();
+await page.selectOption('select[name="weighting"]', 'raking');
+await Promise.all([page.waitForURL(/weighting=raking/), page.click('form.settings button[type="submit"]')]);
+const after = await page.locator('figure svg').first().innerHTML();
+check(before !== after, 'changing the weighting did not change the balance chart');
+check(page.url().includes('weighting=raking'), 'the URL does not carry the setting');
+// Untick an indicator: the link reproduces the view.
+await page.uncheck('input[name="covariate"][value="log_population"]');
+await Promise.all([page.waitForNavigation(), page.click('form.settings button[type="submit"]')]);
+check(!(await page.locator('#table').innerText()).includes('Population (log)'), 'unticked indicator still shown');
+const link = page.url();
+await page.goto(link);
+check(!(await page.locator('#table').innerText()).includes('Population (log)'), 'the link does not reproduce the view');
+
+// Downloads: a chart and a table.
+for (const [where, selector, starts] of [['/coverage', 'a[href^="/coverage/map.svg"]', '<svg'], ['/balance', 'a[href^="/balance/table.csv"]', 'covariate,']]) {
+  await page.goto(base + where);
+  const [download] = await Promise.all([page.waitForEvent('download'), page.click(selector)]);
+  const file = path.join(out, download.suggestedFilename());
+  await download.saveAs(file);
+  const text = fs.readFileSync(file, 'utf8');
+  check(text.startsWith(starts), `${where} download ${download.suggestedFilename()} starts with ${JSON.stringify(text.slice(0, 20))}`);
+}
+
+check(consoleErrors.length === 0, `browser errors: ${consoleErrors.join('; ')}`);
+await browser.close();
+if (failures.length) {
+  console.error(failures.map((f) => `FAIL ${f}`).join('\n'));
+  process.exit(1);
+}
+console.log(`browser checks passed; screenshots in ${out}`);
