@@ -15,7 +15,8 @@ use std::process::Command;
 fn pages_work_in_a_real_browser() {
     let browser_dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/browser");
     let chromium = std::env::var("CHROMIUM").unwrap_or_else(|_| "/usr/bin/chromium".to_string());
-    let ready = Path::new(&chromium).exists() && browser_dir.join("node_modules/playwright-core").exists();
+    let ready =
+        Path::new(&chromium).exists() && browser_dir.join("node_modules/playwright-core").exists();
     let required = std::env::var("GAPWISE_BROWSER_TESTS").is_ok_and(|v| v == "required");
     if !ready {
         assert!(!required, "GAPWISE_BROWSER_TESTS=required but {chromium} or tests/browser/node_modules is missing");
