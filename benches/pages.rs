@@ -10,6 +10,9 @@ use axum::extract::{Query, State};
 use gapwise::project::Project;
 use gapwise::web::{self, AppState};
 
+/// Renders one page; true on success.
+type Render<'a> = Box<dyn Fn() -> bool + 'a>;
+
 fn main() {
     let state = Arc::new(AppState::new(
         Project::load(&gapwise::demo_dir()).expect("demo loads"),
@@ -40,7 +43,7 @@ fn main() {
     );
     let mut worst: f64 = 0.0;
     for (name, query) in &queries {
-        let pages: [(&str, Box<dyn Fn() -> bool>); 5] = [
+        let pages: [(&str, Render); 5] = [
             (
                 "overview",
                 Box::new(|| {

@@ -408,60 +408,10 @@ pub fn entropy_balance(
             d[[r, a]] = (c[[i, j]] - targets[j]) / scale[j].max(1e-300);
         }
     }
-    let q: Vec<f64> = participants
-        .iter()
-        .map(|&i| base.map_or(1.0, |b| b[i]))
-        .collect();
-    let weights_at = |lambda: &Array1<f64>| -> (Vec<f64>, f64) {
-        let z = d.dot(lambda);
-        let shift = z.iter().fold(f64::NEG_INFINITY, |m, &v| m.max(-v));
-        let raw: Vec<f64> = (0..np).map(|r| q[r] * (-z[r] - shift).exp()).collect();
-        let sum: f64 = raw.iter().sum();
-        let dual = sum.ln() + shift;
-        (raw.into_iter().map(|w| w / sum).collect(), dual)
-    };
-    let mut lambda = Array1::<f64>::zeros(ka);
-    let (mut w, mut dual) = weights_at(&lambda);
-    let mut converged = ka == 0;
-    let mut iterations = 0;
-    while !converged && iterations < 200 {
-        iterations += 1;
-        // Gradient of the dual: -sum w_r d_r; Hessian: weighted covariance of d.
-        let mean = d.t().dot(&Array1::from(w.clone()));
-        if mean.iter().all(|v| v.abs() < 1e-12) {
-            converged = true;
-            break;
-        }
-        let mut cov = Array2::<f64>::zeros((ka, ka));
-        for (row, &wr) in d.rows().into_iter().zip(&w) {
-            let dr = &row - &mean;
-            for a in 0..ka {
-                for b in 0..ka {
-                    cov[[a, b]] += wr * dr[a] * dr[b];
-                }
-            }
-        }
-        let Ok(step) = linalg::solve_spd(cov.view(), mean.view()) else {
-            break;
-        };
-        let mut s = 1.0;
-        let mut moved = false;
-        for _ in 0..60 {
-            let candidate = &lambda + &(&step * s);
-            let (wc, dc) = weights_at(&candidate);
-            if dc.is_finite() && dc <= dual + 1e-12 * dual.abs().max(1.0) {
-                lambda = candidate;
-                w = wc;
-                dual = dc;
-                moved = true;
-                break;
-            }
-            s *= 0.5;
-        }
-        if !moved {
-            break;
-        }
-    }
+    let q: Vec<f64> = participants.iter().map(|&i| base.map_or(1.0, |b| b[i])).collect();
+    let solution = entropy_dual(d.view(), &q, None, 200);
+    let (w, iterations) = (solution.weights, solution.iterations);
+    let mut converged = solution.converged;
     let gaps = d.t().dot(&Array1::from(w.clone()));
     let max_gap = gaps.iter().fold(0.0f64, |m, v| m.max(v.abs()));
     converged = converged || max_gap < 1e-10;
@@ -492,6 +442,78 @@ pub fn entropy_balance(
         iterations,
         max_gap,
     })
+}
+
+/// The solution of the entropy-balancing dual.
+#[derive(Debug, Clone)]
+pub struct DualSolution {
+    pub lambda: Array1<f64>,
+    /// Sum to 1, aligned with the rows of `d`.
+    pub weights: Vec<f64>,
+    pub converged: bool,
+    pub iterations: usize,
+}
+
+/// Newton's method on the entropy-balancing dual L(lambda) = log sum_r q_r exp(-lambda'd_r),
+/// d the moment rows already centred at their targets (and scaled); see
+/// [`entropy_balance`]. The gradient is -sum w_r d_r, the Hessian the w-weighted covariance
+/// of d. Starts from `start` (a warm start from a neighbouring problem) or zero.
+pub fn entropy_dual(d: ArrayView2<f64>, q: &[f64], start: Option<&Array1<f64>>, max_iter: usize) -> DualSolution {
+    let (np, ka) = d.dim();
+    let weights_at = |lambda: &Array1<f64>| -> (Array1<f64>, f64) {
+        let z = d.dot(lambda);
+        let shift = z.iter().fold(f64::NEG_INFINITY, |m, &v| m.max(-v));
+        let raw: Array1<f64> = (0..np).map(|r| q[r] * (-z[r] - shift).exp()).collect();
+        let sum = raw.sum();
+        (raw / sum, sum.ln() + shift)
+    };
+    let mut lambda = start.filter(|l| l.len() == ka).cloned().unwrap_or_else(|| Array1::zeros(ka));
+    let (mut w, mut dual) = weights_at(&lambda);
+    let mut converged = ka == 0;
+    let mut iterations = 0;
+    while !converged && iterations < max_iter {
+        iterations += 1;
+        let mean = d.t().dot(&w);
+        if mean.iter().all(|v| v.abs() < 1e-12) {
+            converged = true;
+            break;
+        }
+        let cov = linalg::weighted_cross_product(d, w.view()) - outer(&mean);
+        let Ok(step) = linalg::solve_spd(cov.view(), mean.view()) else {
+            break;
+        };
+        let mut s = 1.0;
+        let mut moved = false;
+        for _ in 0..60 {
+            let candidate = &lambda + &(&step * s);
+            let (wc, dc) = weights_at(&candidate);
+            if dc.is_finite() && dc <= dual + 1e-12 * dual.abs().max(1.0) {
+                lambda = candidate;
+                w = wc;
+                dual = dc;
+                moved = true;
+                break;
+            }
+            s *= 0.5;
+        }
+        if !moved {
+            break;
+        }
+    }
+    if !converged {
+        converged = d.t().dot(&w).iter().all(|v| v.abs() < 1e-10);
+    }
+    DualSolution {
+        lambda,
+        weights: w.to_vec(),
+        converged,
+        iterations,
+    }
+}
+
+fn outer(v: &Array1<f64>) -> Array2<f64> {
+    let n = v.len();
+    Array2::from_shape_fn((n, n), |(a, b)| v[a] * v[b])
 }
 
 /// The result of raking.
