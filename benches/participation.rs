@@ -69,7 +69,9 @@ pub fn synthetic_universe(n: usize, numeric: usize, seed: u64) -> WaveView {
         ],
         group: Some(0),
         cost: None,
+        cost_column: None,
         feasibility: None,
+        feasibility_column: None,
     }
 }
 

@@ -164,6 +164,8 @@ pub struct UniverseSource {
     pub wave: Option<i64>,
     pub id: Option<String>,
     pub flag: Option<String>,
+    /// Cost and feasibility columns to read from a bare frame file.
+    pub extra: crate::project::wave::ExtraColumns,
 }
 
 /// Loads the wave view named by the source: a project folder (manifest columns, one wave)
@@ -204,7 +206,7 @@ pub fn load_universe(source: &UniverseSource, settings: &mut Settings) -> Result
                 "a frame file needs --covariates a,b,c (and optionally --factors f,g)".to_string(),
             );
         }
-        WaveView::from_file(&source.path, id, flag, &covariates, &factors)
+        WaveView::from_file(&source.path, id, flag, &covariates, &factors, &source.extra)
             .map_err(|p| problems_text(&p, &source.path))
     }
 }
@@ -313,6 +315,73 @@ pub fn fit_text(r: &FitReport) -> String {
             opt(b.variance_ratio_before, 2),
             opt(b.variance_ratio_after, 2)
         );
+    }
+    out
+}
+
+/// `gapwise plan`: the greedy recruitment plan, its baselines and its stability.
+pub fn plan(source: &UniverseSource, mut settings: Settings, plan_settings: &crate::analysis::planner::PlanSettings, json: bool) -> i32 {
+    let view = match load_universe(source, &mut settings) {
+        Ok(v) => v,
+        Err(message) => {
+            eprintln!("{message}");
+            return 1;
+        }
+    };
+    match crate::analysis::planner::plan(&view, &settings, plan_settings) {
+        Ok(mut p) => {
+            if !source.path.is_dir() {
+                p.wave = None;
+            }
+            if json {
+                println!("{}", serde_json::to_string_pretty(&p).unwrap_or_default());
+            } else {
+                print!("{}", plan_text(&p));
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
+/// The readable form of a plan.
+pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
+    let mut out = String::new();
+    let c = &p.current;
+    let _ = writeln!(
+        out,
+        "now: {} of {} eligible take part; effective number after entropy balancing {:.1}{}; mean |SMD| {:.3}, largest {:.3}",
+        p.n_participants,
+        p.n_eligible,
+        c.effective_n,
+        if c.feasible { "" } else { " (balance not reachable)" },
+        c.mean_abs_smd,
+        c.max_abs_smd
+    );
+    let _ = writeln!(out, "\n{:<4} {:<8} {:>11} {:>8} {:>8} {:>8} {:>8} {:>10} {:>9}", "step", "country", "effective n", "mean|d|", "max|d|", "gain", "p(join)", "exp. gain", "stability");
+    for (j, s) in p.steps.iter().enumerate() {
+        let _ = writeln!(
+            out,
+            "{:<4} {:<8} {:>11.1} {:>8.3} {:>8.3} {:>8.2} {:>8.2} {:>10.2} {:>9}",
+            j + 1,
+            s.id,
+            s.effective_n,
+            s.mean_abs_smd,
+            s.max_abs_smd,
+            s.gain,
+            s.probability,
+            s.expected_gain,
+            opt(s.stability, 2)
+        );
+    }
+    let b = &p.baselines;
+    let last = |v: &Vec<f64>| v.last().copied().unwrap_or(0.0);
+    let _ = writeln!(out, "\nafter {} recruits: greedy plan effective n {:.1}; the {} likeliest {:.1}; at random (mean of {} draws) {:.1}", p.steps.len(), p.steps.last().map_or(c.effective_n, |s| s.effective_n), p.steps.len(), last(&b.likeliest.effective_n), b.draws, last(&b.random.effective_n));
+    for n in &p.notes {
+        let _ = writeln!(out, "note: {n}");
     }
     out
 }

@@ -51,6 +51,36 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Plan recruitment: which absent eligible countries would most improve balance.
+    Plan {
+        /// A project folder, or a CSV/Parquet frame in which every row is an eligible unit.
+        source: PathBuf,
+        #[command(flatten)]
+        universe: UniverseArgs,
+        #[command(flatten)]
+        analysis: AnalysisArgs,
+        /// Number of countries to recruit.
+        #[arg(long)]
+        budget: Option<usize>,
+        /// Column with each country's recruitment cost.
+        #[arg(long)]
+        cost_column: Option<String>,
+        /// Total cost allowed (needs --cost-column).
+        #[arg(long)]
+        cost_budget: Option<f64>,
+        /// Probability of joining: "model" (the participation model) or a column of probabilities.
+        #[arg(long, default_value = "model")]
+        feasibility: String,
+        /// Bootstrap replicates for the stability of each pick (0 to skip).
+        #[arg(long, default_value_t = 200)]
+        replicates: usize,
+        /// Seed of every random draw (bootstrap, random baseline).
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Print one JSON object instead of tables.
+        #[arg(long)]
+        json: bool,
+    },
     /// Write the invented demo project into a folder.
     MakeDemo {
         dir: PathBuf,
@@ -131,6 +161,60 @@ fn main() -> ExitCode {
         }) => cli::serve(&dir.unwrap_or_else(gapwise::demo_dir), addr, allow_remote),
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
+        Some(Command::Plan {
+            source,
+            universe,
+            analysis,
+            budget,
+            cost_column,
+            cost_budget,
+            feasibility,
+            replicates,
+            seed,
+            json,
+        }) => match analysis.settings() {
+            Ok(mut settings) => {
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
+                let feasibility = if feasibility == "model" {
+                    gapwise::analysis::planner::Feasibility::Model
+                } else {
+                    gapwise::analysis::planner::Feasibility::Column(feasibility)
+                };
+                let extra = gapwise::project::wave::ExtraColumns {
+                    cost: cost_column.clone(),
+                    feasibility: match &feasibility {
+                        gapwise::analysis::planner::Feasibility::Column(c) => Some(c.clone()),
+                        gapwise::analysis::planner::Feasibility::Model => None,
+                    },
+                };
+                let plan_settings = gapwise::analysis::planner::PlanSettings {
+                    budget: if cost_budget.is_some() { None } else { budget.or(Some(5)) },
+                    cost_budget,
+                    cost_column,
+                    feasibility,
+                    replicates,
+                    ..Default::default()
+                };
+                cli::plan(
+                    &cli::UniverseSource {
+                        path: source,
+                        wave: universe.wave,
+                        id: universe.id,
+                        flag: universe.flag,
+                        extra,
+                    },
+                    settings,
+                    &plan_settings,
+                    json,
+                )
+            }
+            Err(message) => {
+                eprintln!("{message}");
+                2
+            }
+        },
         Some(Command::Fit {
             source,
             universe,
@@ -143,6 +227,7 @@ fn main() -> ExitCode {
                     wave: universe.wave,
                     id: universe.id,
                     flag: universe.flag,
+                    extra: Default::default(),
                 },
                 settings,
                 json,

@@ -256,3 +256,33 @@ impl Design {
         z
     }
 }
+
+impl Design {
+    /// The design restricted to (or resampled as) the given units, in that order; the
+    /// standardisation constants stay those of the full design.
+    pub fn subset(&self, rows: &[usize]) -> Design {
+        let pick_f = |v: &Vec<f64>| rows.iter().map(|&i| v[i]).collect::<Vec<_>>();
+        Design {
+            terms: self.terms.clone(),
+            x: self.x.select(ndarray::Axis(0), rows),
+            participated: rows.iter().map(|&i| self.participated[i]).collect(),
+            ids: rows.iter().map(|&i| self.ids[i].clone()).collect(),
+            names: rows.iter().map(|&i| self.names[i].clone()).collect(),
+            units: rows.iter().map(|&i| self.units[i]).collect(),
+            dropped: self.dropped.clone(),
+            filled: self.filled.clone(),
+            balance: self
+                .balance
+                .iter()
+                .map(|b| BalanceColumn { name: b.name.clone(), label: b.label.clone(), values: pick_f(&b.values), is_level: b.is_level })
+                .collect(),
+            margins: self
+                .margins
+                .iter()
+                .map(|m| Margin { name: m.name.clone(), levels: m.levels.clone(), codes: rows.iter().map(|&i| m.codes[i]).collect() })
+                .collect(),
+            centre: self.centre.clone(),
+            scale: self.scale.clone(),
+        }
+    }
+}

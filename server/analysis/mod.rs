@@ -7,6 +7,7 @@ pub mod coverage;
 pub mod design;
 pub mod overview;
 pub mod participation;
+pub mod planner;
 pub mod sensitivity;
 pub mod settings;
 

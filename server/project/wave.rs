@@ -34,8 +34,11 @@ pub struct WaveView {
     pub categorical: Vec<CategoricalIndicator>,
     /// Index into `categorical` of the grouping indicator (usually region).
     pub group: Option<usize>,
+    /// Recruitment cost and feasibility, with the columns they came from.
     pub cost: Option<Vec<Option<f64>>>,
+    pub cost_column: Option<String>,
     pub feasibility: Option<Vec<Option<f64>>>,
+    pub feasibility_column: Option<String>,
 }
 
 impl WaveView {
@@ -102,6 +105,8 @@ impl WaveView {
                 .cost
                 .as_ref()
                 .map(|c| pick(project.frame.numbers(c))),
+            cost_column: m.recruitment.cost.clone(),
+            feasibility_column: m.recruitment.feasibility.clone(),
             feasibility: m
                 .recruitment
                 .feasibility
@@ -147,6 +152,7 @@ impl WaveView {
         flag: &str,
         covariates: &[String],
         factors: &[String],
+        extra: &ExtraColumns,
     ) -> Result<WaveView, Vec<super::Problem>> {
         use super::table::{load_table, ColumnKind, ColumnSpec};
         let label = path.file_name().map_or_else(
@@ -228,8 +234,17 @@ impl WaveView {
                 })
                 .collect(),
             group: None,
-            cost: None,
-            feasibility: None,
+            cost: extra.cost.as_ref().map(|c| table.numbers(c)),
+            cost_column: extra.cost.clone(),
+            feasibility: extra.feasibility.as_ref().map(|c| table.numbers(c)),
+            feasibility_column: extra.feasibility.clone(),
         })
     }
+}
+
+/// Optional recruitment columns of a bare frame file.
+#[derive(Debug, Clone, Default)]
+pub struct ExtraColumns {
+    pub cost: Option<String>,
+    pub feasibility: Option<String>,
 }
