@@ -320,7 +320,12 @@ pub fn fit_text(r: &FitReport) -> String {
 }
 
 /// `gapwise plan`: the greedy recruitment plan, its baselines and its stability.
-pub fn plan(source: &UniverseSource, mut settings: Settings, plan_settings: &crate::analysis::planner::PlanSettings, json: bool) -> i32 {
+pub fn plan(
+    source: &UniverseSource,
+    mut settings: Settings,
+    plan_settings: &crate::analysis::planner::PlanSettings,
+    json: bool,
+) -> i32 {
     let view = match load_universe(source, &mut settings) {
         Ok(v) => v,
         Err(message) => {
@@ -361,7 +366,19 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
         c.mean_abs_smd,
         c.max_abs_smd
     );
-    let _ = writeln!(out, "\n{:<4} {:<8} {:>11} {:>8} {:>8} {:>8} {:>8} {:>10} {:>9}", "step", "country", "effective n", "mean|d|", "max|d|", "gain", "p(join)", "exp. gain", "stability");
+    let _ = writeln!(
+        out,
+        "\n{:<4} {:<8} {:>11} {:>8} {:>8} {:>8} {:>8} {:>10} {:>9}",
+        "step",
+        "country",
+        "effective n",
+        "mean|d|",
+        "max|d|",
+        "gain",
+        "p(join)",
+        "exp. gain",
+        "stability"
+    );
     for (j, s) in p.steps.iter().enumerate() {
         let _ = writeln!(
             out,

@@ -190,7 +190,11 @@ fn main() -> ExitCode {
                     },
                 };
                 let plan_settings = gapwise::analysis::planner::PlanSettings {
-                    budget: if cost_budget.is_some() { None } else { budget.or(Some(5)) },
+                    budget: if cost_budget.is_some() {
+                        None
+                    } else {
+                        budget.or(Some(5))
+                    },
                     cost_budget,
                     cost_column,
                     feasibility,

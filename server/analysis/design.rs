@@ -274,12 +274,21 @@ impl Design {
             balance: self
                 .balance
                 .iter()
-                .map(|b| BalanceColumn { name: b.name.clone(), label: b.label.clone(), values: pick_f(&b.values), is_level: b.is_level })
+                .map(|b| BalanceColumn {
+                    name: b.name.clone(),
+                    label: b.label.clone(),
+                    values: pick_f(&b.values),
+                    is_level: b.is_level,
+                })
                 .collect(),
             margins: self
                 .margins
                 .iter()
-                .map(|m| Margin { name: m.name.clone(), levels: m.levels.clone(), codes: rows.iter().map(|&i| m.codes[i]).collect() })
+                .map(|m| Margin {
+                    name: m.name.clone(),
+                    levels: m.levels.clone(),
+                    codes: rows.iter().map(|&i| m.codes[i]).collect(),
+                })
                 .collect(),
             centre: self.centre.clone(),
             scale: self.scale.clone(),

@@ -167,8 +167,16 @@ struct Evaluator {
 impl Evaluator {
     fn new(design: &Design) -> Evaluator {
         let n = design.n();
-        let reference: Vec<String> = design.margins.iter().filter_map(|m| m.levels.first().map(|l| format!("{}={}", m.name, l))).collect();
-        let eb: Vec<&design::BalanceColumn> = design.balance.iter().filter(|b| !reference.contains(&b.name)).collect();
+        let reference: Vec<String> = design
+            .margins
+            .iter()
+            .filter_map(|m| m.levels.first().map(|l| format!("{}={}", m.name, l)))
+            .collect();
+        let eb: Vec<&design::BalanceColumn> = design
+            .balance
+            .iter()
+            .filter(|b| !reference.contains(&b.name))
+            .collect();
         let mut moments = Array2::<f64>::zeros((n, eb.len()));
         for (j, col) in eb.iter().enumerate() {
             let mean = col.values.iter().sum::<f64>() / n as f64;
@@ -184,15 +192,28 @@ impl Evaluator {
             .iter()
             .map(|col| {
                 let mean = balance::weighted_mean(&col.values, &all).unwrap_or(0.0);
-                let sd = if col.is_level { (mean * (1.0 - mean)).sqrt() } else { balance::weighted_variance(&col.values, &all).unwrap_or(0.0).sqrt() };
+                let sd = if col.is_level {
+                    (mean * (1.0 - mean)).sqrt()
+                } else {
+                    balance::weighted_variance(&col.values, &all)
+                        .unwrap_or(0.0)
+                        .sqrt()
+                };
                 (col.values.clone(), mean, sd)
             })
             .collect();
-        Evaluator { moments, smd_columns }
+        Evaluator {
+            moments,
+            smd_columns,
+        }
     }
 
     /// Balance of the set of units `members`, warm-starting the dual at `start`.
-    fn evaluate(&self, members: &[usize], start: Option<&Array1<f64>>) -> (SetMetrics, Option<Array1<f64>>) {
+    fn evaluate(
+        &self,
+        members: &[usize],
+        start: Option<&Array1<f64>>,
+    ) -> (SetMetrics, Option<Array1<f64>>) {
         let k = self.moments.ncols();
         // Unweighted SMDs of the members.
         let mut total = 0.0;
@@ -208,7 +229,11 @@ impl Evaluator {
             largest = largest.max(smd);
             counted += 1;
         }
-        let mean_abs_smd = if counted > 0 { total / counted as f64 } else { 0.0 };
+        let mean_abs_smd = if counted > 0 {
+            total / counted as f64
+        } else {
+            0.0
+        };
         // Feasibility: every target (0 after centring) strictly inside the members' range.
         let mut d = Array2::<f64>::zeros((members.len(), k));
         for (r, &i) in members.iter().enumerate() {
@@ -216,10 +241,19 @@ impl Evaluator {
         }
         let inside = (0..k).all(|j| {
             let column = d.column(j);
-            let (lo, hi) = column.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| (l.min(v), h.max(v)));
+            let (lo, hi) = column
+                .iter()
+                .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
+                    (l.min(v), h.max(v))
+                });
             lo < -1e-9 && hi > 1e-9 || (hi - lo).abs() < 1e-12 && lo.abs() < 1e-9
         });
-        let infeasible = SetMetrics { effective_n: 0.0, mean_abs_smd, max_abs_smd: largest, feasible: false };
+        let infeasible = SetMetrics {
+            effective_n: 0.0,
+            mean_abs_smd,
+            max_abs_smd: largest,
+            feasible: false,
+        };
         if !inside || members.is_empty() {
             return (infeasible, None);
         }
@@ -228,15 +262,27 @@ impl Evaluator {
         if !solution.converged {
             return (infeasible, None);
         }
-        let metrics = SetMetrics { effective_n: balance::effective_n(&solution.weights), mean_abs_smd, max_abs_smd: largest, feasible: true };
+        let metrics = SetMetrics {
+            effective_n: balance::effective_n(&solution.weights),
+            mean_abs_smd,
+            max_abs_smd: largest,
+            feasible: true,
+        };
         (metrics, Some(solution.lambda))
     }
 }
 
 /// Probability of joining for each unit of the design.
-fn probabilities(design: &Design, view: &WaveView, settings: &Settings, plan: &PlanSettings) -> Result<Vec<f64>, PlanError> {
+fn probabilities(
+    design: &Design,
+    view: &WaveView,
+    settings: &Settings,
+    plan: &PlanSettings,
+) -> Result<Vec<f64>, PlanError> {
     match &plan.feasibility {
-        Feasibility::Model => Ok(participation::fit_model(design, settings.model, false)?.propensity),
+        Feasibility::Model => {
+            Ok(participation::fit_model(design, settings.model, false)?.propensity)
+        }
         Feasibility::Column(name) => {
             let values = view
                 .feasibility
@@ -247,7 +293,7 @@ fn probabilities(design: &Design, view: &WaveView, settings: &Settings, plan: &P
             design
                 .units
                 .iter()
-                .map(|&i| match values[i] {
+                .map(|&i| match values.get(i).copied().flatten() {
                     Some(p) if (0.0..=1.0).contains(&p) => Ok(p),
                     Some(p) => Err(PlanError::Request(format!("the feasibility column '{name}' holds {p} for {}; it must hold probabilities between 0 and 1", view.codes[i]))),
                     None => Ok(0.0),
@@ -257,10 +303,16 @@ fn probabilities(design: &Design, view: &WaveView, settings: &Settings, plan: &P
     }
 }
 
-fn costs(design: &Design, view: &WaveView, plan: &PlanSettings) -> Result<Option<Vec<Option<f64>>>, PlanError> {
+fn costs(
+    design: &Design,
+    view: &WaveView,
+    plan: &PlanSettings,
+) -> Result<Option<Vec<Option<f64>>>, PlanError> {
     let Some(name) = &plan.cost_column else {
         if plan.cost_budget.is_some() {
-            return Err(PlanError::Request("a cost budget needs a cost column (--cost-column)".to_string()));
+            return Err(PlanError::Request(
+                "a cost budget needs a cost column (--cost-column)".to_string(),
+            ));
         }
         return Ok(None);
     };
@@ -270,7 +322,13 @@ fn costs(design: &Design, view: &WaveView, plan: &PlanSettings) -> Result<Option
         .filter(|_| view.cost_column.as_deref() == Some(name.as_str()))
         .or_else(|| view.numeric.iter().find(|c| &c.column == name).map(|c| &c.values))
         .ok_or_else(|| PlanError::Request(format!("unknown cost column '{name}'; name the project's cost column ({}) or a numeric indicator", view.cost_column.as_deref().unwrap_or("none set"))))?;
-    Ok(Some(design.units.iter().map(|&i| values[i].filter(|c| *c > 0.0)).collect()))
+    Ok(Some(
+        design
+            .units
+            .iter()
+            .map(|&i| values.get(i).copied().flatten().filter(|c| *c > 0.0))
+            .collect(),
+    ))
 }
 
 /// Greedy plan over `candidates` (design indices) from `members`. Returns the picks in
@@ -281,7 +339,15 @@ struct GreedyPick {
     gain: f64,
 }
 
-fn greedy(eval: &Evaluator, members: &[usize], candidates: &[usize], probability: &[f64], cost: Option<&[Option<f64>]>, budget: Budget, same_unit: &dyn Fn(usize) -> Vec<usize>) -> Vec<GreedyPick> {
+fn greedy(
+    eval: &Evaluator,
+    members: &[usize],
+    candidates: &[usize],
+    probability: &[f64],
+    cost: Option<&[Option<f64>]>,
+    budget: Budget,
+    same_unit: &dyn Fn(usize) -> Vec<usize>,
+) -> Vec<GreedyPick> {
     let mut members = members.to_vec();
     let (mut current, mut lambda) = eval.evaluate(&members, None);
     let mut left: Vec<usize> = candidates.to_vec();
@@ -293,7 +359,7 @@ fn greedy(eval: &Evaluator, members: &[usize], candidates: &[usize], probability
                 break;
             }
         }
-        let mut best: Option<(f64, f64, usize, SetMetrics, Option<Array1<f64>>)> = None;
+        let mut best: Option<Trial> = None;
         for (pos, &c) in left.iter().enumerate() {
             let unit_cost = cost.and_then(|k| k[c]);
             if let Budget::Cost(b) = budget {
@@ -313,16 +379,24 @@ fn greedy(eval: &Evaluator, members: &[usize], candidates: &[usize], probability
             // Ties (no gain in effective number, e.g. while balance stays infeasible) go to
             // the larger expected fall in imbalance.
             let tie = probability[c] * (current.mean_abs_smd - metrics.mean_abs_smd);
-            let better = best.as_ref().is_none_or(|(b, t, ..)| per > *b + 1e-12 || ((per - *b).abs() <= 1e-12 && tie > *t));
+            let better = best.as_ref().is_none_or(|(b, t, ..)| {
+                per > *b + 1e-12 || ((per - *b).abs() <= 1e-12 && tie > *t)
+            });
             if better {
                 best = Some((per, tie, pos, metrics, l));
             }
         }
-        let Some((_, _, pos, metrics, l)) = best else { break };
+        let Some((_, _, pos, metrics, l)) = best else {
+            break;
+        };
         let unit = left.remove(pos);
         members.extend(same_unit(unit));
         spent += cost.and_then(|k| k[unit]).unwrap_or(0.0);
-        picks.push(GreedyPick { unit, metrics, gain: metrics.effective_n - current.effective_n });
+        picks.push(GreedyPick {
+            unit,
+            metrics,
+            gain: metrics.effective_n - current.effective_n,
+        });
         current = metrics;
         if l.is_some() {
             lambda = l;
@@ -334,6 +408,10 @@ fn greedy(eval: &Evaluator, members: &[usize], candidates: &[usize], probability
     picks
 }
 
+/// One candidate tried in a greedy round: score, tie-break, position among the candidates
+/// left, the set's metrics with it, and the dual solution to warm-start the next round.
+type Trial = (f64, f64, usize, SetMetrics, Option<Array1<f64>>);
+
 #[derive(Debug, Clone, Copy)]
 enum Budget {
     Count(usize),
@@ -341,14 +419,24 @@ enum Budget {
 }
 
 /// Builds the plan for one wave.
-pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) -> Result<Plan, PlanError> {
+pub fn plan(
+    view: &WaveView,
+    settings: &Settings,
+    plan_settings: &PlanSettings,
+) -> Result<Plan, PlanError> {
     let design = design::build(view, settings).map_err(AnalysisError::from)?;
     let probability = probabilities(&design, view, settings, plan_settings)?;
     let cost = costs(&design, view, plan_settings)?;
-    let members: Vec<usize> = (0..design.n()).filter(|&i| design.participated[i]).collect();
-    let candidates: Vec<usize> = (0..design.n()).filter(|&i| !design.participated[i]).collect();
+    let members: Vec<usize> = (0..design.n())
+        .filter(|&i| design.participated[i])
+        .collect();
+    let candidates: Vec<usize> = (0..design.n())
+        .filter(|&i| !design.participated[i])
+        .collect();
     if candidates.is_empty() {
-        return Err(PlanError::Request("every eligible country already takes part: there is nobody to recruit".to_string()));
+        return Err(PlanError::Request(
+            "every eligible country already takes part: there is nobody to recruit".to_string(),
+        ));
     }
     let budget = match (plan_settings.budget, plan_settings.cost_budget) {
         (_, Some(b)) if b > 0.0 => Budget::Cost(b),
@@ -367,7 +455,15 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
         notes.push("With the current participants no positive weights reproduce the eligible universe's means (some kinds of countries have no participant at all): recruits that make balance feasible come first.".to_string());
     }
     let single = |i: usize| vec![i];
-    let picks = greedy(&eval, &members, &candidates, &probability, cost.as_deref(), budget, &single);
+    let picks = greedy(
+        &eval,
+        &members,
+        &candidates,
+        &probability,
+        cost.as_deref(),
+        budget,
+        &single,
+    );
     let k = picks.len();
 
     // Each candidate on its own.
@@ -382,7 +478,10 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
             CandidateRow {
                 id: design.ids[c].clone(),
                 name: design.names[c].clone(),
-                group: view.group.and_then(|g| view.categorical[g].values[design.units[c]].map(|l| view.categorical[g].levels[l].clone())),
+                group: view.group.and_then(|g| {
+                    view.categorical[g].values[design.units[c]]
+                        .map(|l| view.categorical[g].levels[l].clone())
+                }),
                 probability: probability[c],
                 cost: unit_cost,
                 if_joined: m,
@@ -394,17 +493,38 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
             }
         })
         .collect();
-    rows.sort_by(|a, b| b.expected_gain.total_cmp(&a.expected_gain).then(b.probability.total_cmp(&a.probability)).then(a.id.cmp(&b.id)));
+    rows.sort_by(|a, b| {
+        b.expected_gain
+            .total_cmp(&a.expected_gain)
+            .then(b.probability.total_cmp(&a.probability))
+            .then(a.id.cmp(&b.id))
+    });
 
     // Stability by bootstrap over the eligible universe.
     let seed = settings.seed;
-    let stability = if plan_settings.replicates > 0 { Some(bootstrap(&design, view, settings, plan_settings, budget, seed)?) } else { None };
+    let stability = if plan_settings.replicates > 0 {
+        Some(bootstrap(
+            &design,
+            view,
+            settings,
+            plan_settings,
+            budget,
+            seed,
+        )?)
+    } else {
+        None
+    };
     if let Some(s) = &stability {
         for r in &mut rows {
-            r.stability = Some(s.get(&r.id).copied().unwrap_or(0.0) / plan_settings.replicates as f64);
+            r.stability =
+                Some(s.get(&r.id).copied().unwrap_or(0.0) / plan_settings.replicates as f64);
         }
     }
-    let stability_of = |id: &str| stability.as_ref().map(|s| s.get(id).copied().unwrap_or(0.0) / plan_settings.replicates as f64);
+    let stability_of = |id: &str| {
+        stability
+            .as_ref()
+            .map(|s| s.get(id).copied().unwrap_or(0.0) / plan_settings.replicates as f64)
+    };
 
     let mut cumulative = 0.0;
     let steps: Vec<Step> = picks
@@ -431,11 +551,26 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
 
     // Baselines over the same number of recruits.
     let mut by_probability = candidates.clone();
-    by_probability.sort_by(|&a, &b| probability[b].total_cmp(&probability[a]).then(design.ids[a].cmp(&design.ids[b])));
-    let likeliest = path(&eval, &members, &by_probability[..k.min(by_probability.len())], &design);
+    by_probability.sort_by(|&a, &b| {
+        probability[b]
+            .total_cmp(&probability[a])
+            .then(design.ids[a].cmp(&design.ids[b]))
+    });
+    let likeliest = path(
+        &eval,
+        &members,
+        &by_probability[..k.min(by_probability.len())],
+        &design,
+    );
     let mut rng = Rng::new(seed ^ 0xBA5E_11AE);
     let draws = plan_settings.random_draws.max(1);
-    let mut random = BaselinePath { ids: Vec::new(), effective_n: vec![0.0; k], mean_abs_smd: vec![0.0; k], max_abs_smd: vec![0.0; k], feasible_share: vec![0.0; k] };
+    let mut random = BaselinePath {
+        ids: Vec::new(),
+        effective_n: vec![0.0; k],
+        mean_abs_smd: vec![0.0; k],
+        max_abs_smd: vec![0.0; k],
+        feasible_share: vec![0.0; k],
+    };
     for _ in 0..draws {
         let mut order = candidates.clone();
         rng.shuffle(&mut order);
@@ -466,14 +601,27 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
             .zip(&design.balance)
             .map(|((values, mean, sd), col)| {
                 let m = trial.iter().map(|&i| values[i]).sum::<f64>() / trial.len() as f64;
-                (col.label.clone(), if *sd > 0.0 { (m - mean) / sd } else { 0.0 })
+                (
+                    col.label.clone(),
+                    if *sd > 0.0 { (m - mean) / sd } else { 0.0 },
+                )
             })
             .collect();
-        Some(WhatIf { joiners: plan_settings.joiners.clone(), metrics, smd })
+        Some(WhatIf {
+            joiners: plan_settings.joiners.clone(),
+            metrics,
+            smd,
+        })
     };
 
-    if matches!(budget, Budget::Cost(_)) && cost.as_ref().is_some_and(|c| candidates.iter().any(|&i| c[i].is_none())) {
-        notes.push("Candidates without a (positive) cost are left out of a cost-budget plan.".to_string());
+    if matches!(budget, Budget::Cost(_))
+        && cost
+            .as_ref()
+            .is_some_and(|c| candidates.iter().any(|&i| c[i].is_none()))
+    {
+        notes.push(
+            "Candidates without a (positive) cost are left out of a cost-budget plan.".to_string(),
+        );
     }
     notes.push("Gains assume the recruits' indicators stay as in the frame, and probabilities of joining come from the chosen source; both are estimates.".to_string());
 
@@ -487,7 +635,11 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
         current,
         candidates: rows,
         steps,
-        baselines: Baselines { likeliest, random, draws },
+        baselines: Baselines {
+            likeliest,
+            random,
+            draws,
+        },
         what_if,
         notes,
     })
@@ -497,7 +649,13 @@ pub fn plan(view: &WaveView, settings: &Settings, plan_settings: &PlanSettings) 
 fn path(eval: &Evaluator, members: &[usize], order: &[usize], design: &Design) -> BaselinePath {
     let mut set = members.to_vec();
     let mut lambda = None;
-    let mut out = BaselinePath { ids: Vec::new(), effective_n: Vec::new(), mean_abs_smd: Vec::new(), max_abs_smd: Vec::new(), feasible_share: Vec::new() };
+    let mut out = BaselinePath {
+        ids: Vec::new(),
+        effective_n: Vec::new(),
+        mean_abs_smd: Vec::new(),
+        max_abs_smd: Vec::new(),
+        feasible_share: Vec::new(),
+    };
     for &u in order {
         set.push(u);
         let (m, l) = eval.evaluate(&set, lambda.as_ref());
@@ -516,7 +674,14 @@ fn path(eval: &Evaluator, members: &[usize], order: &[usize], design: &Design) -
 /// Resamples the eligible universe (countries with replacement), refits, replans; counts
 /// how often each candidate is picked. Replicates are shared among the cores; each has its
 /// own seeded generator, so results do not depend on the number of threads.
-fn bootstrap(design: &Design, view: &WaveView, settings: &Settings, plan_settings: &PlanSettings, budget: Budget, seed: u64) -> Result<BTreeMap<String, f64>, PlanError> {
+fn bootstrap(
+    design: &Design,
+    view: &WaveView,
+    settings: &Settings,
+    plan_settings: &PlanSettings,
+    budget: Budget,
+    seed: u64,
+) -> Result<BTreeMap<String, f64>, PlanError> {
     let n = design.n();
     let replicates = plan_settings.replicates;
     let column_probability = match &plan_settings.feasibility {
@@ -535,10 +700,13 @@ fn bootstrap(design: &Design, view: &WaveView, settings: &Settings, plan_setting
                 Err(_) => return Vec::new(),
             },
         };
-        let sample_cost: Option<Vec<Option<f64>>> = cost.as_ref().map(|c| draw.iter().map(|&i| c[i]).collect());
+        let sample_cost: Option<Vec<Option<f64>>> =
+            cost.as_ref().map(|c| draw.iter().map(|&i| c[i]).collect());
         let members: Vec<usize> = (0..n).filter(|&i| sample.participated[i]).collect();
         let mut seen = std::collections::BTreeSet::new();
-        let candidates: Vec<usize> = (0..n).filter(|&i| !sample.participated[i] && seen.insert(draw[i])).collect();
+        let candidates: Vec<usize> = (0..n)
+            .filter(|&i| !sample.participated[i] && seen.insert(draw[i]))
+            .collect();
         if members.is_empty() || candidates.is_empty() {
             return Vec::new();
         }
@@ -549,15 +717,33 @@ fn bootstrap(design: &Design, view: &WaveView, settings: &Settings, plan_setting
         };
         // Duplicated countries join together.
         let same = |i: usize| (0..n).filter(|&j| draw[j] == draw[i]).collect::<Vec<_>>();
-        greedy(&eval, &members, &candidates, &probability, sample_cost.as_deref(), budget, &same).into_iter().map(|p| design.ids[draw[p.unit]].clone()).collect()
+        greedy(
+            &eval,
+            &members,
+            &candidates,
+            &probability,
+            sample_cost.as_deref(),
+            budget,
+            &same,
+        )
+        .into_iter()
+        .map(|p| design.ids[draw[p.unit]].clone())
+        .collect()
     };
-    let threads = std::thread::available_parallelism().map_or(1, |t| t.get()).min(replicates.max(1));
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |t| t.get())
+        .min(replicates.max(1));
     let mut counts: BTreeMap<String, f64> = BTreeMap::new();
     std::thread::scope(|scope| {
         let handles: Vec<_> = (0..threads)
             .map(|t| {
                 let one = &one;
-                scope.spawn(move || (t..replicates).step_by(threads).map(one).collect::<Vec<_>>())
+                scope.spawn(move || {
+                    (t..replicates)
+                        .step_by(threads)
+                        .map(one)
+                        .collect::<Vec<_>>()
+                })
             })
             .collect();
         for h in handles {

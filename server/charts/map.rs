@@ -10,6 +10,12 @@ use crate::analysis::coverage::CoverageReport;
 /// eligible countries as hollow amber triangles (shape and colour both differ), the
 /// countries farthest from the centre labelled with their codes.
 pub fn component_map(c: &CoverageReport) -> String {
+    component_map_marked(c, &[], &[])
+}
+
+/// The same map with the plan's recruits ringed (plum diamonds) and hypothetical joiners
+/// drawn as if they took part (plum squares).
+pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[String]) -> String {
     const TITLE: &str =
         "Which kinds of countries are missing: the eligible universe on two components";
     if let Some(e) = &c.map_error {
@@ -71,7 +77,49 @@ pub fn component_map(c: &CoverageReport) -> String {
             )?
             .label("Took part")
             .legend(move |(x, y)| Circle::new((x, y), 6, took.filled()));
-        chart.draw_series(c.points.iter().filter(|p| p.outlier).map(|p| {
+        let plum = colour(2);
+        if !planned.is_empty() {
+            chart
+                .draw_series(
+                    c.points
+                        .iter()
+                        .filter(|p| planned.contains(&p.id))
+                        .map(|p| {
+                            EmptyElement::at((p.pc1, p.pc2))
+                                + PathElement::new(
+                                    vec![(0, -13), (13, 0), (0, 13), (-13, 0), (0, -13)],
+                                    plum.stroke_width(3),
+                                )
+                        }),
+                )?
+                .label("In the recruitment plan")
+                .legend(move |(x, y)| {
+                    PathElement::new(
+                        vec![(x, y - 8), (x + 8, y), (x, y + 8), (x - 8, y), (x, y - 8)],
+                        plum.stroke_width(3),
+                    )
+                });
+        }
+        if !joiners.is_empty() {
+            chart
+                .draw_series(
+                    c.points
+                        .iter()
+                        .filter(|p| joiners.contains(&p.id))
+                        .map(|p| {
+                            EmptyElement::at((p.pc1, p.pc2))
+                                + Rectangle::new([(-7, -7), (7, 7)], plum.filled())
+                        }),
+                )?
+                .label("What if it joined")
+                .legend(move |(x, y)| {
+                    Rectangle::new([(x - 6, y - 6), (x + 6, y + 6)], plum.filled())
+                });
+        }
+        let labelled = |p: &&crate::analysis::coverage::MapPoint| {
+            p.outlier || planned.contains(&p.id) || joiners.contains(&p.id)
+        };
+        chart.draw_series(c.points.iter().filter(labelled).map(|p| {
             EmptyElement::at((p.pc1, p.pc2)) + Text::new(p.id.clone(), (9, -18), font(14))
         }))?;
         chart

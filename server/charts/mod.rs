@@ -5,6 +5,7 @@ pub mod balance;
 pub mod coverage;
 pub mod map;
 pub mod model;
+pub mod plan;
 pub mod sensitivity;
 
 use plotters::style::{FontDesc, FontFamily, FontStyle, RGBColor};

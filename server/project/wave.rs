@@ -173,6 +173,12 @@ impl WaveView {
                 .iter()
                 .map(|f| ColumnSpec::new(f, ColumnKind::Text, "--factors")),
         );
+        if let Some(c) = &extra.cost {
+            specs.push(ColumnSpec::new(c, ColumnKind::Number, "--cost-column"));
+        }
+        if let Some(c) = &extra.feasibility {
+            specs.push(ColumnSpec::new(c, ColumnKind::Number, "--feasibility"));
+        }
         let table = load_table(path, &label, &specs)?;
         let codes: Vec<String> = table
             .texts(id)

@@ -408,7 +408,10 @@ pub fn entropy_balance(
             d[[r, a]] = (c[[i, j]] - targets[j]) / scale[j].max(1e-300);
         }
     }
-    let q: Vec<f64> = participants.iter().map(|&i| base.map_or(1.0, |b| b[i])).collect();
+    let q: Vec<f64> = participants
+        .iter()
+        .map(|&i| base.map_or(1.0, |b| b[i]))
+        .collect();
     let solution = entropy_dual(d.view(), &q, None, 200);
     let (w, iterations) = (solution.weights, solution.iterations);
     let mut converged = solution.converged;
@@ -458,7 +461,12 @@ pub struct DualSolution {
 /// d the moment rows already centred at their targets (and scaled); see
 /// [`entropy_balance`]. The gradient is -sum w_r d_r, the Hessian the w-weighted covariance
 /// of d. Starts from `start` (a warm start from a neighbouring problem) or zero.
-pub fn entropy_dual(d: ArrayView2<f64>, q: &[f64], start: Option<&Array1<f64>>, max_iter: usize) -> DualSolution {
+pub fn entropy_dual(
+    d: ArrayView2<f64>,
+    q: &[f64],
+    start: Option<&Array1<f64>>,
+    max_iter: usize,
+) -> DualSolution {
     let (np, ka) = d.dim();
     let weights_at = |lambda: &Array1<f64>| -> (Array1<f64>, f64) {
         let z = d.dot(lambda);
@@ -467,7 +475,10 @@ pub fn entropy_dual(d: ArrayView2<f64>, q: &[f64], start: Option<&Array1<f64>>, 
         let sum = raw.sum();
         (raw / sum, sum.ln() + shift)
     };
-    let mut lambda = start.filter(|l| l.len() == ka).cloned().unwrap_or_else(|| Array1::zeros(ka));
+    let mut lambda = start
+        .filter(|l| l.len() == ka)
+        .cloned()
+        .unwrap_or_else(|| Array1::zeros(ka));
     let (mut w, mut dual) = weights_at(&lambda);
     let mut converged = ka == 0;
     let mut iterations = 0;

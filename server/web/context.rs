@@ -13,6 +13,16 @@ use crate::project::{Project, WaveView};
 /// The query string as ordered pairs (repeated keys allowed, as checkboxes send them).
 pub type Query = Vec<(String, String)>;
 
+/// Query keys that belong to the recruitment planner, not to the analysis settings.
+pub const PLAN_KEYS: [&str; 6] = [
+    "budget",
+    "cost_budget",
+    "cost_column",
+    "feasibility",
+    "replicates",
+    "joiner",
+];
+
 /// Folds the form's repeated `covariate` / `factor` checkboxes into the settings' lists.
 /// A submitted form (`form=1`) with nothing ticked means an empty list, not "all".
 pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
@@ -27,7 +37,10 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
     };
     let mut pairs: Vec<(&str, String)> = query
         .iter()
-        .filter(|(k, _)| !matches!(k.as_str(), "form" | "covariate" | "factor"))
+        .filter(|(k, _)| {
+            !matches!(k.as_str(), "form" | "covariate" | "factor")
+                && !PLAN_KEYS.contains(&k.as_str())
+        })
         .map(|(k, v)| (k.as_str(), v.clone()))
         .collect();
     if submitted {

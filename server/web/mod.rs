@@ -7,6 +7,7 @@ pub mod error;
 pub mod format;
 pub mod model;
 pub mod overview;
+pub mod plan;
 pub mod sensitivity;
 pub mod state;
 
@@ -48,6 +49,10 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/coverage", get(coverage::page))
         .route("/api/coverage", get(coverage::json))
         .route("/coverage/{item}", get(coverage::artifact))
+        // Recruitment plan
+        .route("/plan", get(plan::page))
+        .route("/api/plan", get(plan::json))
+        .route("/plan/{item}", get(plan::artifact))
         // Sensitivity
         .route("/sensitivity", get(sensitivity::page))
         .route("/api/sensitivity", get(sensitivity::json))

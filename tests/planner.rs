@@ -1,0 +1,355 @@
+//! The recruitment planner on constructed frames where the right pick is known, its
+//! consistency with `gapwise fit`, its invariance to row order, and its messages for bad
+//! requests.
+
+mod common;
+use common::*;
+
+use serde_json::Value;
+
+/// A universe with two clusters: A around (0, 0), well covered; B around (4, 4), with one
+/// participant only. `certain` gives every country a chance of joining of 1.
+fn clustered_frame() -> String {
+    let mut rng = gapwise::demo::rng::Rng::new(11);
+    let mut out = String::from("id,x,y,took_part,chance,cost\n");
+    for i in 0..24 {
+        let took = i < 16;
+        out.push_str(&format!(
+            "A{i:02},{:.3},{:.3},{},1,{}\n",
+            rng.normal(),
+            rng.normal(),
+            u8::from(took),
+            10 + i % 3
+        ));
+    }
+    for i in 0..8 {
+        let took = i == 0;
+        out.push_str(&format!(
+            "B{i:02},{:.3},{:.3},{},1,{}\n",
+            4.0 + rng.normal(),
+            4.0 + rng.normal(),
+            u8::from(took),
+            10 + i % 3
+        ));
+    }
+    out
+}
+
+fn plan_json(dir: &TempDir, file: &str, extra: &[&str]) -> Value {
+    let path = dir.path().join(file);
+    let mut args = vec![
+        "plan",
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "took_part",
+        "--covariates",
+        "x,y",
+        "--feasibility",
+        "chance",
+        "--json",
+    ];
+    args.extend_from_slice(extra);
+    if !extra.contains(&"--replicates") {
+        args.extend_from_slice(&["--replicates", "20"]);
+    }
+    let out = gapwise(&args);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    serde_json::from_str(&out.stdout).unwrap()
+}
+
+#[test]
+fn recruits_from_the_uncovered_cluster_first() {
+    let dir = TempDir::new("cluster");
+    dir.write("frame.csv", clustered_frame());
+    let p = plan_json(&dir, "frame.csv", &["--budget", "3"]);
+    let steps = p["steps"].as_array().unwrap();
+    assert_eq!(steps.len(), 3);
+    // Common sense: with one participant standing for a whole cluster, a second one from
+    // that cluster spreads the weight most.
+    assert!(
+        steps[0]["id"].as_str().unwrap().starts_with('B'),
+        "{}",
+        steps[0]["id"]
+    );
+    assert!(steps[0]["gain"].as_f64().unwrap() > 0.0);
+    let mut previous = p["current"]["effective_n"].as_f64().unwrap();
+    for s in steps {
+        let now = s["effective_n"].as_f64().unwrap();
+        assert!((now - previous - s["gain"].as_f64().unwrap()).abs() < 1e-9);
+        previous = now;
+    }
+    // Baselines have one entry per recruit.
+    assert_eq!(
+        p["baselines"]["likeliest"]["effective_n"]
+            .as_array()
+            .unwrap()
+            .len(),
+        3
+    );
+    assert_eq!(
+        p["baselines"]["random"]["effective_n"]
+            .as_array()
+            .unwrap()
+            .len(),
+        3
+    );
+    // Stability is a share.
+    for s in steps {
+        let st = s["stability"].as_f64().unwrap();
+        assert!((0.0..=1.0).contains(&st));
+    }
+}
+
+#[test]
+fn a_candidate_that_makes_balance_feasible_comes_first() {
+    let dir = TempDir::new("feasible");
+    let mut frame = String::from("id,x,region,took_part,chance\n");
+    let mut rng = gapwise::demo::rng::Rng::new(5);
+    for i in 0..30 {
+        let region = ["north", "south", "east"][i % 3];
+        // Nobody from the east takes part.
+        let took = region != "east" && i % 2 == 0;
+        frame.push_str(&format!(
+            "U{i:02},{:.3},{region},{},0.5\n",
+            rng.normal(),
+            u8::from(took)
+        ));
+    }
+    dir.write("frame.csv", frame);
+    let path = dir.path().join("frame.csv");
+    let out = gapwise(&[
+        "plan",
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "took_part",
+        "--covariates",
+        "x",
+        "--factors",
+        "region",
+        "--feasibility",
+        "chance",
+        "--budget",
+        "2",
+        "--replicates",
+        "0",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert_eq!(p["current"]["feasible"], false);
+    assert_eq!(p["current"]["effective_n"], 0.0);
+    let first = &p["steps"][0];
+    assert_eq!(first["feasible"], true);
+    let id = first["id"].as_str().unwrap();
+    let n: usize = id[1..].parse().unwrap();
+    assert_eq!(n % 3, 2, "the first recruit {id} should come from the east");
+}
+
+#[test]
+fn steps_equal_what_fit_reports_for_the_same_set() {
+    let dir = TempDir::new("consistency");
+    let frame = clustered_frame();
+    dir.write("frame.csv", &frame);
+    let p = plan_json(&dir, "frame.csv", &["--budget", "3"]);
+    let mut recruited: Vec<String> = Vec::new();
+    for (j, step) in p["steps"].as_array().unwrap().iter().enumerate() {
+        recruited.push(step["id"].as_str().unwrap().to_string());
+        let flipped: Vec<String> = frame
+            .lines()
+            .map(|l| {
+                let cells: Vec<&str> = l.split(',').collect();
+                if recruited.iter().any(|r| r == cells[0]) {
+                    format!(
+                        "{},{},{},1,{},{}",
+                        cells[0], cells[1], cells[2], cells[4], cells[5]
+                    )
+                } else {
+                    l.to_string()
+                }
+            })
+            .collect();
+        let name = format!("step{j}.csv");
+        dir.write(&name, flipped.join("\n") + "\n");
+        let path = dir.path().join(&name);
+        let out = gapwise(&[
+            "fit",
+            path.to_str().unwrap(),
+            "--id",
+            "id",
+            "--flag",
+            "took_part",
+            "--covariates",
+            "x,y",
+            "--weighting",
+            "entropy",
+            "--json",
+        ]);
+        assert_eq!(out.code, 0, "{}", out.stderr);
+        let fit: Value = serde_json::from_str(&out.stdout).unwrap();
+        let ess = fit["weighting"]["effective_n"].as_f64().unwrap();
+        assert!(
+            (ess - step["effective_n"].as_f64().unwrap()).abs() < 1e-6,
+            "step {j}: fit {ess} vs plan {}",
+            step["effective_n"]
+        );
+        let max_smd = fit["balance"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|b| b["smd_before"].as_f64().unwrap().abs())
+            .fold(0.0, f64::max);
+        assert!((max_smd - step["max_abs_smd"].as_f64().unwrap()).abs() < 1e-9);
+    }
+}
+
+#[test]
+fn invariant_to_row_order() {
+    let dir = TempDir::new("order");
+    let frame = clustered_frame();
+    let mut lines: Vec<&str> = frame.lines().collect();
+    let header = lines.remove(0);
+    lines.reverse();
+    dir.write("frame.csv", &frame);
+    dir.write("reversed.csv", format!("{header}\n{}\n", lines.join("\n")));
+    let a = plan_json(&dir, "frame.csv", &["--budget", "4", "--replicates", "0"]);
+    let b = plan_json(
+        &dir,
+        "reversed.csv",
+        &["--budget", "4", "--replicates", "0"],
+    );
+    let key = |p: &Value| {
+        p["steps"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|s| {
+                (
+                    s["id"].as_str().unwrap().to_string(),
+                    (s["effective_n"].as_f64().unwrap() * 1e6).round(),
+                )
+            })
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(key(&a), key(&b));
+}
+
+#[test]
+fn cost_budget_is_respected() {
+    let dir = TempDir::new("cost");
+    dir.write("frame.csv", clustered_frame());
+    let p = plan_json(
+        &dir,
+        "frame.csv",
+        &["--cost-column", "cost", "--cost-budget", "25"],
+    );
+    let total = p["steps"].as_array().unwrap().last().unwrap()["cumulative_cost"]
+        .as_f64()
+        .unwrap();
+    assert!(total <= 25.0 && total >= 10.0, "{total}");
+}
+
+#[test]
+fn bad_requests_get_clear_messages() {
+    let dir = TempDir::new("badplan");
+    dir.write("frame.csv", clustered_frame());
+    dir.write("everyone.csv", clustered_frame().replace(",0,1,", ",1,1,"));
+    let path = dir.path().join("frame.csv");
+    let p = path.to_str().unwrap();
+    let run = |args: &[&str]| {
+        let mut all = vec!["plan"];
+        all.extend_from_slice(args);
+        gapwise(&all)
+    };
+    let everyone = dir.path().join("everyone.csv");
+    let out = run(&[
+        everyone.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "took_part",
+        "--covariates",
+        "x,y",
+        "--feasibility",
+        "chance",
+    ]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("nobody to recruit"), "{}", out.stderr);
+    let out = run(&[
+        p,
+        "--id",
+        "id",
+        "--flag",
+        "took_part",
+        "--covariates",
+        "x,y",
+        "--budget",
+        "50",
+    ]);
+    assert!(
+        out.stderr
+            .contains("exceeds the 15 eligible countries that do not take part"),
+        "{}",
+        out.stderr
+    );
+    let out = run(&[
+        p,
+        "--id",
+        "id",
+        "--flag",
+        "took_part",
+        "--covariates",
+        "x,y",
+        "--cost-column",
+        "price",
+        "--cost-budget",
+        "20",
+    ]);
+    assert_ne!(out.code, 0);
+    assert!(out.stderr.contains("price"), "{}", out.stderr);
+    let demo = demo_dir();
+    let out = run(&[
+        demo.to_str().unwrap(),
+        "--cost-column",
+        "price",
+        "--cost-budget",
+        "20",
+        "--replicates",
+        "0",
+    ]);
+    assert!(
+        out.stderr.contains("unknown cost column 'price'"),
+        "{}",
+        out.stderr
+    );
+}
+
+#[test]
+fn plan_page_and_twin() {
+    let addr = start_server(&demo_dir());
+    let page = http(addr, "GET", "/plan?budget=3&replicates=10&joiner=XHW", &[]);
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert!(page.body.contains("What if XHW joined"));
+    assert!(page.body.matches("<svg").count() >= 2);
+    let twin: Value =
+        serde_json::from_str(&http(addr, "GET", "/api/plan?budget=3&replicates=10", &[]).body)
+            .unwrap();
+    assert_eq!(twin["steps"].as_array().unwrap().len(), 3);
+    for item in ["paths.svg", "map.svg", "plan.csv", "candidates.csv"] {
+        assert_eq!(
+            http(
+                addr,
+                "GET",
+                &format!("/plan/{item}?budget=3&replicates=0"),
+                &[]
+            )
+            .status,
+            200,
+            "{item}"
+        );
+    }
+    assert_eq!(http(addr, "GET", "/plan?budget=0", &[]).status, 400);
+}
