@@ -249,7 +249,7 @@ fn cost_budget_is_respected() {
     let total = p["steps"].as_array().unwrap().last().unwrap()["cumulative_cost"]
         .as_f64()
         .unwrap();
-    assert!(total <= 25.0 && total >= 10.0, "{total}");
+    assert!((10.0..=25.0).contains(&total), "{total}");
 }
 
 #[test]
