@@ -402,3 +402,42 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
     }
     out
 }
+
+/// `gapwise regress`: a pooled regression with CR1 cluster-robust standard errors.
+pub fn regress(
+    path: &Path,
+    outcome: &str,
+    predictors: &[String],
+    cluster: &str,
+    weight: Option<&str>,
+    family: &str,
+    json: bool,
+) -> i32 {
+    let Some(family) = crate::stats::regression::Family::parse(family) else {
+        eprintln!("--family must be gaussian or binomial, not '{family}'");
+        return 2;
+    };
+    match crate::analysis::microdata::regress_file(
+        path, outcome, predictors, cluster, weight, family,
+    ) {
+        Ok(r) => {
+            if json {
+                println!("{}", serde_json::to_string_pretty(&r).unwrap_or_default());
+            } else {
+                println!("{} model of {outcome}: {} respondents in {} clusters ({} rows with missing values left out)", r.family, r.n, r.clusters, r.dropped);
+                println!(
+                    "  {:<28} {:>14} {:>14}",
+                    "term", "coefficient", "cluster s.e."
+                );
+                for ((t, c), s) in r.terms.iter().zip(&r.coef).zip(&r.se) {
+                    println!("  {t:<28} {c:>14.6} {s:>14.6}");
+                }
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}

@@ -81,6 +81,29 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Pooled regression of a respondent outcome with standard errors clustered by country.
+    Regress {
+        /// A CSV or Parquet file with one row per respondent.
+        microdata: PathBuf,
+        /// The outcome column.
+        #[arg(long)]
+        outcome: String,
+        /// Predictor columns, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        predictors: Vec<String>,
+        /// The cluster column (the country).
+        #[arg(long)]
+        cluster: String,
+        /// Analytic weights column (as weighted least squares takes them).
+        #[arg(long)]
+        weight: Option<String>,
+        /// gaussian (least squares) or binomial (logistic).
+        #[arg(long, default_value = "gaussian")]
+        family: String,
+        /// Print one JSON object instead of a table.
+        #[arg(long)]
+        json: bool,
+    },
     /// Write the invented demo project into a folder.
     MakeDemo {
         dir: PathBuf,
@@ -161,6 +184,23 @@ fn main() -> ExitCode {
         }) => cli::serve(&dir.unwrap_or_else(gapwise::demo_dir), addr, allow_remote),
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
+        Some(Command::Regress {
+            microdata,
+            outcome,
+            predictors,
+            cluster,
+            weight,
+            family,
+            json,
+        }) => cli::regress(
+            &microdata,
+            &outcome,
+            &predictors,
+            &cluster,
+            weight.as_deref(),
+            &family,
+            json,
+        ),
         Some(Command::Plan {
             source,
             universe,

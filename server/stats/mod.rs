@@ -7,4 +7,5 @@ pub mod describe;
 pub mod linalg;
 pub mod normal;
 pub mod pca;
+pub mod regression;
 pub mod weights;

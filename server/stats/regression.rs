@@ -1,0 +1,474 @@
+//! Respondent-level regressions pooled over countries: weighted least squares and weighted
+//! logistic regression, with standard errors clustered by country (CR1), the wild cluster
+//! bootstrap, and the Heckman two-step with the inverse Mills ratio.
+
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
+
+use super::binary::logistic;
+use super::linalg;
+use super::normal;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Family {
+    /// Linear model, least squares.
+    Gaussian,
+    /// Logistic model for a 0/1 outcome, maximum likelihood.
+    Binomial,
+}
+
+impl Family {
+    pub fn parse(s: &str) -> Option<Family> {
+        match s {
+            "gaussian" => Some(Family::Gaussian),
+            "binomial" => Some(Family::Binomial),
+            _ => None,
+        }
+    }
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Family::Gaussian => "gaussian",
+            Family::Binomial => "binomial",
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum RegressionError {
+    #[error(
+        "there are {n} respondents but {k} terms; the model needs more respondents than terms"
+    )]
+    TooFew { n: usize, k: usize },
+    #[error("the design is singular: a predictor is constant or a combination of the others")]
+    Singular,
+    #[error("clustered standard errors need at least two clusters (countries); there is {0}")]
+    OneCluster(usize),
+    #[error("a binomial outcome must be 0 or 1; found {0}")]
+    NotBinary(f64),
+    #[error("weights must be positive and finite; found {0}")]
+    BadWeight(f64),
+}
+
+/// A fitted regression with CR1 cluster-robust standard errors.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct RegressionFit {
+    pub coef: Vec<f64>,
+    pub se: Vec<f64>,
+    #[serde(skip)]
+    pub cov: Array2<f64>,
+    #[serde(skip)]
+    pub bread: Array2<f64>,
+    pub n: usize,
+    pub clusters: usize,
+    pub converged: bool,
+    pub iterations: usize,
+}
+
+/// Sums `f(row) -> (matrix, vector)` contributions over rows, split across the cores.
+fn accumulate<F>(n: usize, k: usize, f: F) -> (Array2<f64>, Array1<f64>)
+where
+    F: Fn(usize, &mut Array2<f64>, &mut Array1<f64>) + Sync,
+{
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |t| t.get())
+        .clamp(1, 8);
+    let threads = if n < 20_000 { 1 } else { threads };
+    let chunk = n.div_ceil(threads).max(1);
+    std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..threads)
+            .map(|t| {
+                let f = &f;
+                scope.spawn(move || {
+                    let mut m = Array2::<f64>::zeros((k, k));
+                    let mut v = Array1::<f64>::zeros(k);
+                    for i in (t * chunk)..((t + 1) * chunk).min(n) {
+                        f(i, &mut m, &mut v);
+                    }
+                    (m, v)
+                })
+            })
+            .collect();
+        let mut m = Array2::<f64>::zeros((k, k));
+        let mut v = Array1::<f64>::zeros(k);
+        for h in handles {
+            if let Ok((hm, hv)) = h.join() {
+                m += &hm;
+                v += &hv;
+            }
+        }
+        (m, v)
+    })
+}
+
+/// Adds w x x' (upper and lower triangle) and w y x to the accumulators.
+#[inline]
+fn add_outer(m: &mut Array2<f64>, v: &mut Array1<f64>, x: ArrayView1<f64>, w: f64, wy: f64) {
+    let k = x.len();
+    for a in 0..k {
+        let wa = w * x[a];
+        v[a] += wy * x[a];
+        for b in 0..=a {
+            m[[a, b]] += wa * x[b];
+        }
+    }
+}
+
+fn symmetrise(m: &mut Array2<f64>) {
+    let k = m.nrows();
+    for a in 0..k {
+        for b in 0..a {
+            m[[b, a]] = m[[a, b]];
+        }
+    }
+}
+
+/// Least squares by Householder QR of sqrt(w) X (Golub & Van Loan 2013, alg. 5.3.2), which
+/// keeps full precision on ill-conditioned designs such as NIST's Longley data. Returns the
+/// coefficients and R^-1 R^-T = (X'WX)^-1.
+pub fn weighted_least_squares(
+    x: ArrayView2<f64>,
+    y: &[f64],
+    w: Option<&[f64]>,
+) -> Result<(Array1<f64>, Array2<f64>), RegressionError> {
+    let (n, k) = x.dim();
+    if n <= k {
+        return Err(RegressionError::TooFew { n, k });
+    }
+    let mut a = x.to_owned();
+    let mut b = Array1::from(y.to_vec());
+    if let Some(w) = w {
+        for i in 0..n {
+            let s = w[i].sqrt();
+            a.row_mut(i).mapv_inplace(|v| v * s);
+            b[i] *= s;
+        }
+    }
+    let scale: Vec<f64> = (0..k)
+        .map(|j| a.column(j).iter().fold(0.0f64, |m, v| m.max(v.abs())))
+        .collect();
+    for j in 0..k {
+        // Householder reflection zeroing a[j+1.., j].
+        let norm = a
+            .slice(ndarray::s![j.., j])
+            .iter()
+            .map(|v| v * v)
+            .sum::<f64>()
+            .sqrt();
+        if norm <= 1e-13 * scale[j].max(1e-300) * (n as f64).sqrt() {
+            return Err(RegressionError::Singular);
+        }
+        let alpha = if a[[j, j]] > 0.0 { -norm } else { norm };
+        let mut v: Vec<f64> = a.slice(ndarray::s![j.., j]).to_vec();
+        v[0] -= alpha;
+        let vnorm2: f64 = v.iter().map(|t| t * t).sum();
+        if vnorm2 == 0.0 {
+            continue;
+        }
+        for c in j..k {
+            let dot: f64 = (j..n).map(|i| v[i - j] * a[[i, c]]).sum();
+            let f = 2.0 * dot / vnorm2;
+            for i in j..n {
+                a[[i, c]] -= f * v[i - j];
+            }
+        }
+        let dot: f64 = (j..n).map(|i| v[i - j] * b[i]).sum();
+        let f = 2.0 * dot / vnorm2;
+        for i in j..n {
+            b[i] -= f * v[i - j];
+        }
+    }
+    // Back substitution R beta = Q'b, and R^-1.
+    let mut r_inv = Array2::<f64>::zeros((k, k));
+    for c in 0..k {
+        r_inv[[c, c]] = 1.0 / a[[c, c]];
+        for r in (0..c).rev() {
+            let s: f64 = (r + 1..=c).map(|t| a[[r, t]] * r_inv[[t, c]]).sum();
+            r_inv[[r, c]] = -s / a[[r, r]];
+        }
+    }
+    let qtb = b.slice(ndarray::s![..k]).to_owned();
+    let beta = r_inv.dot(&qtb);
+    let bread = r_inv.dot(&r_inv.t());
+    Ok((beta, bread))
+}
+
+/// CR1 cluster-robust covariance (Liang & Zeger 1986; Cameron & Miller 2015, eq. 11 and
+/// the small-sample factor c = G/(G-1) (N-1)/(N-K) of their section VI.B):
+/// V = c B (sum_g u_g u_g') B with B the bread and u_g the cluster's summed scores.
+pub fn cluster_covariance(bread: &Array2<f64>, scores: &Array2<f64>, n: usize) -> Array2<f64> {
+    let (g, k) = scores.dim();
+    let meat = scores.t().dot(scores);
+    let c = (g as f64 / (g as f64 - 1.0)) * ((n as f64 - 1.0) / (n as f64 - k as f64));
+    bread.dot(&meat).dot(bread) * c
+}
+
+/// Summed score contributions s_i x_i per cluster.
+fn cluster_scores(x: ArrayView2<f64>, s: &[f64], cluster: &[usize], groups: usize) -> Array2<f64> {
+    let k = x.ncols();
+    let mut u = Array2::<f64>::zeros((groups, k));
+    for (i, row) in x.rows().into_iter().enumerate() {
+        let mut ug = u.row_mut(cluster[i]);
+        ug.scaled_add(s[i], &row);
+    }
+    u
+}
+
+/// Fits the model with clustered standard errors. `cluster[i]` is respondent i's cluster
+/// index in `0..G`; `w` are analytic weights (as weighted least squares takes them).
+///
+/// Gaussian: weighted least squares, scores w_i e_i x_i. Binomial: weighted logistic
+/// regression by Newton-Raphson, score w_i (y_i - p_i) x_i, information X' diag(w p (1-p)) X.
+pub fn fit(
+    x: ArrayView2<f64>,
+    y: &[f64],
+    w: Option<&[f64]>,
+    cluster: &[usize],
+    family: Family,
+) -> Result<RegressionFit, RegressionError> {
+    let (n, k) = x.dim();
+    if n <= k {
+        return Err(RegressionError::TooFew { n, k });
+    }
+    if let Some(bad) = w.and_then(|w| w.iter().find(|v| !(v.is_finite() && **v > 0.0))) {
+        return Err(RegressionError::BadWeight(*bad));
+    }
+    let groups = cluster.iter().max().map_or(0, |m| m + 1);
+    let distinct = {
+        let mut seen = vec![false; groups];
+        cluster.iter().for_each(|&c| seen[c] = true);
+        seen.iter().filter(|&&s| s).count()
+    };
+    if distinct < 2 {
+        return Err(RegressionError::OneCluster(distinct));
+    }
+    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
+    let (beta, bread, scores, converged, iterations) = match family {
+        Family::Gaussian => {
+            let (beta, bread) = weighted_least_squares(x, y, w)?;
+            let fitted = x.dot(&beta);
+            let s: Vec<f64> = (0..n).map(|i| weight(i) * (y[i] - fitted[i])).collect();
+            (beta, bread, s, true, 1)
+        }
+        Family::Binomial => {
+            if let Some(bad) = y.iter().find(|v| **v != 0.0 && **v != 1.0) {
+                return Err(RegressionError::NotBinary(*bad));
+            }
+            let (beta, bread, converged, iterations) = logistic_newton(x, y, w)?;
+            let eta = x.dot(&beta);
+            let s: Vec<f64> = (0..n)
+                .map(|i| weight(i) * (y[i] - logistic(eta[i])))
+                .collect();
+            (beta, bread, s, converged, iterations)
+        }
+    };
+    let u = cluster_scores(x, &scores, cluster, groups);
+    let cov = cluster_covariance(&bread, &u, n);
+    Ok(RegressionFit {
+        coef: beta.to_vec(),
+        se: cov.diag().iter().map(|v| v.max(0.0).sqrt()).collect(),
+        cov,
+        bread,
+        n,
+        clusters: distinct,
+        converged,
+        iterations,
+    })
+}
+
+/// Weighted logistic regression by Newton-Raphson from zero, with step halving; returns
+/// the estimate, the inverse information, convergence and iterations.
+fn logistic_newton(
+    x: ArrayView2<f64>,
+    y: &[f64],
+    w: Option<&[f64]>,
+) -> Result<(Array1<f64>, Array2<f64>, bool, usize), RegressionError> {
+    let (n, k) = x.dim();
+    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
+    let log_likelihood = |beta: &Array1<f64>| -> f64 {
+        let eta = x.dot(beta);
+        (0..n)
+            .map(|i| {
+                weight(i)
+                    * (y[i] * eta[i]
+                        - (if eta[i] > 0.0 {
+                            eta[i] + (-eta[i]).exp().ln_1p()
+                        } else {
+                            eta[i].exp().ln_1p()
+                        }))
+            })
+            .sum()
+    };
+    let mut beta = Array1::<f64>::zeros(k);
+    let mut ll = log_likelihood(&beta);
+    let mut converged = false;
+    let mut iterations = 0;
+    let mut info = Array2::<f64>::zeros((k, k));
+    while iterations < 100 {
+        iterations += 1;
+        let eta = x.dot(&beta);
+        let (mut m, g) = accumulate(n, k, |i, m, v| {
+            let p = logistic(eta[i]);
+            let wi = weight(i);
+            add_outer(m, v, x.row(i), wi * p * (1.0 - p), wi * (y[i] - p));
+        });
+        symmetrise(&mut m);
+        info = m;
+        let scale = info
+            .diag()
+            .iter()
+            .fold(0.0f64, |a, v| a.max(*v))
+            .max(1e-300);
+        if g.iter().all(|v| v.abs() < 1e-9 * scale.sqrt().max(1.0)) {
+            converged = true;
+            break;
+        }
+        let step =
+            linalg::solve_spd(info.view(), g.view()).map_err(|_| RegressionError::Singular)?;
+        let mut t = 1.0;
+        let mut moved = false;
+        for _ in 0..40 {
+            let candidate = &beta + &(&step * t);
+            let lc = log_likelihood(&candidate);
+            if lc.is_finite() && lc >= ll - 1e-12 * ll.abs() {
+                beta = candidate;
+                ll = lc;
+                moved = true;
+                break;
+            }
+            t *= 0.5;
+        }
+        if !moved || step.iter().all(|v| (v * t).abs() < 1e-12) {
+            converged = step.iter().all(|v| (v * t).abs() < 1e-8);
+            break;
+        }
+    }
+    let bread = linalg::inverse_spd(info.view()).map_err(|_| RegressionError::Singular)?;
+    Ok((beta, bread, converged, iterations))
+}
+
+/// Wild cluster bootstrap p-value for H0: beta_j = 0 in a linear model, with the null
+/// imposed (Cameron, Gelbach & Miller 2008, "WCR"): residuals u~ and fitted values y~ of
+/// the model without x_j; for each replicate, y* = y~ + v_g u~ with one draw v_g per
+/// cluster (Rademacher +-1, or Webb's six-point distribution with fewer than 12 clusters,
+/// Webb 2014), the full model is refitted and t* = b*_j / se*_j (CR1). The p-value is the
+/// share of |t*| at least |t|. Refits use per-cluster sums, so a replicate costs O(G k^2).
+pub fn wild_cluster_bootstrap(
+    x: ArrayView2<f64>,
+    y: &[f64],
+    w: Option<&[f64]>,
+    cluster: &[usize],
+    j: usize,
+    replicates: usize,
+    seed: u64,
+) -> Result<f64, RegressionError> {
+    let (n, k) = x.dim();
+    let full = fit(x, y, w, cluster, Family::Gaussian)?;
+    let t_observed = full.coef[j] / full.se[j];
+    let keep: Vec<usize> = (0..k).filter(|&c| c != j).collect();
+    let restricted_x = x.select(ndarray::Axis(1), &keep);
+    let (restricted, _) = weighted_least_squares(restricted_x.view(), y, w)?;
+    let fitted = restricted_x.dot(&restricted);
+    let resid: Vec<f64> = (0..n).map(|i| y[i] - fitted[i]).collect();
+    let groups = cluster.iter().max().map_or(0, |m| m + 1);
+    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
+    // Per cluster: X_g'W y~_g, X_g'W u~_g, X_g'W X_g.
+    let mut c = vec![Array1::<f64>::zeros(k); groups];
+    let mut d = vec![Array1::<f64>::zeros(k); groups];
+    let mut m = vec![Array2::<f64>::zeros((k, k)); groups];
+    for i in 0..n {
+        let g = cluster[i];
+        let wi = weight(i);
+        add_outer(&mut m[g], &mut c[g], x.row(i), wi, wi * fitted[i]);
+        d[g].scaled_add(wi * resid[i], &x.row(i));
+    }
+    m.iter_mut().for_each(symmetrise);
+    let present: Vec<usize> = (0..groups)
+        .filter(|&g| m[g][[0, 0]] != 0.0 || c[g].iter().any(|v| *v != 0.0))
+        .collect();
+    let sum_c = present
+        .iter()
+        .fold(Array1::<f64>::zeros(k), |a, &g| a + &c[g]);
+    let bread = &full.bread;
+    let webb = present.len() < 12;
+    let mut rng = crate::demo::rng::Rng::new(seed);
+    let webb_values = [
+        -(1.5f64.sqrt()),
+        -1.0,
+        -(0.5f64.sqrt()),
+        0.5f64.sqrt(),
+        1.0,
+        1.5f64.sqrt(),
+    ];
+    let mut exceed = 0usize;
+    for _ in 0..replicates {
+        let v: Vec<f64> = present
+            .iter()
+            .map(|_| {
+                if webb {
+                    webb_values[rng.below(6)]
+                } else if rng.bernoulli(0.5) {
+                    1.0
+                } else {
+                    -1.0
+                }
+            })
+            .collect();
+        let rhs = present
+            .iter()
+            .zip(&v)
+            .fold(sum_c.clone(), |a, (&g, &vg)| a + &(&d[g] * vg));
+        let beta = bread.dot(&rhs);
+        let mut scores = Array2::<f64>::zeros((present.len(), k));
+        for (r, (&g, &vg)) in present.iter().zip(&v).enumerate() {
+            let u = &c[g] + &(&d[g] * vg) - m[g].dot(&beta);
+            scores.row_mut(r).assign(&u);
+        }
+        let cov = cluster_covariance(bread, &scores, n);
+        let t = beta[j] / cov[[j, j]].max(0.0).sqrt();
+        if t.abs() >= t_observed.abs() - 1e-12 {
+            exceed += 1;
+        }
+    }
+    Ok(exceed as f64 / replicates.max(1) as f64)
+}
+
+/// The Heckman (1979) two-step estimator: a probit of selection on `z` (with intercept),
+/// the inverse Mills ratio lambda_i = phi(z_i'g) / Phi(z_i'g) for the selected units, and
+/// least squares of y on [x, lambda] among them (Wooldridge, Introductory Econometrics,
+/// section 17.5). Returns the probit coefficients, the outcome coefficients (lambda last),
+/// and each selected unit's lambda.
+pub fn heckman_two_step(
+    z: ArrayView2<f64>,
+    selected: &[bool],
+    x: ArrayView2<f64>,
+    y: &[f64],
+) -> Result<HeckmanFit, RegressionError> {
+    let probit = super::binary::fit(super::binary::ModelKind::Probit, z, selected)
+        .map_err(|_| RegressionError::Singular)?;
+    let index = z.dot(&probit.coef);
+    let rows: Vec<usize> = (0..selected.len()).filter(|&i| selected[i]).collect();
+    let lambda: Vec<f64> = rows
+        .iter()
+        .map(|&i| normal::inverse_mills(index[i]))
+        .collect();
+    let k = x.ncols();
+    let mut xl = Array2::<f64>::zeros((rows.len(), k + 1));
+    for (r, &i) in rows.iter().enumerate() {
+        xl.slice_mut(ndarray::s![r, ..k]).assign(&x.row(i));
+        xl[[r, k]] = lambda[r];
+    }
+    let yy: Vec<f64> = rows.iter().map(|&i| y[i]).collect();
+    let (beta, _) = weighted_least_squares(xl.view(), &yy, None)?;
+    Ok(HeckmanFit {
+        selection: probit.coef.to_vec(),
+        outcome: beta.to_vec(),
+        lambda,
+    })
+}
+
+#[derive(Debug, Clone)]
+pub struct HeckmanFit {
+    pub selection: Vec<f64>,
+    pub outcome: Vec<f64>,
+    pub lambda: Vec<f64>,
+}
