@@ -5,6 +5,7 @@ pub mod balance;
 pub mod cautions;
 pub mod coverage;
 pub mod design;
+pub mod impact;
 pub mod microdata;
 pub mod overview;
 pub mod participation;

@@ -3,6 +3,7 @@
 
 pub mod balance;
 pub mod coverage;
+pub mod impact;
 pub mod map;
 pub mod model;
 pub mod plan;
@@ -15,13 +16,15 @@ pub const SLIDE: (u32, u32) = (960, 540);
 
 /// Our palette: six hues that stay distinct under the common colour-vision deficiencies
 /// (they differ in lightness as well as hue), chosen for this project.
-pub const PALETTE: [RGBColor; 6] = [
+pub const PALETTE: [RGBColor; 8] = [
     RGBColor(0x1B, 0x6F, 0x7A), // deep teal
     RGBColor(0xD9, 0x8E, 0x04), // amber
     RGBColor(0x7B, 0x3F, 0x8C), // plum
     RGBColor(0x5A, 0xA9, 0xE6), // sky
     RGBColor(0xB5, 0x47, 0x3A), // brick
     RGBColor(0x4A, 0x4A, 0x4A), // graphite
+    RGBColor(0x6E, 0x8B, 0x1F), // moss
+    RGBColor(0xC2, 0x5E, 0x9A), // orchid
 ];
 
 /// Neutral grey for "before" and "absent" marks.

@@ -23,6 +23,16 @@ pub const PLAN_KEYS: [&str; 6] = [
     "joiner",
 ];
 
+/// Query keys that belong to the impact view.
+pub const IMPACT_KEYS: [&str; 6] = [
+    "outcome",
+    "predictor",
+    "family",
+    "shares",
+    "population",
+    "bootstrap",
+];
+
 /// Folds the form's repeated `covariate` / `factor` checkboxes into the settings' lists.
 /// A submitted form (`form=1`) with nothing ticked means an empty list, not "all".
 pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
@@ -40,6 +50,7 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
         .filter(|(k, _)| {
             !matches!(k.as_str(), "form" | "covariate" | "factor")
                 && !PLAN_KEYS.contains(&k.as_str())
+                && !IMPACT_KEYS.contains(&k.as_str())
         })
         .map(|(k, v)| (k.as_str(), v.clone()))
         .collect();

@@ -5,6 +5,7 @@ pub mod context;
 pub mod coverage;
 pub mod error;
 pub mod format;
+pub mod impact;
 pub mod model;
 pub mod overview;
 pub mod plan;
@@ -53,6 +54,10 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/plan", get(plan::page))
         .route("/api/plan", get(plan::json))
         .route("/plan/{item}", get(plan::artifact))
+        // Impact on respondent-level findings
+        .route("/impact", get(impact::page))
+        .route("/api/impact", get(impact::json))
+        .route("/impact/{item}", get(impact::artifact))
         // Sensitivity
         .route("/sensitivity", get(sensitivity::page))
         .route("/api/sensitivity", get(sensitivity::json))

@@ -1,0 +1,176 @@
+//! Charts of the impact view: coefficients with intervals per variant, and the pooled
+//! estimate per variant.
+
+use plotters::prelude::*;
+
+use super::{colour, failed_chart, font, tick, SLIDE};
+use crate::analysis::impact::ImpactReport;
+
+/// One row per variant (top: unweighted), a dot at the pooled estimate and a 95% interval.
+pub fn pooled(r: &ImpactReport) -> String {
+    let title = format!("Pooled mean of {} by correction", r.impact.outcome);
+    let rows: Vec<(&str, f64, f64, f64)> = r
+        .variants
+        .iter()
+        .filter_map(|v| {
+            v.pooled
+                .as_ref()
+                .map(|p| (v.label.as_str(), p.estimate, p.low, p.high))
+        })
+        .collect();
+    if rows.is_empty() {
+        return failed_chart(&title, "No variant could be estimated.");
+    }
+    let mut svg = String::new();
+    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+        let n = rows.len();
+        let (lo, hi) = rows
+            .iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), r| {
+                (l.min(r.2), h.max(r.3))
+            });
+        let pad = 0.1 * (hi - lo).max(1e-9);
+        let labels: Vec<String> = rows.iter().map(|r| r.0.to_string()).collect();
+        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
+        root.fill(&WHITE)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(&title, font(24))
+            .margin(16)
+            .x_label_area_size(50)
+            .y_label_area_size(340)
+            .build_cartesian_2d((lo - pad)..(hi + pad), -0.5..(n as f64 - 0.5))?;
+        chart
+            .configure_mesh()
+            .light_line_style(WHITE.mix(0.0))
+            .disable_y_mesh()
+            .y_labels(n)
+            .y_label_formatter(&|y| {
+                let i = y.round();
+                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < n {
+                    labels[n - 1 - i as usize].clone()
+                } else {
+                    String::new()
+                }
+            })
+            .x_label_formatter(&|x| tick(*x, 2))
+            .x_desc(format!(
+                "Mean of {} (95% interval, errors clustered by country)",
+                r.impact.outcome
+            ))
+            .label_style(font(15))
+            .axis_desc_style(font(16))
+            .draw()?;
+        for (i, (_, est, low, high)) in rows.iter().enumerate() {
+            let y = (n - 1 - i) as f64;
+            let c = colour(i);
+            chart.draw_series(std::iter::once(PathElement::new(
+                vec![(*low, y), (*high, y)],
+                c.stroke_width(3),
+            )))?;
+            chart.draw_series(std::iter::once(
+                EmptyElement::at((*est, y)) + super::coverage::marker(i, c),
+            ))?;
+        }
+        root.present()?;
+        Ok(())
+    })();
+    match result {
+        Ok(()) => svg,
+        Err(e) => failed_chart(&title, &format!("The chart could not be drawn: {e}")),
+    }
+}
+
+/// Per term (rows), one dot and 95% interval per variant, offset vertically and told apart
+/// by colour and marker.
+pub fn coefficients(r: &ImpactReport) -> String {
+    const TITLE: &str = "Coefficients by correction (95% intervals)";
+    let k = r.terms.len() - 1; // substantive terms without the Mills ratio
+    let terms: Vec<usize> = (1..k).collect();
+    if terms.is_empty() {
+        return failed_chart(TITLE, "The model has no predictors.");
+    }
+    let mut svg = String::new();
+    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+        let nt = terms.len();
+        let nv = r.variants.len();
+        let mut extent: f64 = 1e-9;
+        for v in r.variants.iter().filter(|v| v.error.is_none()) {
+            for &j in &terms {
+                extent = extent
+                    .max((v.coef[j] - 1.96 * v.se[j]).abs())
+                    .max((v.coef[j] + 1.96 * v.se[j]).abs());
+            }
+        }
+        let labels: Vec<String> = terms.iter().map(|&j| r.terms[j].clone()).collect();
+        let height = (120 + 90 * nt as u32).max(SLIDE.1);
+        let root = SVGBackend::with_string(&mut svg, (SLIDE.0, height)).into_drawing_area();
+        root.fill(&WHITE)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(TITLE, font(24))
+            .margin(16)
+            .x_label_area_size(50)
+            .y_label_area_size(200)
+            .right_y_label_area_size(10)
+            .build_cartesian_2d(-extent * 1.1..extent * 1.1, -0.5..(nt as f64 - 0.5 + 0.9))?;
+        chart
+            .configure_mesh()
+            .light_line_style(WHITE.mix(0.0))
+            .disable_y_mesh()
+            .y_labels(nt)
+            .y_label_formatter(&|y| {
+                let i = y.round();
+                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < nt {
+                    labels[nt - 1 - i as usize].clone()
+                } else {
+                    String::new()
+                }
+            })
+            .x_label_formatter(&|x| tick(*x, 3))
+            .x_desc("Coefficient")
+            .label_style(font(15))
+            .axis_desc_style(font(16))
+            .draw()?;
+        chart.draw_series(LineSeries::new(
+            vec![(0.0, -0.5), (0.0, nt as f64 - 0.5)],
+            BLACK.stroke_width(1),
+        ))?;
+        for (vi, v) in r.variants.iter().enumerate() {
+            if v.error.is_some() {
+                continue;
+            }
+            let c = colour(vi);
+            let offset = |row: usize| {
+                (nt - 1 - row) as f64 + 0.35 - 0.7 * vi as f64 / (nv.max(2) - 1) as f64
+            };
+            chart
+                .draw_series(terms.iter().enumerate().map(|(row, &j)| {
+                    let y = offset(row);
+                    PathElement::new(
+                        vec![
+                            (v.coef[j] - 1.96 * v.se[j], y),
+                            (v.coef[j] + 1.96 * v.se[j], y),
+                        ],
+                        c.stroke_width(2),
+                    )
+                }))?
+                .label(v.label.clone())
+                .legend(move |(x, y)| EmptyElement::at((x, y)) + super::coverage::marker(vi, c));
+            chart.draw_series(terms.iter().enumerate().map(|(row, &j)| {
+                EmptyElement::at((v.coef[j], offset(row))) + super::coverage::marker(vi, c)
+            }))?;
+        }
+        chart
+            .configure_series_labels()
+            .position(SeriesLabelPosition::UpperRight)
+            .label_font(font(13))
+            .background_style(WHITE.mix(0.9))
+            .border_style(BLACK.mix(0.3))
+            .draw()?;
+        root.present()?;
+        Ok(())
+    })();
+    match result {
+        Ok(()) => svg,
+        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
+    }
+}

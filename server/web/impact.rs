@@ -1,0 +1,327 @@
+//! The impact page: the same respondent-level model and pooled estimate, unweighted, under
+//! each country weighting, and with the inverse Mills ratio.
+
+use std::sync::Arc;
+
+use askama::Template;
+use axum::extract::{Path, Query, State};
+use axum::response::{Html, Response};
+use axum::Json;
+
+use super::context::{cell, csv_text, resolve, Choice, Query as PageQuery, SettingsForm};
+use super::error::{AppError, AppResult};
+use super::format::Fmt;
+use super::state::AppState;
+use super::{csv_response, svg_response};
+use crate::analysis::cautions::{Caution, STANDING};
+use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
+use crate::charts;
+use crate::project::Project;
+use crate::stats::regression::Family;
+
+#[derive(Template)]
+#[template(path = "impact.html")]
+struct ImpactPage<'a> {
+    page: &'static str,
+    nav_query: String,
+    form: SettingsForm,
+    f: Fmt,
+    r: &'a ImpactReport,
+    outcomes: Vec<Choice>,
+    predictors: Vec<Choice>,
+    families: Vec<Choice>,
+    impact_query: String,
+    pooled_chart: String,
+    coefficient_chart: String,
+    cautions: &'a [Caution],
+    /// Per term, one cell per variant.
+    table: Vec<(String, Vec<Cell>)>,
+}
+
+/// One cell of the side-by-side table.
+struct Cell {
+    main: String,
+    detail: String,
+    class: &'static str,
+}
+
+/// The side-by-side table: coefficient, standard error and p-value per term and variant,
+/// flagged where the sign or the 5% verdict differs from the unweighted model.
+fn side_by_side(r: &ImpactReport) -> Vec<(String, Vec<Cell>)> {
+    let f = Fmt;
+    r.terms
+        .iter()
+        .enumerate()
+        .map(|(j, t)| {
+            let cells = r
+                .variants
+                .iter()
+                .map(|v| match v.coef.get(j) {
+                    Some(c) => {
+                        let p = match &v.p_bootstrap {
+                            Some(b) => format!(" p*={}", f.o3(&b.get(j).copied())),
+                            None => format!(" p={}", f.o3(&v.p_cluster.get(j).copied())),
+                        };
+                        Cell {
+                            main: f.n3(c),
+                            detail: format!("({}){p}", f.o3(&v.se.get(j).copied())),
+                            class: if v.sign_changed.get(j).copied().unwrap_or(false) {
+                                "flag-sign"
+                            } else if v.verdict_changed.get(j).copied().unwrap_or(false) {
+                                "flag-verdict"
+                            } else {
+                                ""
+                            },
+                        }
+                    }
+                    None => Cell {
+                        main: String::new(),
+                        detail: if j == 0 {
+                            v.error.clone().unwrap_or_default()
+                        } else {
+                            String::new()
+                        },
+                        class: "note",
+                    },
+                })
+                .collect();
+            (t.clone(), cells)
+        })
+        .collect()
+}
+
+/// Reads the impact keys; defaults: the first survey variable as outcome, the next three as
+/// predictors, a linear model.
+pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<ImpactSettings> {
+    let roles = project.manifest.microdata.as_ref().ok_or_else(|| {
+        AppError::NotFound("this project has no microdata, so there is no impact view".to_string())
+    })?;
+    let get = |key: &str| {
+        query
+            .iter()
+            .rev()
+            .find(|(k, _)| k == key)
+            .map(|(_, v)| v.trim().to_string())
+            .filter(|v| !v.is_empty())
+    };
+    let default_outcome = roles
+        .variables
+        .iter()
+        .find(|v| v.contains("trust"))
+        .or(roles.variables.first())
+        .cloned()
+        .unwrap_or_default();
+    let outcome = get("outcome").unwrap_or(default_outcome);
+    let ticked: Vec<String> = query
+        .iter()
+        .filter(|(k, _)| k == "predictor")
+        .map(|(_, v)| v.clone())
+        .collect();
+    let predictors = if ticked.is_empty() && !query.iter().any(|(k, _)| k == "outcome") {
+        roles
+            .variables
+            .iter()
+            .filter(|v| **v != outcome)
+            .take(3)
+            .cloned()
+            .collect()
+    } else {
+        ticked
+    };
+    let family = match get("family").as_deref() {
+        None => Family::Gaussian,
+        Some(f) => Family::parse(f).ok_or_else(|| {
+            AppError::BadRequest(format!("family must be gaussian or binomial, not '{f}'"))
+        })?,
+    };
+    let shares = match (get("shares").as_deref(), get("population")) {
+        (None | Some("equal"), _) => Shares::Equal,
+        (Some("population"), Some(col)) => Shares::Population(col),
+        (Some("population"), None) => {
+            return Err(AppError::BadRequest(
+                "population shares need population=COLUMN".to_string(),
+            ))
+        }
+        (Some(other), _) => {
+            return Err(AppError::BadRequest(format!(
+                "shares must be equal or population, not '{other}'"
+            )))
+        }
+    };
+    let replicates = match get("bootstrap") {
+        None => 399,
+        Some(v) => v
+            .parse::<usize>()
+            .ok()
+            .filter(|r| *r <= 9999)
+            .ok_or_else(|| {
+                AppError::BadRequest(format!(
+                    "bootstrap must be a whole number up to 9999, not '{v}'"
+                ))
+            })?,
+    };
+    Ok(ImpactSettings {
+        outcome,
+        predictors,
+        family,
+        shares,
+        replicates,
+    })
+}
+
+fn compute(
+    state: &AppState,
+    query: &PageQuery,
+) -> AppResult<(SettingsForm, ImpactReport, Arc<Project>)> {
+    let (project, settings, view) = resolve(state, query)?;
+    let form = SettingsForm::new("/impact", &project, &settings);
+    let imp = impact_settings(&project, query)?;
+    let r = impact(&project, &view, &settings, &imp)
+        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    Ok((form, r, project))
+}
+
+fn impact_query(imp: &ImpactSettings) -> String {
+    let mut parts = vec![
+        format!("outcome={}", imp.outcome),
+        format!("family={}", imp.family.as_str()),
+    ];
+    parts.extend(imp.predictors.iter().map(|p| format!("predictor={p}")));
+    if let Shares::Population(c) = &imp.shares {
+        parts.push(format!("shares=population&population={c}"));
+    }
+    parts.join("&")
+}
+
+pub async fn page(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<PageQuery>,
+) -> AppResult<Html<String>> {
+    let (form, r, project) = compute(&state, &query)?;
+    let variables = project
+        .manifest
+        .microdata
+        .as_ref()
+        .map(|m| m.variables.clone())
+        .unwrap_or_default();
+    let indicators = &project.manifest.indicators.numeric;
+    let html = ImpactPage {
+        page: "impact",
+        nav_query: form.query.clone(),
+        outcomes: variables
+            .iter()
+            .map(|v| Choice {
+                value: v.clone(),
+                label: v.clone(),
+                selected: *v == r.impact.outcome,
+            })
+            .collect(),
+        predictors: variables
+            .iter()
+            .map(|v| Choice {
+                value: v.clone(),
+                label: v.clone(),
+                selected: r.impact.predictors.contains(v),
+            })
+            .chain(indicators.iter().map(|c| Choice {
+                value: c.clone(),
+                label: format!("{} (country)", project.manifest.label(c)),
+                selected: r.impact.predictors.contains(c),
+            }))
+            .collect(),
+        families: [
+            (Family::Gaussian, "Linear (least squares)"),
+            (Family::Binomial, "Logistic (0/1 outcome)"),
+        ]
+        .into_iter()
+        .map(|(k, l)| Choice {
+            value: k.as_str().into(),
+            label: l.into(),
+            selected: r.impact.family == k,
+        })
+        .collect(),
+        impact_query: impact_query(&r.impact),
+        table: side_by_side(&r),
+        pooled_chart: charts::impact::pooled(&r),
+        coefficient_chart: charts::impact::coefficients(&r),
+        form,
+        f: Fmt,
+        r: &r,
+        cautions: &STANDING,
+    }
+    .render()?;
+    Ok(Html(html))
+}
+
+pub async fn json(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<PageQuery>,
+) -> AppResult<Json<ImpactReport>> {
+    Ok(Json(compute(&state, &query)?.1))
+}
+
+pub async fn artifact(
+    State(state): State<Arc<AppState>>,
+    Path(item): Path<String>,
+    Query(query): Query<PageQuery>,
+) -> AppResult<Response> {
+    let (_, r, _) = compute(&state, &query)?;
+    match item.as_str() {
+        "pooled.svg" => Ok(svg_response(
+            "pooled-estimates.svg",
+            charts::impact::pooled(&r),
+        )),
+        "coefficients.svg" => Ok(svg_response(
+            "coefficients-by-correction.svg",
+            charts::impact::coefficients(&r),
+        )),
+        "table.csv" => {
+            let mut rows = Vec::new();
+            for v in &r.variants {
+                if let Some(p) = &v.pooled {
+                    rows.push(vec![
+                        v.key.clone(),
+                        "pooled mean".to_string(),
+                        cell(Some(p.estimate)),
+                        cell(Some(p.se)),
+                        String::new(),
+                        String::new(),
+                        String::new(),
+                        String::new(),
+                    ]);
+                }
+                for (j, c) in v.coef.iter().enumerate() {
+                    rows.push(vec![
+                        v.key.clone(),
+                        r.terms.get(j).cloned().unwrap_or_default(),
+                        cell(Some(*c)),
+                        cell(v.se.get(j).copied()),
+                        cell(v.p_cluster.get(j).copied()),
+                        cell(v.p_bootstrap.as_ref().and_then(|b| b.get(j).copied())),
+                        u8::from(v.sign_changed.get(j).copied().unwrap_or(false)).to_string(),
+                        u8::from(v.verdict_changed.get(j).copied().unwrap_or(false)).to_string(),
+                    ]);
+                }
+            }
+            Ok(csv_response(
+                "impact.csv",
+                csv_text(
+                    &[
+                        "variant",
+                        "term",
+                        "estimate",
+                        "cluster_se",
+                        "p_cluster",
+                        "p_wild_bootstrap",
+                        "sign_changed",
+                        "verdict_changed",
+                    ],
+                    rows,
+                ),
+            ))
+        }
+        _ => Err(AppError::NotFound(format!(
+            "no {item} here; try pooled.svg, coefficients.svg or table.csv"
+        ))),
+    }
+}
