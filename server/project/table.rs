@@ -155,8 +155,19 @@ pub fn load_table(path: &Path, label: &str, specs: &[ColumnSpec]) -> Result<Tabl
     let (raw, rows) = if is_parquet {
         (read_parquet(bytes, label)?, RowNumbers::Offset(1))
     } else {
-        let rows = check_csv_structure(&bytes, label)?;
-        (read_csv_as_text(bytes, label)?, rows)
+        // The structure check and a typed read run side by side; when the typed read
+        // fails (text in a numeric column, say), the file is read again as text so that
+        // every bad cell can be named.
+        let (structure, typed) = std::thread::scope(|scope| {
+            let check = scope.spawn(|| check_csv_structure(&bytes, label));
+            let typed = read_csv_typed(&bytes, specs);
+            (check.join(), typed)
+        });
+        let rows = structure.unwrap_or_else(|_| Err(vec![Problem::file(label, "internal error while checking the file's structure")]))?;
+        match typed {
+            Ok(frame) => (frame, rows),
+            Err(_) => (read_csv_as_text(&bytes, label)?, rows),
+        }
     };
     let mut table = Table {
         file: label.to_string(),
@@ -178,7 +189,38 @@ fn read_parquet(bytes: Vec<u8>, label: &str) -> Result<DataFrame, Vec<Problem>> 
         })
 }
 
-fn read_csv_as_text(bytes: Vec<u8>, label: &str) -> Result<DataFrame, Vec<Problem>> {
+/// Reads only the requested columns, numbers as Float64 (with `NA` as missing) and text as
+/// String, in parallel (polars).
+fn read_csv_typed(bytes: &[u8], specs: &[ColumnSpec]) -> PolarsResult<DataFrame> {
+    let mut names: Vec<PlSmallStr> = Vec::new();
+    let mut fields = Vec::new();
+    let mut nulls = Vec::new();
+    for spec in specs {
+        let name = PlSmallStr::from(spec.name.as_str());
+        if names.contains(&name) {
+            continue;
+        }
+        let dtype = match spec.kind {
+            ColumnKind::Text | ColumnKind::RequiredText => DataType::String,
+            _ => {
+                nulls.push((name.clone(), PlSmallStr::from("NA")));
+                DataType::Float64
+            }
+        };
+        fields.push(Field::new(name.clone(), dtype));
+        names.push(name);
+    }
+    CsvReadOptions::default()
+        .with_has_header(true)
+        .with_infer_schema_length(Some(0))
+        .with_columns(Some(names.into()))
+        .with_schema_overwrite(Some(Arc::new(Schema::from_iter(fields))))
+        .map_parse_options(|o| o.with_null_values(Some(NullValues::Named(nulls.clone()))))
+        .into_reader_with_file_handle(Cursor::new(bytes))
+        .finish()
+}
+
+fn read_csv_as_text(bytes: &[u8], label: &str) -> Result<DataFrame, Vec<Problem>> {
     CsvReadOptions::default()
         .with_has_header(true)
         .with_infer_schema_length(Some(0))
