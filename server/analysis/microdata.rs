@@ -73,10 +73,20 @@ pub fn read_regression_file(
         specs.push(ColumnSpec::new(w, ColumnKind::Number, "--weight"));
     }
     let table = load_table(path, &label, &specs).map_err(MicrodataError::Input)?;
+    if let Some(data) = dense_regression_data(&table, outcome, predictors, cluster, weight) {
+        return data.map_err(|(row, message)| {
+            MicrodataError::Input(vec![Problem::at(
+                &label,
+                Some(table.row_number(row)),
+                weight,
+                message,
+            )])
+        });
+    }
     let y_all = table.numbers(outcome);
     let x_all: Vec<Vec<Option<f64>>> = predictors.iter().map(|p| table.numbers(p)).collect();
     let w_all = weight.map(|w| table.numbers(w));
-    let c_all = table.texts(cluster);
+    let (c_all, clusters_found) = table.factorise(cluster);
     let n_all = y_all.len();
     let keep: Vec<usize> = (0..n_all)
         .filter(|&i| {
@@ -102,14 +112,15 @@ pub fn read_regression_file(
             x[[r, j + 1]] = col[i].unwrap_or(0.0);
         }
     }
-    let mut index: HashMap<&str, usize> = HashMap::new();
+    // Renumber the clusters that remain after dropping incomplete rows.
+    let mut renumber: HashMap<usize, usize> = HashMap::new();
     let mut clusters = Vec::new();
     let cluster_of: Vec<usize> = keep
         .iter()
         .map(|&i| {
-            let c = c_all[i].as_deref().unwrap_or("");
-            *index.entry(c).or_insert_with(|| {
-                clusters.push(c.to_string());
+            let c = c_all[i].unwrap_or(0);
+            *renumber.entry(c).or_insert_with(|| {
+                clusters.push(clusters_found[c].clone());
                 clusters.len() - 1
             })
         })
@@ -122,6 +133,53 @@ pub fn read_regression_file(
         clusters,
         dropped: n_all - keep.len(),
     })
+}
+
+/// The common case of millions of complete rows: copy whole columns, no per-cell checks.
+/// `None` when some used column has a missing value (the general path handles it).
+fn dense_regression_data(
+    table: &crate::project::Table,
+    outcome: &str,
+    predictors: &[String],
+    cluster: &str,
+    weight: Option<&str>,
+) -> Option<Result<RegressionData, (usize, String)>> {
+    let y = table.dense_numbers(outcome)?;
+    let columns: Vec<Vec<f64>> = predictors
+        .iter()
+        .map(|p| table.dense_numbers(p))
+        .collect::<Option<_>>()?;
+    let weight = match weight {
+        Some(w) => Some(table.dense_numbers(w)?),
+        None => None,
+    };
+    let (codes, clusters) = table.factorise(cluster);
+    let cluster: Vec<usize> = codes.into_iter().collect::<Option<_>>()?;
+    if let Some(w) = &weight {
+        if let Some(i) = w.iter().position(|v| *v <= 0.0) {
+            return Some(Err((
+                i,
+                "the weight is zero or negative; weights must be positive".to_string(),
+            )));
+        }
+    }
+    let n = y.len();
+    let k = predictors.len() + 1;
+    let mut flat = vec![1.0; n * k];
+    for (j, col) in columns.iter().enumerate() {
+        for (i, v) in col.iter().enumerate() {
+            flat[i * k + j + 1] = *v;
+        }
+    }
+    let x = Array2::from_shape_vec((n, k), flat).ok()?;
+    Some(Ok(RegressionData {
+        x,
+        y,
+        weight,
+        cluster,
+        clusters,
+        dropped: 0,
+    }))
 }
 
 /// `gapwise regress`: one pooled regression with CR1 standard errors.

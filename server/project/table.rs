@@ -84,6 +84,43 @@ impl Table {
         numbers(&self.frame, column)
     }
 
+    /// A String column as level indices (in order of first appearance) and the levels,
+    /// without copying each cell.
+    pub fn factorise(&self, column: &str) -> (Vec<Option<usize>>, Vec<String>) {
+        let mut levels: Vec<String> = Vec::new();
+        let mut index: std::collections::HashMap<&str, usize> = std::collections::HashMap::new();
+        let Ok(ca) = self.frame.column(column).and_then(|c| c.str()) else {
+            return (Vec::new(), levels);
+        };
+        let codes = ca
+            .iter()
+            .map(|v| {
+                v.map(|s| {
+                    *index.entry(s).or_insert_with(|| {
+                        levels.push(s.to_string());
+                        levels.len() - 1
+                    })
+                })
+            })
+            .collect();
+        (codes, levels)
+    }
+
+    /// A Float64 column without missing values as a plain vector (a memory copy); `None`
+    /// when it has missing values or another type.
+    pub fn dense_numbers(&self, column: &str) -> Option<Vec<f64>> {
+        let col = self.frame.column(column).ok()?;
+        if col.null_count() > 0 {
+            return None;
+        }
+        let ca = col.f64().ok()?;
+        let mut out = Vec::with_capacity(ca.len());
+        for chunk in ca.downcast_iter() {
+            out.extend_from_slice(chunk.values().as_slice());
+        }
+        Some(out)
+    }
+
     /// The values of a String column.
     pub fn texts(&self, column: &str) -> Vec<Option<String>> {
         texts(&self.frame, column)
@@ -163,7 +200,12 @@ pub fn load_table(path: &Path, label: &str, specs: &[ColumnSpec]) -> Result<Tabl
             let typed = read_csv_typed(&bytes, specs);
             (check.join(), typed)
         });
-        let rows = structure.unwrap_or_else(|_| Err(vec![Problem::file(label, "internal error while checking the file's structure")]))?;
+        let rows = structure.unwrap_or_else(|_| {
+            Err(vec![Problem::file(
+                label,
+                "internal error while checking the file's structure",
+            )])
+        })?;
         match typed {
             Ok(frame) => (frame, rows),
             Err(_) => (read_csv_as_text(&bytes, label)?, rows),
@@ -266,6 +308,11 @@ fn check_csv_structure(bytes: &[u8], label: &str) -> Result<RowNumbers, Vec<Prob
             label,
             "the file is empty; it needs a header row and one row per record",
         )]);
+    }
+    if !bytes.contains(&b'"') {
+        if let Some(rows) = unquoted_structure_ok(bytes) {
+            return Ok(rows);
+        }
     }
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(false)
@@ -395,6 +442,39 @@ fn check_csv_structure(bytes: &[u8], label: &str) -> Result<RowNumbers, Vec<Prob
     })
 }
 
+/// Without quotes every line is one record: a fast pass counting separators per line.
+/// `Some` when every data line has as many fields as the header and the names are
+/// distinct and non-empty; otherwise `None`, and the careful pass names the problems.
+fn unquoted_structure_ok(bytes: &[u8]) -> Option<RowNumbers> {
+    let mut lines = bytes.split(|&b| b == b'\n');
+    let header = lines.next()?;
+    let header = header.strip_suffix(b"\r").unwrap_or(header);
+    let names: Vec<&[u8]> = header.split(|&b| b == b',').collect();
+    if names.iter().any(|n| n.trim_ascii().is_empty()) {
+        return None;
+    }
+    let mut sorted = names.clone();
+    sorted.sort_unstable();
+    if sorted.windows(2).any(|w| w[0] == w[1]) {
+        return None;
+    }
+    let commas = names.len() - 1;
+    let mut data_rows = 0usize;
+    let mut trailing_blank = false;
+    for line in lines {
+        let line = line.strip_suffix(b"\r").unwrap_or(line);
+        if line.is_empty() {
+            trailing_blank = true;
+            continue;
+        }
+        if trailing_blank || line.iter().filter(|&&b| b == b',').count() != commas {
+            return None;
+        }
+        data_rows += 1;
+    }
+    (data_rows > 0).then_some(RowNumbers::Offset(2))
+}
+
 fn header_fields(bytes: &[u8]) -> Vec<String> {
     let end = bytes
         .iter()
@@ -462,6 +542,9 @@ fn convert(
 ) -> Option<Column> {
     let name = PlSmallStr::from(spec.name.as_str());
     let file = table.file.as_str();
+    if let Some(ready) = already_clean(table, column, spec, problems) {
+        return Some(ready);
+    }
     let text: Option<Vec<Option<String>>> = match column.dtype() {
         DataType::String => column
             .str()
@@ -573,6 +656,61 @@ fn convert(
             }
             Some(Column::new(name, out))
         }
+    }
+}
+
+/// The column as it is when the typed read already produced what the kind needs: text
+/// without stray spaces or empty cells, or finite Float64 numbers. Avoids copying large
+/// microdata columns. Missing required values are still reported.
+fn already_clean(
+    table: &Table,
+    column: &Column,
+    spec: &ColumnSpec,
+    problems: &mut ProblemList,
+) -> Option<Column> {
+    let missing_required = |problems: &mut ProblemList| {
+        let required = matches!(
+            spec.kind,
+            ColumnKind::RequiredText | ColumnKind::RequiredNumber
+        );
+        if required && column.null_count() > 0 {
+            let validity = column.is_null();
+            for (i, is_null) in validity.iter().enumerate() {
+                if is_null == Some(true) {
+                    problems.push_kind(
+                        "missing value",
+                        Problem::at(
+                            &table.file,
+                            Some(table.row_number(i)),
+                            Some(&spec.name),
+                            format!("{} is missing; every row needs a value", spec.role),
+                        ),
+                    );
+                }
+            }
+        }
+    };
+    match (spec.kind, column.dtype()) {
+        (ColumnKind::Text | ColumnKind::RequiredText, DataType::String) => {
+            let ca = column.str().ok()?;
+            let clean = ca
+                .iter()
+                .all(|v| v.is_none_or(|s| !s.is_empty() && s.trim().len() == s.len()));
+            if !clean {
+                return None;
+            }
+            missing_required(problems);
+            Some(column.clone())
+        }
+        (ColumnKind::Number | ColumnKind::RequiredNumber, DataType::Float64) => {
+            let ca = column.f64().ok()?;
+            if ca.iter().any(|v| v.is_some_and(|x| !x.is_finite())) {
+                return None;
+            }
+            missing_required(problems);
+            Some(column.clone())
+        }
+        _ => None,
     }
 }
 

@@ -64,43 +64,72 @@ pub struct RegressionFit {
     pub iterations: usize,
 }
 
-/// Sums `f(row) -> (matrix, vector)` contributions over rows, split across the cores.
-fn accumulate<F>(n: usize, k: usize, f: F) -> (Array2<f64>, Array1<f64>)
+/// Sums, over rows i, w_i x_i x_i' (lower triangle), v_i x_i and a scalar s_i, split across
+/// the cores; `weights(i)` gives (w_i, v_i, s_i). Works on the contiguous rows of `x` directly, since this
+/// is the inner loop of every fit on millions of respondents.
+fn accumulate<F>(x: ArrayView2<f64>, weights: F) -> (Array2<f64>, Array1<f64>, f64)
 where
-    F: Fn(usize, &mut Array2<f64>, &mut Array1<f64>) + Sync,
+    F: Fn(usize) -> (f64, f64, f64) + Sync,
 {
+    let (n, k) = x.dim();
+    let owned;
+    let flat: &[f64] = match x.as_slice() {
+        Some(s) => s,
+        None => {
+            owned = x.as_standard_layout().to_owned();
+            owned.as_slice().unwrap_or(&[])
+        }
+    };
     let threads = std::thread::available_parallelism()
         .map_or(1, |t| t.get())
         .clamp(1, 8);
     let threads = if n < 20_000 { 1 } else { threads };
     let chunk = n.div_ceil(threads).max(1);
-    std::thread::scope(|scope| {
+    let (m, v, s) = std::thread::scope(|scope| {
         let handles: Vec<_> = (0..threads)
             .map(|t| {
-                let f = &f;
+                let weights = &weights;
                 scope.spawn(move || {
-                    let mut m = Array2::<f64>::zeros((k, k));
-                    let mut v = Array1::<f64>::zeros(k);
+                    let mut m = vec![0.0; k * k];
+                    let mut v = vec![0.0; k];
+                    let mut total = 0.0;
                     for i in (t * chunk)..((t + 1) * chunk).min(n) {
-                        f(i, &mut m, &mut v);
+                        let row = &flat[i * k..(i + 1) * k];
+                        let (w, wy, extra) = weights(i);
+                        total += extra;
+                        for a in 0..k {
+                            let wa = w * row[a];
+                            v[a] += wy * row[a];
+                            let m_row = &mut m[a * k..a * k + a + 1];
+                            for (b, cell) in m_row.iter_mut().enumerate() {
+                                *cell += wa * row[b];
+                            }
+                        }
                     }
-                    (m, v)
+                    (m, v, total)
                 })
             })
             .collect();
-        let mut m = Array2::<f64>::zeros((k, k));
-        let mut v = Array1::<f64>::zeros(k);
+        let mut m = vec![0.0; k * k];
+        let mut v = vec![0.0; k];
+        let mut total = 0.0;
         for h in handles {
-            if let Ok((hm, hv)) = h.join() {
-                m += &hm;
-                v += &hv;
+            if let Ok((hm, hv, ht)) = h.join() {
+                m.iter_mut().zip(hm).for_each(|(a, b)| *a += b);
+                v.iter_mut().zip(hv).for_each(|(a, b)| *a += b);
+                total += ht;
             }
         }
-        (m, v)
-    })
+        (m, v, total)
+    });
+    (
+        Array2::from_shape_vec((k, k), m).unwrap_or_else(|_| Array2::zeros((k, k))),
+        Array1::from(v),
+        s,
+    )
 }
 
-/// Adds w x x' (upper and lower triangle) and w y x to the accumulators.
+/// Adds w x x' (lower triangle) and wy x to the accumulators.
 #[inline]
 fn add_outer(m: &mut Array2<f64>, v: &mut Array1<f64>, x: ArrayView1<f64>, w: f64, wy: f64) {
     let k = x.len();
@@ -205,12 +234,16 @@ pub fn cluster_covariance(bread: &Array2<f64>, scores: &Array2<f64>, n: usize) -
 /// Summed score contributions s_i x_i per cluster.
 fn cluster_scores(x: ArrayView2<f64>, s: &[f64], cluster: &[usize], groups: usize) -> Array2<f64> {
     let k = x.ncols();
-    let mut u = Array2::<f64>::zeros((groups, k));
-    for (i, row) in x.rows().into_iter().enumerate() {
-        let mut ug = u.row_mut(cluster[i]);
-        ug.scaled_add(s[i], &row);
+    let mut u = vec![0.0; groups * k];
+    let standard = x.as_standard_layout();
+    let flat = standard.as_slice().unwrap_or(&[]);
+    for (i, row) in flat.chunks_exact(k.max(1)).enumerate() {
+        let ug = &mut u[cluster[i] * k..(cluster[i] + 1) * k];
+        for (a, v) in ug.iter_mut().zip(row) {
+            *a += s[i] * v;
+        }
     }
-    u
+    Array2::from_shape_vec((groups, k), u).unwrap_or_else(|_| Array2::zeros((groups, k)))
 }
 
 /// Fits the model with clustered standard errors. `cluster[i]` is respondent i's cluster
@@ -282,37 +315,35 @@ fn logistic_newton(
     y: &[f64],
     w: Option<&[f64]>,
 ) -> Result<(Array1<f64>, Array2<f64>, bool, usize), RegressionError> {
-    let (n, k) = x.dim();
+    let k = x.ncols();
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
-    let log_likelihood = |beta: &Array1<f64>| -> f64 {
+    // One pass over the respondents gives the information, the score and the
+    // log-likelihood at beta.
+    let pass = |beta: &Array1<f64>| -> (Array2<f64>, Array1<f64>, f64) {
         let eta = x.dot(beta);
-        (0..n)
-            .map(|i| {
-                weight(i)
-                    * (y[i] * eta[i]
-                        - (if eta[i] > 0.0 {
-                            eta[i] + (-eta[i]).exp().ln_1p()
-                        } else {
-                            eta[i].exp().ln_1p()
-                        }))
-            })
-            .sum()
-    };
-    let mut beta = Array1::<f64>::zeros(k);
-    let mut ll = log_likelihood(&beta);
-    let mut converged = false;
-    let mut iterations = 0;
-    let mut info = Array2::<f64>::zeros((k, k));
-    while iterations < 100 {
-        iterations += 1;
-        let eta = x.dot(&beta);
-        let (mut m, g) = accumulate(n, k, |i, m, v| {
-            let p = logistic(eta[i]);
+        let (mut m, g, ll) = accumulate(x, |i| {
+            let e = eta[i];
+            let p = logistic(e);
             let wi = weight(i);
-            add_outer(m, v, x.row(i), wi * p * (1.0 - p), wi * (y[i] - p));
+            let softplus = if e > 0.0 {
+                e + (-e).exp().ln_1p()
+            } else {
+                e.exp().ln_1p()
+            };
+            (
+                wi * p * (1.0 - p),
+                wi * (y[i] - p),
+                wi * (y[i] * e - softplus),
+            )
         });
         symmetrise(&mut m);
-        info = m;
+        (m, g, ll)
+    };
+    let mut beta = Array1::<f64>::zeros(k);
+    let (mut info, mut g, mut ll) = pass(&beta);
+    let mut converged = false;
+    let mut iterations = 0;
+    while iterations < 100 {
         let scale = info
             .diag()
             .iter()
@@ -322,15 +353,18 @@ fn logistic_newton(
             converged = true;
             break;
         }
+        iterations += 1;
         let step =
             linalg::solve_spd(info.view(), g.view()).map_err(|_| RegressionError::Singular)?;
         let mut t = 1.0;
         let mut moved = false;
         for _ in 0..40 {
             let candidate = &beta + &(&step * t);
-            let lc = log_likelihood(&candidate);
+            let (ic, gc, lc) = pass(&candidate);
             if lc.is_finite() && lc >= ll - 1e-12 * ll.abs() {
                 beta = candidate;
+                info = ic;
+                g = gc;
                 ll = lc;
                 moved = true;
                 break;
