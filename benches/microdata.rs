@@ -80,7 +80,7 @@ fn main() {
     let start = Instant::now();
     let floor = polars::prelude::CsvReadOptions::default()
         .try_into_reader_with_file_path(Some(path.clone()))
-        .and_then(|r| polars::prelude::SerReader::finish(r))
+        .and_then(polars::prelude::SerReader::finish)
         .expect("polars read");
     let floor_s = start.elapsed().as_secs_f64();
     drop(floor);

@@ -19,7 +19,7 @@ const consoleErrors = [];
 page.on('console', (m) => { if (m.type() === 'error') consoleErrors.push(m.text()); });
 page.on('requestfailed', (r) => consoleErrors.push(`request failed: ${r.url()}`));
 
-const pages = ['/', '/coverage', '/model', '/balance', '/sensitivity'];
+const pages = ['/', '/coverage', '/model', '/balance', '/plan?replicates=20', '/impact?bootstrap=49', '/sensitivity'];
 for (const p of pages) {
   const response = await page.goto(base + p);
   check(response && response.status() === 200, `${p} answered ${response && response.status()}`);
@@ -27,7 +27,8 @@ for (const p of pages) {
   check(svgs > 0, `${p} shows no chart`);
   check(await page.locator('table').count() > 0, `${p} shows no table`);
   check(!(await page.content()).includes('NaN'), `${p} shows NaN`);
-  await page.screenshot({ path: path.join(out, `page${p === '/' ? '-overview' : p.replace('/', '-')}.png`), fullPage: true });
+  const name = p === '/' ? 'overview' : p.slice(1).split('?')[0];
+  await page.screenshot({ path: path.join(out, `page-${name}.png`), fullPage: true });
 }
 
 // Change a setting through the form: the URL carries it and the chart changes.
@@ -45,6 +46,14 @@ check(!(await page.locator('#table').innerText()).includes('Population (log)'), 
 const link = page.url();
 await page.goto(link);
 check(!(await page.locator('#table').innerText()).includes('Population (log)'), 'the link does not reproduce the view');
+
+// What-if on the planner: tick a candidate, the summary appears.
+await page.goto(base + '/plan?replicates=10');
+const firstCandidate = page.locator('#candidates input[name="joiner"]').first();
+const candidateId = await firstCandidate.getAttribute('value');
+await firstCandidate.check();
+await Promise.all([page.waitForNavigation(), page.click('#candidates button[type="submit"]')]);
+check((await page.locator('.whatif').innerText()).includes(candidateId), 'what-if summary missing');
 
 // Downloads: a chart and a table.
 for (const [where, selector, starts] of [['/coverage', 'a[href^="/coverage/map.svg"]', '<svg'], ['/balance', 'a[href^="/balance/table.csv"]', 'covariate,']]) {
