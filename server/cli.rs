@@ -135,7 +135,7 @@ pub fn serve(dir: &Path, addr: SocketAddr, allow_remote: bool) -> i32 {
             return 1;
         }
     };
-    match runtime.block_on(web::serve(state, addr)) {
+    match runtime.block_on(web::serve(state, addr, allow_remote)) {
         Ok(()) => 0,
         Err(message) => {
             eprintln!("{message}");

@@ -44,7 +44,20 @@ fn overview_page_and_json_twin_agree() {
 #[test]
 fn reload_swaps_project_and_keeps_old_on_error() {
     let dir = valid_project("reload");
-    let addr = start_server(dir.path());
+    let (addr, token) = start_server_with_token(dir.path());
+    // Without the token or a same-origin header a change is refused.
+    assert_eq!(http(addr, "POST", "/api/reload", &[]).status, 403);
+    assert_eq!(
+        http(
+            addr,
+            "POST",
+            "/api/reload",
+            &[("Origin", "http://evil.example")]
+        )
+        .status,
+        403
+    );
+    let auth = [("x-gapwise-token", token.as_str())];
     let before: serde_json::Value =
         serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
     assert_eq!(before["title"], "Test programme");
@@ -53,14 +66,15 @@ fn reload_swaps_project_and_keeps_old_on_error() {
         "project.toml",
         MANIFEST.replace("Test programme", "Renamed programme"),
     );
-    let r = http(addr, "POST", "/api/reload", &[]);
+    let r = http(addr, "POST", "/api/reload", &auth);
     assert_eq!(r.status, 200, "{}", r.body);
     let after: serde_json::Value =
         serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
     assert_eq!(after["title"], "Renamed programme");
 
     dir.write("frame.csv", "");
-    let r = http(addr, "POST", "/api/reload", &[]);
+    let origin = format!("http://{addr}");
+    let r = http(addr, "POST", "/api/reload", &[("Origin", origin.as_str())]);
     assert_eq!(r.status, 422);
     assert!(
         r.body.contains("frame.csv:-:-: the file is empty"),

@@ -5,6 +5,7 @@ pub mod context;
 pub mod coverage;
 pub mod error;
 pub mod format;
+pub mod guard;
 pub mod impact;
 pub mod model;
 pub mod overview;
@@ -94,6 +95,20 @@ async fn reload(State(state): State<Arc<AppState>>) -> AppResult<Json<Reloaded>>
     }))
 }
 
+/// The router behind the guard (host check, same-origin or token for changes) and a
+/// limit on request bodies.
+pub fn app(state: Arc<AppState>, guard: guard::Guard) -> Router {
+    router(state)
+        .layer(axum::middleware::from_fn_with_state(
+            Arc::new(guard),
+            guard::check,
+        ))
+        .layer(axum::extract::DefaultBodyLimit::max(MAX_BODY_BYTES))
+}
+
+/// The largest request body accepted (uploads included).
+pub const MAX_BODY_BYTES: usize = 64 * 1024 * 1024;
+
 /// A CSV table, offered for download under `filename`.
 pub fn csv_response(filename: &str, text: String) -> Response {
     (
@@ -125,7 +140,11 @@ pub fn svg_response(filename: &str, svg: String) -> Response {
 }
 
 /// Binds `addr` and serves until Ctrl-C. A taken port gets a clear message.
-pub async fn serve(state: Arc<AppState>, addr: SocketAddr) -> Result<(), String> {
+pub async fn serve(
+    state: Arc<AppState>,
+    addr: SocketAddr,
+    allow_remote: bool,
+) -> Result<(), String> {
     let listener = tokio::net::TcpListener::bind(addr).await.map_err(|e| {
         if e.kind() == std::io::ErrorKind::AddrInUse {
             format!("{addr} is already in use (another gapwise, or another program, is listening there); stop it or choose another port with --addr 127.0.0.1:PORT")
@@ -134,12 +153,17 @@ pub async fn serve(state: Arc<AppState>, addr: SocketAddr) -> Result<(), String>
         }
     })?;
     let local = listener.local_addr().map_err(|e| e.to_string())?;
+    let guard = guard::Guard::for_address(local, allow_remote);
     println!(
         "gapwise {} serving \"{}\" at http://{local}/  (Ctrl-C stops)",
         crate::VERSION,
         state.project().manifest.title
     );
-    axum::serve(listener, router(state))
+    println!(
+        "token for scripted changes (header x-gapwise-token): {}",
+        guard.token
+    );
+    axum::serve(listener, app(state, guard))
         .with_graceful_shutdown(async {
             let _ = tokio::signal::ctrl_c().await;
         })

@@ -133,10 +133,18 @@ pub fn http(
     extra_headers: &[(&str, &str)],
 ) -> Response {
     let mut stream = TcpStream::connect(addr).expect("connect");
+    // A Host header among the extra headers replaces the default one.
+    let host = extra_headers
+        .iter()
+        .find(|(k, _)| k.eq_ignore_ascii_case("host"))
+        .map_or_else(|| addr.to_string(), |(_, v)| v.to_string());
     let mut request = format!(
-        "{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\nContent-Length: 0\r\n"
+        "{method} {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\nContent-Length: 0\r\n"
     );
-    for (k, v) in extra_headers {
+    for (k, v) in extra_headers
+        .iter()
+        .filter(|(k, _)| !k.eq_ignore_ascii_case("host"))
+    {
         request.push_str(&format!("{k}: {v}\r\n"));
     }
     request.push_str("\r\n");
@@ -185,6 +193,11 @@ fn dechunk(mut body: &str) -> String {
 
 /// Starts the server on an ephemeral loopback port in a background thread.
 pub fn start_server(dir: &Path) -> std::net::SocketAddr {
+    start_server_with_token(dir).0
+}
+
+/// The same, also returning the per-process token for state-changing requests.
+pub fn start_server_with_token(dir: &Path) -> (std::net::SocketAddr, String) {
     let project = gapwise::project::Project::load(dir).expect("project loads");
     let state = std::sync::Arc::new(gapwise::web::AppState::new(project));
     let (tx, rx) = std::sync::mpsc::channel();
@@ -194,9 +207,10 @@ pub fn start_server(dir: &Path) -> std::net::SocketAddr {
             let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
                 .await
                 .expect("bind");
-            tx.send(listener.local_addr().expect("addr"))
-                .expect("send addr");
-            axum::serve(listener, gapwise::web::router(state))
+            let local = listener.local_addr().expect("addr");
+            let guard = gapwise::web::guard::Guard::for_address(local, false);
+            tx.send((local, guard.token.clone())).expect("send addr");
+            axum::serve(listener, gapwise::web::app(state, guard))
                 .await
                 .expect("serve");
         });
