@@ -441,3 +441,49 @@ pub fn regress(
         }
     }
 }
+
+/// `gapwise report`: renders the meeting report and writes it atomically.
+pub fn report(dir: &Path, settings: &Settings, out: &Path) -> i32 {
+    let project = match Project::load(dir) {
+        Ok(p) => p,
+        Err(problems) => {
+            eprintln!("{}", problems_text(&problems, dir));
+            return 1;
+        }
+    };
+    let html = match crate::web::report::render(&project, settings) {
+        Ok(h) => h,
+        Err(e) => {
+            eprintln!("{e}");
+            return 1;
+        }
+    };
+    match write_atomically(out, html.as_bytes()) {
+        Ok(()) => {
+            println!("wrote {} ({} kB)", out.display(), html.len() / 1024);
+            0
+        }
+        Err(e) => {
+            eprintln!("cannot write {}: {e}", out.display());
+            1
+        }
+    }
+}
+
+/// Writes to a temporary file beside `path`, then renames it into place, so that an
+/// interrupted write never leaves a half-written file.
+pub fn write_atomically(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    let dir = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let name = path
+        .file_name()
+        .map_or_else(|| "output".into(), |n| n.to_string_lossy().to_string());
+    let temp = dir.join(format!(".{name}.{}.partial", std::process::id()));
+    let result = std::fs::write(&temp, bytes).and_then(|()| std::fs::rename(&temp, path));
+    if result.is_err() {
+        let _ = std::fs::remove_file(&temp);
+    }
+    result
+}

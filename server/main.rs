@@ -104,6 +104,19 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Write a self-contained HTML report of one wave for a meeting.
+    Report {
+        /// Project folder.
+        dir: PathBuf,
+        #[command(flatten)]
+        analysis: AnalysisArgs,
+        /// The wave (default: the latest).
+        #[arg(long)]
+        wave: Option<i64>,
+        /// Where to write the report.
+        #[arg(long, default_value = "report.html")]
+        out: PathBuf,
+    },
     /// Write the invented demo project into a folder.
     MakeDemo {
         dir: PathBuf,
@@ -184,6 +197,21 @@ fn main() -> ExitCode {
         }) => cli::serve(&dir.unwrap_or_else(gapwise::demo_dir), addr, allow_remote),
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
+        Some(Command::Report {
+            dir,
+            analysis,
+            wave,
+            out,
+        }) => match analysis.settings() {
+            Ok(mut settings) => {
+                settings.wave = wave;
+                cli::report(&dir, &settings, &out)
+            }
+            Err(message) => {
+                eprintln!("{message}");
+                2
+            }
+        },
         Some(Command::Regress {
             microdata,
             outcome,

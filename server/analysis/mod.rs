@@ -10,6 +10,7 @@ pub mod microdata;
 pub mod overview;
 pub mod participation;
 pub mod planner;
+pub mod report;
 pub mod sensitivity;
 pub mod settings;
 

@@ -39,15 +39,15 @@ struct ImpactPage<'a> {
 }
 
 /// One cell of the side-by-side table.
-struct Cell {
-    main: String,
-    detail: String,
-    class: &'static str,
+pub(crate) struct Cell {
+    pub(crate) main: String,
+    pub(crate) detail: String,
+    pub(crate) class: &'static str,
 }
 
 /// The side-by-side table: coefficient, standard error and p-value per term and variant,
 /// flagged where the sign or the 5% verdict differs from the unweighted model.
-fn side_by_side(r: &ImpactReport) -> Vec<(String, Vec<Cell>)> {
+pub(crate) fn side_by_side(r: &ImpactReport) -> Vec<(String, Vec<Cell>)> {
     let f = Fmt;
     r.terms
         .iter()

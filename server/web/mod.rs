@@ -10,6 +10,7 @@ pub mod impact;
 pub mod model;
 pub mod overview;
 pub mod plan;
+pub mod report;
 pub mod sensitivity;
 pub mod state;
 
@@ -59,6 +60,8 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/impact", get(impact::page))
         .route("/api/impact", get(impact::json))
         .route("/impact/{item}", get(impact::artifact))
+        // Meeting report
+        .route("/report", get(report::download))
         // Sensitivity
         .route("/sensitivity", get(sensitivity::page))
         .route("/api/sensitivity", get(sensitivity::json))
