@@ -150,7 +150,7 @@ struct AnalysisArgs {
     #[arg(long, default_value = "logit")]
     model: String,
     /// inverse-probability, covariate-balancing, covariate-balancing-gmm, entropy or raking.
-    #[arg(long, default_value = "inverse-probability")]
+    #[arg(long, default_value = "entropy")]
     weighting: String,
     /// Cap weights at this quantile of participants' weights (e.g. 0.95).
     #[arg(long)]

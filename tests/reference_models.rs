@@ -181,6 +181,10 @@ fn firth_is_finite_under_separation_and_matches_scipy() {
             "x1,x2".into(),
             "--model".into(),
             model.into(),
+            // Entropy balancing cannot reach a universe mean outside the participants'
+            // range, which separation implies; inverse-probability weights always exist.
+            "--weighting".into(),
+            "inverse-probability".into(),
         ]
     };
     let logit = fit_json(&args("logit").iter().map(String::as_str).collect::<Vec<_>>());

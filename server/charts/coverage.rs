@@ -40,6 +40,7 @@ fn draw(overview: &Overview, svg: &mut String) -> Result<(), Box<dyn std::error:
         chart
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))
+            .disable_x_mesh()
             .x_desc("Wave")
             .y_desc("Eligible countries that took part (%)")
             .x_labels(waves.len() + 2)
