@@ -1,0 +1,267 @@
+//! Robustness: the loaders never panic on mangled files (many generated variants, a
+//! property test in place of a fuzzer), and every model and weighting method answers
+//! awkward universes with finite numbers or a clear message.
+
+mod common;
+use common::*;
+
+use gapwise::analysis::participation::fit;
+use gapwise::analysis::planner::{plan, PlanSettings};
+use gapwise::analysis::settings::{ModelKind, Settings, WeightingKind};
+use gapwise::demo::rng::Rng;
+use gapwise::project::wave::ExtraColumns;
+use gapwise::project::{Project, WaveView};
+
+/// Mangles `text` in one of several ways chosen by the generator.
+fn mangle(text: &[u8], rng: &mut Rng) -> Vec<u8> {
+    let mut bytes = text.to_vec();
+    let n = bytes.len().max(1);
+    match rng.below(8) {
+        0 => bytes.truncate(rng.below(n)),
+        1 => {
+            let i = rng.below(n).min(bytes.len().saturating_sub(1));
+            if !bytes.is_empty() {
+                bytes[i] = rng.below(256) as u8;
+            }
+        }
+        2 => bytes.insert(rng.below(n), b'"'),
+        3 => bytes.insert(rng.below(n), b','),
+        4 => bytes.insert(rng.below(n), b'\n'),
+        5 => {
+            let i = rng.below(n).min(bytes.len());
+            bytes.splice(i..i, [0xFF, 0xFE, 0x00]);
+        }
+        6 => {
+            let i = rng.below(n);
+            let j = (i + 1 + rng.below(20)).min(bytes.len());
+            bytes.drain(i.min(j)..j);
+        }
+        _ => {
+            for _ in 0..5 {
+                let i = rng.below(bytes.len().max(1));
+                if i < bytes.len() {
+                    bytes[i] = b"0123456789.-eNA ,\"\r\n"[rng.below(19)];
+                }
+            }
+        }
+    }
+    bytes
+}
+
+#[test]
+fn loaders_never_panic_on_mangled_files() {
+    let mut rng = Rng::new(99);
+    let dir = TempDir::new("mangled");
+    let mut problems_seen = 0;
+    for round in 0..400 {
+        dir.write("project.toml", MANIFEST);
+        dir.write("frame.csv", FRAME);
+        dir.write("microdata.csv", MICRODATA);
+        let target = ["frame.csv", "microdata.csv", "project.toml"][round % 3];
+        let original = match target {
+            "frame.csv" => FRAME,
+            "microdata.csv" => MICRODATA,
+            _ => MANIFEST,
+        };
+        let mut bytes = original.as_bytes().to_vec();
+        for _ in 0..(1 + rng.below(3)) {
+            bytes = mangle(&bytes, &mut rng);
+        }
+        dir.write(target, &bytes);
+        let path = dir.path().to_path_buf();
+        let outcome = std::panic::catch_unwind(move || Project::load(&path).map(|_| ()));
+        match outcome {
+            Err(_) => panic!(
+                "round {round}: loading a mangled {target} panicked; bytes: {:?}",
+                String::from_utf8_lossy(&bytes)
+            ),
+            Ok(Err(problems)) => {
+                problems_seen += 1;
+                assert!(!problems.is_empty());
+                for p in problems {
+                    assert!(!p.message.is_empty(), "round {round}: empty message");
+                }
+            }
+            Ok(Ok(())) => {}
+        }
+    }
+    assert!(
+        problems_seen > 100,
+        "the mangling should produce many invalid files ({problems_seen})"
+    );
+}
+
+fn universe(dir: &TempDir, csv: &str, covariates: &[&str], factors: &[&str]) -> WaveView {
+    dir.write("u.csv", csv);
+    let cov: Vec<String> = covariates.iter().map(|s| s.to_string()).collect();
+    let fac: Vec<String> = factors.iter().map(|s| s.to_string()).collect();
+    WaveView::from_file(
+        &dir.path().join("u.csv"),
+        "id",
+        "t",
+        &cov,
+        &fac,
+        &ExtraColumns::default(),
+    )
+    .expect("loads")
+}
+
+fn frame(rows: usize, f: impl Fn(usize) -> String) -> String {
+    let mut s = String::from("id,t,a,b,g\n");
+    for i in 0..rows {
+        s.push_str(&format!("U{i:03},{}\n", f(i)));
+    }
+    s
+}
+
+#[test]
+fn awkward_universes_get_finite_numbers_or_clear_messages() {
+    let dir = TempDir::new("awkward");
+    let mut rng = Rng::new(5);
+    let noise: Vec<f64> = (0..60).map(|_| rng.normal()).collect();
+    let cases: Vec<(&str, String)> = vec![
+        (
+            "constant indicator",
+            frame(60, |i| {
+                format!(
+                    "{},{:.3},5,{}",
+                    u8::from(i % 2 == 0),
+                    noise[i],
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "collinear indicators",
+            frame(60, |i| {
+                format!(
+                    "{},{:.3},{:.3},{}",
+                    u8::from(noise[i] > 0.0),
+                    noise[i],
+                    2.0 * noise[i] + 1.0,
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "single participant",
+            frame(60, |i| {
+                format!(
+                    "{},{:.3},{:.3},{}",
+                    u8::from(i == 7),
+                    noise[i],
+                    noise[(i + 1) % 60],
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "everyone took part",
+            frame(60, |i| {
+                format!(
+                    "1,{:.3},{:.3},{}",
+                    noise[i],
+                    noise[(i + 1) % 60],
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "nobody took part",
+            frame(60, |i| {
+                format!(
+                    "0,{:.3},{:.3},{}",
+                    noise[i],
+                    noise[(i + 1) % 60],
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "extreme values",
+            frame(60, |i| {
+                format!(
+                    "{},{:e},{:.3},{}",
+                    u8::from(i % 3 == 0),
+                    if i == 5 { 1e12 } else { noise[i] },
+                    noise[(i + 1) % 60] * 1e-9,
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "perfect separation",
+            frame(60, |i| {
+                format!(
+                    "{},{:.3},{:.3},{}",
+                    u8::from(noise[i] > 0.0),
+                    noise[i],
+                    noise[(i + 1) % 60],
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "a level nobody takes part in",
+            frame(60, |i| {
+                format!(
+                    "{},{:.3},{:.3},{}",
+                    u8::from(i % 3 == 0),
+                    noise[i],
+                    noise[(i + 1) % 60],
+                    ["x", "y", "z"][i % 3]
+                )
+            }),
+        ),
+    ];
+    for (name, csv) in cases {
+        let view = universe(&dir, &csv, &["a", "b"], &["g"]);
+        for model in [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit] {
+            for weighting in WeightingKind::ALL {
+                let settings = Settings {
+                    model,
+                    weighting,
+                    ..Settings::default()
+                };
+                match fit(&view, &settings) {
+                    Ok(r) => {
+                        let json = serde_json::to_string(&r).unwrap();
+                        assert!(
+                            !json.contains("NaN") && !json.contains("inf"),
+                            "{name} / {model:?} / {weighting:?}: {json}"
+                        );
+                        for u in &r.units {
+                            assert!(
+                                u.weight.is_finite() && u.propensity.is_finite(),
+                                "{name}: non-finite unit values"
+                            );
+                        }
+                    }
+                    Err(e) => assert!(
+                        e.to_string().len() > 20,
+                        "{name} / {model:?} / {weighting:?}: unclear message {e}"
+                    ),
+                }
+            }
+        }
+        // The planner too.
+        match plan(
+            &view,
+            &Settings::default(),
+            &PlanSettings {
+                replicates: 5,
+                random_draws: 5,
+                budget: Some(1),
+                ..PlanSettings::default()
+            },
+        ) {
+            Ok(p) => assert!(
+                p.steps
+                    .iter()
+                    .all(|s| s.effective_n.is_finite() && s.mean_abs_smd.is_finite()),
+                "{name}: plan"
+            ),
+            Err(e) => assert!(e.to_string().len() > 20, "{name}: unclear plan message {e}"),
+        }
+    }
+}
