@@ -487,3 +487,75 @@ pub fn write_atomically(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     }
     result
 }
+
+/// `gapwise weights`: every wave's country weights in one CSV (columns `wave, code, name,
+/// took_part, propensity, weight`), and a sidecar JSON with the method, the settings, the
+/// tool version and the input checksums. Both written atomically.
+pub fn export_weights(dir: &Path, settings: &Settings, out: &Path) -> i32 {
+    let project = match Project::load(dir) {
+        Ok(p) => p,
+        Err(problems) => {
+            eprintln!("{}", problems_text(&problems, dir));
+            return 1;
+        }
+    };
+    let mut rows = Vec::new();
+    let mut waves = Vec::new();
+    for &wave in &project.waves {
+        let Some(view) = project.wave(wave) else {
+            continue;
+        };
+        let s = Settings {
+            wave: Some(wave),
+            ..settings.clone()
+        };
+        match participation::fit(&view, &s) {
+            Ok(r) => {
+                waves.push(serde_json::json!({"wave": wave, "n_eligible": r.n_eligible, "n_participants": r.n_participants, "effective_n": r.weighting.effective_n, "dropped": r.dropped, "warnings": r.weighting.warnings}));
+                for u in r.units {
+                    rows.push(vec![
+                        wave.to_string(),
+                        u.id,
+                        u.name,
+                        u8::from(u.participated).to_string(),
+                        u.propensity.to_string(),
+                        u.weight.to_string(),
+                    ]);
+                }
+            }
+            Err(e) => waves.push(serde_json::json!({"wave": wave, "error": e.to_string()})),
+        }
+    }
+    let csv = crate::web::context::csv_text(
+        &["wave", "code", "name", "took_part", "propensity", "weight"],
+        rows,
+    );
+    let sidecar = serde_json::json!({
+        "tool": format!("gapwise {}", crate::VERSION),
+        "method": settings.weighting.as_str(),
+        "model": settings.model.as_str(),
+        "settings": settings,
+        "waves": waves,
+        "inputs": crate::analysis::report::input_checksums(&project),
+        "columns": {"wave": "wave", "code": "country code", "name": "country name", "took_part": "1 took part, 0 did not", "propensity": "estimated probability of taking part", "weight": "participants' weights sum to the wave's number of eligible countries; 0 for non-participants"},
+    });
+    let sidecar_path = std::path::PathBuf::from(format!("{}.json", out.display()));
+    let written = write_atomically(out, csv.as_bytes()).and_then(|()| {
+        write_atomically(
+            &sidecar_path,
+            serde_json::to_string_pretty(&sidecar)
+                .unwrap_or_default()
+                .as_bytes(),
+        )
+    });
+    match written {
+        Ok(()) => {
+            println!("wrote {} and {}", out.display(), sidecar_path.display());
+            0
+        }
+        Err(e) => {
+            eprintln!("cannot write {}: {e}", out.display());
+            1
+        }
+    }
+}

@@ -117,6 +117,17 @@ enum Command {
         #[arg(long, default_value = "report.html")]
         out: PathBuf,
     },
+    /// Export every wave's country weights as CSV, with the method and settings in a
+    /// sidecar JSON file (FILE.json).
+    Weights {
+        /// Project folder.
+        dir: PathBuf,
+        #[command(flatten)]
+        analysis: AnalysisArgs,
+        /// The CSV file to write.
+        #[arg(long, default_value = "weights.csv")]
+        out: PathBuf,
+    },
     /// Write the invented demo project into a folder.
     MakeDemo {
         dir: PathBuf,
@@ -197,6 +208,13 @@ fn main() -> ExitCode {
         }) => cli::serve(&dir.unwrap_or_else(gapwise::demo_dir), addr, allow_remote),
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
+        Some(Command::Weights { dir, analysis, out }) => match analysis.settings() {
+            Ok(settings) => cli::export_weights(&dir, &settings, &out),
+            Err(message) => {
+                eprintln!("{message}");
+                2
+            }
+        },
         Some(Command::Report {
             dir,
             analysis,

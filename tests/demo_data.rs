@@ -86,6 +86,13 @@ fn demo_loads_and_matches_its_documented_truth() {
         "{:?}",
         shifted.coverage
     );
+    // Turnover between waves and the balance trend are reported.
+    assert_eq!(o.trends.len(), 4);
+    assert!(o.trends[1].joined.len() + o.trends[1].left.len() > 0);
+    assert!(o
+        .trends
+        .iter()
+        .all(|t| t.max_abs_smd.is_some_and(|v| v > 0.1)));
     // Missing values exist and are shown.
     assert!(o.missing.iter().any(|m| m.total_missing > 0));
     // Selection visibly biases a pooled estimate: participants' mean trust exceeds the universe's.

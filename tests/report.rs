@@ -82,3 +82,37 @@ fn report_has_every_section_and_the_pages_numbers() {
         .contains("attachment"));
     assert!(r.body.contains("id=\"reproducibility\""));
 }
+
+#[test]
+fn weights_export_with_sidecar() {
+    let dir = TempDir::new("weights");
+    let out = dir.path().join("w.csv");
+    let run = gapwise(&[
+        "weights",
+        demo_dir().to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    let csv = std::fs::read_to_string(&out).unwrap();
+    assert!(csv.starts_with("wave,code,name,took_part,propensity,weight\n"));
+    let sidecar: Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.path().join("w.csv.json")).unwrap())
+            .unwrap();
+    assert_eq!(sidecar["method"], "entropy");
+    assert_eq!(sidecar["waves"].as_array().unwrap().len(), 4);
+    // Per wave, participants' weights sum to the number of eligible countries.
+    for w in sidecar["waves"].as_array().unwrap() {
+        let wave = w["wave"].as_i64().unwrap().to_string();
+        let total: f64 = csv
+            .lines()
+            .skip(1)
+            .filter(|l| l.split(',').next() == Some(wave.as_str()))
+            .map(|l| l.rsplit(',').next().unwrap().parse::<f64>().unwrap())
+            .sum();
+        assert!(
+            (total - w["n_eligible"].as_f64().unwrap()).abs() < 1e-6,
+            "wave {wave}"
+        );
+    }
+}

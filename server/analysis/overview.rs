@@ -18,6 +18,8 @@ pub struct Overview {
     pub missing: Vec<MissingValues>,
     pub cuts: Vec<String>,
     pub microdata: Option<MicrodataCounts>,
+    /// Imbalance and effective number per wave, and who joined or left.
+    pub trends: Vec<WaveTrend>,
     pub warnings: Vec<String>,
     pub cautions: Vec<Caution>,
 }
@@ -72,6 +74,21 @@ pub struct MissingValues {
     pub eligible_missing: Vec<usize>,
     /// Missing among all frame rows.
     pub total_missing: usize,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct WaveTrend {
+    pub wave: i64,
+    /// Largest |SMD| of participants before weighting, over every indicator.
+    pub max_abs_smd: Option<f64>,
+    /// Effective number of countries after entropy balancing to the wave's universe.
+    pub effective_n: Option<f64>,
+    /// Why a figure is missing (e.g. balance not reachable).
+    pub note: Option<String>,
+    /// Took part this wave but not the previous one.
+    pub joined: Vec<String>,
+    /// Took part the previous wave but not this one.
+    pub left: Vec<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -243,7 +260,9 @@ pub fn overview(project: &Project) -> Overview {
         })
         .collect();
 
+    let trends = trends(project, &countries);
     Overview {
+        trends,
         title: m.title.clone(),
         description: m.description.clone(),
         n_countries,
@@ -268,4 +287,72 @@ pub fn overview(project: &Project) -> Overview {
 
 fn ratio(numerator: usize, denominator: usize) -> Option<f64> {
     (denominator > 0).then(|| numerator as f64 / denominator as f64)
+}
+
+/// Per wave: imbalance before weighting and the effective number after entropy balancing
+/// (default settings: every indicator), and the countries that joined or left.
+fn trends(project: &Project, countries: &[CountryWaves]) -> Vec<WaveTrend> {
+    use super::settings::{Settings, WeightingKind};
+    project
+        .waves
+        .iter()
+        .enumerate()
+        .map(|(w, &wave)| {
+            let settings = Settings {
+                wave: Some(wave),
+                weighting: WeightingKind::Entropy,
+                ..Settings::default()
+            };
+            let (mut max_abs_smd, mut effective_n, mut note) = (None, None, None);
+            if let Some(view) = project.wave(wave) {
+                match super::design::build(&view, &settings) {
+                    Ok(design) => {
+                        let unweighted: Vec<f64> = design
+                            .participated
+                            .iter()
+                            .map(|&t| f64::from(u8::from(t)))
+                            .collect();
+                        let rows = super::participation::balance_table(&design, &unweighted);
+                        max_abs_smd = rows
+                            .iter()
+                            .filter_map(|r| r.smd_before)
+                            .map(f64::abs)
+                            .reduce(f64::max);
+                        match super::participation::fit_model(&design, settings.model, false)
+                            .and_then(|m| super::participation::weigh(&design, &settings, &m))
+                        {
+                            Ok(weighted) => effective_n = Some(weighted.report.effective_n),
+                            Err(e) => note = Some(e.to_string()),
+                        }
+                    }
+                    Err(e) => note = Some(e.to_string()),
+                }
+            }
+            let (joined, left) = if w == 0 {
+                (Vec::new(), Vec::new())
+            } else {
+                let took = |c: &CountryWaves, i: usize| c.status[i] == WaveStatus::TookPart;
+                (
+                    countries
+                        .iter()
+                        .filter(|c| took(c, w) && !took(c, w - 1))
+                        .map(|c| c.code.clone())
+                        .collect(),
+                    countries
+                        .iter()
+                        .filter(|c| !took(c, w) && took(c, w - 1))
+                        .map(|c| c.code.clone())
+                        .collect(),
+                )
+            };
+            WaveTrend {
+                wave,
+                max_abs_smd,
+                effective_n,
+                note,
+                joined,
+                left,
+            }
+        })
+        .collect()
 }

@@ -22,6 +22,7 @@ struct OverviewPage<'a> {
     o: &'a Overview,
     coverage_chart: String,
     cautions: &'a [Caution],
+    f: super::format::Fmt,
 }
 
 impl OverviewPage<'_> {
@@ -67,6 +68,7 @@ pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResp
         page: "overview",
         nav_query: String::new(),
         coverage_chart: charts::coverage::coverage_by_group(&o),
+        f: super::format::Fmt,
         cautions: &o.cautions,
         o: &o,
     }
