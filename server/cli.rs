@@ -103,7 +103,12 @@ pub fn summary_text(o: &Overview) -> String {
 }
 
 /// `gapwise serve`: loads the project and serves it until Ctrl-C.
-pub fn serve(dir: &Path, addr: SocketAddr, allow_remote: bool) -> i32 {
+pub fn serve(
+    dir: &Path,
+    addr: SocketAddr,
+    allow_remote: bool,
+    projects: Option<std::path::PathBuf>,
+) -> i32 {
     if !addr.ip().is_loopback() {
         if !allow_remote {
             eprintln!(
@@ -127,7 +132,13 @@ pub fn serve(dir: &Path, addr: SocketAddr, allow_remote: bool) -> i32 {
             return 1;
         }
     };
-    let state = Arc::new(web::AppState::new(project));
+    if let Some(p) = &projects {
+        if let Err(e) = std::fs::create_dir_all(p) {
+            eprintln!("cannot use the projects folder {}: {e}", p.display());
+            return 1;
+        }
+    }
+    let state = Arc::new(web::AppState::with_projects(project, projects));
     let runtime = match tokio::runtime::Runtime::new() {
         Ok(r) => r,
         Err(e) => {

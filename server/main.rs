@@ -31,6 +31,9 @@ enum Command {
         /// Allow an address other than loopback (anyone reaching it can read the data).
         #[arg(long)]
         allow_remote: bool,
+        /// A folder of projects to open and create from the browser.
+        #[arg(long)]
+        projects: Option<PathBuf>,
     },
     /// Validate a project folder: a summary, or one line per problem (file:row:column: message).
     Check {
@@ -200,12 +203,20 @@ impl AnalysisArgs {
 fn main() -> ExitCode {
     let args = Args::parse();
     let code = match args.command {
-        None => cli::serve(&gapwise::demo_dir(), default_addr(), false),
+        None => cli::serve(&gapwise::demo_dir(), default_addr(), false, None),
         Some(Command::Serve {
             dir,
             addr,
             allow_remote,
-        }) => cli::serve(&dir.unwrap_or_else(gapwise::demo_dir), addr, allow_remote),
+            projects,
+        }) => {
+            // Without a folder: the first project of the projects folder, else the demo.
+            let first = projects
+                .as_deref()
+                .and_then(|p| gapwise::project::store::list(p).first().map(|n| p.join(n)));
+            let dir = dir.or(first).unwrap_or_else(gapwise::demo_dir);
+            cli::serve(&dir, addr, allow_remote, projects)
+        }
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
         Some(Command::Weights { dir, analysis, out }) => match analysis.settings() {

@@ -5,6 +5,7 @@
 pub mod eligibility;
 pub mod manifest;
 pub mod problem;
+pub mod store;
 pub mod table;
 pub mod wave;
 

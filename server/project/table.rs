@@ -162,6 +162,29 @@ pub fn integers(frame: &DataFrame, column: &str) -> Vec<Option<i64>> {
 /// Tokens read as a missing value in numeric columns, besides an empty cell.
 pub const MISSING_TOKENS: [&str; 2] = ["NA", "."];
 
+/// The column names of a CSV (its header) or Parquet file (its schema); `None` when the
+/// file cannot be read.
+pub fn column_names(path: &Path) -> Option<Vec<String>> {
+    let is_parquet = path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("parquet"));
+    if is_parquet {
+        let file = std::fs::File::open(path).ok()?;
+        let mut reader = ParquetReader::new(file);
+        let schema = reader.schema().ok()?;
+        Some(schema.iter_names().map(|n| n.to_string()).collect())
+    } else {
+        let mut reader = csv::ReaderBuilder::new()
+            .has_headers(false)
+            .flexible(true)
+            .from_path(path)
+            .ok()?;
+        let mut record = csv::StringRecord::new();
+        reader.read_record(&mut record).ok()?;
+        Some(record.iter().map(|f| f.trim().to_string()).collect())
+    }
+}
+
 /// Finds `stem.csv` or `stem.parquet` in `dir`. `Ok(None)` when neither exists.
 pub fn find_data_file(dir: &Path, stem: &str) -> Result<Option<std::path::PathBuf>, Problem> {
     let csv = dir.join(format!("{stem}.csv"));

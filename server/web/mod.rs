@@ -10,6 +10,7 @@ pub mod impact;
 pub mod model;
 pub mod overview;
 pub mod plan;
+pub mod projects;
 pub mod report;
 pub mod sensitivity;
 pub mod state;
@@ -66,8 +67,15 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/sensitivity", get(sensitivity::page))
         .route("/api/sensitivity", get(sensitivity::json))
         .route("/sensitivity/{item}", get(sensitivity::artifact))
-        // Project
+        // Projects
         .route("/api/reload", post(reload))
+        .route("/projects", get(projects::list))
+        .route("/projects/open", post(projects::open))
+        .route("/projects/upload", post(projects::upload))
+        .route(
+            "/projects/map",
+            get(projects::map_form).post(projects::map_save),
+        )
         .nest_service("/static", ServeDir::new(static_dir()))
         .fallback(not_found)
         .with_state(state)

@@ -1,5 +1,6 @@
 //! The application state shared by every handler: the loaded project behind an `Arc`,
-//! swapped whole on reload so that a request never sees half a project.
+//! swapped whole on reload or when another project is opened, so that a request never
+//! sees half a project.
 
 use std::path::PathBuf;
 use std::sync::{Arc, RwLock};
@@ -7,35 +8,55 @@ use std::sync::{Arc, RwLock};
 use crate::project::{Problem, Project};
 
 pub struct AppState {
-    dir: PathBuf,
-    project: RwLock<Arc<Project>>,
+    /// The open project and the folder it came from, swapped together.
+    current: RwLock<(PathBuf, Arc<Project>)>,
+    /// The folder of projects that can be opened and created from the browser, if any.
+    pub projects: Option<PathBuf>,
+}
+
+fn read<T>(lock: &RwLock<T>) -> std::sync::RwLockReadGuard<'_, T> {
+    // A panic while holding the lock cannot leave a half-written value behind: every
+    // write is a single assignment.
+    lock.read()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
 }
 
 impl AppState {
     pub fn new(project: Project) -> Self {
+        Self::with_projects(project, None)
+    }
+
+    pub fn with_projects(project: Project, projects: Option<PathBuf>) -> Self {
         AppState {
-            dir: project.dir.clone(),
-            project: RwLock::new(Arc::new(project)),
+            current: RwLock::new((project.dir.clone(), Arc::new(project))),
+            projects,
         }
     }
 
     /// The current project; cheap (clones an `Arc`).
     pub fn project(&self) -> Arc<Project> {
-        match self.project.read() {
-            Ok(guard) => Arc::clone(&guard),
-            // A panic while holding the lock cannot leave a half-written Arc behind.
-            Err(poisoned) => Arc::clone(&poisoned.into_inner()),
-        }
+        Arc::clone(&read(&self.current).1)
     }
 
     /// Loads the project folder again; on success swaps it in, on failure keeps the old one.
     pub fn reload(&self) -> Result<Arc<Project>, Vec<Problem>> {
-        let fresh = Arc::new(Project::load(&self.dir)?);
-        let mut guard = match self.project.write() {
-            Ok(g) => g,
-            Err(poisoned) => poisoned.into_inner(),
-        };
-        *guard = Arc::clone(&fresh);
+        let dir = read(&self.current).0.clone();
+        self.open(dir)
+    }
+
+    /// Opens another project folder; the current one stays if the new one has problems.
+    pub fn open(&self, dir: PathBuf) -> Result<Arc<Project>, Vec<Problem>> {
+        let fresh = Arc::new(Project::load(&dir)?);
+        self.install(dir, Arc::clone(&fresh));
         Ok(fresh)
+    }
+
+    /// Swaps in an already loaded project.
+    pub fn install(&self, dir: PathBuf, project: Arc<Project>) {
+        let mut guard = self
+            .current
+            .write()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        *guard = (dir, project);
     }
 }

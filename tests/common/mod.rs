@@ -198,8 +198,13 @@ pub fn start_server(dir: &Path) -> std::net::SocketAddr {
 
 /// The same, also returning the per-process token for state-changing requests.
 pub fn start_server_with_token(dir: &Path) -> (std::net::SocketAddr, String) {
+    start_server_full(dir, None)
+}
+
+/// The server with a folder of projects to open and create from the browser.
+pub fn start_server_full(dir: &Path, projects: Option<PathBuf>) -> (std::net::SocketAddr, String) {
     let project = gapwise::project::Project::load(dir).expect("project loads");
-    let state = std::sync::Arc::new(gapwise::web::AppState::new(project));
+    let state = std::sync::Arc::new(gapwise::web::AppState::with_projects(project, projects));
     let (tx, rx) = std::sync::mpsc::channel();
     std::thread::spawn(move || {
         let runtime = tokio::runtime::Runtime::new().expect("runtime");
@@ -216,4 +221,69 @@ pub fn start_server_with_token(dir: &Path) -> (std::net::SocketAddr, String) {
         });
     });
     rx.recv().expect("server address")
+}
+
+/// One HTTP/1.1 request with a body.
+pub fn http_body(
+    addr: std::net::SocketAddr,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    content_type: &str,
+    body: &[u8],
+) -> Response {
+    let mut stream = TcpStream::connect(addr).expect("connect");
+    let mut request = format!("{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\nContent-Type: {content_type}\r\nContent-Length: {}\r\n", body.len());
+    for (k, v) in headers {
+        request.push_str(&format!("{k}: {v}\r\n"));
+    }
+    request.push_str("\r\n");
+    stream.write_all(request.as_bytes()).expect("send");
+    stream.write_all(body).expect("send body");
+    let mut raw = Vec::new();
+    stream.read_to_end(&mut raw).expect("read");
+    let text = String::from_utf8_lossy(&raw).to_string();
+    let (head, body) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
+    let mut lines = head.lines();
+    let status = lines
+        .next()
+        .and_then(|l| l.split_whitespace().nth(1))
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(0);
+    let headers: Vec<(String, String)> = lines
+        .filter_map(|l| l.split_once(':'))
+        .map(|(k, v)| (k.trim().to_ascii_lowercase(), v.trim().to_string()))
+        .collect();
+    let body = if headers
+        .iter()
+        .any(|(k, v)| k == "transfer-encoding" && v.contains("chunked"))
+    {
+        dechunk(body)
+    } else {
+        body.to_string()
+    };
+    Response {
+        status,
+        headers,
+        body,
+    }
+}
+
+/// A multipart/form-data body: text fields, then files (field, file name, contents).
+pub fn multipart(fields: &[(&str, &str)], files: &[(&str, &str, &[u8])]) -> (String, Vec<u8>) {
+    let boundary = "gapwise-test-boundary-7d1";
+    let mut body = Vec::new();
+    for (k, v) in fields {
+        body.extend_from_slice(
+            format!("--{boundary}\r\nContent-Disposition: form-data; name=\"{k}\"\r\n\r\n{v}\r\n")
+                .as_bytes(),
+        );
+    }
+    for (k, name, data) in files {
+        body.extend_from_slice(format!("--{boundary}\r\nContent-Disposition: form-data; name=\"{k}\"; filename=\"{name}\"\r\nContent-Type: text/csv\r\n\r\n").as_bytes());
+        body.extend_from_slice(data);
+        body.extend_from_slice(b"\r\n");
+    }
+    body.extend_from_slice(format!("--{boundary}--\r\n").as_bytes());
+    (format!("multipart/form-data; boundary={boundary}"), body)
 }

@@ -1,0 +1,345 @@
+//! Projects from the browser: list and open the projects of the projects folder, create one
+//! by uploading its files and mapping their columns. Validation gives the same messages as
+//! `gapwise check`; saving goes through a staging folder and renames (project::store), so
+//! nothing is lost or half-written.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+
+use askama::Template;
+use axum::extract::{Multipart, Query, State};
+use axum::http::StatusCode;
+use axum::response::{Html, IntoResponse, Redirect, Response};
+use axum::Form;
+
+use super::error::{AppError, AppResult};
+use super::state::AppState;
+use crate::analysis::cautions::{Caution, STANDING};
+use crate::project::manifest::{
+    ColumnRoles, EligibilityRule, Indicators, Manifest, MicrodataRoles, ParticipantCut,
+    Recruitment, Threshold,
+};
+use crate::project::{store, Problem, MANIFEST_FILE};
+
+/// Largest frame accepted from the browser: rows and columns.
+pub const MAX_FRAME_ROWS: usize = 100_000;
+pub const MAX_COLUMNS: usize = 1_000;
+/// Largest microdata accepted from the browser (rows).
+pub const MAX_MICRODATA_ROWS: usize = 5_000_000;
+
+#[derive(Template)]
+#[template(path = "projects.html")]
+struct ProjectsPage<'a> {
+    page: &'static str,
+    nav_query: String,
+    current: String,
+    projects: Vec<String>,
+    folder: Option<String>,
+    message: Option<String>,
+    cautions: &'a [Caution],
+}
+
+#[derive(Template)]
+#[template(path = "project_map.html")]
+struct MapPage<'a> {
+    page: &'static str,
+    nav_query: String,
+    name: String,
+    title: String,
+    frame_columns: Vec<String>,
+    micro_columns: Vec<String>,
+    problems: Vec<String>,
+    cautions: &'a [Caution],
+}
+
+fn folder(state: &AppState) -> AppResult<std::path::PathBuf> {
+    state.projects.clone().ok_or_else(|| AppError::NotFound("projects can be created and opened from the browser when the server is started with --projects DIR".to_string()))
+}
+
+pub async fn list(State(state): State<Arc<AppState>>) -> AppResult<Html<String>> {
+    render_list(&state, None)
+}
+
+fn render_list(state: &AppState, message: Option<String>) -> AppResult<Html<String>> {
+    let project = state.project();
+    let html = ProjectsPage {
+        page: "projects",
+        nav_query: String::new(),
+        current: project.manifest.title.clone(),
+        projects: state
+            .projects
+            .as_deref()
+            .map(store::list)
+            .unwrap_or_default(),
+        folder: state.projects.as_ref().map(|p| p.display().to_string()),
+        message,
+        cautions: &STANDING,
+    }
+    .render()?;
+    Ok(Html(html))
+}
+
+#[derive(serde::Deserialize)]
+pub struct OpenForm {
+    name: String,
+}
+
+pub async fn open(
+    State(state): State<Arc<AppState>>,
+    Form(form): Form<OpenForm>,
+) -> AppResult<Response> {
+    let dir = folder(&state)?;
+    store::valid_name(&form.name).map_err(AppError::BadRequest)?;
+    let target = dir.join(&form.name);
+    let state2 = Arc::clone(&state);
+    tokio::task::spawn_blocking(move || state2.open(target))
+        .await
+        .map_err(|e| AppError::Internal(e.to_string()))?
+        .map_err(AppError::InvalidProject)?;
+    Ok(Redirect::to("/").into_response())
+}
+
+/// Counts lines and header fields of a CSV without parsing it (limits before validation).
+fn csv_shape(bytes: &[u8]) -> (usize, usize) {
+    let header_end = bytes
+        .iter()
+        .position(|&b| b == b'\n')
+        .unwrap_or(bytes.len());
+    let columns = bytes[..header_end].iter().filter(|&&b| b == b',').count() + 1;
+    let lines = bytes.iter().filter(|&&b| b == b'\n').count();
+    (
+        lines
+            .saturating_sub(1)
+            .max(usize::from(!bytes.is_empty() && lines == 0)),
+        columns,
+    )
+}
+
+pub async fn upload(
+    State(state): State<Arc<AppState>>,
+    mut multipart: Multipart,
+) -> AppResult<Response> {
+    let dir = folder(&state)?;
+    let mut fields: BTreeMap<String, String> = BTreeMap::new();
+    let mut files: Vec<(String, String, Vec<u8>)> = Vec::new();
+    while let Some(field) = multipart.next_field().await.map_err(|e| {
+        AppError::BadRequest(format!(
+            "the upload could not be read ({e}); try again, files up to {} MB",
+            super::MAX_BODY_BYTES / 1024 / 1024
+        ))
+    })? {
+        let name = field.name().unwrap_or_default().to_string();
+        match field.file_name().map(str::to_string) {
+            Some(file_name) => {
+                let bytes = field.bytes().await.map_err(|e| {
+                    AppError::BadRequest(format!("the file {file_name} could not be read ({e})"))
+                })?;
+                if !bytes.is_empty() {
+                    files.push((name, file_name, bytes.to_vec()));
+                }
+            }
+            None => {
+                fields.insert(name, field.text().await.unwrap_or_default());
+            }
+        }
+    }
+    let name = fields.get("name").cloned().unwrap_or_default();
+    store::valid_name(&name).map_err(AppError::BadRequest)?;
+    let title = fields
+        .get("title")
+        .cloned()
+        .filter(|t| !t.trim().is_empty())
+        .unwrap_or_else(|| name.clone());
+    if !files.iter().any(|f| f.0 == "frame") {
+        return Err(AppError::BadRequest(
+            "choose a frame file (CSV or Parquet, one row per country and wave)".to_string(),
+        ));
+    }
+    let staging =
+        store::staging(&dir, &name, true).map_err(|e| AppError::Internal(e.to_string()))?;
+    for (role, file_name, bytes) in &files {
+        let stem = match role.as_str() {
+            "frame" => "frame",
+            "microdata" => "microdata",
+            _ => continue,
+        };
+        let lower = file_name.to_ascii_lowercase();
+        let ext = if lower.ends_with(".csv") {
+            "csv"
+        } else if lower.ends_with(".parquet") {
+            "parquet"
+        } else {
+            return Err(AppError::BadRequest(format!(
+                "{file_name}: upload a .csv or .parquet file"
+            )));
+        };
+        if ext == "csv" {
+            let (rows, columns) = csv_shape(bytes);
+            let max_rows = if stem == "frame" {
+                MAX_FRAME_ROWS
+            } else {
+                MAX_MICRODATA_ROWS
+            };
+            if rows > max_rows || columns > MAX_COLUMNS {
+                return Err(AppError::BadRequest(format!("{file_name} has {rows} rows and {columns} columns; the limits are {max_rows} rows and {MAX_COLUMNS} columns")));
+            }
+        }
+        std::fs::write(staging.join(format!("{stem}.{ext}")), bytes)
+            .map_err(|e| AppError::Internal(e.to_string()))?;
+    }
+    std::fs::write(staging.join("title.txt"), title)
+        .map_err(|e| AppError::Internal(e.to_string()))?;
+    Ok(Redirect::to(&format!("/projects/map?name={name}")).into_response())
+}
+
+#[derive(serde::Deserialize)]
+pub struct MapQuery {
+    name: String,
+}
+
+/// Column names of a staged data file (CSV header, or the Parquet schema).
+fn columns_of(dir: &std::path::Path, stem: &str) -> Vec<String> {
+    let Ok(Some(path)) = crate::project::table::find_data_file(dir, stem) else {
+        return Vec::new();
+    };
+    let names = crate::project::table::column_names(&path);
+    names.unwrap_or_default()
+}
+
+pub async fn map_form(
+    State(state): State<Arc<AppState>>,
+    Query(q): Query<MapQuery>,
+) -> AppResult<Html<String>> {
+    let dir = folder(&state)?;
+    store::valid_name(&q.name).map_err(AppError::BadRequest)?;
+    let staging =
+        store::staging(&dir, &q.name, false).map_err(|e| AppError::Internal(e.to_string()))?;
+    if !staging.is_dir() {
+        return Err(AppError::NotFound(format!(
+            "no upload for '{}'; start from /projects",
+            q.name
+        )));
+    }
+    render_map(&q.name, &staging, Vec::new()).map(Html)
+}
+
+fn render_map(name: &str, staging: &std::path::Path, problems: Vec<String>) -> AppResult<String> {
+    Ok(MapPage {
+        page: "projects",
+        nav_query: String::new(),
+        name: name.to_string(),
+        title: std::fs::read_to_string(staging.join("title.txt"))
+            .unwrap_or_else(|_| name.to_string()),
+        frame_columns: columns_of(staging, "frame"),
+        micro_columns: columns_of(staging, "microdata"),
+        problems,
+        cautions: &STANDING,
+    }
+    .render()?)
+}
+
+/// Builds the manifest from the mapping form (repeated keys for the ticked indicators).
+fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
+    let one = |key: &str| {
+        form.iter()
+            .find(|(k, _)| k == key)
+            .map(|(_, v)| v.trim().to_string())
+            .filter(|v| !v.is_empty())
+    };
+    let many = |key: &str| {
+        form.iter()
+            .filter(|(k, _)| k == key)
+            .map(|(_, v)| v.clone())
+            .collect::<Vec<_>>()
+    };
+    let need =
+        |key: &str, what: &str| one(key).ok_or_else(|| format!("choose the column with {what}"));
+    let mut eligibility = Vec::new();
+    if let Some(indicator) = one("rule_indicator") {
+        let cut = one("rule_at_least")
+            .ok_or("give the eligibility rule a cut-off: a number or lowest-participant")?;
+        let threshold = if cut == "lowest-participant" {
+            Threshold::FromParticipants(ParticipantCut::LowestParticipant)
+        } else {
+            Threshold::Value(cut.parse().map_err(|_| {
+                format!("the cut-off '{cut}' is neither a number nor lowest-participant")
+            })?)
+        };
+        eligibility.push(EligibilityRule {
+            indicator,
+            at_least: Some(threshold),
+            at_most: None,
+            waves: None,
+        });
+    }
+    let microdata = match one("micro_country") {
+        None => None,
+        Some(country) => Some(MicrodataRoles {
+            country,
+            wave: need("micro_wave", "the respondents' wave")?,
+            design_weight: need("micro_weight", "the design weights")?,
+            variables: many("micro_variable"),
+        }),
+    };
+    Ok(Manifest {
+        title: one("title").unwrap_or_else(|| "Untitled project".to_string()),
+        description: None,
+        columns: ColumnRoles {
+            code: need("code", "the country code")?,
+            name: one("country_name"),
+            wave: need("wave", "the wave")?,
+            participation: need("participation", "the participation flag")?,
+            group: one("group"),
+        },
+        indicators: Indicators {
+            numeric: many("numeric"),
+            categorical: many("categorical"),
+            ..Indicators::default()
+        },
+        eligibility,
+        recruitment: Recruitment::default(),
+        microdata,
+    })
+}
+
+pub async fn map_save(
+    State(state): State<Arc<AppState>>,
+    Form(form): Form<Vec<(String, String)>>,
+) -> AppResult<Response> {
+    let dir = folder(&state)?;
+    let name = form
+        .iter()
+        .find(|(k, _)| k == "name")
+        .map(|(_, v)| v.clone())
+        .unwrap_or_default();
+    store::valid_name(&name).map_err(AppError::BadRequest)?;
+    let staging =
+        store::staging(&dir, &name, false).map_err(|e| AppError::Internal(e.to_string()))?;
+    if !staging.is_dir() {
+        return Err(AppError::NotFound(format!(
+            "no upload for '{name}'; start from /projects"
+        )));
+    }
+    let problems: Vec<String> = match manifest_from_form(&form) {
+        Err(message) => vec![message],
+        Ok(manifest) => {
+            let text = toml::to_string(&manifest).map_err(|e| AppError::Internal(e.to_string()))?;
+            std::fs::write(staging.join(MANIFEST_FILE), text)
+                .map_err(|e| AppError::Internal(e.to_string()))?;
+            let dir2 = dir.clone();
+            let name2 = name.clone();
+            let saved = tokio::task::spawn_blocking(move || store::save(&dir2, &name2))
+                .await
+                .map_err(|e| AppError::Internal(e.to_string()))?;
+            match saved {
+                Ok(project) => {
+                    state.install(dir.join(&name), Arc::new(project));
+                    return Ok(Redirect::to("/").into_response());
+                }
+                Err(problems) => problems.iter().map(Problem::to_string).collect(),
+            }
+        }
+    };
+    let html = render_map(&name, &staging, problems)?;
+    Ok((StatusCode::UNPROCESSABLE_ENTITY, Html(html)).into_response())
+}
