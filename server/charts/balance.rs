@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, GREY, SLIDE};
+use super::{colour, failed_chart, font, legend, render, row_label, Area, DrawResult, GREY, SLIDE};
 use crate::analysis::balance::BalanceComparison;
 
 const TITLE: &str = "Standardised mean differences, before and after weighting";
@@ -14,16 +14,15 @@ pub fn smd_dots(b: &BalanceComparison) -> String {
     if b.rows.is_empty() {
         return failed_chart(TITLE, "No indicators chosen.");
     }
-    let mut svg = String::new();
-    match draw(b, &mut svg) {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    render(
+        TITLE,
+        (SLIDE.0, (110 + 30 * b.rows.len() as u32).max(SLIDE.1)),
+        |root| draw(b, root),
+    )
 }
 
-fn draw(b: &BalanceComparison, svg: &mut String) -> Result<(), Box<dyn std::error::Error>> {
+fn draw(b: &BalanceComparison, root: &Area<'_>) -> DrawResult {
     let n = b.rows.len();
-    let height = (110 + 30 * n as u32).max(SLIDE.1);
     let extent = b
         .rows
         .iter()
@@ -33,9 +32,7 @@ fn draw(b: &BalanceComparison, svg: &mut String) -> Result<(), Box<dyn std::erro
     let method = b.methods.get(b.chosen).map_or("", |m| m.label);
     let labels: Vec<String> = b.rows.iter().map(|r| r.label.clone()).collect();
     {
-        let root = SVGBackend::with_string(svg, (SLIDE.0, height)).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(TITLE, font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -46,14 +43,7 @@ fn draw(b: &BalanceComparison, svg: &mut String) -> Result<(), Box<dyn std::erro
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
             .y_labels(n)
-            .y_label_formatter(&|y| {
-                let i = y.round();
-                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < labels.len() {
-                    labels[n - 1 - i as usize].clone()
-                } else {
-                    String::new()
-                }
-            })
+            .y_label_formatter(&|y| row_label(&labels, *y))
             .x_label_formatter(&|x| super::tick(*x, 1))
             .x_desc(
                 "Standardised mean difference (participants − eligible universe, in universe SDs)",
@@ -109,14 +99,7 @@ fn draw(b: &BalanceComparison, svg: &mut String) -> Result<(), Box<dyn std::erro
                     after.filled(),
                 )
             });
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .label_font(font(15))
-            .background_style(WHITE.mix(0.9))
-            .border_style(BLACK.mix(0.3))
-            .draw()?;
-        root.present()?;
+        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
     }
     Ok(())
 }

@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, SLIDE};
+use super::{colour, failed_chart, render, Area, DrawResult, SLIDE};
 use crate::analysis::overview::Overview;
 
 const TITLE: &str = "Coverage by region across waves";
@@ -16,22 +16,16 @@ pub fn coverage_by_group(overview: &Overview) -> String {
             "No grouping indicator (columns.group) or no waves: nothing to draw.",
         );
     }
-    let mut svg = String::new();
-    match draw(overview, &mut svg) {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    render(TITLE, SLIDE, |root| draw(overview, root))
 }
 
-fn draw(overview: &Overview, svg: &mut String) -> Result<(), Box<dyn std::error::Error>> {
+fn draw(overview: &Overview, root: &Area<'_>) -> DrawResult {
     let waves: Vec<i64> = overview.waves.iter().map(|w| w.wave).collect();
     let (first, last) = (waves[0] as f64, waves[waves.len() - 1] as f64);
     let group_label = overview.group_label.as_deref().unwrap_or("Group");
     {
-        let root = SVGBackend::with_string(svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
         let title = format!("Coverage by {} across waves", group_label.to_lowercase());
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(title, ("sans-serif", 26))
             .margin(16)
             .x_label_area_size(50)
@@ -84,7 +78,6 @@ fn draw(overview: &Overview, svg: &mut String) -> Result<(), Box<dyn std::error:
             .background_style(WHITE.mix(0.9))
             .border_style(BLACK.mix(0.3))
             .draw()?;
-        root.present()?;
     }
     Ok(())
 }

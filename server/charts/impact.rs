@@ -3,7 +3,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, tick, SLIDE};
+use super::{colour, failed_chart, font, legend, render, row_label, tick, SLIDE};
 use crate::analysis::impact::ImpactReport;
 
 /// One row per variant (top: unweighted), a dot at the pooled estimate and a 95% interval.
@@ -21,8 +21,7 @@ pub fn pooled(r: &ImpactReport) -> String {
     if rows.is_empty() {
         return failed_chart(&title, "No variant could be estimated.");
     }
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+    render(&title, SLIDE, |root| {
         let n = rows.len();
         let (lo, hi) = rows
             .iter()
@@ -31,9 +30,7 @@ pub fn pooled(r: &ImpactReport) -> String {
             });
         let pad = 0.1 * (hi - lo).max(1e-9);
         let labels: Vec<String> = rows.iter().map(|r| r.0.to_string()).collect();
-        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(&title, font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -44,14 +41,7 @@ pub fn pooled(r: &ImpactReport) -> String {
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
             .y_labels(n)
-            .y_label_formatter(&|y| {
-                let i = y.round();
-                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < n {
-                    labels[n - 1 - i as usize].clone()
-                } else {
-                    String::new()
-                }
-            })
+            .y_label_formatter(&|y| row_label(&labels, *y))
             .x_label_formatter(&|x| tick(*x, 2))
             .x_desc(format!(
                 "Mean of {} (95% interval, errors clustered by country)",
@@ -71,13 +61,8 @@ pub fn pooled(r: &ImpactReport) -> String {
                 EmptyElement::at((*est, y)) + super::coverage::marker(i, c),
             ))?;
         }
-        root.present()?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(&title, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }
 
 /// Per term (rows), one dot and 95% interval per variant, offset vertically and told apart
@@ -89,8 +74,8 @@ pub fn coefficients(r: &ImpactReport) -> String {
     if terms.is_empty() {
         return failed_chart(TITLE, "The model has no predictors.");
     }
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+    let height = (120 + 90 * terms.len() as u32).max(SLIDE.1);
+    render(TITLE, (SLIDE.0, height), |root| {
         let nt = terms.len();
         let nv = r.variants.len();
         let mut extent: f64 = 1e-9;
@@ -102,10 +87,7 @@ pub fn coefficients(r: &ImpactReport) -> String {
             }
         }
         let labels: Vec<String> = terms.iter().map(|&j| r.terms[j].clone()).collect();
-        let height = (120 + 90 * nt as u32).max(SLIDE.1);
-        let root = SVGBackend::with_string(&mut svg, (SLIDE.0, height)).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(TITLE, font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -117,14 +99,7 @@ pub fn coefficients(r: &ImpactReport) -> String {
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
             .y_labels(nt)
-            .y_label_formatter(&|y| {
-                let i = y.round();
-                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < nt {
-                    labels[nt - 1 - i as usize].clone()
-                } else {
-                    String::new()
-                }
-            })
+            .y_label_formatter(&|y| row_label(&labels, *y))
             .x_label_formatter(&|x| tick(*x, 3))
             .x_desc("Coefficient")
             .label_style(font(15))
@@ -159,18 +134,7 @@ pub fn coefficients(r: &ImpactReport) -> String {
                 EmptyElement::at((v.coef[j], offset(row))) + super::coverage::marker(vi, c)
             }))?;
         }
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .label_font(font(13))
-            .background_style(WHITE.mix(0.9))
-            .border_style(BLACK.mix(0.3))
-            .draw()?;
-        root.present()?;
+        legend(&mut chart, SeriesLabelPosition::UpperRight, 13)?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }

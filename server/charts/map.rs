@@ -3,7 +3,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, GREY, SLIDE};
+use super::{colour, failed_chart, font, legend, render, row_label, GREY, SLIDE};
 use crate::analysis::coverage::CoverageReport;
 
 /// Countries on the first two components: participants as filled teal circles, absent
@@ -21,8 +21,7 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
     if let Some(e) = &c.map_error {
         return failed_chart(TITLE, e);
     }
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+    render(TITLE, SLIDE, |root| {
         let span = |f: &dyn Fn(&crate::analysis::coverage::MapPoint) -> f64| {
             let (lo, hi) = c
                 .points
@@ -39,9 +38,7 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
             let h = r.end - r.start;
             r.start..(r.end + 0.22 * h)
         };
-        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption("Eligible countries on the first two components", font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -122,20 +119,9 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
         chart.draw_series(c.points.iter().filter(labelled).map(|p| {
             EmptyElement::at((p.pc1, p.pc2)) + Text::new(p.id.clone(), (9, -18), font(14))
         }))?;
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .label_font(font(15))
-            .background_style(WHITE.mix(0.9))
-            .border_style(BLACK.mix(0.3))
-            .draw()?;
-        root.present()?;
+        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }
 
 /// Per indicator, on the universe's standardised scale: the universe's interquartile range
@@ -145,8 +131,8 @@ pub fn spreads(c: &CoverageReport) -> String {
     if c.distributions.is_empty() {
         return failed_chart(TITLE, "No numeric indicators.");
     }
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+    let height = (110 + 60 * c.distributions.len() as u32).max(SLIDE.1);
+    render(TITLE, (SLIDE.0, height), |root| {
         let n = c.distributions.len();
         let z = |d: &crate::analysis::coverage::Distribution, v: f64| {
             if d.sd > 0.0 {
@@ -161,10 +147,7 @@ pub fn spreads(c: &CoverageReport) -> String {
             .flat_map(|d| [z(d, d.universe.min), z(d, d.universe.max)])
             .fold(2.0f64, |m, v| m.max(v.abs() * 1.05));
         let labels: Vec<String> = c.distributions.iter().map(|d| d.label.clone()).collect();
-        let height = (110 + 60 * n as u32).max(SLIDE.1);
-        let root = SVGBackend::with_string(&mut svg, (SLIDE.0, height)).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(TITLE, font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -175,14 +158,7 @@ pub fn spreads(c: &CoverageReport) -> String {
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
             .y_labels(n)
-            .y_label_formatter(&|y| {
-                let i = y.round();
-                if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < labels.len() {
-                    labels[n - 1 - i as usize].clone()
-                } else {
-                    String::new()
-                }
-            })
+            .y_label_formatter(&|y| row_label(&labels, *y))
             .x_desc("Standard deviations from the eligible universe's mean")
             .label_style(font(15))
             .axis_desc_style(font(16))
@@ -221,18 +197,7 @@ pub fn spreads(c: &CoverageReport) -> String {
             .legend(move |(x, y)| {
                 Rectangle::new([(x - 8, y - 5), (x + 8, y + 5)], p_colour.filled())
             });
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .label_font(font(15))
-            .background_style(WHITE.mix(0.9))
-            .border_style(BLACK.mix(0.3))
-            .draw()?;
-        root.present()?;
+        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }

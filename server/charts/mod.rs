@@ -9,6 +9,9 @@ pub mod model;
 pub mod plan;
 pub mod sensitivity;
 
+use plotters::coord::types::RangedCoordf64;
+use plotters::coord::Shift;
+use plotters::prelude::*;
 use plotters::style::{FontDesc, FontFamily, FontStyle, RGBColor};
 
 /// Chart size in pixels, 16:9 for slides.
@@ -66,5 +69,59 @@ pub fn tick(x: f64, decimals: usize) -> String {
         s.trim_start_matches('-').to_string()
     } else {
         s
+    }
+}
+
+/// What a drawing step returns.
+pub type DrawResult = Result<(), Box<dyn std::error::Error>>;
+
+/// The canvas every chart draws on.
+pub type Area<'a> = DrawingArea<SVGBackend<'a>, Shift>;
+
+/// A chart on plain numeric axes.
+pub type Chart<'a, 'b> =
+    ChartContext<'a, SVGBackend<'b>, Cartesian2d<RangedCoordf64, RangedCoordf64>>;
+
+/// Draws on a white SVG canvas of `size`; if drawing fails, the chart says so instead of
+/// coming out empty.
+pub fn render(title: &str, size: (u32, u32), draw: impl FnOnce(&Area<'_>) -> DrawResult) -> String {
+    let mut svg = String::new();
+    let result: DrawResult = {
+        let root = SVGBackend::with_string(&mut svg, size).into_drawing_area();
+        root.fill(&WHITE)
+            .map_err(Into::into)
+            .and_then(|()| draw(&root))
+            .and_then(|()| root.present().map_err(Into::into))
+    };
+    match result {
+        Ok(()) => svg,
+        Err(e) => failed_chart(title, &format!("The chart could not be drawn: {e}")),
+    }
+}
+
+/// Our legend: a light box with a thin border.
+pub fn legend<'a, 'b: 'a>(
+    chart: &mut Chart<'a, 'b>,
+    position: SeriesLabelPosition,
+    size: u32,
+) -> DrawResult {
+    chart
+        .configure_series_labels()
+        .position(position)
+        .label_font(font(size))
+        .background_style(WHITE.mix(0.9))
+        .border_style(BLACK.mix(0.3))
+        .draw()?;
+    Ok(())
+}
+
+/// The label of row `y` of a chart whose rows are drawn top-down from `labels`.
+pub fn row_label(labels: &[String], y: f64) -> String {
+    let n = labels.len();
+    let i = y.round();
+    if (y - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < n {
+        labels[n - 1 - i as usize].clone()
+    } else {
+        String::new()
     }
 }

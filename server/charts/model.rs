@@ -3,7 +3,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, GREY, SLIDE};
+use super::{colour, font, legend, render, GREY, SLIDE};
 use crate::analysis::participation::FitReport;
 
 /// Each country's estimated probability of taking part against its weight: participants
@@ -11,16 +11,13 @@ use crate::analysis::participation::FitReport;
 /// zero line (they carry no weight).
 pub fn propensity_vs_weight(r: &FitReport) -> String {
     const TITLE: &str = "Estimated participation probability and weight";
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+    render(TITLE, SLIDE, |root| {
         let max_weight = r.units.iter().map(|u| u.weight).fold(1.0f64, f64::max) * 1.12;
         let mut heaviest: Vec<&crate::analysis::participation::UnitReport> =
             r.units.iter().filter(|u| u.participated).collect();
         heaviest.sort_by(|a, b| b.weight.total_cmp(&a.weight));
         let labelled: Vec<&str> = heaviest.iter().take(10).map(|u| u.id.as_str()).collect();
-        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(TITLE, font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -62,20 +59,9 @@ pub fn propensity_vs_weight(r: &FitReport) -> String {
                         + Text::new(u.id.clone(), (8, -16), font(14))
                 }),
         )?;
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .label_font(font(15))
-            .background_style(WHITE.mix(0.9))
-            .border_style(BLACK.mix(0.3))
-            .draw()?;
-        root.present()?;
+        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }
 
 /// Mirrored histograms of the estimated probability: participants above the axis,
@@ -84,8 +70,7 @@ pub fn propensity_vs_weight(r: &FitReport) -> String {
 pub fn overlap(r: &FitReport) -> String {
     const TITLE: &str = "Overlap of participation probabilities";
     const BINS: usize = 20;
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
+    render(TITLE, SLIDE, |root| {
         let mut up = [0usize; BINS];
         let mut down = [0usize; BINS];
         for u in &r.units {
@@ -97,9 +82,7 @@ pub fn overlap(r: &FitReport) -> String {
             }
         }
         let top = up.iter().chain(&down).copied().max().unwrap_or(1).max(1) as f64 * 1.15;
-        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(root)
             .caption(TITLE, font(24))
             .margin(16)
             .x_label_area_size(50)
@@ -159,18 +142,7 @@ pub fn overlap(r: &FitReport) -> String {
             vec![(0.0, 0.0), (1.0, 0.0)],
             BLACK.stroke_width(1),
         ))?;
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperLeft)
-            .label_font(font(15))
-            .background_style(WHITE.mix(0.9))
-            .border_style(BLACK.mix(0.3))
-            .draw()?;
-        root.present()?;
+        legend(&mut chart, SeriesLabelPosition::UpperLeft, 15)?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }

@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, tick, GREY, SLIDE};
+use super::{colour, failed_chart, font, legend, render, tick, GREY, SLIDE};
 use crate::analysis::planner::Plan;
 
 /// Effective number of countries (left) and mean |SMD| (right) after 0, 1, ... k recruits:
@@ -45,11 +45,8 @@ pub fn paths(p: &Plan) -> String {
             ("At random (mean)", with_start(start, random)),
         ]
     };
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
-        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
-        let root = root.titled(TITLE, font(24))?;
+    render(TITLE, SLIDE, |root| {
+        let root = &root.titled(TITLE, font(24))?;
         let (left, right) = root.split_horizontally(SLIDE.0 / 2);
         for (field, area, desc) in [
             (0, &left, "Effective number of countries"),
@@ -94,19 +91,8 @@ pub fn paths(p: &Plan) -> String {
                         .map(move |&pt| EmptyElement::at(pt) + super::coverage::marker(i, c)),
                 )?;
             }
-            chart
-                .configure_series_labels()
-                .position(SeriesLabelPosition::UpperLeft)
-                .label_font(font(14))
-                .background_style(WHITE.mix(0.9))
-                .border_style(BLACK.mix(0.3))
-                .draw()?;
+            legend(&mut chart, SeriesLabelPosition::UpperLeft, 14)?;
         }
-        root.present()?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }

@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, SLIDE};
+use super::{colour, failed_chart, font, render, SLIDE};
 use crate::analysis::sensitivity::Sensitivity;
 
 pub fn trimming(s: &Sensitivity) -> String {
@@ -27,11 +27,8 @@ pub fn trimming(s: &Sensitivity) -> String {
                 .map_or("none".to_string(), |q| format!("{:.0}th", 100.0 * q))
         })
         .collect();
-    let mut svg = String::new();
-    let result = (|| -> Result<(), Box<dyn std::error::Error>> {
-        let root = SVGBackend::with_string(&mut svg, SLIDE).into_drawing_area();
-        root.fill(&WHITE)?;
-        let root = root.titled(TITLE, font(24))?;
+    render(TITLE, SLIDE, |root| {
+        let root = &root.titled(TITLE, font(24))?;
         let (left, right) = root.split_horizontally(SLIDE.0 / 2);
         let last = (labels.len() - 1) as f64;
         let x_formatter = |x: &f64| {
@@ -91,11 +88,6 @@ pub fn trimming(s: &Sensitivity) -> String {
             chart.draw_series(LineSeries::new(series.clone(), c.stroke_width(3)))?;
             chart.draw_series(series.iter().map(|&p| Circle::new(p, 6, c.filled())))?;
         }
-        root.present()?;
         Ok(())
-    })();
-    match result {
-        Ok(()) => svg,
-        Err(e) => failed_chart(TITLE, &format!("The chart could not be drawn: {e}")),
-    }
+    })
 }

@@ -125,30 +125,57 @@ impl Response {
     }
 }
 
-/// One HTTP/1.1 request over a fresh connection (Connection: close).
+/// One HTTP/1.1 request over a fresh connection (Connection: close), without a body.
 pub fn http(
     addr: std::net::SocketAddr,
     method: &str,
     path: &str,
     extra_headers: &[(&str, &str)],
 ) -> Response {
+    request(addr, method, path, extra_headers, None)
+}
+
+/// One HTTP/1.1 request with a body of the given content type.
+pub fn http_body(
+    addr: std::net::SocketAddr,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    content_type: &str,
+    body: &[u8],
+) -> Response {
+    request(addr, method, path, headers, Some((content_type, body)))
+}
+
+/// A Host header among the extra headers replaces the default one (the bound address).
+fn request(
+    addr: std::net::SocketAddr,
+    method: &str,
+    path: &str,
+    extra_headers: &[(&str, &str)],
+    body: Option<(&str, &[u8])>,
+) -> Response {
     let mut stream = TcpStream::connect(addr).expect("connect");
-    // A Host header among the extra headers replaces the default one.
     let host = extra_headers
         .iter()
         .find(|(k, _)| k.eq_ignore_ascii_case("host"))
         .map_or_else(|| addr.to_string(), |(_, v)| v.to_string());
-    let mut request = format!(
-        "{method} {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\nContent-Length: 0\r\n"
-    );
+    let length = body.map_or(0, |b| b.1.len());
+    let mut head = format!("{method} {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\nContent-Length: {length}\r\n");
+    if let Some((content_type, _)) = body {
+        head.push_str(&format!("Content-Type: {content_type}\r\n"));
+    }
     for (k, v) in extra_headers
         .iter()
         .filter(|(k, _)| !k.eq_ignore_ascii_case("host"))
     {
-        request.push_str(&format!("{k}: {v}\r\n"));
+        head.push_str(&format!("{k}: {v}\r\n"));
     }
-    request.push_str("\r\n");
-    stream.write_all(request.as_bytes()).expect("send");
+    head.push_str("\r\n");
+    stream.write_all(head.as_bytes()).expect("send");
+    if let Some((_, bytes)) = body {
+        stream.write_all(bytes).expect("send body");
+    }
     let mut raw = Vec::new();
     stream.read_to_end(&mut raw).expect("read");
     let text = String::from_utf8_lossy(&raw).to_string();
@@ -221,52 +248,6 @@ pub fn start_server_full(dir: &Path, projects: Option<PathBuf>) -> (std::net::So
         });
     });
     rx.recv().expect("server address")
-}
-
-/// One HTTP/1.1 request with a body.
-pub fn http_body(
-    addr: std::net::SocketAddr,
-    method: &str,
-    path: &str,
-    headers: &[(&str, &str)],
-    content_type: &str,
-    body: &[u8],
-) -> Response {
-    let mut stream = TcpStream::connect(addr).expect("connect");
-    let mut request = format!("{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\nContent-Type: {content_type}\r\nContent-Length: {}\r\n", body.len());
-    for (k, v) in headers {
-        request.push_str(&format!("{k}: {v}\r\n"));
-    }
-    request.push_str("\r\n");
-    stream.write_all(request.as_bytes()).expect("send");
-    stream.write_all(body).expect("send body");
-    let mut raw = Vec::new();
-    stream.read_to_end(&mut raw).expect("read");
-    let text = String::from_utf8_lossy(&raw).to_string();
-    let (head, body) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
-    let mut lines = head.lines();
-    let status = lines
-        .next()
-        .and_then(|l| l.split_whitespace().nth(1))
-        .and_then(|s| s.parse().ok())
-        .unwrap_or(0);
-    let headers: Vec<(String, String)> = lines
-        .filter_map(|l| l.split_once(':'))
-        .map(|(k, v)| (k.trim().to_ascii_lowercase(), v.trim().to_string()))
-        .collect();
-    let body = if headers
-        .iter()
-        .any(|(k, v)| k == "transfer-encoding" && v.contains("chunked"))
-    {
-        dechunk(body)
-    } else {
-        body.to_string()
-    };
-    Response {
-        status,
-        headers,
-        body,
-    }
 }
 
 /// A multipart/form-data body: text fields, then files (field, file name, contents).
