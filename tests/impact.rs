@@ -47,6 +47,12 @@ fn corrections_move_the_pooled_estimate_toward_the_truth() {
             );
         }
     }
+    // Population-proportional country shares (log population taken as a logarithm).
+    let pop: Value = serde_json::from_str(&http(addr, "GET", "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0&shares=population:log_population", &[]).body).unwrap();
+    assert_eq!(pop["impact"]["shares"]["population"], "log_population");
+    assert!(pop["notes"]
+        .to_string()
+        .contains("proportional to population"));
     let page = http(addr, "GET", "/impact?bootstrap=49", &[]);
     assert_eq!(page.status, 200);
     assert!(page.body.matches("<svg").count() >= 2);

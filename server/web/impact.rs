@@ -30,6 +30,8 @@ struct ImpactPage<'a> {
     outcomes: Vec<Choice>,
     predictors: Vec<Choice>,
     families: Vec<Choice>,
+    /// Country shares: equal, or proportional to a population column.
+    shares: Vec<Choice>,
     impact_query: String,
     pooled_chart: String,
     coefficient_chart: String,
@@ -135,6 +137,9 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
         })?,
     };
     let shares = match (get("shares").as_deref(), get("population")) {
+        (Some(s), _) if s.starts_with("population:") => {
+            Shares::Population(s["population:".len()..].to_string())
+        }
         (None | Some("equal"), _) => Shares::Equal,
         (Some("population"), Some(col)) => Shares::Population(col),
         (Some("population"), None) => {
@@ -229,6 +234,22 @@ pub async fn page(
                 selected: r.impact.predictors.contains(c),
             }))
             .collect(),
+        shares: std::iter::once(Choice {
+            value: "equal".into(),
+            label: "each country by its weight".into(),
+            selected: r.impact.shares == Shares::Equal,
+        })
+        .chain(
+            indicators
+                .iter()
+                .filter(|c| c.contains("pop"))
+                .map(|c| Choice {
+                    value: format!("population:{c}"),
+                    label: format!("weight × population ({})", project.manifest.label(c)),
+                    selected: r.impact.shares == Shares::Population(c.clone()),
+                }),
+        )
+        .collect(),
         families: [
             (Family::Gaussian, "Linear (least squares)"),
             (Family::Binomial, "Logistic (0/1 outcome)"),
