@@ -281,7 +281,7 @@ pub fn impact(
     let mut notes = vec![
         "Unweighted: design weights rescaled so that every participating country counts the same. Weighted: so that each country counts by its country weight.".to_string(),
         "Confidence intervals and p-values use standard errors clustered by country (CR1); with few countries they are rough, and the wild cluster bootstrap p-values are the safer guide.".to_string(),
-        "The Mills-ratio variant does not correct its standard errors for the estimated first step.".to_string(),
+        "The Mills-ratio variant changes the model, not the weights (its pooled mean is the unweighted one), and does not correct its standard errors for the estimated first step.".to_string(),
     ];
     if let Shares::Population(c) = &imp.shares {
         notes.push(format!(

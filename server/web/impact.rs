@@ -78,8 +78,8 @@ pub(crate) fn side_by_side(r: &ImpactReport) -> Vec<(String, Vec<Cell>)> {
                     }
                     None => Cell {
                         main: String::new(),
-                        detail: if j == 0 {
-                            v.error.clone().unwrap_or_default()
+                        detail: if j == 0 && v.error.is_some() {
+                            "not estimated (see the pooled means)".to_string()
                         } else {
                             String::new()
                         },
