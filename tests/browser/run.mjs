@@ -65,6 +65,16 @@ for (const [where, selector, starts] of [['/coverage', 'a[href^="/coverage/map.s
   check(text.startsWith(starts), `${where} download ${download.suggestedFilename()} starts with ${JSON.stringify(text.slice(0, 20))}`);
 }
 
+// The meeting report from the button.
+await page.goto(base + '/balance?wave=2');
+const [report] = await Promise.all([page.waitForEvent('download'), page.click('a.report-button')]);
+const reportFile = path.join(out, report.suggestedFilename());
+await report.saveAs(reportFile);
+const reportText = fs.readFileSync(reportFile, 'utf8');
+check(reportText.includes('id="reproducibility"') && reportText.includes('Wave 2.'), 'the report download is incomplete');
+await page.goto('file://' + reportFile);
+await page.screenshot({ path: path.join(out, 'report.png'), fullPage: false });
+
 check(consoleErrors.length === 0, `browser errors: ${consoleErrors.join('; ')}`);
 await browser.close();
 if (failures.length) {
