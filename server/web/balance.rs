@@ -7,7 +7,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::context::{cell, csv_text, off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -47,7 +47,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, b) = compute(&state, &query)?;
+    let (form, b) = off_thread(&state, &query, compute).await?;
     let cells = (0..b.rows.len())
         .map(|i| {
             b.methods
@@ -76,7 +76,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Json<BalanceComparison>> {
-    Ok(Json(compute(&state, &query)?.1))
+    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -84,7 +84,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, b) = compute(&state, &query)?;
+    let (_, b) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "smd.svg" => Ok(svg_response(
             "balance-smd.svg",

@@ -214,3 +214,16 @@ pub fn cell(x: Option<f64>) -> String {
     x.filter(|v| v.is_finite())
         .map_or_else(String::new, |v| v.to_string())
 }
+
+/// Runs a page's computation on the blocking pool, so that a long analysis (a bootstrap,
+/// say) does not hold up the server's other requests.
+pub async fn off_thread<T: Send + 'static>(
+    state: &Arc<AppState>,
+    query: &Query,
+    compute: fn(&AppState, &Query) -> AppResult<T>,
+) -> AppResult<T> {
+    let (state, query) = (Arc::clone(state), query.clone());
+    tokio::task::spawn_blocking(move || compute(&state, &query))
+        .await
+        .map_err(|e| AppError::Internal(format!("the computation stopped: {e}")))?
+}

@@ -7,7 +7,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::context::{cell, csv_text, off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -44,7 +44,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, c) = compute(&state, &query)?;
+    let (form, c) = off_thread(&state, &query, compute).await?;
     let html = CoveragePage {
         page: "coverage",
         nav_query: form.query.clone(),
@@ -63,7 +63,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Json<CoverageReport>> {
-    Ok(Json(compute(&state, &query)?.1))
+    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -71,7 +71,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, c) = compute(&state, &query)?;
+    let (_, c) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "map.svg" => Ok(svg_response(
             "component-map.svg",

@@ -8,7 +8,9 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, resolve, Choice, Query as PageQuery, SettingsForm};
+use super::context::{
+    cell, csv_text, off_thread, resolve, Choice, Query as PageQuery, SettingsForm,
+};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -202,7 +204,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, r, project) = compute(&state, &query)?;
+    let (form, r, project) = off_thread(&state, &query, compute).await?;
     let variables = project
         .manifest
         .microdata
@@ -278,7 +280,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Json<ImpactReport>> {
-    Ok(Json(compute(&state, &query)?.1))
+    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -286,7 +288,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, r, _) = compute(&state, &query)?;
+    let (_, r, _) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "pooled.svg" => Ok(svg_response(
             "pooled-estimates.svg",

@@ -8,7 +8,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::context::{cell, csv_text, off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -78,7 +78,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, r) = compute(&state, &query)?;
+    let (form, r) = off_thread(&state, &query, compute).await?;
     let html = ModelPage {
         page: "model",
         nav_query: form.query.clone(),
@@ -98,7 +98,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Json<FitReport>> {
-    Ok(Json(compute(&state, &query)?.1))
+    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -106,7 +106,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, r) = compute(&state, &query)?;
+    let (_, r) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "propensity.svg" => Ok(svg_response(
             "propensity-and-weight.svg",

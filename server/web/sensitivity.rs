@@ -7,7 +7,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, resolve, SettingsForm};
+use super::context::{cell, csv_text, off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -42,7 +42,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, s) = compute(&state, &query)?;
+    let (form, s) = off_thread(&state, &query, compute).await?;
     let html = SensitivityPage {
         page: "sensitivity",
         nav_query: form.query.clone(),
@@ -60,7 +60,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Json<Sensitivity>> {
-    Ok(Json(compute(&state, &query)?.1))
+    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -68,7 +68,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, s) = compute(&state, &query)?;
+    let (_, s) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "trimming.svg" => Ok(svg_response(
             "trimming.svg",
