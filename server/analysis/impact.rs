@@ -353,19 +353,30 @@ fn estimate(
                 .zip(&f.se)
                 .map(|(c, s)| 2.0 * normal::cdf(-(c / s).abs()))
                 .collect();
-            let p_bootstrap = (imp.family == Family::Gaussian && imp.replicates > 0).then(|| {
+            let p_bootstrap = (imp.replicates > 0).then(|| {
                 (0..x.ncols())
                     .map(|j| {
-                        regression::wild_cluster_bootstrap(
-                            xs.view(),
-                            &ys,
-                            Some(&ws),
-                            &cs,
-                            j,
-                            imp.replicates,
-                            seed,
-                        )
-                        .unwrap_or(f64::NAN)
+                        let p = match imp.family {
+                            Family::Gaussian => regression::wild_cluster_bootstrap(
+                                xs.view(),
+                                &ys,
+                                Some(&ws),
+                                &cs,
+                                j,
+                                imp.replicates,
+                                seed,
+                            ),
+                            Family::Binomial => regression::score_cluster_bootstrap(
+                                xs.view(),
+                                &ys,
+                                Some(&ws),
+                                &cs,
+                                j,
+                                imp.replicates,
+                                seed,
+                            ),
+                        };
+                        p.unwrap_or(f64::NAN)
                     })
                     .collect()
             });
