@@ -58,7 +58,7 @@ pub fn pooled(r: &ImpactReport) -> String {
                 c.stroke_width(3),
             )))?;
             chart.draw_series(std::iter::once(
-                EmptyElement::at((*est, y)) + super::coverage::marker(i, c),
+                EmptyElement::at((*est, y)) + super::marker(i, c),
             ))?;
         }
         Ok(())
@@ -129,9 +129,9 @@ pub fn coefficients(r: &ImpactReport) -> String {
                     )
                 }))?
                 .label(v.label.clone())
-                .legend(move |(x, y)| EmptyElement::at((x, y)) + super::coverage::marker(vi, c));
+                .legend(move |(x, y)| EmptyElement::at((x, y)) + super::marker(vi, c));
             chart.draw_series(terms.iter().enumerate().map(|(row, &j)| {
-                EmptyElement::at((v.coef[j], offset(row))) + super::coverage::marker(vi, c)
+                EmptyElement::at((v.coef[j], offset(row))) + super::marker(vi, c)
             }))?;
         }
         legend(&mut chart, SeriesLabelPosition::UpperRight, 13)?;

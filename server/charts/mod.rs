@@ -125,3 +125,20 @@ pub fn row_label(labels: &[String], y: f64) -> String {
         String::new()
     }
 }
+
+/// Marker shape `i`: circle, triangle, square, cross, diamond, then hollow circle, square
+/// and triangle.
+pub fn marker<DB: DrawingBackend>(i: usize, c: RGBColor) -> DynElement<'static, DB, (i32, i32)> {
+    let filled = ShapeStyle::from(c).filled();
+    let stroke = ShapeStyle::from(c).stroke_width(3);
+    match i % 8 {
+        0 => Circle::new((0, 0), 7, filled).into_dyn(),
+        1 => TriangleMarker::new((0, 0), 9, filled).into_dyn(),
+        2 => Rectangle::new([(-6, -6), (6, 6)], filled).into_dyn(),
+        3 => Cross::new((0, 0), 7, stroke).into_dyn(),
+        4 => Polygon::new(vec![(0, -9), (8, 0), (0, 9), (-8, 0)], filled).into_dyn(),
+        5 => Circle::new((0, 0), 7, stroke).into_dyn(),
+        6 => Rectangle::new([(-6, -6), (6, 6)], stroke).into_dyn(),
+        _ => TriangleMarker::new((0, 0), 9, stroke).into_dyn(),
+    }
+}

@@ -88,7 +88,7 @@ pub fn paths(p: &Plan) -> String {
                 chart.draw_series(
                     points
                         .iter()
-                        .map(move |&pt| EmptyElement::at(pt) + super::coverage::marker(i, c)),
+                        .map(move |&pt| EmptyElement::at(pt) + super::marker(i, c)),
                 )?;
             }
             legend(&mut chart, SeriesLabelPosition::UpperLeft, 14)?;

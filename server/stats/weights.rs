@@ -613,6 +613,23 @@ mod tests {
     use ndarray::array;
 
     #[test]
+    fn stabilised_weights_differ_only_in_scale() {
+        // Robins, Hernan & Brumback (2000): the factor P(T=1) brings the participants' mean
+        // weight near 1; after normalisation the two versions coincide.
+        let p = [0.2, 0.5, 0.8, 0.4];
+        let t = [true, true, false, true];
+        let plain = normalise(&inverse_probability(&p, &t).unwrap(), 4.0);
+        let stable = normalise(&stabilised_inverse_probability(&p, &t).unwrap(), 4.0);
+        for (a, b) in plain.iter().zip(&stable) {
+            assert!((a - b).abs() < 1e-12);
+        }
+        assert_eq!(
+            stabilised_inverse_probability(&p, &t).unwrap()[1],
+            0.75 / 0.5
+        );
+    }
+
+    #[test]
     fn raking_matches_a_two_way_table() {
         // Deming & Stephan's idea on a 2x2 toy: margins reproduced exactly (common practice).
         let a = vec![0, 0, 1, 1, 0];
