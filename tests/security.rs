@@ -128,3 +128,39 @@ fn start_up_messages() {
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("already in use"), "{}", out.stderr);
 }
+
+#[test]
+fn ctrl_c_stops_the_server_gracefully() {
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
+        .args([
+            "serve",
+            demo_dir().to_str().unwrap(),
+            "--addr",
+            "127.0.0.1:0",
+        ])
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("start the server");
+    // Wait for the "serving" line, then send SIGINT as Ctrl-C does.
+    let mut stdout = std::io::BufReader::new(child.stdout.take().unwrap());
+    let mut line = String::new();
+    std::io::BufRead::read_line(&mut stdout, &mut line).unwrap();
+    assert!(line.contains("serving"), "{line}");
+    let status = std::process::Command::new("kill")
+        .args(["-INT", &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(status.success());
+    let started = std::time::Instant::now();
+    loop {
+        if let Some(code) = child.try_wait().unwrap() {
+            assert!(code.success(), "exit status {code:?}");
+            break;
+        }
+        assert!(
+            started.elapsed().as_secs() < 10,
+            "the server did not stop within 10 s"
+        );
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+}

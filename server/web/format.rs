@@ -70,6 +70,11 @@ impl Fmt {
             Some(_) => "smd-poor",
         }
     }
+    /// CSS class of a known SMD.
+    pub fn smd_class_of(&self, x: &f64) -> &'static str {
+        self.smd_class(&Some(*x))
+    }
+
     /// CSS shade class of a rate, in steps of 20 points.
     pub fn shade(&self, x: &Option<f64>) -> String {
         x.map_or_else(
