@@ -13,15 +13,26 @@ use crate::project::Project;
 use crate::project::WaveView;
 use crate::web;
 
+/// Writes to standard output, ignoring a closed pipe (`gapwise fit ... | head`).
+fn emit(text: &str) {
+    use std::io::Write as _;
+    let _ = std::io::stdout().lock().write_all(text.as_bytes());
+}
+
+/// One JSON value, pretty-printed, on standard output.
+fn emit_json<T: serde::Serialize>(value: &T) {
+    emit(&(serde_json::to_string_pretty(value).unwrap_or_default() + "\n"));
+}
+
 /// `gapwise check DIR`: a summary and exit 0, or one line per problem and exit 1.
 pub fn check(dir: &Path, json: bool) -> i32 {
     match Project::load(dir) {
         Ok(project) => {
             let o = overview(&project);
             if json {
-                println!("{}", serde_json::to_string_pretty(&o).unwrap_or_default());
+                emit_json(&o);
             } else {
-                print!("{}", summary_text(&o));
+                emit(&summary_text(&o));
             }
             0
         }
@@ -248,12 +259,9 @@ pub fn fit(source: &UniverseSource, mut settings: Settings, json: bool) -> i32 {
                 report.wave = None;
             }
             if json {
-                println!(
-                    "{}",
-                    serde_json::to_string_pretty(&report).unwrap_or_default()
-                );
+                emit_json(&report);
             } else {
-                print!("{}", fit_text(&report));
+                emit(&fit_text(&report));
             }
             0
         }
@@ -350,9 +358,9 @@ pub fn plan(
                 p.wave = None;
             }
             if json {
-                println!("{}", serde_json::to_string_pretty(&p).unwrap_or_default());
+                emit_json(&p);
             } else {
-                print!("{}", plan_text(&p));
+                emit(&plan_text(&p));
             }
             0
         }
@@ -433,16 +441,18 @@ pub fn regress(
     ) {
         Ok(r) => {
             if json {
-                println!("{}", serde_json::to_string_pretty(&r).unwrap_or_default());
+                emit_json(&r);
             } else {
-                println!("{} model of {outcome}: {} respondents in {} clusters ({} rows with missing values left out)", r.family, r.n, r.clusters, r.dropped);
-                println!(
+                let mut out = format!("{} model of {outcome}: {} respondents in {} clusters ({} rows with missing values left out)\n", r.family, r.n, r.clusters, r.dropped);
+                let _ = writeln!(
+                    out,
                     "  {:<28} {:>14} {:>14}",
                     "term", "coefficient", "cluster s.e."
                 );
                 for ((t, c), s) in r.terms.iter().zip(&r.coef).zip(&r.se) {
-                    println!("  {t:<28} {c:>14.6} {s:>14.6}");
+                    let _ = writeln!(out, "  {t:<28} {c:>14.6} {s:>14.6}");
                 }
+                emit(&out);
             }
             0
         }
