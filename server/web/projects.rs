@@ -254,10 +254,19 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
     };
     let need =
         |key: &str, what: &str| one(key).ok_or_else(|| format!("choose the column with {what}"));
+    // Rules come as pairs of fields (indicator, cut-off); an empty indicator means no rule.
     let mut eligibility = Vec::new();
-    if let Some(indicator) = one("rule_indicator") {
-        let cut = one("rule_at_least")
-            .ok_or("give the eligibility rule a cut-off: a number or lowest-participant")?;
+    for (indicator, cut) in many("rule_indicator")
+        .into_iter()
+        .zip(many("rule_at_least"))
+    {
+        let (indicator, cut) = (indicator.trim().to_string(), cut.trim().to_string());
+        if indicator.is_empty() {
+            continue;
+        }
+        if cut.is_empty() {
+            return Err(format!("give the eligibility rule on '{indicator}' a cut-off: a number or lowest-participant"));
+        }
         let threshold = if cut == "lowest-participant" {
             Threshold::FromParticipants(ParticipantCut::LowestParticipant)
         } else {
@@ -297,7 +306,10 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
             ..Indicators::default()
         },
         eligibility,
-        recruitment: Recruitment::default(),
+        recruitment: Recruitment {
+            cost: one("cost"),
+            feasibility: one("feasibility"),
+        },
         microdata,
     })
 }
