@@ -332,3 +332,44 @@ fn score_bootstrap_for_logistic_models_separates_signal_from_noise() {
         regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, 2, 999, 3).unwrap()
     );
 }
+
+#[test]
+fn score_bootstrap_agrees_with_reference_within_monte_carlo_error() {
+    // Reference: the same statistic computed in numpy on a statsmodels restricted logit
+    // (tests/fixtures/make_fixtures.py), first 40 men of wagepan, B = 9999 each.
+    let reference = reference();
+    let (header, rows) = read_csv("wagepan.csv");
+    let nr = header.iter().position(|h| h == "nr").unwrap();
+    let mut men: Vec<i64> = rows.iter().map(|r| r[nr] as i64).collect();
+    men.dedup();
+    for case in reference["score_bootstrap"].as_array().unwrap() {
+        let g = case["clusters"].as_u64().unwrap() as usize;
+        let j = case["term"].as_u64().unwrap() as usize;
+        let chosen = &men[..g];
+        let sub: Vec<Vec<f64>> = rows
+            .iter()
+            .filter(|r| chosen.contains(&(r[nr] as i64)))
+            .cloned()
+            .collect();
+        let x = columns(&header, &sub, &["educ", "exper", "married"], true);
+        let y: Vec<f64> = sub
+            .iter()
+            .map(|r| r[header.iter().position(|h| h == "union").unwrap()])
+            .collect();
+        let cluster: Vec<usize> = sub
+            .iter()
+            .map(|r| chosen.iter().position(|m| *m == r[nr] as i64).unwrap())
+            .collect();
+        let p =
+            regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, j, 9999, 11).unwrap();
+        let reference_p = case["p"].as_f64().unwrap();
+        let tolerance = 4.0
+            * (2.0 * reference_p * (1.0 - reference_p) / 9999.0)
+                .sqrt()
+                .max(0.002);
+        assert!(
+            (p - reference_p).abs() < tolerance,
+            "term {j}: {p} vs reference {reference_p} (tolerance {tolerance})"
+        );
+    }
+}
