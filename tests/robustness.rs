@@ -265,3 +265,40 @@ fn awkward_universes_get_finite_numbers_or_clear_messages() {
         }
     }
 }
+
+#[test]
+fn pages_of_a_tiny_project_answer_with_messages_not_failures() {
+    // Four countries: most analyses cannot run; every page must say so plainly.
+    let dir = valid_project("tinypages");
+    let addr = start_server(dir.path());
+    for page in [
+        "/",
+        "/coverage",
+        "/model",
+        "/balance",
+        "/plan?replicates=5",
+        "/impact?bootstrap=9",
+        "/sensitivity",
+        "/report",
+        "/projects",
+        "/api/overview",
+        "/api/model",
+        "/api/plan",
+    ] {
+        let r = http(addr, "GET", page, &[]);
+        assert!(
+            matches!(r.status, 200 | 400 | 404),
+            "{page}: {} {}",
+            r.status,
+            r.body
+        );
+        assert!(!r.body.contains("NaN"), "{page} shows NaN");
+        if r.status != 200 {
+            assert!(
+                r.body.len() > 20 && !r.body.contains("panicked"),
+                "{page}: unclear message {}",
+                r.body
+            );
+        }
+    }
+}

@@ -213,8 +213,9 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
                 .sqrt();
             if sd == 0.0 || !sd.is_finite() {
                 return Err(DesignError(format!(
-                    "'{}' takes a single value among the {n} countries analysed in this wave, so it cannot explain participation; leave it out",
-                    terms[j]
+                    "'{}' takes a single value among the {n} countr{} analysed in this wave, so it cannot explain participation; leave it out",
+                    terms[j],
+                    if n == 1 { "y" } else { "ies" }
                 )));
             }
             centre[j] = mean;

@@ -47,3 +47,60 @@ impl IntoResponse for AppError {
 }
 
 pub type AppResult<T> = Result<T, AppError>;
+
+#[derive(askama::Template)]
+#[template(path = "error.html")]
+struct ErrorPage<'a> {
+    page: &'static str,
+    nav_query: String,
+    heading: &'static str,
+    message: String,
+    retry: String,
+    cautions: &'a [crate::analysis::cautions::Caution],
+}
+
+/// Shows errors of pages (not of `/api/` twins or downloads) inside the usual layout, so a
+/// reader keeps the navigation and can go back or retry with default settings.
+pub async fn html_errors(
+    request: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> Response {
+    let path = request.uri().path().to_string();
+    let is_page = !path.starts_with("/api/")
+        && !path.starts_with("/static/")
+        && !path.rsplit('/').next().unwrap_or("").contains('.');
+    let response = next.run(request).await;
+    let status = response.status();
+    let plain = response
+        .headers()
+        .get(axum::http::header::CONTENT_TYPE)
+        .and_then(|v| v.to_str().ok())
+        .is_some_and(|v| v.starts_with("text/plain"));
+    if !is_page
+        || !plain
+        || !(status.is_client_error() || status.is_server_error())
+        || status == StatusCode::MISDIRECTED_REQUEST
+        || status == StatusCode::FORBIDDEN
+    {
+        return response;
+    }
+    let body = axum::body::to_bytes(response.into_body(), 1 << 20)
+        .await
+        .unwrap_or_default();
+    let page = ErrorPage {
+        page: "",
+        nav_query: String::new(),
+        heading: if status == StatusCode::NOT_FOUND {
+            "Not found"
+        } else {
+            "This cannot be shown with these settings"
+        },
+        message: String::from_utf8_lossy(&body).to_string(),
+        retry: if path == "/" { String::new() } else { path },
+        cautions: &crate::analysis::cautions::STANDING,
+    };
+    match askama::Template::render(&page) {
+        Ok(html) => (status, axum::response::Html(html)).into_response(),
+        Err(_) => (status, String::from_utf8_lossy(&body).to_string()).into_response(),
+    }
+}

@@ -110,6 +110,7 @@ async fn reload(State(state): State<Arc<AppState>>) -> AppResult<Json<Reloaded>>
 /// limit on request bodies.
 pub fn app(state: Arc<AppState>, guard: guard::Guard) -> Router {
     router(state)
+        .layer(axum::middleware::from_fn(error::html_errors))
         .layer(axum::middleware::from_fn_with_state(
             Arc::new(guard),
             guard::check,
@@ -165,6 +166,9 @@ pub async fn serve(
     })?;
     let local = listener.local_addr().map_err(|e| e.to_string())?;
     let guard = guard::Guard::for_address(local, allow_remote);
+    // Listen for Ctrl-C before announcing the address, so an early Ctrl-C also stops
+    // the server gracefully.
+    let stop = stop_signal()?;
     println!(
         "gapwise {} serving \"{}\" at http://{local}/  (Ctrl-C stops)",
         crate::VERSION,
@@ -175,9 +179,31 @@ pub async fn serve(
         guard.token
     );
     axum::serve(listener, app(state, guard))
-        .with_graceful_shutdown(async {
-            let _ = tokio::signal::ctrl_c().await;
-        })
+        .with_graceful_shutdown(stop)
         .await
         .map_err(|e| format!("the server stopped: {e}"))
+}
+
+/// A future that completes on Ctrl-C (SIGINT) or SIGTERM; the handlers are installed now.
+#[cfg(unix)]
+fn stop_signal() -> Result<impl std::future::Future<Output = ()>, String> {
+    use tokio::signal::unix::{signal, SignalKind};
+    let mut interrupt =
+        signal(SignalKind::interrupt()).map_err(|e| format!("cannot listen for Ctrl-C: {e}"))?;
+    let mut terminate = signal(SignalKind::terminate())
+        .map_err(|e| format!("cannot listen for termination: {e}"))?;
+    Ok(async move {
+        tokio::select! {
+            _ = interrupt.recv() => {}
+            _ = terminate.recv() => {}
+        }
+    })
+}
+
+/// A future that completes on Ctrl-C.
+#[cfg(not(unix))]
+fn stop_signal() -> Result<impl std::future::Future<Output = ()>, String> {
+    Ok(async {
+        let _ = tokio::signal::ctrl_c().await;
+    })
 }
