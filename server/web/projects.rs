@@ -48,6 +48,8 @@ struct MapPage<'a> {
     title: String,
     frame_columns: Vec<String>,
     micro_columns: Vec<String>,
+    /// Best guesses for each role, preselected in the form.
+    guess: Guesses,
     problems: Vec<String>,
     cautions: &'a [Caution],
 }
@@ -223,15 +225,47 @@ pub async fn map_form(
     render_map(&q.name, &staging, Vec::new()).map(Html)
 }
 
+/// Preselected columns: the first whose lower-case name contains one of the hints.
+#[derive(Default)]
+struct Guesses {
+    code: String,
+    name: String,
+    wave: String,
+    participation: String,
+    micro_country: String,
+    micro_wave: String,
+    micro_weight: String,
+}
+
+fn guess(columns: &[String], hints: &[&str]) -> String {
+    hints
+        .iter()
+        .find_map(|h| columns.iter().find(|c| c.to_lowercase().contains(h)))
+        .cloned()
+        .unwrap_or_default()
+}
+
 fn render_map(name: &str, staging: &std::path::Path, problems: Vec<String>) -> AppResult<String> {
+    let frame_columns = columns_of(staging, "frame");
+    let micro_columns = columns_of(staging, "microdata");
+    let guesses = Guesses {
+        code: guess(&frame_columns, &["iso", "code"]),
+        name: guess(&frame_columns, &["country", "name"]),
+        wave: guess(&frame_columns, &["wave", "round", "year"]),
+        participation: guess(&frame_columns, &["took_part", "particip", "flag", "member"]),
+        micro_country: guess(&micro_columns, &["iso", "code", "country"]),
+        micro_wave: guess(&micro_columns, &["wave", "round", "year"]),
+        micro_weight: guess(&micro_columns, &["weight", "dweight", "wt"]),
+    };
     Ok(MapPage {
+        guess: guesses,
         page: "projects",
         nav_query: String::new(),
         name: name.to_string(),
         title: std::fs::read_to_string(staging.join("title.txt"))
             .unwrap_or_else(|_| name.to_string()),
-        frame_columns: columns_of(staging, "frame"),
-        micro_columns: columns_of(staging, "microdata"),
+        frame_columns,
+        micro_columns,
         problems,
         cautions: &STANDING,
     }
