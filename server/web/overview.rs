@@ -7,6 +7,7 @@ use axum::extract::State;
 use axum::response::{Html, IntoResponse};
 use axum::Json;
 
+use super::context::{off_thread, Query};
 use super::error::AppResult;
 use super::state::AppState;
 use super::svg_response;
@@ -61,9 +62,14 @@ impl OverviewPage<'_> {
     }
 }
 
+/// The overview of the current project (it fits a model per wave for the trends, so it
+/// runs on the blocking pool like the other pages).
+fn compute(state: &AppState, _query: &Query) -> AppResult<Overview> {
+    Ok(overview(&state.project()))
+}
+
 pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResponse> {
-    let project = state.project();
-    let o = overview(&project);
+    let o = off_thread(&state, &Query::new(), compute).await?;
     let html = OverviewPage {
         page: "overview",
         nav_query: String::new(),
@@ -76,13 +82,14 @@ pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResp
     Ok(Html(html))
 }
 
-pub async fn json(State(state): State<Arc<AppState>>) -> Json<Overview> {
-    Json(overview(&state.project()))
+pub async fn json(State(state): State<Arc<AppState>>) -> AppResult<Json<Overview>> {
+    Ok(Json(off_thread(&state, &Query::new(), compute).await?))
 }
 
-pub async fn coverage_svg(State(state): State<Arc<AppState>>) -> impl IntoResponse {
-    svg_response(
+pub async fn coverage_svg(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResponse> {
+    let o = off_thread(&state, &Query::new(), compute).await?;
+    Ok(svg_response(
         "coverage-by-region.svg",
-        charts::coverage::coverage_by_group(&overview(&state.project())),
-    )
+        charts::coverage::coverage_by_group(&o),
+    ))
 }
