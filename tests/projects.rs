@@ -212,3 +212,28 @@ fn an_interrupted_save_leaves_the_previous_project_intact() {
     assert!(Project::load(&p1).is_ok());
     assert_eq!(store::list(projects.path()), vec!["p1".to_string()]);
 }
+
+#[test]
+fn uploads_over_the_limits_get_clear_errors() {
+    let projects = TempDir::new("limits");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    let mut big = String::from("iso,name,wave,took_part,gdp,democracy,region\n");
+    for i in 0..100_001 {
+        big.push_str(&format!("X{i},N,1,0,1,1,R\n"));
+    }
+    let r = upload(addr, &origin, "big", big.as_bytes());
+    assert_eq!(r.status, 400);
+    assert!(r.body.contains("the limits are 100000 rows"), "{}", r.body);
+    let wide = format!(
+        "{}\n",
+        (0..1_001)
+            .map(|i| format!("c{i}"))
+            .collect::<Vec<_>>()
+            .join(",")
+    );
+    let r = upload(addr, &origin, "wide", wide.as_bytes());
+    assert_eq!(r.status, 400);
+    assert!(r.body.contains("1001 columns"), "{}", r.body);
+    assert!(store::list(projects.path()).is_empty());
+}

@@ -108,13 +108,10 @@ fn csv_shape(bytes: &[u8]) -> (usize, usize) {
         .position(|&b| b == b'\n')
         .unwrap_or(bytes.len());
     let columns = bytes[..header_end].iter().filter(|&&b| b == b',').count() + 1;
-    let lines = bytes.iter().filter(|&&b| b == b'\n').count();
-    (
-        lines
-            .saturating_sub(1)
-            .max(usize::from(!bytes.is_empty() && lines == 0)),
-        columns,
-    )
+    // Lines, counting a last line without a newline; the header is not a row.
+    let newlines = bytes.iter().filter(|&&b| b == b'\n').count();
+    let unterminated = usize::from(bytes.last().is_some_and(|&b| b != b'\n'));
+    ((newlines + unterminated).saturating_sub(1), columns)
 }
 
 pub async fn upload(
