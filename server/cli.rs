@@ -547,7 +547,7 @@ pub fn export_weights(dir: &Path, settings: &Settings, out: &Path) -> i32 {
             Err(e) => waves.push(serde_json::json!({"wave": wave, "error": e.to_string()})),
         }
     }
-    let csv = crate::web::context::csv_text(
+    let csv = crate::csv_out::csv_text(
         &["wave", "code", "name", "took_part", "propensity", "weight"],
         rows,
     );

@@ -8,6 +8,7 @@
 pub mod analysis;
 pub mod charts;
 pub mod cli;
+pub mod csv_out;
 pub mod demo;
 pub mod project;
 pub mod stats;

@@ -44,6 +44,22 @@ fn assert_close(actual: &[f64], expected: &[f64], rel: f64, what: &str) {
     }
 }
 
+/// The model's coefficients and standard errors against a fixture's, to `rel`.
+fn assert_model_matches(r: &Value, fixture: &Value, rel: f64, what: &str) {
+    assert_close(
+        &floats(&r["model"]["coef"]),
+        &floats(&fixture["coef"]),
+        rel,
+        &format!("{what} coef"),
+    );
+    assert_close(
+        &floats(&r["model"]["se"]),
+        &floats(&fixture["se"]),
+        rel,
+        &format!("{what} se"),
+    );
+}
+
 /// Rounds to `digits` significant digits.
 fn significant(x: f64, digits: i32) -> f64 {
     if x == 0.0 {
@@ -75,18 +91,7 @@ fn spector_logit_matches_statsmodels_and_greene() {
     let sm = &reference["spector"]["logit"];
     assert_eq!(r["model"]["terms"], sm["terms"]);
     // statsmodels 0.15 Logit (Newton, tol 1e-14), offline fixture: 1e-6 relative.
-    assert_close(
-        &floats(&r["model"]["coef"]),
-        &floats(&sm["coef"]),
-        1e-6,
-        "logit coef",
-    );
-    assert_close(
-        &floats(&r["model"]["se"]),
-        &floats(&sm["se"]),
-        1e-6,
-        "logit se",
-    );
+    assert_model_matches(&r, sm, 1e-6, "logit");
     assert!(
         (r["model"]["log_likelihood"].as_f64().unwrap() - sm["log_likelihood"].as_f64().unwrap())
             .abs()
@@ -109,18 +114,7 @@ fn spector_probit_matches_statsmodels_and_greene() {
     let r = spector("probit");
     let reference = reference();
     let sm = &reference["spector"]["probit"];
-    assert_close(
-        &floats(&r["model"]["coef"]),
-        &floats(&sm["coef"]),
-        1e-6,
-        "probit coef",
-    );
-    assert_close(
-        &floats(&r["model"]["se"]),
-        &floats(&sm["se"]),
-        1e-6,
-        "probit se",
-    );
+    assert_model_matches(&r, sm, 1e-6, "probit");
     // Greene, the Spector-Mazzeo probit column (from memory), 3 significant digits.
     let greene_coef = [-7.45, 1.63, 0.0517, 1.43];
     for (a, e) in floats(&r["model"]["coef"]).iter().zip(greene_coef) {
@@ -144,18 +138,7 @@ fn mroz_participation_probit_matches_wooldridge_example() {
     ]);
     let reference = reference();
     let sm = &reference["mroz"]["probit"];
-    assert_close(
-        &floats(&r["model"]["coef"]),
-        &floats(&sm["coef"]),
-        1e-6,
-        "mroz probit coef",
-    );
-    assert_close(
-        &floats(&r["model"]["se"]),
-        &floats(&sm["se"]),
-        1e-6,
-        "mroz probit se",
-    );
+    assert_model_matches(&r, sm, 1e-6, "mroz probit");
     // Wooldridge, Introductory Econometrics, the probit of inlf used in Example 17.5's first
     // step (as printed in Example 17.1, from memory): 3 decimals.
     let printed: [f64; 8] = [0.270, -0.012, 0.131, 0.123, -0.0019, -0.053, -0.868, 0.036];

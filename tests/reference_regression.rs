@@ -169,41 +169,52 @@ fn cluster_robust_errors_match_statsmodels() {
     );
 }
 
-#[test]
-fn wild_cluster_bootstrap_agrees_with_reference_within_monte_carlo_error() {
-    let reference = reference();
+/// The first `g` men of wagepan: design (intercept, educ, exper, married), the outcome,
+/// and each row's cluster index.
+fn wagepan_first_men(g: usize, outcome: &str) -> (Array2<f64>, Vec<f64>, Vec<usize>) {
     let (header, rows) = read_csv("wagepan.csv");
     let nr = header.iter().position(|h| h == "nr").unwrap();
+    let y_col = header.iter().position(|h| h == outcome).unwrap();
     let mut men: Vec<i64> = rows.iter().map(|r| r[nr] as i64).collect();
     men.dedup();
-    for case in reference["wild_bootstrap"].as_array().unwrap() {
+    let chosen = &men[..g];
+    let sub: Vec<Vec<f64>> = rows
+        .iter()
+        .filter(|r| chosen.contains(&(r[nr] as i64)))
+        .cloned()
+        .collect();
+    let x = columns(&header, &sub, &["educ", "exper", "married"], true);
+    let y = sub.iter().map(|r| r[y_col]).collect();
+    let cluster = sub
+        .iter()
+        .map(|r| chosen.iter().position(|m| *m == r[nr] as i64).unwrap())
+        .collect();
+    (x, y, cluster)
+}
+
+/// Two independent Monte Carlo estimates of B = 9999 draws each: their difference has sd
+/// sqrt(2 p (1 - p) / B); allow four of them (common practice).
+fn assert_within_monte_carlo(p: f64, reference_p: f64, what: &str) {
+    let tolerance = 4.0
+        * (2.0 * reference_p * (1.0 - reference_p) / 9999.0)
+            .sqrt()
+            .max(0.002);
+    assert!(
+        (p - reference_p).abs() < tolerance,
+        "{what}: {p} vs reference {reference_p} (tolerance {tolerance})"
+    );
+}
+
+#[test]
+fn wild_cluster_bootstrap_agrees_with_reference_within_monte_carlo_error() {
+    // Reference: numpy refits with the null imposed (tests/fixtures/make_fixtures.py).
+    for case in reference()["wild_bootstrap"].as_array().unwrap() {
         let g = case["clusters"].as_u64().unwrap() as usize;
         let j = case["term"].as_u64().unwrap() as usize;
-        let chosen = &men[..g];
-        let sub: Vec<Vec<f64>> = rows
-            .iter()
-            .filter(|r| chosen.contains(&(r[nr] as i64)))
-            .cloned()
-            .collect();
-        let x = columns(&header, &sub, &["educ", "exper", "married"], true);
-        let y: Vec<f64> = sub
-            .iter()
-            .map(|r| r[header.iter().position(|h| h == "lwage").unwrap()])
-            .collect();
-        let cluster: Vec<usize> = sub
-            .iter()
-            .map(|r| chosen.iter().position(|m| *m == r[nr] as i64).unwrap())
-            .collect();
+        let (x, y, cluster) = wagepan_first_men(g, "lwage");
         let p =
             regression::wild_cluster_bootstrap(x.view(), &y, None, &cluster, j, 9999, 7).unwrap();
-        let reference_p = case["p"].as_f64().unwrap();
-        // Two independent Monte Carlo estimates of B = 9999 draws each: the difference has
-        // sd sqrt(2 p (1 - p) / B); allow four of them (common practice).
-        let tolerance = 4.0 * (2.0 * reference_p * (1.0 - reference_p) / 9999.0).sqrt();
-        assert!(
-            (p - reference_p).abs() < tolerance,
-            "G = {g}: {p} vs reference {reference_p} (tolerance {tolerance})"
-        );
+        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &format!("G = {g}"));
     }
 }
 
@@ -337,39 +348,12 @@ fn score_bootstrap_for_logistic_models_separates_signal_from_noise() {
 fn score_bootstrap_agrees_with_reference_within_monte_carlo_error() {
     // Reference: the same statistic computed in numpy on a statsmodels restricted logit
     // (tests/fixtures/make_fixtures.py), first 40 men of wagepan, B = 9999 each.
-    let reference = reference();
-    let (header, rows) = read_csv("wagepan.csv");
-    let nr = header.iter().position(|h| h == "nr").unwrap();
-    let mut men: Vec<i64> = rows.iter().map(|r| r[nr] as i64).collect();
-    men.dedup();
-    for case in reference["score_bootstrap"].as_array().unwrap() {
+    for case in reference()["score_bootstrap"].as_array().unwrap() {
         let g = case["clusters"].as_u64().unwrap() as usize;
         let j = case["term"].as_u64().unwrap() as usize;
-        let chosen = &men[..g];
-        let sub: Vec<Vec<f64>> = rows
-            .iter()
-            .filter(|r| chosen.contains(&(r[nr] as i64)))
-            .cloned()
-            .collect();
-        let x = columns(&header, &sub, &["educ", "exper", "married"], true);
-        let y: Vec<f64> = sub
-            .iter()
-            .map(|r| r[header.iter().position(|h| h == "union").unwrap()])
-            .collect();
-        let cluster: Vec<usize> = sub
-            .iter()
-            .map(|r| chosen.iter().position(|m| *m == r[nr] as i64).unwrap())
-            .collect();
+        let (x, y, cluster) = wagepan_first_men(g, "union");
         let p =
             regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, j, 9999, 11).unwrap();
-        let reference_p = case["p"].as_f64().unwrap();
-        let tolerance = 4.0
-            * (2.0 * reference_p * (1.0 - reference_p) / 9999.0)
-                .sqrt()
-                .max(0.002);
-        assert!(
-            (p - reference_p).abs() < tolerance,
-            "term {j}: {p} vs reference {reference_p} (tolerance {tolerance})"
-        );
+        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &format!("term {j}"));
     }
 }

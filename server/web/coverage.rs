@@ -7,7 +7,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, off_thread, resolve, SettingsForm};
+use super::context::{off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -15,6 +15,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
 use crate::charts;
+use crate::csv_out::{cell, csv_text};
 
 #[derive(Template)]
 #[template(path = "coverage.html")]

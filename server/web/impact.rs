@@ -8,9 +8,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{
-    cell, csv_text, off_thread, resolve, Choice, Query as PageQuery, SettingsForm,
-};
+use super::context::{off_thread, resolve, Choice, Query as PageQuery, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -18,6 +16,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
 use crate::charts;
+use crate::csv_out::{cell, csv_text};
 use crate::project::Project;
 use crate::stats::regression::Family;
 

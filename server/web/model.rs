@@ -8,7 +8,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, off_thread, resolve, SettingsForm};
+use super::context::{off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -16,6 +16,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::participation::{fit, FitReport};
 use crate::charts;
+use crate::csv_out::{cell, csv_text};
 
 /// A coefficient row as shown: odds ratios and 95% intervals for the logit models.
 pub struct CoefficientRow {

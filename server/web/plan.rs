@@ -8,7 +8,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{cell, csv_text, off_thread, resolve, Query as PageQuery, SettingsForm};
+use super::context::{off_thread, resolve, Query as PageQuery, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -17,6 +17,7 @@ use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
 use crate::analysis::planner::{plan, Feasibility, Plan, PlanSettings};
 use crate::charts;
+use crate::csv_out::{cell, csv_text};
 
 /// Bootstrap replicates on the page unless the query asks otherwise (the command line
 /// uses 200).
