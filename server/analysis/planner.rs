@@ -284,11 +284,7 @@ fn probabilities(
             Ok(participation::fit_model(design, settings.model, false)?.propensity)
         }
         Feasibility::Column(name) => {
-            let values = view
-                .feasibility
-                .as_ref()
-                .filter(|_| view.feasibility_column.as_deref() == Some(name.as_str()))
-                .or_else(|| view.numeric.iter().find(|c| &c.column == name).map(|c| &c.values))
+            let values = named_column(view, name, view.feasibility.as_ref(), view.feasibility_column.as_deref())
                 .ok_or_else(|| PlanError::Request(format!("unknown feasibility column '{name}'; name the project's feasibility column ({}) or a numeric indicator, or use 'model'", view.feasibility_column.as_deref().unwrap_or("none set"))))?;
             design
                 .units
@@ -301,6 +297,22 @@ fn probabilities(
                 .collect()
         }
     }
+}
+
+/// A column of the wave view by name: the recruitment column it was loaded as (`loaded`,
+/// from `loaded_name`), or a numeric indicator.
+fn named_column<'a>(
+    view: &'a WaveView,
+    name: &str,
+    loaded: Option<&'a Vec<Option<f64>>>,
+    loaded_name: Option<&str>,
+) -> Option<&'a Vec<Option<f64>>> {
+    loaded.filter(|_| loaded_name == Some(name)).or_else(|| {
+        view.numeric
+            .iter()
+            .find(|c| c.column == name)
+            .map(|c| &c.values)
+    })
 }
 
 fn costs(
@@ -316,11 +328,7 @@ fn costs(
         }
         return Ok(None);
     };
-    let values = view
-        .cost
-        .as_ref()
-        .filter(|_| view.cost_column.as_deref() == Some(name.as_str()))
-        .or_else(|| view.numeric.iter().find(|c| &c.column == name).map(|c| &c.values))
+    let values = named_column(view, name, view.cost.as_ref(), view.cost_column.as_deref())
         .ok_or_else(|| PlanError::Request(format!("unknown cost column '{name}'; name the project's cost column ({}) or a numeric indicator", view.cost_column.as_deref().unwrap_or("none set"))))?;
     Ok(Some(
         design
