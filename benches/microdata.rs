@@ -14,7 +14,7 @@ use std::path::PathBuf;
 use std::time::Instant;
 
 use gapwise::analysis::microdata::read_regression_file;
-use gapwise::demo::rng::Rng;
+use gapwise::stats::random::Rng;
 use gapwise::stats::regression::{self, Family};
 
 const RESPONDENTS: usize = 2_000_000;

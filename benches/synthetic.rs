@@ -1,8 +1,8 @@
 //! A synthetic universe shared by the benchmarks.
 
-use gapwise::demo::rng::Rng;
 use gapwise::project::wave::{CategoricalIndicator, NumericIndicator};
 use gapwise::project::WaveView;
+use gapwise::stats::random::Rng;
 
 /// A synthetic universe: participation depends on the first three indicators.
 pub fn synthetic_universe(n: usize, numeric: usize, seed: u64) -> WaveView {

@@ -10,7 +10,7 @@ use serde_json::Value;
 /// A universe with two clusters: A around (0, 0), well covered; B around (4, 4), with one
 /// participant only. `certain` gives every country a chance of joining of 1.
 fn clustered_frame() -> String {
-    let mut rng = gapwise::demo::rng::Rng::new(11);
+    let mut rng = gapwise::stats::random::Rng::new(11);
     let mut out = String::from("id,x,y,took_part,chance,cost\n");
     for i in 0..24 {
         let took = i < 16;
@@ -106,7 +106,7 @@ fn recruits_from_the_uncovered_cluster_first() {
 fn a_candidate_that_makes_balance_feasible_comes_first() {
     let dir = TempDir::new("feasible");
     let mut frame = String::from("id,x,region,took_part,chance\n");
-    let mut rng = gapwise::demo::rng::Rng::new(5);
+    let mut rng = gapwise::stats::random::Rng::new(5);
     for i in 0..30 {
         let region = ["north", "south", "east"][i % 3];
         // Nobody from the east takes part.

@@ -311,7 +311,7 @@ fn score_bootstrap_for_logistic_models_separates_signal_from_noise() {
     // Common practice (a property, not a reference value): on simulated clustered data a
     // strong predictor gets a small wild score bootstrap p-value, a pure-noise predictor a
     // large one, and the same seed gives the same p-value.
-    let mut rng = gapwise::demo::rng::Rng::new(17);
+    let mut rng = gapwise::stats::random::Rng::new(17);
     let (clusters, per) = (30, 60);
     let n = clusters * per;
     let mut x = Array2::<f64>::ones((n, 3));

@@ -8,9 +8,9 @@ use common::*;
 use gapwise::analysis::participation::fit;
 use gapwise::analysis::planner::{plan, PlanSettings};
 use gapwise::analysis::settings::{ModelKind, Settings, WeightingKind};
-use gapwise::demo::rng::Rng;
 use gapwise::project::wave::ExtraColumns;
 use gapwise::project::{Project, WaveView};
+use gapwise::stats::random::Rng;
 
 /// Mangles `text` in one of several ways chosen by the generator.
 fn mangle(text: &[u8], rng: &mut Rng) -> Vec<u8> {

@@ -17,8 +17,8 @@ use serde::Serialize;
 use super::design::{self, Design};
 use super::participation::{self, AnalysisError};
 use super::settings::Settings;
-use crate::demo::rng::Rng;
 use crate::project::WaveView;
+use crate::stats::random::Rng;
 use crate::stats::{balance, weights};
 
 /// Where the probability of joining comes from.

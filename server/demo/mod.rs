@@ -1,17 +1,15 @@
 //! The invented demo scenario: a fictional consortium of national election-study teams
 //! fielding a common module over four waves in 150 fictional countries.
 //!
-//! Everything is drawn from one seeded generator ([`rng::Rng`]), so `gapwise make-demo`
+//! Everything is drawn from one seeded generator ([`crate::stats::random::Rng`]), so `gapwise make-demo`
 //! writes the same files byte for byte. The true selection model is written beside the
 //! data (`SCENARIO.md` for people, `truth.json` for tests), so that tests can check that
 //! the methods recover it.
 
-pub mod rng;
-
 use std::fmt::Write as _;
 use std::path::Path;
 
-use rng::Rng;
+use crate::stats::random::Rng;
 
 /// The seed of the committed demo.
 pub const SEED: u64 = 20_261_201;

@@ -7,5 +7,6 @@ pub mod describe;
 pub mod linalg;
 pub mod normal;
 pub mod pca;
+pub mod random;
 pub mod regression;
 pub mod weights;

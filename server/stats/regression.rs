@@ -382,7 +382,7 @@ fn logistic_newton(
 
 /// Draws one multiplier per cluster: Rademacher +-1, or Webb's (2014) six-point
 /// distribution when there are fewer than 12 clusters.
-fn cluster_multipliers(rng: &mut crate::demo::rng::Rng, clusters: usize) -> Vec<f64> {
+fn cluster_multipliers(rng: &mut crate::stats::random::Rng, clusters: usize) -> Vec<f64> {
     let webb = [
         -(1.5f64.sqrt()),
         -1.0,
@@ -457,7 +457,7 @@ pub fn score_cluster_bootstrap(
         }
     };
     let observed = statistic(&vec![1.0; a.len()]);
-    let mut rng = crate::demo::rng::Rng::new(seed);
+    let mut rng = crate::stats::random::Rng::new(seed);
     let mut exceed = 0usize;
     for _ in 0..replicates {
         let v = cluster_multipliers(&mut rng, a.len());
@@ -511,7 +511,7 @@ pub fn wild_cluster_bootstrap(
         .iter()
         .fold(Array1::<f64>::zeros(k), |a, &g| a + &c[g]);
     let bread = &full.bread;
-    let mut rng = crate::demo::rng::Rng::new(seed);
+    let mut rng = crate::stats::random::Rng::new(seed);
     let mut exceed = 0usize;
     for _ in 0..replicates {
         let v = cluster_multipliers(&mut rng, present.len());

@@ -652,7 +652,7 @@ mod tests {
     #[test]
     fn gmm_gradient_matches_central_differences() {
         // Common practice: check an analytic gradient against finite differences.
-        let mut rng = crate::demo::rng::Rng::new(3);
+        let mut rng = crate::stats::random::Rng::new(3);
         let n = 40;
         let x = Array2::from_shape_fn((n, 3), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
         let t: Vec<bool> = (0..n)

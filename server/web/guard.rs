@@ -55,7 +55,7 @@ fn process_token() -> String {
     let nanos = std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
         .map_or(0, |d| d.as_nanos() as u64);
-    let mut rng = crate::demo::rng::Rng::new(nanos ^ (u64::from(std::process::id()) << 32));
+    let mut rng = crate::stats::random::Rng::new(nanos ^ (u64::from(std::process::id()) << 32));
     format!("{:016x}{:016x}", rng.next_u64(), rng.next_u64())
 }
 
