@@ -2,6 +2,7 @@
 //! alike by pages, JSON twins, the command line and the report.
 
 pub mod balance;
+pub mod cache;
 pub mod cautions;
 pub mod coverage;
 pub mod design;

@@ -36,6 +36,15 @@ pub struct Project {
     pub eligibility: Eligibility,
     /// Things worth knowing that do not stop the analysis (participants failing a rule...).
     pub warnings: Vec<Problem>,
+    /// A number no other load in this process has: cached results are keyed by it, so a
+    /// reload can never be answered from results of the files before it.
+    pub revision: u64,
+}
+
+/// The next project revision (see [`Project::revision`]).
+fn next_revision() -> u64 {
+    static NEXT: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(1);
+    NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
 }
 
 impl Project {
@@ -162,6 +171,7 @@ impl Project {
             waves,
             eligibility,
             warnings,
+            revision: next_revision(),
         })
     }
 

@@ -7,6 +7,7 @@ use serde::Serialize;
 
 use super::error::{AppError, AppResult};
 use super::state::AppState;
+use crate::analysis::cache::CacheKey;
 use crate::analysis::settings::{MissingRule, ModelKind, Settings, WeightingKind};
 use crate::project::{Project, WaveView};
 
@@ -196,15 +197,63 @@ impl SettingsForm {
     }
 }
 
-/// Runs a page's computation on the blocking pool, so that a long analysis (a bootstrap,
-/// say) does not hold up the server's other requests.
-pub async fn off_thread<T: Send + 'static>(
+/// The cache key of a page's result: the page (by its result type), the project's
+/// revision and the normalised settings (wave filled in, then the page's own keys in a
+/// fixed order). `None` when the settings do not parse; the computation then reports why.
+fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
+    let project = state.project();
+    let mut settings = settings_from_query(query).ok()?;
+    if settings.wave.is_none() {
+        settings.wave = project.waves.last().copied();
+    }
+    let mut own: Vec<(&str, &str)> = query
+        .iter()
+        .filter(|(k, _)| PLAN_KEYS.contains(&k.as_str()) || IMPACT_KEYS.contains(&k.as_str()))
+        .map(|(k, v)| (k.as_str(), v.as_str()))
+        .collect();
+    // Stable: repeated keys (predictors, joiners) keep their order, which the result shows.
+    own.sort_by_key(|(k, _)| *k);
+    let mut canonical = form_urlencoded::Serializer::new(settings.to_query());
+    canonical.extend_pairs(own);
+    Some(CacheKey::new(
+        project.revision,
+        std::any::type_name::<T>(),
+        canonical.finish(),
+    ))
+}
+
+/// Runs a light page computation (a model fit, a table) on the blocking pool, through the
+/// result cache.
+pub async fn off_thread<T>(
     state: &Arc<AppState>,
     query: &Query,
     compute: fn(&AppState, &Query) -> AppResult<T>,
-) -> AppResult<T> {
-    let (state, query) = (Arc::clone(state), query.clone());
-    tokio::task::spawn_blocking(move || compute(&state, &query))
-        .await
-        .map_err(|e| AppError::Internal(format!("the computation stopped: {e}")))?
+) -> AppResult<T>
+where
+    T: Clone + Serialize + Send + Sync + 'static,
+{
+    let key = page_key::<T>(state, query);
+    let (job_state, query) = (Arc::clone(state), query.clone());
+    Ok(state
+        .work
+        .light(&state.cache, key, move || compute(&job_state, &query))
+        .await?)
+}
+
+/// Runs a heavy page computation (bootstrap replicates, the planner, the report) on the
+/// bounded heavy pool, through the result cache; answers 503 when too much is queued.
+pub async fn off_thread_heavy<T>(
+    state: &Arc<AppState>,
+    query: &Query,
+    compute: fn(&AppState, &Query) -> AppResult<T>,
+) -> AppResult<T>
+where
+    T: Clone + Serialize + Send + Sync + 'static,
+{
+    let key = page_key::<T>(state, query);
+    let (job_state, query) = (Arc::clone(state), query.clone());
+    Ok(state
+        .work
+        .heavy(&state.cache, key, move || compute(&job_state, &query))
+        .await?)
 }

@@ -16,6 +16,12 @@ pub enum AppError {
     InvalidProject(Vec<Problem>),
     #[error("internal error: {0}")]
     Internal(String),
+    /// Too much heavy work at once, or still computing: come back after some seconds.
+    #[error("{message}")]
+    Busy {
+        message: String,
+        retry_after_seconds: u64,
+    },
 }
 
 impl AppError {
@@ -25,6 +31,7 @@ impl AppError {
             AppError::BadRequest(_) => StatusCode::BAD_REQUEST,
             AppError::InvalidProject(_) => StatusCode::UNPROCESSABLE_ENTITY,
             AppError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
+            AppError::Busy { .. } => StatusCode::SERVICE_UNAVAILABLE,
         }
     }
 }
@@ -37,12 +44,50 @@ impl From<askama::Error> for AppError {
 
 impl IntoResponse for AppError {
     fn into_response(self) -> Response {
-        (
+        let mut response = (
             self.status(),
             [("content-type", "text/plain; charset=utf-8")],
             self.to_string(),
         )
-            .into_response()
+            .into_response();
+        if let AppError::Busy {
+            retry_after_seconds,
+            ..
+        } = &self
+        {
+            if let Ok(v) = axum::http::HeaderValue::from_str(&retry_after_seconds.to_string()) {
+                response
+                    .headers_mut()
+                    .insert(axum::http::header::RETRY_AFTER, v);
+            }
+        }
+        response
+    }
+}
+
+impl<E: Into<AppError>> From<super::work::WorkError<E>> for AppError {
+    fn from(e: super::work::WorkError<E>) -> Self {
+        use super::work::WorkError;
+        match e {
+            WorkError::Failed(e) => e.into(),
+            WorkError::Busy {
+                retry_after_seconds,
+            } => AppError::Busy {
+                message: format!(
+                    "the server is busy with other analyses; try again in {retry_after_seconds} seconds"
+                ),
+                retry_after_seconds,
+            },
+            WorkError::StillComputing {
+                retry_after_seconds,
+            } => AppError::Busy {
+                message: format!(
+                    "still computing this analysis; it will be ready shortly (try again in {retry_after_seconds} seconds)"
+                ),
+                retry_after_seconds,
+            },
+            WorkError::Lost(m) => AppError::Internal(format!("the computation stopped: {m}")),
+        }
     }
 }
 
@@ -56,6 +101,8 @@ struct ErrorPage<'a> {
     heading: &'static str,
     message: String,
     retry: String,
+    /// Seconds after which the page reloads itself (0: never), for work still under way.
+    refresh_seconds: u64,
     cautions: &'a [crate::analysis::cautions::Caution],
 }
 
@@ -66,6 +113,10 @@ pub async fn html_errors(
     next: axum::middleware::Next,
 ) -> Response {
     let path = request.uri().path().to_string();
+    let path_and_query = request
+        .uri()
+        .path_and_query()
+        .map_or_else(|| path.clone(), |pq| pq.as_str().to_string());
     let is_page = !path.starts_with("/api/")
         && !path.starts_with("/static/")
         && !path.rsplit('/').next().unwrap_or("").contains('.');
@@ -84,23 +135,51 @@ pub async fn html_errors(
     {
         return response;
     }
+    let retry_after = response
+        .headers()
+        .get(axum::http::header::RETRY_AFTER)
+        .cloned();
     let body = axum::body::to_bytes(response.into_body(), 1 << 20)
         .await
         .unwrap_or_default();
+    let busy = status == StatusCode::SERVICE_UNAVAILABLE;
     let page = ErrorPage {
         page: "",
         nav_query: String::new(),
         heading: if status == StatusCode::NOT_FOUND {
             "Not found"
+        } else if busy {
+            "Still working on it"
         } else {
             "This cannot be shown with these settings"
         },
         message: String::from_utf8_lossy(&body).to_string(),
-        retry: if path == "/" { String::new() } else { path },
+        retry: if busy {
+            path_and_query
+        } else if path == "/" {
+            String::new()
+        } else {
+            path
+        },
+        refresh_seconds: if busy {
+            retry_after
+                .as_ref()
+                .and_then(|v| v.to_str().ok())
+                .and_then(|v| v.parse().ok())
+                .unwrap_or(3)
+        } else {
+            0
+        },
         cautions: &crate::analysis::cautions::STANDING,
     };
-    match askama::Template::render(&page) {
+    let mut response = match askama::Template::render(&page) {
         Ok(html) => (status, axum::response::Html(html)).into_response(),
         Err(_) => (status, String::from_utf8_lossy(&body).to_string()).into_response(),
+    };
+    if let Some(v) = retry_after {
+        response
+            .headers_mut()
+            .insert(axum::http::header::RETRY_AFTER, v);
     }
+    response
 }

@@ -8,7 +8,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{off_thread, resolve, Choice, Query as PageQuery, SettingsForm};
+use super::context::{off_thread_heavy, resolve, Choice, Query as PageQuery, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -175,16 +175,13 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     })
 }
 
-fn compute(
-    state: &AppState,
-    query: &PageQuery,
-) -> AppResult<(SettingsForm, ImpactReport, Arc<Project>)> {
+fn compute(state: &AppState, query: &PageQuery) -> AppResult<(SettingsForm, ImpactReport)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/impact", &project, &settings);
     let imp = impact_settings(&project, query)?;
     let r = impact(&project, &view, &settings, &imp)
         .map_err(|e| AppError::BadRequest(e.to_string()))?;
-    Ok((form, r, project))
+    Ok((form, r))
 }
 
 fn impact_query(imp: &ImpactSettings) -> String {
@@ -203,7 +200,8 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, r, project) = off_thread(&state, &query, compute).await?;
+    let (form, r) = off_thread_heavy(&state, &query, compute).await?;
+    let project = state.project();
     let variables = project
         .manifest
         .microdata
@@ -279,7 +277,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Json<ImpactReport>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
+    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -287,7 +285,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, r, _) = off_thread(&state, &query, compute).await?;
+    let (_, r) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "pooled.svg" => Ok(svg_response(
             "pooled-estimates.svg",

@@ -14,6 +14,7 @@ pub mod projects;
 pub mod report;
 pub mod sensitivity;
 pub mod state;
+pub mod work;
 
 use std::net::SocketAddr;
 use std::path::Path;

@@ -8,7 +8,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{off_thread, resolve, Query as PageQuery, SettingsForm};
+use super::context::{off_thread_heavy, resolve, Query as PageQuery, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -168,7 +168,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, p, c) = off_thread(&state, &query, compute).await?;
+    let (form, p, c) = off_thread_heavy(&state, &query, compute).await?;
     let project = state.project();
     let mut feasibility_choices =
         vec![("model".to_string(), "the participation model".to_string())];
@@ -205,7 +205,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Json<Plan>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
+    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -213,7 +213,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, p, c) = off_thread(&state, &query, compute).await?;
+    let (_, p, c) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "paths.svg" => Ok(svg_response(
             "recruitment-paths.svg",

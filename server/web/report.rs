@@ -9,7 +9,7 @@ use axum::extract::{Query, State};
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
 
-use super::context::{settings_from_query, Query as PageQuery};
+use super::context::{off_thread_heavy, settings_from_query, Query as PageQuery};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::impact::{side_by_side, Cell};
@@ -87,17 +87,23 @@ pub fn render(project: &Project, settings: &Settings) -> Result<String, String> 
         .map_err(|e| format!("the report template failed: {e}"))
 }
 
+/// The rendered report, as the cache keeps it.
+#[derive(Clone, serde::Serialize)]
+struct ReportHtml(String);
+
+fn compute(state: &AppState, query: &PageQuery) -> AppResult<ReportHtml> {
+    let settings = settings_from_query(query)?;
+    render(&state.project(), &settings)
+        .map(ReportHtml)
+        .map_err(AppError::BadRequest)
+}
+
 /// The report button: the same document, offered as a download.
 pub async fn download(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let settings = settings_from_query(&query)?;
-    let project = state.project();
-    let html = tokio::task::spawn_blocking(move || render(&project, &settings))
-        .await
-        .map_err(|e| AppError::Internal(e.to_string()))?
-        .map_err(AppError::BadRequest)?;
+    let ReportHtml(html) = off_thread_heavy(&state, &query, compute).await?;
     Ok((
         [
             (header::CONTENT_TYPE, "text/html; charset=utf-8"),

@@ -7,7 +7,7 @@ use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
 use axum::Json;
 
-use super::context::{off_thread, resolve, SettingsForm};
+use super::context::{off_thread_heavy, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
@@ -43,7 +43,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, s) = off_thread(&state, &query, compute).await?;
+    let (form, s) = off_thread_heavy(&state, &query, compute).await?;
     let html = SensitivityPage {
         page: "sensitivity",
         nav_query: form.query.clone(),
@@ -61,7 +61,7 @@ pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Json<Sensitivity>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
+    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
@@ -69,7 +69,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, s) = off_thread(&state, &query, compute).await?;
+    let (_, s) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "trimming.svg" => Ok(svg_response(
             "trimming.svg",

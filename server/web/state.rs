@@ -5,6 +5,8 @@
 use std::path::PathBuf;
 use std::sync::{Arc, RwLock};
 
+use super::work::WorkPool;
+use crate::analysis::cache::ResultCache;
 use crate::project::{Problem, Project};
 
 pub struct AppState {
@@ -12,6 +14,10 @@ pub struct AppState {
     current: RwLock<(PathBuf, Arc<Project>)>,
     /// The folder of projects that can be opened and created from the browser, if any.
     pub projects: Option<PathBuf>,
+    /// Results computed so far, keyed by the project's revision and the settings.
+    pub cache: Arc<ResultCache>,
+    /// Where computations run (light on tokio's blocking pool, heavy on a bounded pool).
+    pub work: WorkPool,
 }
 
 fn read<T>(lock: &RwLock<T>) -> std::sync::RwLockReadGuard<'_, T> {
@@ -30,6 +36,8 @@ impl AppState {
         AppState {
             current: RwLock::new((project.dir.clone(), Arc::new(project))),
             projects,
+            cache: Arc::new(ResultCache::default()),
+            work: WorkPool::new(),
         }
     }
 
@@ -57,6 +65,10 @@ impl AppState {
             .current
             .write()
             .unwrap_or_else(std::sync::PoisonError::into_inner);
+        let revision = project.revision;
         *guard = (dir, project);
+        drop(guard);
+        // Results of the files before this load can never be asked for again.
+        self.cache.retain_revision(revision);
     }
 }

@@ -1,0 +1,67 @@
+//! Every page, JSON twin and download is computed once per project revision and settings,
+//! and shared: a second request with the same settings (in any spelling of the query)
+//! is answered from the cache; a reload computes afresh.
+
+use std::sync::Arc;
+
+use axum::body::Body;
+use axum::http::{Request, StatusCode};
+use gapwise::project::Project;
+use gapwise::web::{self, AppState};
+use tower::ServiceExt;
+
+async fn get(state: &Arc<AppState>, uri: &str) -> StatusCode {
+    let response = web::router(Arc::clone(state))
+        .oneshot(Request::get(uri).body(Body::empty()).expect("request"))
+        .await
+        .expect("router answers");
+    let status = response.status();
+    let _ = axum::body::to_bytes(response.into_body(), usize::MAX).await;
+    status
+}
+
+const ROUTES: [&str; 12] = [
+    "/",
+    "/coverage",
+    "/model",
+    "/balance",
+    "/plan",
+    "/impact",
+    "/sensitivity",
+    "/report",
+    "/api/model",
+    "/api/plan",
+    "/model/coefficients.csv",
+    "/plan/plan.csv",
+];
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn no_page_recomputes_what_an_earlier_request_computed() {
+    let project = Project::load(&gapwise::demo_dir()).expect("demo loads");
+    let latest = *project.waves.last().expect("waves");
+    let state = Arc::new(AppState::new(project));
+    for route in ROUTES {
+        assert_eq!(get(&state, route).await, StatusCode::OK, "{route}");
+    }
+    let first = state.cache.stats();
+    assert!(first.misses > 0 && first.entries > 0, "{first:?}");
+    for route in ROUTES {
+        assert_eq!(get(&state, route).await, StatusCode::OK, "{route}");
+    }
+    // The latest wave spelled out, and the defaults spelled out, are the same settings.
+    let same = format!("/plan?wave={latest}&model=logit&weighting=entropy");
+    assert_eq!(get(&state, &same).await, StatusCode::OK);
+    let second = state.cache.stats();
+    assert_eq!(second.misses, first.misses, "{first:?} then {second:?}");
+    assert!(second.hits > first.hits + ROUTES.len() as u64);
+
+    // Other settings are another result.
+    assert_eq!(get(&state, "/model?model=probit").await, StatusCode::OK);
+    assert_eq!(state.cache.stats().misses, second.misses + 1);
+
+    // A reload is a new revision: computed afresh, the old results forgotten.
+    state.reload().expect("reload");
+    assert_eq!(state.cache.stats().entries, 0);
+    assert_eq!(get(&state, "/model").await, StatusCode::OK);
+    assert_eq!(state.cache.stats().misses, second.misses + 2);
+}
