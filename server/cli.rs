@@ -196,22 +196,9 @@ pub struct UniverseSource {
 pub fn load_universe(source: &UniverseSource, settings: &mut Settings) -> Result<WaveView, String> {
     if source.path.is_dir() {
         let project = Project::load(&source.path).map_err(|p| problems_text(&p, &source.path))?;
-        let wave = match source.wave {
-            Some(w) => w,
-            None => *project.waves.last().ok_or("the project has no waves")?,
-        };
+        let (wave, view) = project.resolve_wave(source.wave)?;
         settings.wave = Some(wave);
-        project.wave(wave).ok_or_else(|| {
-            format!(
-                "the project has no wave {wave}; its waves are {}",
-                project
-                    .waves
-                    .iter()
-                    .map(i64::to_string)
-                    .collect::<Vec<_>>()
-                    .join(", ")
-            )
-        })
+        Ok(view)
     } else {
         let id = source
             .id

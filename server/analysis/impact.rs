@@ -200,12 +200,12 @@ pub fn impact(
                 .ok_or_else(|| {
                     ImpactError::Request(format!("'{col}' is not a numeric country indicator"))
                 })?;
-            let logged = col.starts_with("log_");
+            let scale = project.manifest.population_scale(col);
             Some(
                 design
                     .units
                     .iter()
-                    .map(|&u| ind.values[u].map_or(f64::NAN, |v| if logged { v.exp() } else { v }))
+                    .map(|&u| ind.values[u].map_or(f64::NAN, |v| scale.people(v)))
                     .collect(),
             )
         }

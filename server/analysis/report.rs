@@ -60,30 +60,22 @@ pub fn input_checksums(project: &Project) -> Vec<InputFile> {
 
 /// Builds the report for one wave (the latest when the settings name none).
 pub fn report(project: &Project, settings: &Settings) -> Result<Report, String> {
-    let wave = settings
-        .wave
-        .or_else(|| project.waves.last().copied())
-        .ok_or("the project has no waves")?;
+    let (wave, view) = project.resolve_wave(settings.wave)?;
     let settings = Settings {
         wave: Some(wave),
         ..settings.clone()
     };
-    let view = project
-        .wave(wave)
-        .ok_or_else(|| format!("the project has no wave {wave}"))?;
     let impact = project
         .manifest
         .microdata
         .as_ref()
         .filter(|_| project.microdata.is_some())
         .map(|roles| {
-            let outcome = roles
-                .variables
-                .iter()
-                .find(|v| v.contains("trust"))
-                .or(roles.variables.first())
-                .cloned()
-                .unwrap_or_default();
+            let outcome = project
+                .manifest
+                .default_outcome()
+                .unwrap_or_default()
+                .to_string();
             let predictors = roles
                 .variables
                 .iter()

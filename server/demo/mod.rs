@@ -315,6 +315,11 @@ country = "code"
 wave = "wave"
 design_weight = "design_weight"
 variables = ["age", "female", "education", "income_decile", "turnout", "trust_parliament", "left_right"]
+outcome = "trust_parliament"
+
+[population]
+column = "log_population"
+scale = "log"
 "#;
 
 fn frame_csv(s: &Scenario) -> String {

@@ -25,6 +25,40 @@ pub struct Manifest {
     pub recruitment: Recruitment,
     #[serde(default)]
     pub microdata: Option<MicrodataRoles>,
+    /// The frame column with each country's population, for counting countries by people.
+    #[serde(default)]
+    pub population: Option<Population>,
+}
+
+/// Where a country's population is, and on what scale the column holds it.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct Population {
+    /// A numeric frame column (it may also be an indicator).
+    pub column: String,
+    /// `count` (people, the default), `log` (natural log of people) or `log10`.
+    #[serde(default)]
+    pub scale: PopulationScale,
+}
+
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum PopulationScale {
+    #[default]
+    Count,
+    Log,
+    Log10,
+}
+
+impl PopulationScale {
+    /// The number of people from a value of the column.
+    pub fn people(self, value: f64) -> f64 {
+        match self {
+            PopulationScale::Count => value,
+            PopulationScale::Log => value.exp(),
+            PopulationScale::Log10 => 10f64.powf(value),
+        }
+    }
 }
 
 /// Which frame columns carry the country code, name, wave and participation flag.
@@ -112,6 +146,10 @@ pub struct MicrodataRoles {
     /// Numeric survey variables to load; every other column when empty.
     #[serde(default)]
     pub variables: Vec<String>,
+    /// The outcome shown first on the impact page and in the report (default: the first
+    /// of `variables`).
+    #[serde(default)]
+    pub outcome: Option<String>,
 }
 
 impl Manifest {
@@ -181,6 +219,18 @@ impl Manifest {
                 ));
             }
         }
+        if let Some(m) = &self.microdata {
+            if let Some(o) = &m.outcome {
+                if !m.variables.is_empty() && !m.variables.contains(o) {
+                    problems.push(Problem::at(
+                        MANIFEST_FILE,
+                        None,
+                        Some("microdata.outcome"),
+                        format!("the outcome '{o}' must also be listed in microdata.variables"),
+                    ));
+                }
+            }
+        }
         if let Some(group) = &self.columns.group {
             if !self.indicators.categorical.contains(group) {
                 problems.push(Problem::at(
@@ -192,6 +242,24 @@ impl Manifest {
             }
         }
         problems
+    }
+
+    /// The outcome the impact page and the report start from: the declared one, else the
+    /// first survey variable.
+    pub fn default_outcome(&self) -> Option<&str> {
+        let m = self.microdata.as_ref()?;
+        m.outcome
+            .as_deref()
+            .or(m.variables.first().map(String::as_str))
+    }
+
+    /// The scale of a column used as population: the declared scale for the declared
+    /// column; any other column is taken as a count of people.
+    pub fn population_scale(&self, column: &str) -> PopulationScale {
+        self.population
+            .as_ref()
+            .filter(|p| p.column == column)
+            .map_or(PopulationScale::Count, |p| p.scale)
     }
 
     /// The categorical indicator that coverage is broken down by, if any.
@@ -253,6 +321,27 @@ indicator = "gdp"
 at_most = 12.5
 waves = [2]
 "#;
+
+    /// Declared conventions replace guesses from column names (common practice).
+    #[test]
+    fn population_and_outcome_are_declared_not_guessed() {
+        let m = Manifest::parse(MINIMAL).expect("valid manifest");
+        assert_eq!(m.default_outcome(), None);
+        assert_eq!(m.population_scale("log_pop"), PopulationScale::Count);
+        let text = format!(
+            "{MINIMAL}[microdata]\ncountry = \"c\"\nwave = \"w\"\ndesign_weight = \"dw\"\nvariables = [\"a\", \"b\"]\n[population]\ncolumn = \"gdp\"\nscale = \"log10\"\n"
+        );
+        let m = Manifest::parse(&text).expect("valid manifest");
+        assert_eq!(m.default_outcome(), Some("a"));
+        assert_eq!(m.population_scale("gdp"), PopulationScale::Log10);
+        assert!((m.population_scale("gdp").people(3.0) - 1000.0).abs() < 1e-9);
+        assert_eq!(m.population_scale("other"), PopulationScale::Count);
+        let wrong = text.replace(
+            "variables = [\"a\", \"b\"]",
+            "variables = [\"a\"]\noutcome = \"z\"",
+        );
+        assert!(Manifest::parse(&wrong).is_err());
+    }
 
     #[test]
     fn parses_both_kinds_of_threshold() {

@@ -223,6 +223,27 @@ impl Project {
     pub fn wave(&self, wave: i64) -> Option<WaveView> {
         WaveView::new(self, wave)
     }
+
+    /// The wave asked for, or the latest when none is, with its view; a wave the project
+    /// does not have gets a message that lists the waves it has. The one place where a
+    /// missing wave setting is resolved (pages, command line and report alike).
+    pub fn resolve_wave(&self, wave: Option<i64>) -> Result<(i64, WaveView), String> {
+        let wave = match wave {
+            Some(w) => w,
+            None => *self.waves.last().ok_or("the project has no waves")?,
+        };
+        let view = self.wave(wave).ok_or_else(|| {
+            format!(
+                "there is no wave {wave}; the project's waves are {}",
+                self.waves
+                    .iter()
+                    .map(i64::to_string)
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            )
+        })?;
+        Ok((wave, view))
+    }
 }
 
 /// The name shown in messages: the file name within the project folder.

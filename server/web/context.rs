@@ -67,25 +67,10 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
 pub fn resolve(state: &AppState, query: &Query) -> AppResult<(Arc<Project>, Settings, WaveView)> {
     let project = state.project();
     let mut settings = settings_from_query(query)?;
-    let wave = match settings.wave {
-        Some(w) => w,
-        None => *project
-            .waves
-            .last()
-            .ok_or_else(|| AppError::NotFound("the project has no waves".into()))?,
-    };
+    let (wave, view) = project
+        .resolve_wave(settings.wave)
+        .map_err(AppError::NotFound)?;
     settings.wave = Some(wave);
-    let view = project.wave(wave).ok_or_else(|| {
-        AppError::NotFound(format!(
-            "there is no wave {wave}; the project's waves are {}",
-            project
-                .waves
-                .iter()
-                .map(i64::to_string)
-                .collect::<Vec<_>>()
-                .join(", ")
-        ))
-    })?;
     Ok((project, settings, view))
 }
 

@@ -107,13 +107,11 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
             .map(|(_, v)| v.trim().to_string())
             .filter(|v| !v.is_empty())
     };
-    let default_outcome = roles
-        .variables
-        .iter()
-        .find(|v| v.contains("trust"))
-        .or(roles.variables.first())
-        .cloned()
-        .unwrap_or_default();
+    let default_outcome = project
+        .manifest
+        .default_outcome()
+        .unwrap_or_default()
+        .to_string();
     let outcome = get("outcome").unwrap_or(default_outcome);
     let ticked: Vec<String> = query
         .iter()
@@ -239,9 +237,17 @@ pub async fn page(
             selected: r.impact.shares == Shares::Equal,
         })
         .chain(
+            // The declared population column; without one, any numeric indicator (read as
+            // a count of people).
             indicators
                 .iter()
-                .filter(|c| c.contains("pop"))
+                .filter(|c| {
+                    project
+                        .manifest
+                        .population
+                        .as_ref()
+                        .is_none_or(|p| &p.column == *c)
+                })
                 .map(|c| Choice {
                     value: format!("population:{c}"),
                     label: format!("weight × population ({})", project.manifest.label(c)),

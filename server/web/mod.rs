@@ -17,7 +17,6 @@ pub mod state;
 pub mod work;
 
 use std::net::SocketAddr;
-use std::path::Path;
 use std::sync::Arc;
 
 use axum::extract::State;
@@ -25,14 +24,35 @@ use axum::http::header;
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
 use axum::{Json, Router};
-use tower_http::services::ServeDir;
 
 use error::{AppError, AppResult};
 pub use state::AppState;
 
-/// The folder of our own CSS, next to the crate.
-fn static_dir() -> std::path::PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("static")
+/// Our stylesheet and icon, compiled into the binary so that an installed `gapwise`
+/// needs no checkout.
+const STYLESHEET: &str = include_str!("../../static/gapwise.css");
+const ICON: &str = include_str!("../../static/favicon.svg");
+
+async fn stylesheet() -> Response {
+    (
+        [
+            (header::CONTENT_TYPE, "text/css; charset=utf-8"),
+            (header::CACHE_CONTROL, "max-age=3600"),
+        ],
+        STYLESHEET,
+    )
+        .into_response()
+}
+
+async fn icon() -> Response {
+    (
+        [
+            (header::CONTENT_TYPE, "image/svg+xml"),
+            (header::CACHE_CONTROL, "max-age=3600"),
+        ],
+        ICON,
+    )
+        .into_response()
 }
 
 /// Every route, grouped by page.
@@ -77,7 +97,9 @@ pub fn router(state: Arc<AppState>) -> Router {
             "/projects/map",
             get(projects::map_form).post(projects::map_save),
         )
-        .nest_service("/static", ServeDir::new(static_dir()))
+        // Our own CSS and icon
+        .route("/static/gapwise.css", get(stylesheet))
+        .route("/static/favicon.svg", get(icon))
         .fallback(not_found)
         .with_state(state)
 }

@@ -16,8 +16,8 @@ use super::error::{AppError, AppResult};
 use super::state::AppState;
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::project::manifest::{
-    ColumnRoles, EligibilityRule, Indicators, Manifest, MicrodataRoles, ParticipantCut,
-    Recruitment, Threshold,
+    ColumnRoles, EligibilityRule, Indicators, Manifest, MicrodataRoles, ParticipantCut, Population,
+    PopulationScale, Recruitment, Threshold,
 };
 use crate::project::{store, Problem, MANIFEST_FILE};
 
@@ -319,11 +319,20 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
             wave: need("micro_wave", "the respondents' wave")?,
             design_weight: need("micro_weight", "the design weights")?,
             variables: many("micro_variable"),
+            outcome: one("micro_outcome"),
         }),
     };
     Ok(Manifest {
         title: one("title").unwrap_or_else(|| "Untitled project".to_string()),
         description: None,
+        population: one("population").map(|column| Population {
+            column,
+            scale: match one("population_scale").as_deref() {
+                Some("log") => PopulationScale::Log,
+                Some("log10") => PopulationScale::Log10,
+                _ => PopulationScale::Count,
+            },
+        }),
         columns: ColumnRoles {
             code: need("code", "the country code")?,
             name: one("country_name"),
