@@ -119,6 +119,7 @@ pub fn serve(
     addr: SocketAddr,
     allow_remote: bool,
     projects: Option<std::path::PathBuf>,
+    access: web::guard::Access,
 ) -> i32 {
     if !addr.ip().is_loopback() {
         if !allow_remote {
@@ -157,7 +158,7 @@ pub fn serve(
             return 1;
         }
     };
-    match runtime.block_on(web::serve(state, addr, allow_remote)) {
+    match runtime.block_on(web::serve(state, addr, allow_remote, access)) {
         Ok(()) => 0,
         Err(message) => {
             eprintln!("{message}");

@@ -34,6 +34,12 @@ enum Command {
         /// A folder of projects to open and create from the browser.
         #[arg(long)]
         projects: Option<PathBuf>,
+        /// Also write this run's access key to a file readable only by you (for scripts).
+        #[arg(long, value_name = "PATH")]
+        key_file: Option<PathBuf>,
+        /// Serve without an access key: every user and program on this machine can read the data.
+        #[arg(long, conflicts_with = "key_file")]
+        no_key: bool,
     },
     /// Validate a project folder: a summary, or one line per problem (file:row:column: message).
     Check {
@@ -203,19 +209,28 @@ impl AnalysisArgs {
 fn main() -> ExitCode {
     let args = Args::parse();
     let code = match args.command {
-        None => cli::serve(&gapwise::demo_dir(), default_addr(), false, None),
+        None => cli::serve(
+            &gapwise::demo_dir(),
+            default_addr(),
+            false,
+            None,
+            Default::default(),
+        ),
         Some(Command::Serve {
             dir,
             addr,
             allow_remote,
             projects,
+            key_file,
+            no_key,
         }) => {
             // Without a folder: the first project of the projects folder, else the demo.
             let first = projects
                 .as_deref()
                 .and_then(|p| gapwise::project::store::list(p).first().map(|n| p.join(n)));
             let dir = dir.or(first).unwrap_or_else(gapwise::demo_dir);
-            cli::serve(&dir, addr, allow_remote, projects)
+            let access = gapwise::web::guard::Access { no_key, key_file };
+            cli::serve(&dir, addr, allow_remote, projects, access)
         }
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),

@@ -164,3 +164,213 @@ fn ctrl_c_stops_the_server_gracefully() {
         std::thread::sleep(std::time::Duration::from_millis(50));
     }
 }
+
+#[test]
+fn every_read_needs_the_key() {
+    let (addr, key) = start_server_with_token(&demo_dir());
+    assert_eq!(key.len(), 32, "a key of 128 bits in hexadecimal");
+    for path in [
+        "/",
+        "/api/overview",
+        "/balance/table.csv",
+        "/report",
+        "/static/gapwise.css",
+        "/charts/coverage.svg",
+        "/nowhere",
+    ] {
+        let r = http_without_key(addr, "GET", path, &[]);
+        assert_eq!(r.status, 401, "{path} without a key answered {}", r.status);
+        assert!(!r.body.contains("XAA"), "{path} leaked data");
+        assert!(r.body.contains("?key="), "{}", r.body);
+        // A wrong key of the right length, in the header and in the cookie.
+        let wrong = "0".repeat(32);
+        let cookie = format!("gapwise_key_{}={wrong}", addr.port());
+        for headers in [
+            [("x-gapwise-key", wrong.as_str())],
+            [("Cookie", cookie.as_str())],
+        ] {
+            assert_eq!(http_without_key(addr, "GET", path, &headers).status, 401);
+        }
+    }
+    // The right key in the header (scripts) and in the cookie (browsers).
+    let r = http_without_key(addr, "GET", "/api/overview", &[("x-gapwise-key", &key)]);
+    assert_eq!(r.status, 200);
+    let cookie = format!("other=1; gapwise_key_{}={key}", addr.port());
+    let r = http_without_key(addr, "GET", "/api/overview", &[("Cookie", &cookie)]);
+    assert_eq!(r.status, 200);
+    // The cookie of another port (another gapwise) is not ours.
+    let elsewhere = format!("gapwise_key_{}={key}", addr.port().wrapping_add(1));
+    let r = http_without_key(addr, "GET", "/api/overview", &[("Cookie", &elsewhere)]);
+    assert_eq!(r.status, 401);
+    // A request the browser marks as coming from another site or port: the cookie is
+    // not enough (a page on another localhost port is "same-site" for cookies).
+    for site in ["cross-site", "same-site"] {
+        let r = http_without_key(
+            addr,
+            "GET",
+            "/api/overview",
+            &[("Cookie", &cookie), ("Sec-Fetch-Site", site)],
+        );
+        assert_eq!(r.status, 401, "Sec-Fetch-Site: {site}");
+    }
+    let r = http_without_key(
+        addr,
+        "GET",
+        "/",
+        &[("Cookie", &cookie), ("Sec-Fetch-Site", "same-origin")],
+    );
+    assert_eq!(r.status, 200);
+}
+
+#[test]
+fn the_start_up_url_sets_the_cookie_and_drops_the_key() {
+    let (addr, key) = start_server_with_token(&demo_dir());
+    let r = http_without_key(addr, "GET", &format!("/?key={key}"), &[]);
+    assert_eq!(r.status, 303);
+    assert_eq!(r.header("location"), Some("/"));
+    let cookie = r.header("set-cookie").expect("a cookie");
+    assert!(
+        cookie.starts_with(&format!("gapwise_key_{}={key};", addr.port())),
+        "{cookie}"
+    );
+    for attribute in ["HttpOnly", "SameSite=Strict", "Path=/"] {
+        assert!(cookie.contains(attribute), "{cookie}");
+    }
+    // Other parameters stay.
+    let r = http_without_key(addr, "GET", &format!("/balance?wave=2&key={key}"), &[]);
+    assert_eq!(r.header("location"), Some("/balance?wave=2"));
+    // A wrong key sets nothing.
+    let r = http_without_key(addr, "GET", &format!("/?key={}", "f".repeat(32)), &[]);
+    assert_eq!(r.status, 401);
+    assert!(r.header("set-cookie").is_none());
+}
+
+#[test]
+fn changes_need_our_origin_or_the_key_header() {
+    let (addr, key) = start_server_with_token(&demo_dir());
+    // The cookie alone (a form on a foreign page would send it if the site matched).
+    assert_eq!(http(addr, "POST", "/api/reload", &[]).status, 403);
+    let foreign = [("Origin", "http://127.0.0.1:9")];
+    assert_eq!(http(addr, "POST", "/api/reload", &foreign).status, 403);
+    let origin = format!("http://{addr}");
+    let r = http(addr, "POST", "/api/reload", &[("Origin", origin.as_str())]);
+    assert_eq!(r.status, 200, "{}", r.body);
+    let r = http_without_key(addr, "POST", "/api/reload", &[("x-gapwise-key", &key)]);
+    assert_eq!(r.status, 200, "{}", r.body);
+    // Our origin without the key is still refused.
+    let r = http_without_key(addr, "POST", "/api/reload", &[("Origin", origin.as_str())]);
+    assert_eq!(r.status, 401);
+}
+
+#[test]
+fn without_a_key_the_old_behaviour() {
+    let (addr, key) = start_server_keyed(&demo_dir(), None, false);
+    assert!(key.is_none());
+    assert_eq!(
+        http_without_key(addr, "GET", "/api/overview", &[]).status,
+        200
+    );
+    // Changes still need our origin.
+    assert_eq!(
+        http_without_key(addr, "POST", "/api/reload", &[]).status,
+        403
+    );
+}
+
+#[test]
+fn protective_headers_on_every_response() {
+    let addr = start_server(&demo_dir());
+    for (path, no_store) in [
+        ("/", true),
+        ("/api/overview", true),
+        ("/balance/table.csv", true),
+        ("/charts/coverage.svg", true),
+        ("/report", true),
+        ("/projects", true),
+        ("/nowhere", true),
+        ("/static/gapwise.css", false),
+    ] {
+        let r = http(addr, "GET", path, &[]);
+        let csp = r.header("content-security-policy").unwrap_or_default();
+        assert!(csp.contains("frame-ancestors 'none'"), "{path}: {csp}");
+        assert!(
+            !csp.contains("script-src 'unsafe-inline'") && !csp.contains("*"),
+            "{path}: {csp}"
+        );
+        assert_eq!(
+            r.header("x-content-type-options"),
+            Some("nosniff"),
+            "{path}"
+        );
+        assert_eq!(r.header("referrer-policy"), Some("no-referrer"), "{path}");
+        assert_eq!(r.header("x-frame-options"), Some("DENY"), "{path}");
+        if no_store {
+            assert_eq!(r.header("cache-control"), Some("no-store"), "{path}");
+        }
+    }
+    // Even the refusals carry them.
+    let r = http_without_key(addr, "GET", "/", &[]);
+    assert!(r.header("content-security-policy").is_some());
+    // Pages have no inline script or style for the policy to block.
+    for path in [
+        "/",
+        "/coverage",
+        "/model",
+        "/balance",
+        "/plan?replicates=20",
+        "/impact?bootstrap=20",
+        "/sensitivity",
+        "/projects",
+    ] {
+        let body = http(addr, "GET", path, &[]).body;
+        assert!(
+            !body.contains("<script>") && !body.contains("<style"),
+            "{path}"
+        );
+        assert!(!body.contains(" style=\""), "{path} has a style attribute");
+        assert!(!body.contains(" onclick="), "{path} has an inline handler");
+    }
+}
+
+#[test]
+fn the_key_file_is_private_and_the_url_hands_over_the_key() {
+    let dir = TempDir::new("keyfile");
+    let key_file = dir.path().join("key");
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
+        .args([
+            "serve",
+            demo_dir().to_str().unwrap(),
+            "--addr",
+            "127.0.0.1:0",
+            "--key-file",
+        ])
+        .arg(&key_file)
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("start the server");
+    let mut stdout = std::io::BufReader::new(child.stdout.take().unwrap());
+    let mut line = String::new();
+    std::io::BufRead::read_line(&mut stdout, &mut line).unwrap();
+    let url = line
+        .split_whitespace()
+        .find(|w| w.starts_with("http://"))
+        .unwrap_or_default()
+        .to_string();
+    let key = url.rsplit_once("?key=").map(|(_, k)| k.to_string());
+    let written = std::fs::read_to_string(&key_file).unwrap_or_default();
+    #[cfg(unix)]
+    let mode = {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::metadata(&key_file).map(|m| m.permissions().mode() & 0o777)
+    };
+    let _ = std::process::Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status();
+    let _ = child.wait();
+    let key = key.expect("the start-up URL carries the key");
+    assert_eq!(key.len(), 32, "{line}");
+    assert_eq!(written.trim(), key);
+    #[cfg(unix)]
+    assert_eq!(mode.unwrap(), 0o600);
+    assert!(!key_file.exists(), "the key file outlives the server");
+}
