@@ -374,3 +374,43 @@ fn the_key_file_is_private_and_the_url_hands_over_the_key() {
     assert_eq!(mode.unwrap(), 0o600);
     assert!(!key_file.exists(), "the key file outlives the server");
 }
+
+#[test]
+fn csv_exports_neutralise_formulas_and_keep_numbers() {
+    let dir = TempDir::new("formula");
+    for file in ["project.toml", "microdata.csv"] {
+        std::fs::copy(demo_dir().join(file), dir.path().join(file)).unwrap();
+    }
+    let frame = std::fs::read_to_string(demo_dir().join("frame.csv")).unwrap();
+    dir.write(
+        "frame.csv",
+        frame
+            .replace(
+                "Tirrovy",
+                "\"=HYPERLINK(\"\"http://evil.example\"\";\"\"x\"\")\"",
+            )
+            .replace("Zelleth", "@SUM(1+1)"),
+    );
+    let addr = start_server(dir.path());
+    let r = http(addr, "GET", "/coverage/points.csv?wave=1", &[]);
+    assert_eq!(r.status, 200, "{}", r.body);
+    assert!(r.body.contains("\"'=HYPERLINK("), "{}", r.body);
+    assert!(r.body.contains("'@SUM(1+1)"), "{}", r.body);
+    // No line has a cell that starts with a formula character unless it is a number.
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .from_reader(r.body.as_bytes());
+    let mut negative_numbers = 0;
+    for record in reader.records() {
+        for cell in record.unwrap().iter() {
+            if cell.starts_with(['=', '+', '-', '@', '\t', '\r']) {
+                assert!(cell.parse::<f64>().is_ok(), "{cell:?} left as a formula");
+                negative_numbers += 1;
+            }
+        }
+    }
+    assert!(
+        negative_numbers > 0,
+        "component scores include negative numbers"
+    );
+}
