@@ -150,7 +150,8 @@ pub fn serve(
             return 1;
         }
     }
-    let state = Arc::new(web::AppState::with_projects(project, projects));
+    let state =
+        Arc::new(web::AppState::with_projects(project, projects).keeping(access.keep_versions));
     let runtime = match tokio::runtime::Runtime::new() {
         Ok(r) => r,
         Err(e) => {

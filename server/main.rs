@@ -40,6 +40,9 @@ enum Command {
         /// Serve without an access key: every user and program on this machine can read the data.
         #[arg(long, conflicts_with = "key_file")]
         no_key: bool,
+        /// Versions kept of each project saved from the browser (the current one included).
+        #[arg(long, default_value_t = gapwise::project::store::DEFAULT_KEEP, value_parser = clap::value_parser!(usize))]
+        keep_versions: usize,
     },
     /// Validate a project folder: a summary, or one line per problem (file:row:column: message).
     Check {
@@ -223,13 +226,24 @@ fn main() -> ExitCode {
             projects,
             key_file,
             no_key,
+            keep_versions,
         }) => {
+            // Repair what a crash may have left in the projects folder, before listing it.
+            if let Some(p) = &projects {
+                for repair in gapwise::project::store::recover(p, keep_versions) {
+                    eprintln!("projects folder: {repair}");
+                }
+            }
             // Without a folder: the first project of the projects folder, else the demo.
             let first = projects
                 .as_deref()
                 .and_then(|p| gapwise::project::store::list(p).first().map(|n| p.join(n)));
             let dir = dir.or(first).unwrap_or_else(gapwise::demo_dir);
-            let access = gapwise::web::guard::Access { no_key, key_file };
+            let access = gapwise::web::guard::Access {
+                no_key,
+                key_file,
+                keep_versions,
+            };
             cli::serve(&dir, addr, allow_remote, projects, access)
         }
         Some(Command::Check { dir, json }) => cli::check(&dir, json),

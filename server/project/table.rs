@@ -200,18 +200,68 @@ pub fn find_data_file(dir: &Path, stem: &str) -> Result<Option<std::path::PathBu
     }
 }
 
+/// A file read whole while nothing changed it: its size, modification time (and, on
+/// Unix, its inode, against a replacement by rename) are the same before and after the
+/// read, and the bytes read match the size. A file that a program is still writing is
+/// refused rather than loaded half-written.
+pub fn read_stable(path: &Path, label: &str) -> Result<Vec<u8>, Problem> {
+    use std::io::Read;
+    let cannot = |e: std::io::Error| {
+        Problem::file(
+            label,
+            format!("cannot read the file ({e}); check that it exists and is readable"),
+        )
+    };
+    let stamp = |m: &std::fs::Metadata| {
+        #[cfg(unix)]
+        let inode = std::os::unix::fs::MetadataExt::ino(m);
+        #[cfg(not(unix))]
+        let inode = 0u64;
+        (m.len(), m.modified().ok(), inode)
+    };
+    let before = std::fs::metadata(path).map_err(cannot)?;
+    let mut file = std::fs::File::open(path).map_err(cannot)?;
+    let opened = file.metadata().map_err(cannot)?;
+    let mut bytes = Vec::with_capacity(usize::try_from(opened.len()).unwrap_or(0));
+    file.read_to_end(&mut bytes).map_err(cannot)?;
+    let after_handle = file.metadata().map_err(cannot)?;
+    let after_path = std::fs::metadata(path).map_err(cannot)?;
+    let stamps = [
+        stamp(&before),
+        stamp(&opened),
+        stamp(&after_handle),
+        stamp(&after_path),
+    ];
+    if stamps.windows(2).any(|w| w[0] != w[1]) || bytes.len() as u64 != after_handle.len() {
+        return Err(Problem::file(
+            label,
+            format!(
+                "the file changed while it was read ({} bytes before, {} after); a program is probably still writing it. Wait until it has finished, then load again",
+                before.len(),
+                after_path.len()
+            ),
+        ));
+    }
+    Ok(bytes)
+}
+
 /// Loads a CSV or Parquet file, keeping only the requested columns, typed as their kind.
-/// `label` is the file name used in messages.
+/// `label` is the file name used in messages. The file is read with [`read_stable`].
 pub fn load_table(path: &Path, label: &str, specs: &[ColumnSpec]) -> Result<Table, Vec<Problem>> {
+    let bytes = read_stable(path, label).map_err(|p| vec![p])?;
+    load_table_bytes(path, bytes, label, specs)
+}
+
+/// [`load_table`] on bytes already read from `path` (whose extension gives the format).
+pub fn load_table_bytes(
+    path: &Path,
+    bytes: Vec<u8>,
+    label: &str,
+    specs: &[ColumnSpec],
+) -> Result<Table, Vec<Problem>> {
     let is_parquet = path
         .extension()
         .is_some_and(|e| e.eq_ignore_ascii_case("parquet"));
-    let bytes = std::fs::read(path).map_err(|e| {
-        vec![Problem::file(
-            label,
-            format!("cannot read the file ({e}); check that it exists and is readable"),
-        )]
-    })?;
     let (raw, rows) = if is_parquet {
         (read_parquet(bytes, label)?, RowNumbers::Offset(1))
     } else {
@@ -241,6 +291,15 @@ pub fn load_table(path: &Path, label: &str, specs: &[ColumnSpec]) -> Result<Tabl
     };
     table.frame = typed_columns(&table, specs)?;
     Ok(table)
+}
+
+/// Rows and columns of a Parquet file from its metadata, without decoding any data (so
+/// that limits apply before a small file expands to millions of rows).
+pub fn parquet_shape(bytes: &[u8]) -> PolarsResult<(usize, usize)> {
+    let mut reader = ParquetReader::new(Cursor::new(bytes));
+    let columns = reader.schema()?.len();
+    let rows = reader.num_rows()?;
+    Ok((rows, columns))
 }
 
 fn read_parquet(bytes: Vec<u8>, label: &str) -> Result<DataFrame, Vec<Problem>> {

@@ -12,6 +12,9 @@ pub enum AppError {
     NotFound(String),
     #[error("{0}")]
     BadRequest(String),
+    /// The request would lose data; it says how to confirm.
+    #[error("{0}")]
+    Conflict(String),
     #[error("the project has problems:\n{}", .0.iter().map(Problem::to_string).collect::<Vec<_>>().join("\n"))]
     InvalidProject(Vec<Problem>),
     #[error("internal error: {0}")]
@@ -23,6 +26,7 @@ impl AppError {
         match self {
             AppError::NotFound(_) => StatusCode::NOT_FOUND,
             AppError::BadRequest(_) => StatusCode::BAD_REQUEST,
+            AppError::Conflict(_) => StatusCode::CONFLICT,
             AppError::InvalidProject(_) => StatusCode::UNPROCESSABLE_ENTITY,
             AppError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
         }

@@ -26,13 +26,25 @@ pub const KEY_HEADER: &str = "x-gapwise-key";
 /// The query parameter of the start-up URL that hands the key to the browser.
 pub const KEY_PARAM: &str = "key";
 
-/// How the server is protected beyond the Host check: chosen at start-up.
-#[derive(Debug, Clone, Default)]
+/// How the server is protected and keeps data, chosen at start-up.
+#[derive(Debug, Clone)]
 pub struct Access {
     /// Serve without a key (the behaviour before keys, for a single-user machine).
     pub no_key: bool,
     /// Also write the key to this file, readable only by its owner.
     pub key_file: Option<PathBuf>,
+    /// Versions kept of each project saved from the browser.
+    pub keep_versions: usize,
+}
+
+impl Default for Access {
+    fn default() -> Self {
+        Access {
+            no_key: false,
+            key_file: None,
+            keep_versions: crate::project::store::DEFAULT_KEEP,
+        }
+    }
 }
 
 /// What the guard accepts.

@@ -90,19 +90,39 @@ struct Reloaded {
     title: String,
     waves: Vec<i64>,
     warnings: usize,
+    /// What changed since the project was loaded before.
+    changes: Vec<String>,
 }
 
-/// Reloads the project from disk; the old project stays when the files have problems.
-async fn reload(State(state): State<Arc<AppState>>) -> AppResult<Json<Reloaded>> {
+#[derive(serde::Deserialize)]
+struct ReloadQuery {
+    #[serde(default)]
+    confirm: Option<String>,
+}
+
+/// Reloads the project from disk; the old project stays when the files have problems,
+/// and when they hold less than before unless the reload is confirmed (`?confirm=1`).
+async fn reload(
+    State(state): State<Arc<AppState>>,
+    axum::extract::Query(q): axum::extract::Query<ReloadQuery>,
+) -> AppResult<Json<Reloaded>> {
     let state = Arc::clone(&state);
-    let fresh = tokio::task::spawn_blocking(move || state.reload())
+    let confirmed = q.confirm.as_deref() == Some("1");
+    let fresh = tokio::task::spawn_blocking(move || state.reload(confirmed))
         .await
         .map_err(|e| AppError::Internal(e.to_string()))?
-        .map_err(AppError::InvalidProject)?;
+        .map_err(|refused| match refused {
+            state::ReloadRefused::Problems(p) => AppError::InvalidProject(p),
+            state::ReloadRefused::Loses(lost) => AppError::Conflict(format!(
+                "the files on disk hold less than the loaded project: {}. The loaded project is kept. If a program is still writing the files, wait and reload; if the loss is intended, reload with confirmation (POST /api/reload?confirm=1).",
+                lost.join("; ")
+            )),
+        })?;
     Ok(Json(Reloaded {
         title: fresh.manifest.title.clone(),
         waves: fresh.waves.clone(),
         warnings: fresh.warnings.len(),
+        changes: fresh.changes.clone(),
     }))
 }
 
