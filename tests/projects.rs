@@ -416,3 +416,44 @@ fn uploads_over_the_limits_get_clear_errors() {
     assert!(r.body.contains("1001 columns"), "{}", r.body);
     assert!(store::list(projects.path()).is_empty());
 }
+
+#[test]
+fn a_parquet_bomb_is_refused_from_its_metadata() {
+    use polars::prelude::*;
+    let projects = TempDir::new("bomb");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    // 3 million identical rows compress to a few kilobytes.
+    let n = 3_000_000;
+    let mut frame = df!(
+        "iso" => vec!["XAA"; n],
+        "wave" => vec![1i64; n],
+        "took_part" => vec![1i64; n],
+    )
+    .unwrap();
+    let mut bytes = Vec::new();
+    ParquetWriter::new(&mut bytes).finish(&mut frame).unwrap();
+    assert!(bytes.len() < 1_000_000, "{} bytes", bytes.len());
+    let (ct, body) = multipart(
+        &[("name", "bomb")],
+        &[("frame", "frame.parquet", bytes.as_slice())],
+    );
+    let started = std::time::Instant::now();
+    let r = http_body(
+        addr,
+        "POST",
+        "/projects/upload",
+        &[("Origin", origin.as_str())],
+        &ct,
+        &body,
+    );
+    assert_eq!(r.status, 400, "{}", r.body);
+    assert!(
+        r.body.contains("3000000 rows and 3 columns; the limits are 100000 rows"),
+        "{}",
+        r.body
+    );
+    assert!(started.elapsed().as_secs() < 5, "{:?}", started.elapsed());
+    // Nothing was staged.
+    assert_eq!(std::fs::read_dir(projects.path()).unwrap().count(), 0);
+}

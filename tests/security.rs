@@ -414,3 +414,95 @@ fn csv_exports_neutralise_formulas_and_keep_numbers() {
         "component scores include negative numbers"
     );
 }
+
+#[test]
+fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
+    let dir = valid_project("halfwritten");
+    let (addr, key) = start_server_with_token(dir.path());
+    let auth = [("x-gapwise-key", key.as_str())];
+    let overview = |addr| -> serde_json::Value {
+        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap()
+    };
+    let before = overview(addr);
+    let loaded = before["loaded"].as_array().expect("loaded files");
+    assert_eq!(loaded.len(), 3);
+    assert_eq!(loaded[1]["name"], "frame.csv");
+    assert_eq!(loaded[1]["rows"], 8);
+    assert_eq!(loaded[2]["rows"], 5);
+    assert!(loaded[0]["rows"].is_null(), "the manifest has no rows");
+    // SHA-256 of the bytes (FIPS 180-4), here from sha2 over the test's own copy.
+    use sha2::Digest;
+    let digest: String = sha2::Sha256::digest(FRAME.as_bytes())
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect();
+    assert_eq!(loaded[1]["sha256"], digest.as_str());
+    let page = http(addr, "GET", "/", &[]).body;
+    assert!(page.contains("Files loaded") && page.contains(&digest), "overview shows the files");
+
+    // The microdata cut at a line end, as while a program rewrites it: valid, but fewer rows.
+    let cut: String = MICRODATA.lines().take(3).map(|l| format!("{l}\n")).collect();
+    dir.write("microdata.csv", &cut);
+    let r = http(addr, "POST", "/api/reload", &auth);
+    assert_eq!(r.status, 409, "{}", r.body);
+    assert!(
+        r.body.contains("microdata.csv now has 2 rows instead of 5 (3 fewer)"),
+        "{}",
+        r.body
+    );
+    assert!(r.body.contains("/api/reload?confirm=1"), "{}", r.body);
+    assert_eq!(overview(addr)["loaded"][2]["rows"], 5, "the old project stays");
+    // The frame losing its latest wave (and the microdata its respondents of wave 2).
+    let wave_one: String = MICRODATA.lines().take(4).map(|l| format!("{l}\n")).collect();
+    dir.write("microdata.csv", &wave_one);
+    let one_wave: String = FRAME.lines().take(5).map(|l| format!("{l}\n")).collect();
+    dir.write("frame.csv", &one_wave);
+    let r = http(addr, "POST", "/api/reload", &auth);
+    assert_eq!(r.status, 409, "{}", r.body);
+    assert!(r.body.contains("wave 2 no longer in the frame"), "{}", r.body);
+    // Confirmed, the reload goes through and the overview says what changed.
+    let r = http(addr, "POST", "/api/reload?confirm=1", &auth);
+    assert_eq!(r.status, 200, "{}", r.body);
+    let after = overview(addr);
+    assert_eq!(after["loaded"][1]["rows"], 4);
+    let changes = after["changes"].to_string();
+    assert!(
+        changes.contains("frame.csv: changed, 8 rows before, 4 now"),
+        "{changes}"
+    );
+    // A reload of unchanged files says so.
+    let r = http(addr, "POST", "/api/reload", &auth);
+    assert_eq!(r.status, 200, "{}", r.body);
+    assert!(r.body.contains("no file changed"), "{}", r.body);
+}
+
+#[test]
+fn a_file_that_changes_while_it_is_read_is_refused() {
+    let dir = TempDir::new("growing");
+    let path = dir.path().join("frame.csv");
+    let line = "XAA,Aland,1,1,9.5,8.0,North\n";
+    std::fs::write(&path, line.repeat(200_000)).unwrap();
+    let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let writer = {
+        let (path, stop) = (path.clone(), std::sync::Arc::clone(&stop));
+        std::thread::spawn(move || {
+            let mut file = std::fs::OpenOptions::new().append(true).open(path).unwrap();
+            while !stop.load(std::sync::atomic::Ordering::Relaxed) {
+                std::io::Write::write_all(&mut file, line.as_bytes()).unwrap();
+            }
+        })
+    };
+    let mut refused = None;
+    for _ in 0..200 {
+        if let Err(p) = gapwise::project::table::read_stable(&path, "frame.csv") {
+            refused = Some(p.to_string());
+            break;
+        }
+    }
+    stop.store(true, std::sync::atomic::Ordering::Relaxed);
+    writer.join().unwrap();
+    let refused = refused.expect("a growing file was read as if complete");
+    assert!(refused.contains("frame.csv:-:-: the file changed while it was read"), "{refused}");
+    // Once the writer is done, the file reads.
+    assert!(gapwise::project::table::read_stable(&path, "frame.csv").is_ok());
+}
