@@ -449,7 +449,8 @@ fn a_parquet_bomb_is_refused_from_its_metadata() {
     );
     assert_eq!(r.status, 400, "{}", r.body);
     assert!(
-        r.body.contains("3000000 rows and 3 columns; the limits are 100000 rows"),
+        r.body
+            .contains("3000000 rows and 3 columns; the limits are 100000 rows"),
         "{}",
         r.body
     );

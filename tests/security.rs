@@ -438,28 +438,48 @@ fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
         .collect();
     assert_eq!(loaded[1]["sha256"], digest.as_str());
     let page = http(addr, "GET", "/", &[]).body;
-    assert!(page.contains("Files loaded") && page.contains(&digest), "overview shows the files");
+    assert!(
+        page.contains("Files loaded") && page.contains(&digest),
+        "overview shows the files"
+    );
 
     // The microdata cut at a line end, as while a program rewrites it: valid, but fewer rows.
-    let cut: String = MICRODATA.lines().take(3).map(|l| format!("{l}\n")).collect();
+    let cut: String = MICRODATA
+        .lines()
+        .take(3)
+        .map(|l| format!("{l}\n"))
+        .collect();
     dir.write("microdata.csv", &cut);
     let r = http(addr, "POST", "/api/reload", &auth);
     assert_eq!(r.status, 409, "{}", r.body);
     assert!(
-        r.body.contains("microdata.csv now has 2 rows instead of 5 (3 fewer)"),
+        r.body
+            .contains("microdata.csv now has 2 rows instead of 5 (3 fewer)"),
         "{}",
         r.body
     );
     assert!(r.body.contains("/api/reload?confirm=1"), "{}", r.body);
-    assert_eq!(overview(addr)["loaded"][2]["rows"], 5, "the old project stays");
+    assert_eq!(
+        overview(addr)["loaded"][2]["rows"],
+        5,
+        "the old project stays"
+    );
     // The frame losing its latest wave (and the microdata its respondents of wave 2).
-    let wave_one: String = MICRODATA.lines().take(4).map(|l| format!("{l}\n")).collect();
+    let wave_one: String = MICRODATA
+        .lines()
+        .take(4)
+        .map(|l| format!("{l}\n"))
+        .collect();
     dir.write("microdata.csv", &wave_one);
     let one_wave: String = FRAME.lines().take(5).map(|l| format!("{l}\n")).collect();
     dir.write("frame.csv", &one_wave);
     let r = http(addr, "POST", "/api/reload", &auth);
     assert_eq!(r.status, 409, "{}", r.body);
-    assert!(r.body.contains("wave 2 no longer in the frame"), "{}", r.body);
+    assert!(
+        r.body.contains("wave 2 no longer in the frame"),
+        "{}",
+        r.body
+    );
     // Confirmed, the reload goes through and the overview says what changed.
     let r = http(addr, "POST", "/api/reload?confirm=1", &auth);
     assert_eq!(r.status, 200, "{}", r.body);
@@ -502,7 +522,102 @@ fn a_file_that_changes_while_it_is_read_is_refused() {
     stop.store(true, std::sync::atomic::Ordering::Relaxed);
     writer.join().unwrap();
     let refused = refused.expect("a growing file was read as if complete");
-    assert!(refused.contains("frame.csv:-:-: the file changed while it was read"), "{refused}");
+    assert!(
+        refused.contains("frame.csv:-:-: the file changed while it was read"),
+        "{refused}"
+    );
     // Once the writer is done, the file reads.
     assert!(gapwise::project::table::read_stable(&path, "frame.csv").is_ok());
+}
+
+#[test]
+fn messages_quote_short_prefixes_and_state_limits() {
+    // A header with a 50,000-byte mangled name, then a frame: the column is quoted
+    // in a short prefix only.
+    let dir = valid_project("longheader");
+    let long = "x".repeat(50_000);
+    dir.write("frame.csv", FRAME.replacen("iso,", &format!("{long},"), 1));
+    let out = gapwise(&["check", dir.path().to_str().unwrap()]);
+    assert_eq!(out.code, 1);
+    assert!(
+        out.stderr.len() + out.stdout.len() < 20_000,
+        "{} bytes of messages",
+        out.stderr.len() + out.stdout.len()
+    );
+    assert!(
+        out.stdout.contains("characters)") || out.stderr.contains("characters)"),
+        "{}{}",
+        out.stdout,
+        out.stderr
+    );
+    // Line endings of CR alone get their own message.
+    dir.write("frame.csv", FRAME.replace('\n', "\r"));
+    let out = gapwise(&["check", dir.path().to_str().unwrap()]);
+    let text = format!("{}{}", out.stdout, out.stderr);
+    assert!(
+        text.contains("frame.csv:1:-: the lines end in a carriage return alone"),
+        "{text}"
+    );
+    // A single very long line is refused early, with its place.
+    let mut one_line = String::from("iso,name,wave,took_part,gdp,democracy,region\n");
+    one_line.push_str(&"1,".repeat(3_000_000));
+    dir.write("frame.csv", &one_line);
+    let started = std::time::Instant::now();
+    let out = gapwise(&["check", dir.path().to_str().unwrap()]);
+    let text = format!("{}{}", out.stdout, out.stderr);
+    assert!(
+        text.contains("frame.csv:2:-: this line is longer than 1 MiB"),
+        "{text}"
+    );
+    assert!(started.elapsed().as_secs() < 5, "{:?}", started.elapsed());
+    // An unclosed quote: the cell limit names the column.
+    let mut open_quote = String::from("iso,name,wave,took_part,gdp,democracy,region\nXAA,\"");
+    open_quote.push_str(&"a\n".repeat(40_000));
+    dir.write("frame.csv", &open_quote);
+    let out = gapwise(&["check", dir.path().to_str().unwrap()]);
+    let text = format!("{}{}", out.stdout, out.stderr);
+    assert!(
+        text.contains(":name: this cell is longer than 64 KiB"),
+        "{text}"
+    );
+    // A bare CSV names the option, not project.toml.
+    let bare = TempDir::new("bare");
+    bare.write(
+        "units.csv",
+        "id,flag,gdp\nXAA,1,1\nXAB,0,2\nXAC,1,3\nXAD,0,4\n",
+    );
+    let out = gapwise(&[
+        "fit",
+        bare.path().join("units.csv").to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "flag",
+        "--covariates",
+        "nosuch",
+    ]);
+    let text = format!("{}{}", out.stdout, out.stderr);
+    assert!(!text.contains("project.toml"), "{text}");
+    assert!(
+        text.contains("the option --covariates names 'nosuch'"),
+        "{text}"
+    );
+}
+
+#[test]
+fn a_body_over_the_limit_says_the_limit() {
+    let projects = TempDir::new("bodylimit");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    let big = vec![b'a'; gapwise::web::MAX_BODY_BYTES + 1024];
+    let r = http_body(
+        addr,
+        "POST",
+        "/projects/map",
+        &[("Origin", origin.as_str())],
+        "application/x-www-form-urlencoded",
+        &big,
+    );
+    assert_eq!(r.status, 413, "{}", r.body);
+    assert!(r.body.contains("limit of 64 MB"), "{}", r.body);
 }

@@ -108,3 +108,24 @@ pub async fn html_errors(
         Err(_) => (status, String::from_utf8_lossy(&body).to_string()).into_response(),
     }
 }
+
+/// A request body over the limit gets a message that states the limit (the framework's
+/// own says only "length limit exceeded").
+pub async fn explain_body_limit(
+    request: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> Response {
+    let response = next.run(request).await;
+    if response.status() != StatusCode::PAYLOAD_TOO_LARGE {
+        return response;
+    }
+    (
+        StatusCode::PAYLOAD_TOO_LARGE,
+        [("content-type", "text/plain; charset=utf-8")],
+        format!(
+            "the request is larger than the limit of {} MB; upload smaller files (Parquet is more compact than CSV), or open a larger project from a folder with gapwise serve DIR",
+            super::MAX_BODY_BYTES / 1024 / 1024
+        ),
+    )
+        .into_response()
+}

@@ -136,6 +136,7 @@ pub fn app(state: Arc<AppState>, guard: guard::Guard) -> Router {
             guard::check,
         ))
         .layer(axum::extract::DefaultBodyLimit::max(MAX_BODY_BYTES))
+        .layer(axum::middleware::from_fn(error::explain_body_limit))
         .layer(axum::middleware::from_fn(guard::protective_headers))
 }
 

@@ -146,7 +146,10 @@ pub async fn upload(
         match field.file_name().map(str::to_string) {
             Some(file_name) => {
                 let bytes = field.bytes().await.map_err(|e| {
-                    AppError::BadRequest(format!("the file {file_name} could not be read ({e})"))
+                    AppError::BadRequest(format!(
+                        "the file {file_name} could not be read ({e}); an upload may be at most {} MB in all",
+                        super::MAX_BODY_BYTES / 1024 / 1024
+                    ))
                 })?;
                 if !bytes.is_empty() {
                     files.push((name, file_name, bytes.to_vec()));
