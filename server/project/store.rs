@@ -375,10 +375,12 @@ pub fn recover(projects: &Path, keep: usize) -> Vec<String> {
         .collect();
     for n in &names {
         let path = projects.join(n);
-        if n.starts_with(STAGING_PREFIX) && !is_symlink(&path) && path.is_dir() {
-            if std::fs::remove_dir_all(&path).is_ok() {
-                done.push(format!("removed the unsaved upload {n}"));
-            }
+        if n.starts_with(STAGING_PREFIX)
+            && !is_symlink(&path)
+            && path.is_dir()
+            && std::fs::remove_dir_all(&path).is_ok()
+        {
+            done.push(format!("removed the unsaved upload {n}"));
         }
     }
     // Earlier releases: NAME renamed to NAME.previous-SECONDS, then the crash.
