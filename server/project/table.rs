@@ -579,10 +579,16 @@ fn check_line_endings_and_lengths(bytes: &[u8], label: &str) -> Result<(), Vec<P
             _ => {}
         }
         if i.saturating_sub(cell_start) >= MAX_CELL_BYTES {
+            // In the header the cell is the name itself: name its position instead.
+            let column = if line == 1 {
+                format!("field {}", field + 1)
+            } else {
+                column_name(field)
+            };
             return Err(vec![Problem::at(
                 label,
                 Some(line),
-                Some(&column_name(field)),
+                Some(&column),
                 format!("this cell is longer than {} KiB; cells are limited to that size (check the quoting: an unclosed quote runs to the end of the file)", MAX_CELL_BYTES / 1024),
             )]);
         }
