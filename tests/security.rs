@@ -621,3 +621,30 @@ fn a_body_over_the_limit_says_the_limit() {
     assert_eq!(r.status, 413, "{}", r.body);
     assert!(r.body.contains("limit of 64 MB"), "{}", r.body);
 }
+
+#[test]
+fn a_binary_outcome_that_is_not_0_or_1_is_placed() {
+    let dir = TempDir::new("binary");
+    let mut csv = String::from("y,x,country\n");
+    for i in 0..40 {
+        let y = if i == 17 { 35 } else { i % 2 };
+        csv.push_str(&format!("{y},{},{}\n", i % 7, ["XAA", "XAB", "XAC"][i % 3]));
+    }
+    dir.write("people.csv", &csv);
+    let e = gapwise::analysis::microdata::regress_file(
+        &dir.path().join("people.csv"),
+        "y",
+        &["x".to_string()],
+        "country",
+        None,
+        gapwise::stats::regression::Family::Binomial,
+    )
+    .err()
+    .expect("refused");
+    // Data row 18 (0-based 17) is line 19, the header being line 1.
+    assert!(
+        e.to_string()
+            .starts_with("people.csv:19:y: the outcome is 35; a binomial outcome must be 0 or 1"),
+        "{e}"
+    );
+}
