@@ -71,7 +71,8 @@ fn is_symlink(path: &Path) -> bool {
 /// The folder that holds a project's files: its current version when it has one, the
 /// folder itself otherwise (projects written by hand or by earlier releases).
 pub fn resolve(dir: &Path) -> PathBuf {
-    match current_version(dir) {
+    let version = current_version(dir).filter(|v| dir.join(VERSIONS_DIR).join(v).is_dir());
+    match version {
         Some(version) => dir.join(VERSIONS_DIR).join(version),
         None => dir.to_path_buf(),
     }
