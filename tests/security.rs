@@ -649,3 +649,35 @@ fn a_binary_outcome_that_is_not_0_or_1_is_placed() {
         "{e}"
     );
 }
+
+#[test]
+fn no_key_warns_at_start_up() {
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
+        .args([
+            "serve",
+            demo_dir().to_str().unwrap(),
+            "--addr",
+            "127.0.0.1:0",
+            "--no-key",
+        ])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("start the server");
+    let mut stdout = std::io::BufReader::new(child.stdout.take().unwrap());
+    let mut line = String::new();
+    std::io::BufRead::read_line(&mut stdout, &mut line).unwrap();
+    let _ = std::process::Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status();
+    let out = child.wait_with_output().unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        line.contains("serving") && !line.contains("?key="),
+        "{line}"
+    );
+    assert!(
+        stderr.contains("warning: started with --no-key"),
+        "{stderr}"
+    );
+}
