@@ -159,9 +159,28 @@ fn random_hex(bytes: usize) -> String {
     buf.iter().map(|b| format!("{b:02x}")).collect()
 }
 
+/// Uploads left unsaved longer than this are deleted when the next upload arrives.
+pub const STALE_STAGING: std::time::Duration = std::time::Duration::from_secs(24 * 3600);
+
 /// A fresh staging folder for one upload of `name`; returns the upload's id and folder.
+/// Staging folders older than [`STALE_STAGING`] are deleted on the way.
 pub fn new_staging(projects: &Path, name: &str) -> std::io::Result<(String, PathBuf)> {
     valid_name(name).map_err(std::io::Error::other)?;
+    if let Ok(entries) = std::fs::read_dir(projects) {
+        for e in entries.filter_map(Result::ok) {
+            let stale = e
+                .metadata()
+                .and_then(|m| m.modified())
+                .ok()
+                .and_then(|t| t.elapsed().ok())
+                .is_some_and(|age| age > STALE_STAGING);
+            let is_staging = e.file_name().to_string_lossy().starts_with(STAGING_PREFIX)
+                && e.file_type().is_ok_and(|t| t.is_dir());
+            if stale && is_staging {
+                let _ = std::fs::remove_dir_all(e.path());
+            }
+        }
+    }
     let id = random_hex(8);
     let dir = projects.join(format!("{STAGING_PREFIX}{name}-{id}"));
     std::fs::create_dir_all(projects)?;
