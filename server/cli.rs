@@ -119,6 +119,7 @@ pub fn serve(
     addr: SocketAddr,
     allow_remote: bool,
     projects: Option<std::path::PathBuf>,
+    access: web::guard::Access,
 ) -> i32 {
     if !addr.ip().is_loopback() {
         if !allow_remote {
@@ -149,7 +150,8 @@ pub fn serve(
             return 1;
         }
     }
-    let state = Arc::new(web::AppState::with_projects(project, projects));
+    let state =
+        Arc::new(web::AppState::with_projects(project, projects).keeping(access.keep_versions));
     let runtime = match tokio::runtime::Runtime::new() {
         Ok(r) => r,
         Err(e) => {
@@ -157,7 +159,7 @@ pub fn serve(
             return 1;
         }
     };
-    match runtime.block_on(web::serve(state, addr, allow_remote)) {
+    match runtime.block_on(web::serve(state, addr, allow_remote, access)) {
         Ok(()) => 0,
         Err(message) => {
             eprintln!("{message}");

@@ -34,6 +34,15 @@ enum Command {
         /// A folder of projects to open and create from the browser.
         #[arg(long)]
         projects: Option<PathBuf>,
+        /// Also write this run's access key to a file readable only by you (for scripts).
+        #[arg(long, value_name = "PATH")]
+        key_file: Option<PathBuf>,
+        /// Serve without an access key: every user and program on this machine can read the data.
+        #[arg(long, conflicts_with = "key_file")]
+        no_key: bool,
+        /// Versions kept of each project saved from the browser (the current one included).
+        #[arg(long, default_value_t = gapwise::project::store::DEFAULT_KEEP, value_parser = clap::value_parser!(usize))]
+        keep_versions: usize,
     },
     /// Validate a project folder: a summary, or one line per problem (file:row:column: message).
     Check {
@@ -203,19 +212,39 @@ impl AnalysisArgs {
 fn main() -> ExitCode {
     let args = Args::parse();
     let code = match args.command {
-        None => cli::serve(&gapwise::demo_dir(), default_addr(), false, None),
+        None => cli::serve(
+            &gapwise::demo_dir(),
+            default_addr(),
+            false,
+            None,
+            Default::default(),
+        ),
         Some(Command::Serve {
             dir,
             addr,
             allow_remote,
             projects,
+            key_file,
+            no_key,
+            keep_versions,
         }) => {
+            // Repair what a crash may have left in the projects folder, before listing it.
+            if let Some(p) = &projects {
+                for repair in gapwise::project::store::recover(p, keep_versions) {
+                    eprintln!("projects folder: {repair}");
+                }
+            }
             // Without a folder: the first project of the projects folder, else the demo.
             let first = projects
                 .as_deref()
                 .and_then(|p| gapwise::project::store::list(p).first().map(|n| p.join(n)));
             let dir = dir.or(first).unwrap_or_else(gapwise::demo_dir);
-            cli::serve(&dir, addr, allow_remote, projects)
+            let access = gapwise::web::guard::Access {
+                no_key,
+                key_file,
+                keep_versions,
+            };
+            cli::serve(&dir, addr, allow_remote, projects, access)
         }
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),

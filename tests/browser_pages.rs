@@ -23,12 +23,13 @@ fn pages_work_in_a_real_browser() {
         eprintln!("skipped: install Debian's chromium and run `npm ci` in tests/browser to run the browser test");
         return;
     }
-    let addr = start_server(&demo_dir());
+    let (addr, key) = start_server_with_token(&demo_dir());
     let artefacts = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/browser-artefacts");
     let out = Command::new("node")
         .arg(browser_dir.join("run.mjs"))
         .arg(format!("http://{addr}"))
         .arg(&artefacts)
+        .arg(&key)
         .output()
         .expect("run node");
     assert!(

@@ -45,7 +45,7 @@ fn overview_page_and_json_twin_agree() {
 fn reload_swaps_project_and_keeps_old_on_error() {
     let dir = valid_project("reload");
     let (addr, token) = start_server_with_token(dir.path());
-    // Without the token or a same-origin header a change is refused.
+    // Without the key header or a same-origin header a change is refused.
     assert_eq!(http(addr, "POST", "/api/reload", &[]).status, 403);
     assert_eq!(
         http(
@@ -57,7 +57,7 @@ fn reload_swaps_project_and_keeps_old_on_error() {
         .status,
         403
     );
-    let auth = [("x-gapwise-token", token.as_str())];
+    let auth = [("x-gapwise-key", token.as_str())];
     let before: serde_json::Value =
         serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
     assert_eq!(before["title"], "Test programme");

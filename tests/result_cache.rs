@@ -60,7 +60,7 @@ async fn no_page_recomputes_what_an_earlier_request_computed() {
     assert_eq!(state.cache.stats().misses, second.misses + 1);
 
     // A reload is a new revision: computed afresh, the old results forgotten.
-    state.reload().expect("reload");
+    state.reload(false).expect("reload");
     assert_eq!(state.cache.stats().entries, 0);
     assert_eq!(get(&state, "/model").await, StatusCode::OK);
     assert_eq!(state.cache.stats().misses, second.misses + 2);

@@ -183,6 +183,25 @@ fn dense_regression_data(
 }
 
 /// `gapwise regress`: one pooled regression with CR1 standard errors.
+/// The first outcome that is neither 0 nor 1, with its file, row and column (read again:
+/// this runs only when the model refused the outcome).
+fn not_binary(path: &Path, outcome: &str) -> Option<MicrodataError> {
+    let label = path.file_name()?.to_string_lossy().to_string();
+    let spec = ColumnSpec::new(outcome, ColumnKind::Number, "--outcome");
+    let table = load_table(path, &label, &[spec]).ok()?;
+    let values = table.numbers(outcome);
+    let (i, v) = values
+        .iter()
+        .enumerate()
+        .find_map(|(i, v)| v.filter(|v| *v != 0.0 && *v != 1.0).map(|v| (i, v)))?;
+    Some(MicrodataError::Input(vec![Problem::at(
+        &label,
+        Some(table.row_number(i)),
+        Some(outcome),
+        format!("the outcome is {v}; a binomial outcome must be 0 or 1: recode it, or use --family gaussian"),
+    )]))
+}
+
 pub fn regress_file(
     path: &Path,
     outcome: &str,
@@ -203,7 +222,11 @@ pub fn regress_file(
         data.weight.as_deref(),
         &data.cluster,
         family,
-    )?;
+    )
+    .map_err(|e| match e {
+        regression::RegressionError::NotBinary(_) => not_binary(path, outcome).unwrap_or(e.into()),
+        e => e.into(),
+    })?;
     let mut terms = vec!["intercept".to_string()];
     terms.extend(predictors.iter().cloned());
     Ok(RegressReport {

@@ -22,6 +22,10 @@ pub struct Overview {
     pub trends: Vec<WaveTrend>,
     pub warnings: Vec<String>,
     pub cautions: Vec<Caution>,
+    /// The files loaded: name, size, data rows, SHA-256 of the bytes validated.
+    pub loaded: Vec<crate::project::LoadedFile>,
+    /// What changed since the previous load (empty when the project was loaded once).
+    pub changes: Vec<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -282,6 +286,8 @@ pub fn overview(project: &Project) -> Overview {
         }),
         warnings: project.warnings.iter().map(Problem::to_string).collect(),
         cautions: STANDING.to_vec(),
+        loaded: project.inputs.clone(),
+        changes: project.changes.clone(),
     }
 }
 

@@ -2,7 +2,6 @@
 //! reproduce it (tool version, input checksums, settings, seed).
 
 use serde::Serialize;
-use sha2::{Digest, Sha256};
 
 use super::balance::{compare, BalanceComparison};
 use super::coverage::{coverage, CoverageReport};
@@ -11,15 +10,8 @@ use super::overview::{overview, Overview};
 use super::participation::{fit, FitReport};
 use super::planner::{plan, Plan, PlanSettings};
 use super::settings::Settings;
-use crate::project::Project;
+use crate::project::{LoadedFile, Project};
 use crate::stats::regression::Family;
-
-#[derive(Debug, Clone, Serialize)]
-pub struct InputFile {
-    pub name: String,
-    pub bytes: u64,
-    pub sha256: String,
-}
 
 #[derive(Debug, Clone, Serialize)]
 pub struct Report {
@@ -32,30 +24,13 @@ pub struct Report {
     pub coverage: CoverageReport,
     pub plan: Result<Plan, String>,
     pub impact: Option<Result<ImpactReport, String>>,
-    pub inputs: Vec<InputFile>,
+    pub inputs: Vec<LoadedFile>,
 }
 
-/// SHA-256 of every file the project read (FIPS 180-4).
-pub fn input_checksums(project: &Project) -> Vec<InputFile> {
-    let mut names = vec![
-        crate::project::MANIFEST_FILE.to_string(),
-        project.frame.file.clone(),
-    ];
-    if let Some(m) = &project.microdata {
-        names.push(m.file.clone());
-    }
-    names
-        .into_iter()
-        .filter_map(|name| {
-            let bytes = std::fs::read(project.dir.join(&name)).ok()?;
-            let digest = Sha256::digest(&bytes);
-            Some(InputFile {
-                sha256: digest.iter().map(|b| format!("{b:02x}")).collect(),
-                bytes: bytes.len() as u64,
-                name,
-            })
-        })
-        .collect()
+/// SHA-256 of every file the project read (FIPS 180-4): of exactly the bytes that were
+/// validated when the project was loaded, not of the files as they are now.
+pub fn input_checksums(project: &Project) -> Vec<LoadedFile> {
+    project.inputs.clone()
 }
 
 /// Builds the report for one wave (the latest when the settings name none).

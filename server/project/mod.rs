@@ -36,6 +36,11 @@ pub struct Project {
     pub eligibility: Eligibility,
     /// Things worth knowing that do not stop the analysis (participants failing a rule...).
     pub warnings: Vec<Problem>,
+    /// The files read, in order (manifest, frame, microdata), with rows and checksums.
+    pub inputs: Vec<LoadedFile>,
+    /// What changed since the project was last loaded (empty on the first load); set by
+    /// [`Project::compare_with`] when the server reloads.
+    pub changes: Vec<String>,
     /// A number no other load in this process has: cached results are keyed by it, so a
     /// reload can never be answered from results of the files before it.
     pub revision: u64,
@@ -47,27 +52,96 @@ fn next_revision() -> u64 {
     NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
 }
 
+/// One file as it was loaded: name, size, data rows (not for the manifest) and SHA-256
+/// (FIPS 180-4) of exactly the bytes that were validated.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+pub struct LoadedFile {
+    pub name: String,
+    pub bytes: u64,
+    pub rows: Option<usize>,
+    pub sha256: String,
+}
+
+impl LoadedFile {
+    fn new(name: &str, bytes: &[u8], rows: Option<usize>) -> Self {
+        use sha2::{Digest, Sha256};
+        LoadedFile {
+            name: name.to_string(),
+            bytes: bytes.len() as u64,
+            rows,
+            sha256: Sha256::digest(bytes)
+                .iter()
+                .map(|b| format!("{b:02x}"))
+                .collect(),
+        }
+    }
+}
+
+/// Data lost by a reload: files gone, fewer rows, waves gone. Empty when nothing is lost.
+pub fn losses(old: &Project, new: &Project) -> Vec<String> {
+    let mut lost = Vec::new();
+    for before in &old.inputs {
+        let Some(rows_before) = before.rows else {
+            continue;
+        };
+        match new.inputs.iter().find(|f| f.name == before.name) {
+            None => lost.push(format!(
+                "{} ({rows_before} rows) is no longer there",
+                before.name
+            )),
+            Some(after) => {
+                let rows_after = after.rows.unwrap_or(0);
+                if rows_after < rows_before {
+                    lost.push(format!(
+                        "{} now has {rows_after} rows instead of {rows_before} ({} fewer)",
+                        before.name,
+                        rows_before - rows_after
+                    ));
+                }
+            }
+        }
+    }
+    let gone: Vec<String> = old
+        .waves
+        .iter()
+        .filter(|w| !new.waves.contains(w))
+        .map(i64::to_string)
+        .collect();
+    if !gone.is_empty() {
+        lost.push(format!(
+            "wave{} {} no longer in the frame",
+            if gone.len() == 1 { "" } else { "s" },
+            gone.join(", ")
+        ));
+    }
+    lost
+}
+
 impl Project {
-    /// Loads and validates the project in `dir`; returns every problem found.
+    /// Loads and validates the project in `dir`; returns every problem found. A project
+    /// saved from the browser (a folder of versions, see [`store`]) loads its current
+    /// version. Every file is read whole while unchanged ([`table::read_stable`]).
     pub fn load(dir: &Path) -> Result<Project, Vec<Problem>> {
+        let dir = &store::resolve(dir);
         let manifest_path = dir.join(MANIFEST_FILE);
-        let text = match std::fs::read(&manifest_path) {
-            Ok(bytes) => String::from_utf8(bytes).map_err(|_| {
-                vec![Problem::file(
-                    MANIFEST_FILE,
-                    "the manifest is not UTF-8 text; save it as UTF-8",
-                )]
-            })?,
-            Err(e) => {
-                return Err(vec![Problem::file(
-                    MANIFEST_FILE,
-                    format!(
-                    "cannot read {} ({e}); a project folder needs a project.toml (see the README)",
+        if !manifest_path.exists() {
+            return Err(vec![Problem::file(
+                MANIFEST_FILE,
+                format!(
+                    "cannot read {} (there is no such file); a project folder needs a project.toml (see the README)",
                     manifest_path.display()
                 ),
-                )])
-            }
-        };
+            )]);
+        }
+        let manifest_bytes =
+            table::read_stable(&manifest_path, MANIFEST_FILE).map_err(|p| vec![p])?;
+        let mut inputs = vec![LoadedFile::new(MANIFEST_FILE, &manifest_bytes, None)];
+        let text = String::from_utf8(manifest_bytes).map_err(|_| {
+            vec![Problem::file(
+                MANIFEST_FILE,
+                "the manifest is not UTF-8 text; save it as UTF-8",
+            )]
+        })?;
         let manifest = Manifest::parse(&text)?;
 
         let frame_path = match table::find_data_file(dir, FRAME_STEM) {
@@ -81,7 +155,18 @@ impl Project {
             Err(p) => return Err(vec![p]),
         };
         let frame_label = file_label(&frame_path);
-        let frame = table::load_table(&frame_path, &frame_label, &frame_specs(&manifest))?;
+        let frame_bytes = table::read_stable(&frame_path, &frame_label).map_err(|p| vec![p])?;
+        let frame_file = LoadedFile::new(&frame_label, &frame_bytes, None);
+        let frame = table::load_table_bytes(
+            &frame_path,
+            frame_bytes,
+            &frame_label,
+            &frame_specs(&manifest),
+        )?;
+        inputs.push(LoadedFile {
+            rows: Some(frame.height()),
+            ..frame_file
+        });
 
         let mut problems = ProblemList::new();
         let codes = frame.texts(&manifest.columns.code);
@@ -135,12 +220,29 @@ impl Project {
                     None
                 }
                 Some(roles) => {
-                    match table::load_table(&path, &file_label(&path), &microdata_specs(roles)) {
+                    let label = file_label(&path);
+                    let loaded = table::read_stable(&path, &label)
+                        .map_err(|p| vec![p])
+                        .and_then(|bytes| {
+                            let file = LoadedFile::new(&label, &bytes, None);
+                            let table = table::load_table_bytes(
+                                &path,
+                                bytes,
+                                &label,
+                                &microdata_specs(roles),
+                            )?;
+                            Ok((file, table))
+                        });
+                    match loaded {
                         Err(p) => {
                             problems.extend(p);
                             None
                         }
-                        Ok(micro) => {
+                        Ok((file, micro)) => {
+                            inputs.push(LoadedFile {
+                                rows: Some(micro.height()),
+                                ..file
+                            });
                             check_microdata(
                                 &micro,
                                 roles,
@@ -172,7 +274,36 @@ impl Project {
             eligibility,
             warnings,
             revision: next_revision(),
+            inputs,
+            changes: Vec::new(),
         })
+    }
+
+    /// Records in `changes` what differs from the project loaded before (files added,
+    /// removed or changed, with their rows), for the overview.
+    pub fn compare_with(&mut self, before: &Project) {
+        let mut changes = Vec::new();
+        for after in &self.inputs {
+            match before.inputs.iter().find(|f| f.name == after.name) {
+                None => changes.push(format!("{}: new", after.name)),
+                Some(b) if b.sha256 == after.sha256 => {}
+                Some(b) => changes.push(match (b.rows, after.rows) {
+                    (Some(r0), Some(r1)) => {
+                        format!("{}: changed, {r0} rows before, {r1} now", after.name)
+                    }
+                    _ => format!("{}: changed", after.name),
+                }),
+            }
+        }
+        for b in &before.inputs {
+            if !self.inputs.iter().any(|f| f.name == b.name) {
+                changes.push(format!("{}: no longer there", b.name));
+            }
+        }
+        if changes.is_empty() {
+            changes.push("no file changed since the last load".to_string());
+        }
+        self.changes = changes;
     }
 
     /// Country codes of the frame's rows.

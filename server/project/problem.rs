@@ -34,10 +34,40 @@ impl Problem {
         Problem {
             file: file.to_string(),
             row,
-            column: column.map(str::to_string),
+            column: column.map(short),
             message: message.into(),
         }
     }
+}
+
+/// Longest text from a file quoted in a message (column names, cells), in characters.
+pub const QUOTE_LIMIT: usize = 60;
+
+/// At most [`QUOTE_LIMIT`] characters of `text`, with an ellipsis and the full length
+/// when cut: a mangled header must not become a five-million-character column name.
+pub fn short(text: &str) -> String {
+    let mut chars = text.chars();
+    let head: String = chars.by_ref().take(QUOTE_LIMIT).collect();
+    if chars.next().is_none() {
+        head
+    } else {
+        format!("{head}… ({} characters)", text.chars().count())
+    }
+}
+
+/// A list of names for a message: each shortened, at most `max` of them, then how many
+/// more.
+pub fn short_list(names: &[String], max: usize) -> String {
+    let mut text = names
+        .iter()
+        .take(max)
+        .map(|n| short(n))
+        .collect::<Vec<_>>()
+        .join(", ");
+    if names.len() > max {
+        text.push_str(&format!(" and {} more", names.len() - max));
+    }
+    text
 }
 
 impl fmt::Display for Problem {

@@ -10,7 +10,13 @@ use std::path::Path;
 
 use polars::prelude::*;
 
-use super::problem::{Problem, ProblemList};
+use super::problem::{short, short_list, Problem, ProblemList};
+
+/// Longest line of a CSV file accepted, in bytes (1 MiB): a frame or respondent file has
+/// short lines, and a file without line breaks must be refused before it is parsed.
+pub const MAX_LINE_BYTES: usize = 1 << 20;
+/// Longest cell of a CSV file accepted, in bytes (64 KiB).
+pub const MAX_CELL_BYTES: usize = 1 << 16;
 
 /// What a column must hold.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -200,21 +206,74 @@ pub fn find_data_file(dir: &Path, stem: &str) -> Result<Option<std::path::PathBu
     }
 }
 
+/// A file read whole while nothing changed it: its size, modification time (and, on
+/// Unix, its inode, against a replacement by rename) are the same before and after the
+/// read, and the bytes read match the size. A file that a program is still writing is
+/// refused rather than loaded half-written.
+pub fn read_stable(path: &Path, label: &str) -> Result<Vec<u8>, Problem> {
+    use std::io::Read;
+    let cannot = |e: std::io::Error| {
+        Problem::file(
+            label,
+            format!("cannot read the file ({e}); check that it exists and is readable"),
+        )
+    };
+    let stamp = |m: &std::fs::Metadata| {
+        #[cfg(unix)]
+        let inode = std::os::unix::fs::MetadataExt::ino(m);
+        #[cfg(not(unix))]
+        let inode = 0u64;
+        (m.len(), m.modified().ok(), inode)
+    };
+    let before = std::fs::metadata(path).map_err(cannot)?;
+    let mut file = std::fs::File::open(path).map_err(cannot)?;
+    let opened = file.metadata().map_err(cannot)?;
+    let mut bytes = Vec::with_capacity(usize::try_from(opened.len()).unwrap_or(0));
+    file.read_to_end(&mut bytes).map_err(cannot)?;
+    let after_handle = file.metadata().map_err(cannot)?;
+    let after_path = std::fs::metadata(path).map_err(cannot)?;
+    let stamps = [
+        stamp(&before),
+        stamp(&opened),
+        stamp(&after_handle),
+        stamp(&after_path),
+    ];
+    if stamps.windows(2).any(|w| w[0] != w[1]) || bytes.len() as u64 != after_handle.len() {
+        return Err(Problem::file(
+            label,
+            format!(
+                "the file changed while it was read ({} bytes before, {} after); a program is probably still writing it. Wait until it has finished, then load again",
+                before.len(),
+                after_path.len()
+            ),
+        ));
+    }
+    Ok(bytes)
+}
+
 /// Loads a CSV or Parquet file, keeping only the requested columns, typed as their kind.
-/// `label` is the file name used in messages.
+/// `label` is the file name used in messages. The file is read with [`read_stable`].
 pub fn load_table(path: &Path, label: &str, specs: &[ColumnSpec]) -> Result<Table, Vec<Problem>> {
+    let bytes = read_stable(path, label).map_err(|p| vec![p])?;
+    load_table_bytes(path, bytes, label, specs)
+}
+
+/// [`load_table`] on bytes already read from `path` (whose extension gives the format).
+pub fn load_table_bytes(
+    path: &Path,
+    bytes: Vec<u8>,
+    label: &str,
+    specs: &[ColumnSpec],
+) -> Result<Table, Vec<Problem>> {
     let is_parquet = path
         .extension()
         .is_some_and(|e| e.eq_ignore_ascii_case("parquet"));
-    let bytes = std::fs::read(path).map_err(|e| {
-        vec![Problem::file(
-            label,
-            format!("cannot read the file ({e}); check that it exists and is readable"),
-        )]
-    })?;
     let (raw, rows) = if is_parquet {
         (read_parquet(bytes, label)?, RowNumbers::Offset(1))
     } else {
+        // Line endings and lengths first, in one linear pass, so that a file without
+        // line breaks is refused before any parser sees it.
+        check_line_endings_and_lengths(&bytes, label)?;
         // The structure check and a typed read run side by side; when the typed read
         // fails (text in a numeric column, say), the file is read again as text so that
         // every bad cell can be named.
@@ -241,6 +300,15 @@ pub fn load_table(path: &Path, label: &str, specs: &[ColumnSpec]) -> Result<Tabl
     };
     table.frame = typed_columns(&table, specs)?;
     Ok(table)
+}
+
+/// Rows and columns of a Parquet file from its metadata, without decoding any data (so
+/// that limits apply before a small file expands to millions of rows).
+pub fn parquet_shape(bytes: &[u8]) -> PolarsResult<(usize, usize)> {
+    let mut reader = ParquetReader::new(Cursor::new(bytes));
+    let columns = reader.schema()?.len();
+    let rows = reader.num_rows()?;
+    Ok((rows, columns))
 }
 
 fn read_parquet(bytes: Vec<u8>, label: &str) -> Result<DataFrame, Vec<Problem>> {
@@ -465,6 +533,77 @@ fn check_csv_structure(bytes: &[u8], label: &str) -> Result<RowNumbers, Vec<Prob
     })
 }
 
+/// Refuses, in one linear pass before any parsing, a file whose lines end in a carriage
+/// return alone, and lines or cells beyond [`MAX_LINE_BYTES`] and [`MAX_CELL_BYTES`],
+/// naming the line and column.
+fn check_line_endings_and_lengths(bytes: &[u8], label: &str) -> Result<(), Vec<Problem>> {
+    let first_end = bytes.iter().position(|&b| b == b'\n' || b == b'\r');
+    if let Some(i) = first_end {
+        if bytes[i] == b'\r' && bytes.get(i + 1) != Some(&b'\n') && i + 1 < bytes.len() {
+            return Err(vec![Problem::at(
+                label,
+                Some(1),
+                None,
+                "the lines end in a carriage return alone (CR, as very old Mac programs write), so the whole file reads as one line; save it with LF or CRLF line endings (\"CSV UTF-8\" in a spreadsheet, or: tr '\\r' '\\n')",
+            )]);
+        }
+    }
+    let header_end = first_end.unwrap_or(bytes.len()).min(MAX_LINE_BYTES);
+    let header: Vec<String> = String::from_utf8_lossy(&bytes[..header_end])
+        .split(',')
+        .map(|s| s.trim().trim_matches('"').to_string())
+        .collect();
+    let column_name = |field: usize| {
+        header
+            .get(field)
+            .cloned()
+            .unwrap_or_else(|| format!("field {}", field + 1))
+    };
+    let (mut line, mut line_start, mut cell_start, mut field) = (1usize, 0usize, 0usize, 0usize);
+    let mut quoted = false;
+    for (i, &b) in bytes.iter().enumerate() {
+        match b {
+            b'"' => quoted = !quoted,
+            b',' if !quoted => {
+                field += 1;
+                cell_start = i + 1;
+            }
+            b'\n' => {
+                line += 1;
+                line_start = i + 1;
+                if !quoted {
+                    field = 0;
+                    cell_start = i + 1;
+                }
+            }
+            _ => {}
+        }
+        if i.saturating_sub(cell_start) >= MAX_CELL_BYTES {
+            // In the header the cell is the name itself: name its position instead.
+            let column = if line == 1 {
+                format!("field {}", field + 1)
+            } else {
+                column_name(field)
+            };
+            return Err(vec![Problem::at(
+                label,
+                Some(line),
+                Some(&column),
+                format!("this cell is longer than {} KiB; cells are limited to that size (check the quoting: an unclosed quote runs to the end of the file)", MAX_CELL_BYTES / 1024),
+            )]);
+        }
+        if i.saturating_sub(line_start) >= MAX_LINE_BYTES {
+            return Err(vec![Problem::at(
+                label,
+                Some(line),
+                None,
+                format!("this line is longer than {} MiB; lines are limited to that size (check that the file has line breaks and that it is a CSV)", MAX_LINE_BYTES / 1024 / 1024),
+            )]);
+        }
+    }
+    Ok(())
+}
+
 /// Without quotes every line is one record: a fast pass counting separators per line.
 /// `Some` when every data line has as many fields as the header and the names are
 /// distinct and non-empty; otherwise `None`, and the careful pass names the problems.
@@ -531,12 +670,21 @@ fn typed_columns(table: &Table, specs: &[ColumnSpec]) -> Result<DataFrame, Vec<P
                 &table.file,
                 Some(1),
                 Some(&spec.name),
-                format!(
-                    "project.toml names '{}' in {}, but the file has no such column; the columns are: {}",
-                    spec.name,
-                    spec.role,
-                    present.join(", ")
-                ),
+                if spec.role.starts_with("--") {
+                    format!(
+                        "the option {} names '{}', but the file has no such column; the columns are: {}",
+                        spec.role,
+                        short(&spec.name),
+                        short_list(&present, 30)
+                    )
+                } else {
+                    format!(
+                        "project.toml names '{}' in {}, but the file has no such column; the columns are: {}",
+                        short(&spec.name),
+                        spec.role,
+                        short_list(&present, 30)
+                    )
+                },
             ));
             continue;
         };

@@ -12,6 +12,9 @@ pub enum AppError {
     NotFound(String),
     #[error("{0}")]
     BadRequest(String),
+    /// The request would lose data; it says how to confirm.
+    #[error("{0}")]
+    Conflict(String),
     #[error("the project has problems:\n{}", .0.iter().map(Problem::to_string).collect::<Vec<_>>().join("\n"))]
     InvalidProject(Vec<Problem>),
     #[error("internal error: {0}")]
@@ -29,6 +32,7 @@ impl AppError {
         match self {
             AppError::NotFound(_) => StatusCode::NOT_FOUND,
             AppError::BadRequest(_) => StatusCode::BAD_REQUEST,
+            AppError::Conflict(_) => StatusCode::CONFLICT,
             AppError::InvalidProject(_) => StatusCode::UNPROCESSABLE_ENTITY,
             AppError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
             AppError::Busy { .. } => StatusCode::SERVICE_UNAVAILABLE,
@@ -182,4 +186,25 @@ pub async fn html_errors(
             .insert(axum::http::header::RETRY_AFTER, v);
     }
     response
+}
+
+/// A request body over the limit gets a message that states the limit (the framework's
+/// own says only "length limit exceeded").
+pub async fn explain_body_limit(
+    request: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> Response {
+    let response = next.run(request).await;
+    if response.status() != StatusCode::PAYLOAD_TOO_LARGE {
+        return response;
+    }
+    (
+        StatusCode::PAYLOAD_TOO_LARGE,
+        [("content-type", "text/plain; charset=utf-8")],
+        format!(
+            "the request is larger than the limit of {} MB; upload smaller files (Parquet is more compact than CSV), or open a larger project from a folder with gapwise serve DIR",
+            super::MAX_BODY_BYTES / 1024 / 1024
+        ),
+    )
+        .into_response()
 }

@@ -113,24 +113,44 @@ struct Reloaded {
     title: String,
     waves: Vec<i64>,
     warnings: usize,
+    /// What changed since the project was loaded before.
+    changes: Vec<String>,
 }
 
-/// Reloads the project from disk; the old project stays when the files have problems.
-async fn reload(State(state): State<Arc<AppState>>) -> AppResult<Json<Reloaded>> {
+#[derive(serde::Deserialize)]
+struct ReloadQuery {
+    #[serde(default)]
+    confirm: Option<String>,
+}
+
+/// Reloads the project from disk; the old project stays when the files have problems,
+/// and when they hold less than before unless the reload is confirmed (`?confirm=1`).
+async fn reload(
+    State(state): State<Arc<AppState>>,
+    axum::extract::Query(q): axum::extract::Query<ReloadQuery>,
+) -> AppResult<Json<Reloaded>> {
     let state = Arc::clone(&state);
-    let fresh = tokio::task::spawn_blocking(move || state.reload())
+    let confirmed = q.confirm.as_deref() == Some("1");
+    let fresh = tokio::task::spawn_blocking(move || state.reload(confirmed))
         .await
         .map_err(|e| AppError::Internal(e.to_string()))?
-        .map_err(AppError::InvalidProject)?;
+        .map_err(|refused| match refused {
+            state::ReloadRefused::Problems(p) => AppError::InvalidProject(p),
+            state::ReloadRefused::Loses(lost) => AppError::Conflict(format!(
+                "the files on disk hold less than the loaded project: {}. The loaded project is kept. If a program is still writing the files, wait and reload; if the loss is intended, reload with confirmation (POST /api/reload?confirm=1).",
+                lost.join("; ")
+            )),
+        })?;
     Ok(Json(Reloaded {
         title: fresh.manifest.title.clone(),
         waves: fresh.waves.clone(),
         warnings: fresh.warnings.len(),
+        changes: fresh.changes.clone(),
     }))
 }
 
-/// The router behind the guard (host check, same-origin or token for changes) and a
-/// limit on request bodies.
+/// The router behind the guard (host check, access key, same origin or key header for
+/// changes), a limit on request bodies, and protective headers on every response.
 pub fn app(state: Arc<AppState>, guard: guard::Guard) -> Router {
     router(state)
         .layer(axum::middleware::from_fn(error::html_errors))
@@ -139,6 +159,8 @@ pub fn app(state: Arc<AppState>, guard: guard::Guard) -> Router {
             guard::check,
         ))
         .layer(axum::extract::DefaultBodyLimit::max(MAX_BODY_BYTES))
+        .layer(axum::middleware::from_fn(error::explain_body_limit))
+        .layer(axum::middleware::from_fn(guard::protective_headers))
 }
 
 /// The largest request body accepted (uploads included).
@@ -179,6 +201,7 @@ pub async fn serve(
     state: Arc<AppState>,
     addr: SocketAddr,
     allow_remote: bool,
+    access: guard::Access,
 ) -> Result<(), String> {
     let listener = tokio::net::TcpListener::bind(addr).await.map_err(|e| {
         if e.kind() == std::io::ErrorKind::AddrInUse {
@@ -188,23 +211,46 @@ pub async fn serve(
         }
     })?;
     let local = listener.local_addr().map_err(|e| e.to_string())?;
-    let guard = guard::Guard::for_address(local, allow_remote);
+    let guard = if access.no_key {
+        guard::Guard::with_key(local, allow_remote, None)
+    } else {
+        guard::Guard::for_address(local, allow_remote)?
+    };
+    if let (Some(path), Some(key)) = (&access.key_file, &guard.key) {
+        guard::write_key_file(path, key)?;
+    }
     // Listen for Ctrl-C before announcing the address, so an early Ctrl-C also stops
     // the server gracefully.
     let stop = stop_signal()?;
+    if guard.key.is_none() {
+        eprintln!("warning: started with --no-key: every user and program on this machine can read the project's data at http://{local}/");
+    }
     println!(
-        "gapwise {} serving \"{}\" at http://{local}/  (Ctrl-C stops)",
+        "gapwise {} serving \"{}\" at {}  (Ctrl-C stops)",
         crate::VERSION,
-        state.project().manifest.title
+        state.project().manifest.title,
+        guard.start_url(local)
     );
-    println!(
-        "token for scripted changes (header x-gapwise-token): {}",
-        guard.token
-    );
-    axum::serve(listener, app(state, guard))
+    if guard.key.is_some() {
+        println!(
+            "open that address once: it hands this run's access key to the browser; scripts send it in the header {}{}",
+            guard::KEY_HEADER,
+            access
+                .key_file
+                .as_ref()
+                .map(|p| format!(" (also in {})", p.display()))
+                .unwrap_or_default()
+        );
+    }
+    let served = axum::serve(listener, app(state, guard))
         .with_graceful_shutdown(stop)
         .await
-        .map_err(|e| format!("the server stopped: {e}"))
+        .map_err(|e| format!("the server stopped: {e}"));
+    // The key dies with the process; so does its file.
+    if let Some(path) = &access.key_file {
+        let _ = std::fs::remove_file(path);
+    }
+    served
 }
 
 /// A future that completes on Ctrl-C (SIGINT) or SIGTERM; the handlers are installed now.

@@ -1,7 +1,7 @@
 //! Projects from the browser: list and open the projects of the projects folder, create one
 //! by uploading its files and mapping their columns. Validation gives the same messages as
-//! `gapwise check`; saving goes through a staging folder and renames (project::store), so
-//! nothing is lost or half-written.
+//! `gapwise check`; every upload has its own staging folder, and saving switches versions
+//! atomically (project::store), so nothing is lost, mixed or half-written.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -45,6 +45,8 @@ struct MapPage<'a> {
     page: &'static str,
     nav_query: String,
     name: String,
+    /// The upload's id: its staging folder, carried by the form.
+    upload: String,
     title: String,
     frame_columns: Vec<String>,
     micro_columns: Vec<String>,
@@ -91,14 +93,27 @@ pub async fn open(
     Form(form): Form<OpenForm>,
 ) -> AppResult<Response> {
     let dir = folder(&state)?;
-    store::valid_name(&form.name).map_err(AppError::BadRequest)?;
-    let target = dir.join(&form.name);
+    let target = store::project_dir(&dir, &form.name).map_err(AppError::BadRequest)?;
     let state2 = Arc::clone(&state);
     tokio::task::spawn_blocking(move || state2.open(target))
         .await
         .map_err(|e| AppError::Internal(e.to_string()))?
         .map_err(AppError::InvalidProject)?;
     Ok(Redirect::to("/").into_response())
+}
+
+/// Rows and columns of an uploaded file, without decoding its data: lines and header
+/// fields of a CSV, the metadata of a Parquet file.
+fn shape(bytes: &[u8], parquet: bool, file_name: &str) -> AppResult<(usize, usize)> {
+    if parquet {
+        crate::project::table::parquet_shape(bytes).map_err(|e| {
+            AppError::BadRequest(format!(
+                "{file_name}: cannot read it as Parquet ({e}); export it again or save it as CSV"
+            ))
+        })
+    } else {
+        Ok(csv_shape(bytes))
+    }
 }
 
 /// Counts lines and header fields of a CSV without parsing it (limits before validation).
@@ -131,7 +146,10 @@ pub async fn upload(
         match field.file_name().map(str::to_string) {
             Some(file_name) => {
                 let bytes = field.bytes().await.map_err(|e| {
-                    AppError::BadRequest(format!("the file {file_name} could not be read ({e})"))
+                    AppError::BadRequest(format!(
+                        "the file {file_name} could not be read ({e}); an upload may be at most {} MB in all",
+                        super::MAX_BODY_BYTES / 1024 / 1024
+                    ))
                 })?;
                 if !bytes.is_empty() {
                     files.push((name, file_name, bytes.to_vec()));
@@ -154,8 +172,8 @@ pub async fn upload(
             "choose a frame file (CSV or Parquet, one row per country and wave)".to_string(),
         ));
     }
-    let staging =
-        store::staging(&dir, &name, true).map_err(|e| AppError::Internal(e.to_string()))?;
+    // Limits first, on every file, before anything is written.
+    let mut accepted = Vec::new();
     for (role, file_name, bytes) in &files {
         let stem = match role.as_str() {
             "frame" => "frame",
@@ -172,28 +190,32 @@ pub async fn upload(
                 "{file_name}: upload a .csv or .parquet file"
             )));
         };
-        if ext == "csv" {
-            let (rows, columns) = csv_shape(bytes);
-            let max_rows = if stem == "frame" {
-                MAX_FRAME_ROWS
-            } else {
-                MAX_MICRODATA_ROWS
-            };
-            if rows > max_rows || columns > MAX_COLUMNS {
-                return Err(AppError::BadRequest(format!("{file_name} has {rows} rows and {columns} columns; the limits are {max_rows} rows and {MAX_COLUMNS} columns")));
-            }
+        let (rows, columns) = shape(bytes, ext == "parquet", file_name)?;
+        let max_rows = if stem == "frame" {
+            MAX_FRAME_ROWS
+        } else {
+            MAX_MICRODATA_ROWS
+        };
+        if rows > max_rows || columns > MAX_COLUMNS {
+            return Err(AppError::BadRequest(format!("{file_name} has {rows} rows and {columns} columns; the limits are {max_rows} rows and {MAX_COLUMNS} columns")));
         }
-        std::fs::write(staging.join(format!("{stem}.{ext}")), bytes)
-            .map_err(|e| AppError::Internal(e.to_string()))?;
+        accepted.push((format!("{stem}.{ext}"), bytes));
+    }
+    let (upload, staging) =
+        store::new_staging(&dir, &name).map_err(|e| AppError::Internal(e.to_string()))?;
+    for (file, bytes) in accepted {
+        std::fs::write(staging.join(file), bytes).map_err(|e| AppError::Internal(e.to_string()))?;
     }
     std::fs::write(staging.join("title.txt"), title)
         .map_err(|e| AppError::Internal(e.to_string()))?;
-    Ok(Redirect::to(&format!("/projects/map?name={name}")).into_response())
+    Ok(Redirect::to(&format!("/projects/map?name={name}&upload={upload}")).into_response())
 }
 
 #[derive(serde::Deserialize)]
 pub struct MapQuery {
     name: String,
+    #[serde(default)]
+    upload: String,
 }
 
 /// Column names of a staged data file (CSV header, or the Parquet schema).
@@ -210,16 +232,14 @@ pub async fn map_form(
     Query(q): Query<MapQuery>,
 ) -> AppResult<Html<String>> {
     let dir = folder(&state)?;
-    store::valid_name(&q.name).map_err(AppError::BadRequest)?;
-    let staging =
-        store::staging(&dir, &q.name, false).map_err(|e| AppError::Internal(e.to_string()))?;
+    let staging = store::staging(&dir, &q.name, &q.upload).map_err(AppError::BadRequest)?;
     if !staging.is_dir() {
         return Err(AppError::NotFound(format!(
             "no upload for '{}'; start from /projects",
             q.name
         )));
     }
-    render_map(&q.name, &staging, Vec::new()).map(Html)
+    render_map(&q.name, &q.upload, &staging, Vec::new()).map(Html)
 }
 
 /// Preselected columns: the first whose lower-case name contains one of the hints.
@@ -242,7 +262,12 @@ fn guess(columns: &[String], hints: &[&str]) -> String {
         .unwrap_or_default()
 }
 
-fn render_map(name: &str, staging: &std::path::Path, problems: Vec<String>) -> AppResult<String> {
+fn render_map(
+    name: &str,
+    upload: &str,
+    staging: &std::path::Path,
+    problems: Vec<String>,
+) -> AppResult<String> {
     let frame_columns = columns_of(staging, "frame");
     let micro_columns = columns_of(staging, "microdata");
     let guesses = Guesses {
@@ -259,6 +284,7 @@ fn render_map(name: &str, staging: &std::path::Path, problems: Vec<String>) -> A
         page: "projects",
         nav_query: String::new(),
         name: name.to_string(),
+        upload: upload.to_string(),
         title: std::fs::read_to_string(staging.join("title.txt"))
             .unwrap_or_else(|_| name.to_string()),
         frame_columns,
@@ -364,9 +390,12 @@ pub async fn map_save(
         .find(|(k, _)| k == "name")
         .map(|(_, v)| v.clone())
         .unwrap_or_default();
-    store::valid_name(&name).map_err(AppError::BadRequest)?;
-    let staging =
-        store::staging(&dir, &name, false).map_err(|e| AppError::Internal(e.to_string()))?;
+    let upload = form
+        .iter()
+        .find(|(k, _)| k == "upload")
+        .map(|(_, v)| v.clone())
+        .unwrap_or_default();
+    let staging = store::staging(&dir, &name, &upload).map_err(AppError::BadRequest)?;
     if !staging.is_dir() {
         return Err(AppError::NotFound(format!(
             "no upload for '{name}'; start from /projects"
@@ -379,10 +408,11 @@ pub async fn map_save(
             std::fs::write(staging.join(MANIFEST_FILE), text)
                 .map_err(|e| AppError::Internal(e.to_string()))?;
             let dir2 = dir.clone();
-            let name2 = name.clone();
-            let saved = tokio::task::spawn_blocking(move || store::save(&dir2, &name2))
-                .await
-                .map_err(|e| AppError::Internal(e.to_string()))?;
+            let (name2, upload2, keep) = (name.clone(), upload.clone(), state.keep_versions);
+            let saved =
+                tokio::task::spawn_blocking(move || store::save(&dir2, &name2, &upload2, keep))
+                    .await
+                    .map_err(|e| AppError::Internal(e.to_string()))?;
             match saved {
                 Ok(project) => {
                     state.install(dir.join(&name), Arc::new(project));
@@ -392,6 +422,6 @@ pub async fn map_save(
             }
         }
     };
-    let html = render_map(&name, &staging, problems)?;
+    let html = render_map(&name, &upload, &staging, problems)?;
     Ok((StatusCode::UNPROCESSABLE_ENTITY, Html(html)).into_response())
 }

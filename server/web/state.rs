@@ -18,6 +18,18 @@ pub struct AppState {
     pub cache: Arc<ResultCache>,
     /// Where computations run (light on tokio's blocking pool, heavy on a bounded pool).
     pub work: WorkPool,
+    /// Versions kept per project of that folder (see `project::store`).
+    pub keep_versions: usize,
+}
+
+/// Why a reload did not swap in the files on disk.
+#[derive(Debug)]
+pub enum ReloadRefused {
+    /// The files have problems; the old project stays.
+    Problems(Vec<Problem>),
+    /// The files load but hold less than before (rows, files or waves lost): kept until
+    /// the reload is confirmed.
+    Loses(Vec<String>),
 }
 
 fn read<T>(lock: &RwLock<T>) -> std::sync::RwLockReadGuard<'_, T> {
@@ -38,7 +50,14 @@ impl AppState {
             projects,
             cache: Arc::new(ResultCache::default()),
             work: WorkPool::new(),
+            keep_versions: crate::project::store::DEFAULT_KEEP,
         }
+    }
+
+    /// The same, keeping `keep` versions per project of the projects folder.
+    pub fn keeping(mut self, keep: usize) -> Self {
+        self.keep_versions = keep.max(1);
+        self
     }
 
     /// The current project; cheap (clones an `Arc`).
@@ -47,9 +66,23 @@ impl AppState {
     }
 
     /// Loads the project folder again; on success swaps it in, on failure keeps the old one.
-    pub fn reload(&self) -> Result<Arc<Project>, Vec<Problem>> {
-        let dir = read(&self.current).0.clone();
-        self.open(dir)
+    /// A reload that would lose data (fewer rows, a file or a wave gone: a file cut short
+    /// while being rewritten, say) keeps the old project unless `confirmed`. The new
+    /// project records what changed since the old one.
+    pub fn reload(&self, confirmed: bool) -> Result<Arc<Project>, ReloadRefused> {
+        let (dir, old) = {
+            let current = read(&self.current);
+            (current.0.clone(), Arc::clone(&current.1))
+        };
+        let mut fresh = Project::load(&dir).map_err(ReloadRefused::Problems)?;
+        let lost = crate::project::losses(&old, &fresh);
+        if !lost.is_empty() && !confirmed {
+            return Err(ReloadRefused::Loses(lost));
+        }
+        fresh.compare_with(&old);
+        let fresh = Arc::new(fresh);
+        self.install(dir, Arc::clone(&fresh));
+        Ok(fresh)
     }
 
     /// Opens another project folder; the current one stays if the new one has problems.

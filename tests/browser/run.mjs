@@ -1,10 +1,10 @@
 // Real-browser checks of gapwise's pages in Debian's headless Chromium.
-// Usage: node run.mjs BASE_URL ARTEFACT_DIR   (exit code 0 when every check passes)
+// Usage: node run.mjs BASE_URL ARTEFACT_DIR KEY   (exit code 0 when every check passes)
 import { chromium } from 'playwright-core';
 import fs from 'node:fs';
 import path from 'node:path';
 
-const [base, out] = process.argv.slice(2);
+const [base, out, key] = process.argv.slice(2);
 fs.mkdirSync(out, { recursive: true });
 const failures = [];
 const check = (ok, what) => { if (!ok) failures.push(what); };
@@ -18,6 +18,17 @@ const page = await context.newPage();
 const consoleErrors = [];
 page.on('console', (m) => { if (m.type() === 'error') consoleErrors.push(m.text()); });
 page.on('requestfailed', (r) => consoleErrors.push(`request failed: ${r.url()}`));
+
+// Without the key nothing is shown; the start-up URL hands it over and leaves the address bar.
+const refused = await page.goto(base + '/');
+check(refused && refused.status() === 401, `/ without the key answered ${refused && refused.status()}`);
+const welcomed = await page.goto(base + '/?key=' + key);
+check(welcomed && welcomed.status() === 200, `the start-up URL answered ${welcomed && welcomed.status()}`);
+check(!page.url().includes('key='), `the key stays in the address bar: ${page.url()}`);
+const cookies = await context.cookies();
+check(cookies.length === 1 && cookies[0].httpOnly && cookies[0].sameSite === 'Strict', `the key cookie: ${JSON.stringify(cookies)}`);
+// The 401 above is a console error of its own; the pages below must add none.
+consoleErrors.length = 0;
 
 const pages = ['/', '/coverage', '/model', '/balance', '/plan?replicates=20', '/impact?bootstrap=49', '/sensitivity'];
 for (const p of pages) {

@@ -10,6 +10,22 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 
 static COUNTER: AtomicUsize = AtomicUsize::new(0);
 
+/// The access key of each test server, by address: the HTTP helpers send it in the
+/// server's cookie, as a browser does after the start-up URL, unless told not to. (The
+/// cookie alone does not authorise changes: those also need the Origin header of our
+/// pages, or the key in the `x-gapwise-key` header.)
+static KEYS: std::sync::Mutex<Vec<(std::net::SocketAddr, String)>> =
+    std::sync::Mutex::new(Vec::new());
+
+/// The access key of the test server at `addr`.
+pub fn key_of(addr: std::net::SocketAddr) -> Option<String> {
+    KEYS.lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+        .iter()
+        .find(|(a, _)| *a == addr)
+        .map(|(_, k)| k.clone())
+}
+
 /// A fresh empty folder under the system temp dir, removed when dropped.
 pub struct TempDir(pub PathBuf);
 
@@ -125,14 +141,25 @@ impl Response {
     }
 }
 
-/// One HTTP/1.1 request over a fresh connection (Connection: close), without a body.
+/// One HTTP/1.1 request over a fresh connection (Connection: close), without a body,
+/// with the server's access key in its cookie.
 pub fn http(
     addr: std::net::SocketAddr,
     method: &str,
     path: &str,
     extra_headers: &[(&str, &str)],
 ) -> Response {
-    request(addr, method, path, extra_headers, None)
+    request(addr, method, path, extra_headers, None, true)
+}
+
+/// The same without the access key (only the headers given).
+pub fn http_without_key(
+    addr: std::net::SocketAddr,
+    method: &str,
+    path: &str,
+    extra_headers: &[(&str, &str)],
+) -> Response {
+    request(addr, method, path, extra_headers, None, false)
 }
 
 /// One HTTP/1.1 request with a body of the given content type.
@@ -144,16 +171,26 @@ pub fn http_body(
     content_type: &str,
     body: &[u8],
 ) -> Response {
-    request(addr, method, path, headers, Some((content_type, body)))
+    request(
+        addr,
+        method,
+        path,
+        headers,
+        Some((content_type, body)),
+        true,
+    )
 }
 
-/// A Host header among the extra headers replaces the default one (the bound address).
+/// A Host header among the extra headers replaces the default one (the bound address);
+/// with `with_key`, the server's key is sent in its cookie unless the extra headers carry
+/// a cookie.
 fn request(
     addr: std::net::SocketAddr,
     method: &str,
     path: &str,
     extra_headers: &[(&str, &str)],
     body: Option<(&str, &[u8])>,
+    with_key: bool,
 ) -> Response {
     let mut stream = TcpStream::connect(addr).expect("connect");
     let host = extra_headers
@@ -170,6 +207,14 @@ fn request(
         .filter(|(k, _)| !k.eq_ignore_ascii_case("host"))
     {
         head.push_str(&format!("{k}: {v}\r\n"));
+    }
+    let has_cookie = extra_headers
+        .iter()
+        .any(|(k, _)| k.eq_ignore_ascii_case("cookie"));
+    if with_key && !has_cookie {
+        if let Some(key) = key_of(addr) {
+            head.push_str(&format!("Cookie: gapwise_key_{}={key}\r\n", addr.port()));
+        }
     }
     head.push_str("\r\n");
     stream.write_all(head.as_bytes()).expect("send");
@@ -223,13 +268,24 @@ pub fn start_server(dir: &Path) -> std::net::SocketAddr {
     start_server_with_token(dir).0
 }
 
-/// The same, also returning the per-process token for state-changing requests.
+/// The same, also returning the per-process access key.
 pub fn start_server_with_token(dir: &Path) -> (std::net::SocketAddr, String) {
     start_server_full(dir, None)
 }
 
-/// The server with a folder of projects to open and create from the browser.
+/// The server with a folder of projects to open and create from the browser; returns
+/// its address and access key.
 pub fn start_server_full(dir: &Path, projects: Option<PathBuf>) -> (std::net::SocketAddr, String) {
+    let (addr, key) = start_server_keyed(dir, projects, true);
+    (addr, key.unwrap_or_default())
+}
+
+/// The server with or without an access key (`--no-key`).
+pub fn start_server_keyed(
+    dir: &Path,
+    projects: Option<PathBuf>,
+    keyed: bool,
+) -> (std::net::SocketAddr, Option<String>) {
     let project = gapwise::project::Project::load(dir).expect("project loads");
     let state = std::sync::Arc::new(gapwise::web::AppState::with_projects(project, projects));
     let (tx, rx) = std::sync::mpsc::channel();
@@ -240,8 +296,17 @@ pub fn start_server_full(dir: &Path, projects: Option<PathBuf>) -> (std::net::So
                 .await
                 .expect("bind");
             let local = listener.local_addr().expect("addr");
-            let guard = gapwise::web::guard::Guard::for_address(local, false);
-            tx.send((local, guard.token.clone())).expect("send addr");
+            let guard = if keyed {
+                gapwise::web::guard::Guard::for_address(local, false).expect("a key")
+            } else {
+                gapwise::web::guard::Guard::with_key(local, false, None)
+            };
+            if let Some(key) = &guard.key {
+                KEYS.lock()
+                    .unwrap_or_else(std::sync::PoisonError::into_inner)
+                    .push((local, key.clone()));
+            }
+            tx.send((local, guard.key.clone())).expect("send addr");
             axum::serve(listener, gapwise::web::app(state, guard))
                 .await
                 .expect("serve");
