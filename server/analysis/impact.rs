@@ -12,7 +12,7 @@ use super::participation::{self, AnalysisError};
 use super::settings::{ModelKind, Settings, WeightingKind};
 use crate::project::{Project, WaveView};
 use crate::stats::normal;
-use crate::stats::regression::{self, Family};
+use crate::stats::regression::{self, Kind};
 
 /// What the impact view estimates.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -20,7 +20,7 @@ pub struct ImpactSettings {
     pub outcome: String,
     /// Respondent variables or country indicators (joined by country).
     pub predictors: Vec<String>,
-    pub family: Family,
+    pub kind: Kind,
     /// Country shares: each participating country counts by its weight ("equal"), or by
     /// its weight times its population ("population", from `population_column`).
     pub shares: Shares,
@@ -336,7 +336,7 @@ fn estimate(
     let ws: Vec<f64> = keep.iter().map(|&i| w[i]).collect();
     let cs: Vec<usize> = keep.iter().map(|&i| cluster[i]).collect();
     let ones = Array2::<f64>::ones((keep.len(), 1));
-    let pooled = regression::fit(ones.view(), &ys, Some(&ws), &cs, Family::Gaussian)
+    let pooled = regression::fit(ones.view(), &ys, Some(&ws), &cs, Kind::Linear)
         .ok()
         .map(|f| Pooled {
             estimate: f.coef[0],
@@ -344,7 +344,7 @@ fn estimate(
             low: f.coef[0] - 1.959_963_984_540_054 * f.se[0],
             high: f.coef[0] + 1.959_963_984_540_054 * f.se[0],
         });
-    match regression::fit(xs.view(), &ys, Some(&ws), &cs, imp.family) {
+    match regression::fit(xs.view(), &ys, Some(&ws), &cs, imp.kind) {
         Err(e) => failed(key, label, e.to_string(), x.ncols()),
         Ok(f) => {
             let p_cluster: Vec<f64> = f
@@ -356,8 +356,8 @@ fn estimate(
             let p_bootstrap = (imp.replicates > 0).then(|| {
                 (0..x.ncols())
                     .map(|j| {
-                        let p = match imp.family {
-                            Family::Gaussian => regression::wild_cluster_bootstrap(
+                        let p = match imp.kind {
+                            Kind::Linear => regression::wild_cluster_bootstrap(
                                 xs.view(),
                                 &ys,
                                 Some(&ws),
@@ -366,7 +366,7 @@ fn estimate(
                                 imp.replicates,
                                 seed,
                             ),
-                            Family::Binomial => regression::score_cluster_bootstrap(
+                            Kind::Logistic => regression::score_cluster_bootstrap(
                                 xs.view(),
                                 &ys,
                                 Some(&ws),

@@ -12,7 +12,7 @@ use super::participation::{fit, FitReport};
 use super::planner::{plan, Plan, PlanSettings};
 use super::settings::Settings;
 use crate::project::Project;
-use crate::stats::regression::Family;
+use crate::stats::regression::Kind;
 
 #[derive(Debug, Clone, Serialize)]
 pub struct InputFile {
@@ -94,7 +94,7 @@ pub fn report(project: &Project, settings: &Settings) -> Result<Report, String> 
             let imp = ImpactSettings {
                 outcome,
                 predictors,
-                family: Family::Gaussian,
+                kind: Kind::Linear,
                 shares: Shares::Equal,
                 replicates: 399,
             };

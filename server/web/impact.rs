@@ -18,7 +18,7 @@ use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 use crate::project::Project;
-use crate::stats::regression::Family;
+use crate::stats::regression::Kind;
 
 #[derive(Template)]
 #[template(path = "impact.html")]
@@ -131,10 +131,10 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     } else {
         ticked
     };
-    let family = match get("family").as_deref() {
-        None => Family::Gaussian,
-        Some(f) => Family::parse(f).ok_or_else(|| {
-            AppError::BadRequest(format!("family must be gaussian or binomial, not '{f}'"))
+    let kind = match get("family").as_deref() {
+        None => Kind::Linear,
+        Some(f) => Kind::parse(f).ok_or_else(|| {
+            AppError::BadRequest(format!("the model must be linear or logistic, not '{f}'"))
         })?,
     };
     let shares = match (get("shares").as_deref(), get("population")) {
@@ -169,7 +169,7 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     Ok(ImpactSettings {
         outcome,
         predictors,
-        family,
+        kind,
         shares,
         replicates,
     })
@@ -190,7 +190,7 @@ fn compute(
 fn impact_query(imp: &ImpactSettings) -> String {
     let mut parts = vec![
         format!("outcome={}", imp.outcome),
-        format!("family={}", imp.family.as_str()),
+        format!("family={}", imp.kind.as_str()),
     ];
     parts.extend(imp.predictors.iter().map(|p| format!("predictor={p}")));
     if let Shares::Population(c) = &imp.shares {
@@ -252,14 +252,14 @@ pub async fn page(
         )
         .collect(),
         families: [
-            (Family::Gaussian, "Linear (least squares)"),
-            (Family::Binomial, "Logistic (0/1 outcome)"),
+            (Kind::Linear, "Linear (least squares)"),
+            (Kind::Logistic, "Logistic (0/1 outcome)"),
         ]
         .into_iter()
         .map(|(k, l)| Choice {
             value: k.as_str().into(),
             label: l.into(),
-            selected: r.impact.family == k,
+            selected: r.impact.kind == k,
         })
         .collect(),
         impact_query: impact_query(&r.impact),
