@@ -556,6 +556,95 @@ fn two_step_text(r: &crate::analysis::microdata::TwoStepReport) -> String {
     out
 }
 
+/// `gapwise impact`: every correction's pooled mean and coefficients for one wave.
+pub fn impact(
+    dir: &Path,
+    mut settings: Settings,
+    imp: &crate::analysis::impact::ImpactSettings,
+    json: bool,
+) -> i32 {
+    let source = UniverseSource {
+        path: dir.to_path_buf(),
+        wave: settings.wave,
+        id: None,
+        flag: None,
+        extra: Default::default(),
+    };
+    if !dir.is_dir() {
+        eprintln!(
+            "{}: impact needs a project folder with microdata",
+            dir.display()
+        );
+        return 2;
+    }
+    let project = match Project::load(dir) {
+        Ok(p) => p,
+        Err(problems) => {
+            eprintln!("{}", problems_text(&problems, dir));
+            return 1;
+        }
+    };
+    let view = match load_universe(&source, &mut settings) {
+        Ok(v) => v,
+        Err(e) => {
+            eprintln!("{e}");
+            return 1;
+        }
+    };
+    match crate::analysis::impact::impact(&project, &view, &settings, imp) {
+        Ok(r) => {
+            if json {
+                emit_json(&r);
+            } else {
+                emit(&impact_text(&r));
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
+fn impact_text(r: &crate::analysis::impact::ImpactReport) -> String {
+    let mut out = format!(
+        "Wave {}: {} of {} respondents in {} countries, under each correction (t on {} df)\n",
+        r.wave, r.impact.outcome, r.n_respondents, r.n_countries, r.df
+    );
+    for v in &r.variants {
+        let _ = writeln!(out, "\n{} [{}]", v.label, v.key);
+        if let Some(e) = &v.error {
+            let _ = writeln!(out, "  not estimated: {e}");
+            continue;
+        }
+        if let Some(p) = &v.pooled {
+            let _ = writeln!(
+                out,
+                "  pooled mean {:.4} (s.e. {:.4}; 95% {:.4} to {:.4})",
+                p.estimate, p.se, p.low, p.high
+            );
+        }
+        for (j, c) in v.coef.iter().enumerate() {
+            let term = if j + 1 == v.coef.len() && v.key == "mills-ratio" {
+                "inverse Mills ratio"
+            } else {
+                r.terms.get(j).map_or("", String::as_str)
+            };
+            let _ = writeln!(
+                out,
+                "  {term:<28} {c:>12.5} {:>12} p {}",
+                opt(v.se.get(j).copied(), 5),
+                opt(v.p_cluster.get(j).copied(), 4)
+            );
+        }
+    }
+    for n in &r.notes {
+        let _ = writeln!(out, "note: {n}");
+    }
+    out
+}
+
 /// `gapwise report`: renders the meeting report and writes it atomically.
 pub fn report(dir: &Path, settings: &Settings, out: &Path) -> i32 {
     let project = match Project::load(dir) {

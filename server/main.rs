@@ -132,6 +132,38 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// How a respondent-level finding moves under each correction for country selection
+    /// (the impact page's numbers; --json prints what /api/impact serves).
+    Impact {
+        /// Project folder (with microdata).
+        dir: PathBuf,
+        #[command(flatten)]
+        analysis: AnalysisArgs,
+        /// The wave (default: the latest).
+        #[arg(long)]
+        wave: Option<i64>,
+        /// The survey variable to estimate.
+        #[arg(long)]
+        outcome: String,
+        /// Respondent variables or country indicators, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        predictors: Vec<String>,
+        /// Country indicators in the two-step (Mills-ratio) outcome equation, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        country_indicators: Vec<String>,
+        /// linear (least squares) or logistic (0/1 outcome).
+        #[arg(long, default_value = "linear")]
+        kind: String,
+        /// Country shares proportional to this population column (logged when named log_...).
+        #[arg(long)]
+        population: Option<String>,
+        /// Wild cluster bootstrap replicates (0 to skip).
+        #[arg(long, default_value_t = 399)]
+        bootstrap: usize,
+        /// Print one JSON object instead of tables.
+        #[arg(long)]
+        json: bool,
+    },
     /// Write a self-contained HTML report of one wave for a meeting.
     Report {
         /// Project folder.
@@ -302,6 +334,45 @@ fn main() -> ExitCode {
             },
             json,
         ),
+        Some(Command::Impact {
+            dir,
+            analysis,
+            wave,
+            outcome,
+            predictors,
+            country_indicators,
+            kind,
+            population,
+            bootstrap,
+            json,
+        }) => match (
+            analysis.settings(),
+            gapwise::stats::regression::Kind::parse(&kind),
+        ) {
+            (Ok(mut settings), Some(kind)) => {
+                settings.wave = wave;
+                let imp = gapwise::analysis::impact::ImpactSettings {
+                    outcome,
+                    predictors,
+                    kind,
+                    country_indicators,
+                    shares: population.map_or(
+                        gapwise::analysis::impact::Shares::Equal,
+                        gapwise::analysis::impact::Shares::Population,
+                    ),
+                    replicates: bootstrap,
+                };
+                cli::impact(&dir, settings, &imp, json)
+            }
+            (Err(message), _) => {
+                eprintln!("{message}");
+                2
+            }
+            (_, None) => {
+                eprintln!("--kind must be linear or logistic, not '{kind}'");
+                2
+            }
+        },
         Some(Command::Plan {
             source,
             universe,

@@ -95,6 +95,7 @@ pub fn report(project: &Project, settings: &Settings) -> Result<Report, String> 
                 outcome,
                 predictors,
                 kind: Kind::Linear,
+                country_indicators: Vec::new(),
                 shares: Shares::Equal,
                 replicates: 399,
             };
