@@ -67,6 +67,8 @@ pub struct Variant {
     /// the participants under this variant's country shares against the reference
     /// universe (`balance_reference`); null where not computed.
     pub smd: Vec<Option<f64>>,
+    /// The largest |SMD| of `smd`; null where not computed.
+    pub max_abs_smd: Option<f64>,
     /// What the variant's standard errors are.
     pub se_kind: String,
 }
@@ -299,6 +301,12 @@ pub fn impact(
                 let w = respondent_weights(&|u| share[u]);
                 let mut v = estimate(key, label, &x, &y, &w, &cluster, imp, seed, df);
                 v.smd = smd_of(&|u| share[u]);
+                v.max_abs_smd = v
+                    .smd
+                    .iter()
+                    .flatten()
+                    .map(|x| x.abs())
+                    .fold(None, |m: Option<f64>, x| Some(m.map_or(x, |m| m.max(x))));
                 v.se_kind = se_kind.to_string();
                 v
             }
@@ -595,6 +603,7 @@ fn mills_variant(
         p_cluster,
         p_bootstrap: None,
         smd: vec![None; design.balance.len()],
+        max_abs_smd: None,
         se_kind: "Murphy-Topel, clustered by country: includes the estimated country probit"
             .to_string(),
     })
@@ -613,6 +622,7 @@ fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
         sign_changed: vec![false; k],
         verdict_changed: vec![false; k],
         smd: Vec::new(),
+        max_abs_smd: None,
         se_kind: String::new(),
     }
 }
@@ -694,6 +704,7 @@ fn estimate(
                 p_cluster,
                 p_bootstrap,
                 smd: Vec::new(),
+                max_abs_smd: None,
                 se_kind: String::new(),
             }
         }

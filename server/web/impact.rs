@@ -31,6 +31,8 @@ struct ImpactPage<'a> {
     outcomes: Vec<Choice>,
     predictors: Vec<Choice>,
     families: Vec<Choice>,
+    /// Country indicators offered for the two-step outcome equation.
+    country_choices: Vec<Choice>,
     /// Country shares: equal, or proportional to a population column.
     shares: Vec<Choice>,
     impact_query: String,
@@ -249,6 +251,14 @@ pub async fn page(
                 label: format!("{} (country)", project.manifest.label(c)),
                 selected: r.impact.predictors.contains(c),
             }))
+            .collect(),
+        country_choices: indicators
+            .iter()
+            .map(|c| Choice {
+                value: c.clone(),
+                label: project.manifest.label(c).to_string(),
+                selected: r.impact.country_indicators.contains(c),
+            })
             .collect(),
         shares: std::iter::once(Choice {
             value: "equal".into(),
