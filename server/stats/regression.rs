@@ -883,3 +883,21 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
         lambda,
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::student;
+
+    #[test]
+    fn t_quantiles_match_printed_tables() {
+        // Two-sided 5% critical values of t (any statistics textbook's t table, from
+        // memory): df 1: 12.706, 9: 2.262, 30: 2.042, 120: 1.980.
+        for (df, q) in [(1.0, 12.706), (9.0, 2.262), (30.0, 2.042), (120.0, 1.980)] {
+            let got = student::upper_quantile(0.975, df);
+            assert!((got - q).abs() < 5e-4, "df {df}: {got} vs {q}");
+            assert!((student::two_sided_p(got, df) - 0.05).abs() < 1e-12);
+        }
+        // df 1 is the Cauchy distribution: P(|T| >= 1) = 1/2 exactly.
+        assert!((student::two_sided_p(1.0, 1.0) - 0.5).abs() < 1e-14);
+    }
+}
