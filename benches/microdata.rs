@@ -15,7 +15,7 @@ use std::time::Instant;
 
 use gapwise::analysis::microdata::read_regression_file;
 use gapwise::stats::random::Rng;
-use gapwise::stats::regression::{self, Family};
+use gapwise::stats::regression::{self, Kind};
 
 const RESPONDENTS: usize = 2_000_000;
 const COUNTRIES: usize = 60;
@@ -122,7 +122,7 @@ fn main() {
         &data.y,
         Some(&w),
         &data.cluster,
-        Family::Binomial,
+        Kind::Logistic,
     )
     .expect("fit");
     let fit_s = start.elapsed().as_secs_f64();

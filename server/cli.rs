@@ -214,7 +214,8 @@ pub fn load_universe(source: &UniverseSource, settings: &mut Settings) -> Result
         let factors = settings.factors.clone().unwrap_or_default();
         if covariates.is_empty() && factors.is_empty() {
             return Err(
-                "a frame file needs --covariates a,b,c (and optionally --factors f,g)".to_string(),
+                "a frame file needs --covariates a,b,c (and optionally --categorical f,g)"
+                    .to_string(),
             );
         }
         WaveView::from_file(&source.path, id, flag, &covariates, &factors, &source.extra)
@@ -411,37 +412,34 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
     out
 }
 
-/// `gapwise regress`: a pooled regression with CR1 cluster-robust standard errors.
-pub fn regress(
+/// `gapwise pooled`: a pooled regression with CR1 cluster-robust standard errors and
+/// t(G - 1) p-values and intervals.
+pub fn pooled(
     path: &Path,
     outcome: &str,
     predictors: &[String],
-    cluster: &str,
-    weight: Option<&str>,
-    family: &str,
+    country: &str,
+    design_weight: Option<&str>,
+    kind: &str,
     json: bool,
 ) -> i32 {
-    let Some(family) = crate::stats::regression::Family::parse(family) else {
-        eprintln!("--family must be gaussian or binomial, not '{family}'");
+    let Some(kind) = crate::stats::regression::Kind::parse(kind) else {
+        eprintln!("--kind must be linear or logistic, not '{kind}'");
         return 2;
     };
-    match crate::analysis::microdata::regress_file(
-        path, outcome, predictors, cluster, weight, family,
+    match crate::analysis::microdata::pooled_file(
+        path,
+        outcome,
+        predictors,
+        country,
+        design_weight,
+        kind,
     ) {
         Ok(r) => {
             if json {
                 emit_json(&r);
             } else {
-                let mut out = format!("{} model of {outcome}: {} respondents in {} clusters ({} rows with missing values left out)\n", r.family, r.n, r.clusters, r.dropped);
-                let _ = writeln!(
-                    out,
-                    "  {:<28} {:>14} {:>14}",
-                    "term", "coefficient", "cluster s.e."
-                );
-                for ((t, c), s) in r.terms.iter().zip(&r.coef).zip(&r.se) {
-                    let _ = writeln!(out, "  {t:<28} {c:>14.6} {s:>14.6}");
-                }
-                emit(&out);
+                emit(&pooled_text(&r, outcome));
             }
             0
         }
@@ -450,6 +448,190 @@ pub fn regress(
             1
         }
     }
+}
+
+fn pooled_text(r: &crate::analysis::microdata::PooledReport, outcome: &str) -> String {
+    let mut out = format!(
+        "{} model of {outcome}: {} respondents in {} countries ({} rows with missing values left out)\n",
+        r.kind, r.n, r.clusters, r.dropped
+    );
+    let _ = writeln!(
+        out,
+        "  {:<28} {:>14} {:>14} {:>10} {:>28}",
+        "term",
+        "coefficient",
+        "country s.e.",
+        format!("p, t({})", r.df),
+        "95% interval, t"
+    );
+    for (j, t) in r.terms.iter().enumerate() {
+        let interval = match (r.ci95_low[j], r.ci95_high[j]) {
+            (Some(l), Some(h)) => format!("{l:.6} to {h:.6}"),
+            _ => "not estimable".to_string(),
+        };
+        let _ = writeln!(
+            out,
+            "  {t:<28} {:>14.6} {:>14.6} {:>10} {interval:>28}",
+            r.coef[j],
+            r.se[j],
+            opt(r.p[j], 4),
+        );
+    }
+    out
+}
+
+/// `gapwise two-step`: the Heckman two-step estimator with corrected standard errors.
+pub fn two_step(
+    path: &Path,
+    columns: &crate::analysis::microdata::TwoStepColumns,
+    json: bool,
+) -> i32 {
+    match crate::analysis::microdata::two_step_file(path, columns) {
+        Ok(r) => {
+            if json {
+                emit_json(&r);
+            } else {
+                emit(&two_step_text(&r));
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
+fn two_step_text(r: &crate::analysis::microdata::TwoStepReport) -> String {
+    let mut out = format!(
+        "Two-step selection model: {} rows, {} selected{}\n\nSelection (probit)\n",
+        r.n,
+        r.n_selected,
+        r.clusters
+            .map_or(String::new(), |g| format!(", {g} countries"))
+    );
+    let _ = writeln!(out, "  {:<28} {:>14} {:>14}", "term", "coefficient", "s.e.");
+    for ((t, c), s) in r
+        .selection
+        .terms
+        .iter()
+        .zip(&r.selection.coef)
+        .zip(&r.selection.se)
+    {
+        let _ = writeln!(out, "  {t:<28} {c:>14.6} {s:>14.6}");
+    }
+    let _ = writeln!(
+        out,
+        "\nOutcome (least squares with the inverse Mills ratio, lambda)\n  {:<28} {:>14} {:>14} {:>14}",
+        "term",
+        "coefficient",
+        if r.clusters.is_some() { "s.e. (M-T)" } else { "s.e. (two-step)" },
+        "s.e. ignoring step 1"
+    );
+    let unc = r.outcome.se_uncorrected.clone().unwrap_or_default();
+    for (j, t) in r.outcome.terms.iter().enumerate() {
+        let _ = writeln!(
+            out,
+            "  {t:<28} {:>14.6} {:>14.6} {:>14}",
+            r.outcome.coef[j],
+            r.outcome.se[j],
+            opt(unc.get(j).copied(), 6)
+        );
+    }
+    let _ = writeln!(out, "\nrho {:.4}, sigma {:.4}", r.rho, r.sigma);
+    for n in &r.notes {
+        let _ = writeln!(out, "note: {n}");
+    }
+    out
+}
+
+/// `gapwise impact`: every correction's pooled mean and coefficients for one wave.
+pub fn impact(
+    dir: &Path,
+    mut settings: Settings,
+    imp: &crate::analysis::impact::ImpactSettings,
+    json: bool,
+) -> i32 {
+    let source = UniverseSource {
+        path: dir.to_path_buf(),
+        wave: settings.wave,
+        id: None,
+        flag: None,
+        extra: Default::default(),
+    };
+    if !dir.is_dir() {
+        eprintln!(
+            "{}: impact needs a project folder with microdata",
+            dir.display()
+        );
+        return 2;
+    }
+    let project = match Project::load(dir) {
+        Ok(p) => p,
+        Err(problems) => {
+            eprintln!("{}", problems_text(&problems, dir));
+            return 1;
+        }
+    };
+    let view = match load_universe(&source, &mut settings) {
+        Ok(v) => v,
+        Err(e) => {
+            eprintln!("{e}");
+            return 1;
+        }
+    };
+    match crate::analysis::impact::impact(&project, &view, &settings, imp) {
+        Ok(r) => {
+            if json {
+                emit_json(&r);
+            } else {
+                emit(&impact_text(&r));
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
+fn impact_text(r: &crate::analysis::impact::ImpactReport) -> String {
+    let mut out = format!(
+        "Wave {}: {} of {} respondents in {} countries, under each correction (t on {} df)\n",
+        r.wave, r.impact.outcome, r.n_respondents, r.n_countries, r.df
+    );
+    for v in &r.variants {
+        let _ = writeln!(out, "\n{} [{}]", v.label, v.key);
+        if let Some(e) = &v.error {
+            let _ = writeln!(out, "  not estimated: {e}");
+            continue;
+        }
+        if let Some(p) = &v.pooled {
+            let _ = writeln!(
+                out,
+                "  pooled mean {:.4} (s.e. {:.4}; 95% {:.4} to {:.4})",
+                p.estimate, p.se, p.low, p.high
+            );
+        }
+        for (j, c) in v.coef.iter().enumerate() {
+            let term = if j + 1 == v.coef.len() && v.key == "mills-ratio" {
+                "inverse Mills ratio"
+            } else {
+                r.terms.get(j).map_or("", String::as_str)
+            };
+            let _ = writeln!(
+                out,
+                "  {term:<28} {c:>12.5} {:>12} p {}",
+                opt(v.se.get(j).copied(), 5),
+                opt(v.p_cluster.get(j).copied(), 4)
+            );
+        }
+    }
+    for n in &r.notes {
+        let _ = writeln!(out, "note: {n}");
+    }
+    out
 }
 
 /// `gapwise report`: renders the meeting report and writes it atomically.

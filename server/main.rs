@@ -93,8 +93,9 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
-    /// Pooled regression of a respondent outcome with standard errors clustered by country.
-    Regress {
+    /// Pooled regression of a respondent outcome with standard errors clustered by country,
+    /// p-values and intervals from t with (countries - 1) degrees of freedom.
+    Pooled {
         /// A CSV or Parquet file with one row per respondent.
         microdata: PathBuf,
         /// The outcome column.
@@ -103,16 +104,72 @@ enum Command {
         /// Predictor columns, comma-separated.
         #[arg(long, value_delimiter = ',')]
         predictors: Vec<String>,
-        /// The cluster column (the country).
+        /// The country column (standard errors are clustered by it).
         #[arg(long)]
-        cluster: String,
-        /// Analytic weights column (as weighted least squares takes them).
+        country: String,
+        /// Design weights column (each respondent's weight in the least squares).
         #[arg(long)]
-        weight: Option<String>,
-        /// gaussian (least squares) or binomial (logistic).
-        #[arg(long, default_value = "gaussian")]
-        family: String,
+        design_weight: Option<String>,
+        /// linear (least squares) or logistic (0/1 outcome).
+        #[arg(long, default_value = "linear")]
+        kind: String,
         /// Print one JSON object instead of a table.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Two-step selection model: a probit of being selected, then least squares of the
+    /// outcome with the inverse Mills ratio, standard errors corrected for the first step.
+    TwoStep {
+        /// A CSV or Parquet file with one row per unit (selected or not).
+        data: PathBuf,
+        /// The outcome column (needed on selected rows only).
+        #[arg(long)]
+        outcome: String,
+        /// Outcome-equation predictors, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        predictors: Vec<String>,
+        /// The selection flag column, 1 selected, 0 not.
+        #[arg(long)]
+        selected: String,
+        /// Selection-equation predictors, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        selection_predictors: Vec<String>,
+        /// A country column: standard errors clustered by country (Murphy-Topel).
+        #[arg(long)]
+        country: Option<String>,
+        /// Print one JSON object instead of tables.
+        #[arg(long)]
+        json: bool,
+    },
+    /// How a respondent-level finding moves under each correction for country selection
+    /// (the impact page's numbers; --json prints what /api/impact serves).
+    Impact {
+        /// Project folder (with microdata).
+        dir: PathBuf,
+        #[command(flatten)]
+        analysis: AnalysisArgs,
+        /// The wave (default: the latest).
+        #[arg(long)]
+        wave: Option<i64>,
+        /// The survey variable to estimate.
+        #[arg(long)]
+        outcome: String,
+        /// Respondent variables or country indicators, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        predictors: Vec<String>,
+        /// Country indicators in the two-step (Mills-ratio) outcome equation, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        country_indicators: Vec<String>,
+        /// linear (least squares) or logistic (0/1 outcome).
+        #[arg(long, default_value = "linear")]
+        kind: String,
+        /// Country shares proportional to this population column (logged when named log_...).
+        #[arg(long)]
+        population: Option<String>,
+        /// Wild cluster bootstrap replicates (0 to skip).
+        #[arg(long, default_value_t = 399)]
+        bootstrap: usize,
+        /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
     },
@@ -168,7 +225,7 @@ struct AnalysisArgs {
     covariates: Option<String>,
     /// Categorical indicators, comma-separated (default for projects: all).
     #[arg(long)]
-    factors: Option<String>,
+    categorical: Option<String>,
     /// logit, firth or probit.
     #[arg(long, default_value = "logit")]
     model: String,
@@ -196,7 +253,7 @@ impl AnalysisArgs {
         if let Some(c) = &self.covariates {
             pairs.push(("covariates", c));
         }
-        if let Some(f) = &self.factors {
+        if let Some(f) = &self.categorical {
             pairs.push(("factors", f));
         }
         if let Some(t) = &self.trim {
@@ -270,23 +327,81 @@ fn main() -> ExitCode {
                 2
             }
         },
-        Some(Command::Regress {
+        Some(Command::Pooled {
             microdata,
             outcome,
             predictors,
-            cluster,
-            weight,
-            family,
+            country,
+            design_weight,
+            kind,
             json,
-        }) => cli::regress(
+        }) => cli::pooled(
             &microdata,
             &outcome,
             &predictors,
-            &cluster,
-            weight.as_deref(),
-            &family,
+            &country,
+            design_weight.as_deref(),
+            &kind,
             json,
         ),
+        Some(Command::TwoStep {
+            data,
+            outcome,
+            predictors,
+            selected,
+            selection_predictors,
+            country,
+            json,
+        }) => cli::two_step(
+            &data,
+            &gapwise::analysis::microdata::TwoStepColumns {
+                outcome: &outcome,
+                predictors: &predictors,
+                selected: &selected,
+                selection_predictors: &selection_predictors,
+                country: country.as_deref(),
+            },
+            json,
+        ),
+        Some(Command::Impact {
+            dir,
+            analysis,
+            wave,
+            outcome,
+            predictors,
+            country_indicators,
+            kind,
+            population,
+            bootstrap,
+            json,
+        }) => match (
+            analysis.settings(),
+            gapwise::stats::regression::Kind::parse(&kind),
+        ) {
+            (Ok(mut settings), Some(kind)) => {
+                settings.wave = wave;
+                let imp = gapwise::analysis::impact::ImpactSettings {
+                    outcome,
+                    predictors,
+                    kind,
+                    country_indicators,
+                    shares: population.map_or(
+                        gapwise::analysis::impact::Shares::Equal,
+                        gapwise::analysis::impact::Shares::Population,
+                    ),
+                    replicates: bootstrap,
+                };
+                cli::impact(&dir, settings, &imp, json)
+            }
+            (Err(message), _) => {
+                eprintln!("{message}");
+                2
+            }
+            (_, None) => {
+                eprintln!("--kind must be linear or logistic, not '{kind}'");
+                2
+            }
+        },
         Some(Command::Plan {
             source,
             universe,

@@ -128,7 +128,7 @@ fn a_candidate_that_makes_balance_feasible_comes_first() {
         "took_part",
         "--covariates",
         "x",
-        "--factors",
+        "--categorical",
         "region",
         "--feasibility",
         "chance",

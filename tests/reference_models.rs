@@ -340,7 +340,7 @@ fn demo_weights_balance_exactly_and_are_normalised() {
         "covariate-balancing",
         "--covariates",
         "log_gdp_pc,democracy_index",
-        "--factors",
+        "--categorical",
         "",
     ]);
     for b in r["balance"].as_array().unwrap() {
@@ -494,7 +494,7 @@ fn demo_selection_model_is_recovered() {
             &w,
             "--covariates",
             "log_gdp_pc,years_since_transition,democracy_index",
-            "--factors",
+            "--categorical",
             "region",
         ]);
         let terms: Vec<&str> = r["model"]["terms"]

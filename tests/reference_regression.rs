@@ -93,9 +93,9 @@ fn longley_matches_nist_certified_values() {
     }
 }
 
-fn regress(args: &[&str]) -> Value {
+fn pooled(args: &[&str]) -> Value {
     let path = fixtures().join("wagepan.csv");
-    let mut all = vec!["regress", path.to_str().unwrap(), "--outcome"];
+    let mut all = vec!["pooled", path.to_str().unwrap(), "--outcome"];
     all.extend_from_slice(args);
     all.push("--json");
     let out = gapwise(&all);
@@ -104,6 +104,14 @@ fn regress(args: &[&str]) -> Value {
 }
 
 fn assert_close(a: &[f64], e: &[f64], rel: f64, what: &str) {
+    assert_eq!(
+        a.len(),
+        e.len(),
+        "{what}: {} values, expected {}",
+        a.len(),
+        e.len()
+    );
+    assert!(!e.is_empty(), "{what}: nothing to compare");
     for (x, y) in a.iter().zip(e) {
         assert!(
             (x - y).abs() <= rel * y.abs().max(1e-8),
@@ -118,7 +126,7 @@ fn cluster_robust_errors_match_statsmodels() {
     let fx = &reference["wagepan_cluster"];
     let predictors = "educ,black,hisp,exper,married";
     // statsmodels OLS(...).fit(cov_type="cluster"), Wooldridge's wagepan, clusters = men.
-    let ols = regress(&["lwage", "--predictors", predictors, "--cluster", "nr"]);
+    let ols = pooled(&["lwage", "--predictors", predictors, "--country", "nr"]);
     assert_close(
         &floats(&ols["coef"]),
         &floats(&fx["ols_coef"]),
@@ -129,13 +137,13 @@ fn cluster_robust_errors_match_statsmodels() {
     assert_eq!(ols["clusters"], fx["clusters"]);
     assert_eq!(ols["n"], fx["n"]);
     // statsmodels WLS(weights=w) with cluster errors.
-    let wls = regress(&[
+    let wls = pooled(&[
         "lwage",
         "--predictors",
         predictors,
-        "--cluster",
+        "--country",
         "nr",
-        "--weight",
+        "--design-weight",
         "w",
     ]);
     assert_close(
@@ -146,14 +154,14 @@ fn cluster_robust_errors_match_statsmodels() {
     );
     assert_close(&floats(&wls["se"]), &floats(&fx["wls_se"]), 1e-6, "WLS se");
     // statsmodels Logit(...).fit(cov_type="cluster").
-    let logit = regress(&[
+    let logit = pooled(&[
         "union",
         "--predictors",
         predictors,
-        "--cluster",
+        "--country",
         "nr",
-        "--family",
-        "binomial",
+        "--kind",
+        "logistic",
     ]);
     assert_close(
         &floats(&logit["coef"]),
@@ -218,54 +226,240 @@ fn wild_cluster_bootstrap_agrees_with_reference_within_monte_carlo_error() {
     }
 }
 
+fn twostep_reference() -> Value {
+    serde_json::from_str(&std::fs::read_to_string(fixtures().join("twostep.json")).unwrap())
+        .unwrap()
+}
+
+const MROZ_SELECTION: &str = "nwifeinc,educ,exper,expersq,age,kidslt6,kidsge6";
+
+fn two_step(file: &str, extra: &[&str]) -> Value {
+    let path = fixtures().join(file);
+    let mut args = vec![
+        "two-step",
+        path.to_str().unwrap(),
+        "--outcome",
+        "lwage",
+        "--predictors",
+        "educ,exper,expersq",
+        "--selected",
+        "inlf",
+        "--selection-predictors",
+        MROZ_SELECTION,
+        "--json",
+    ];
+    args.extend_from_slice(extra);
+    let out = gapwise(&args);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    serde_json::from_str(&out.stdout).unwrap()
+}
+
 #[test]
 fn heckman_two_step_matches_wooldridge_example() {
-    let reference = reference();
-    let (header, rows) = read_csv("mroz.csv");
-    let z = columns(
-        &header,
-        &rows,
-        &[
-            "nwifeinc", "educ", "exper", "expersq", "age", "kidslt6", "kidsge6",
-        ],
-        true,
-    );
-    let inlf = header.iter().position(|h| h == "inlf").unwrap();
-    let selected: Vec<bool> = rows.iter().map(|r| r[inlf] == 1.0).collect();
-    let x = columns(&header, &rows, &["educ", "exper", "expersq"], true);
-    let y: Vec<f64> = rows
+    let r = two_step("mroz.csv", &[]);
+    let fx = &twostep_reference()["mroz_two_step"];
+    let terms: Vec<&str> = r["outcome"]["terms"]
+        .as_array()
+        .unwrap()
         .iter()
-        .map(|r| r[header.iter().position(|h| h == "lwage").unwrap()])
+        .map(|t| t.as_str().unwrap())
         .collect();
-    let fit = regression::heckman_two_step(z.view(), &selected, x.view(), &y).unwrap();
-    // statsmodels Probit + OLS with the inverse Mills ratio, offline fixture.
+    assert_eq!(terms, ["intercept", "educ", "exper", "expersq", "lambda"]);
+    // The coefficients also agree with the older statsmodels fixture (Probit + OLS).
     assert_close(
-        &fit.outcome,
-        &floats(&reference["mroz_heckman"]["coef"]),
+        &floats(&r["outcome"]["coef"]),
+        &floats(&reference()["mroz_heckman"]["coef"]),
         1e-6,
-        "Heckman",
+        "Heckman coef (reference.json)",
     );
-    // Wooldridge, Introductory Econometrics, Example 17.5 (from memory): 3 decimals.
-    let printed: [f64; 5] = [-0.578, 0.109, 0.044, -0.00086, 0.032];
-    for (a, e) in fit.outcome.iter().zip(printed) {
+    // Offline numpy/statsmodels reference (tests/fixtures/make_twostep_fixtures.py):
+    // Heckman's (1979) covariance as Greene writes it.
+    for (key, rel) in [("coef", 1e-6), ("se", 1e-6), ("se_uncorrected", 1e-6)] {
+        assert_close(
+            &floats(&r["outcome"][key]),
+            &floats(&fx[key]),
+            rel,
+            &format!("outcome {key}"),
+        );
+    }
+    assert_close(
+        &floats(&r["selection"]["coef"]),
+        &floats(&fx["selection_coef"]),
+        1e-6,
+        "probit coef",
+    );
+    assert_close(
+        &floats(&r["selection"]["se"]),
+        &floats(&fx["selection_se"]),
+        1e-6,
+        "probit se",
+    );
+    for key in ["rho", "sigma"] {
+        let (a, e) = (r[key].as_f64().unwrap(), fx[key].as_f64().unwrap());
+        assert!((a - e).abs() < 1e-6 * e.abs(), "{key}: {a} vs {e}");
+    }
+    assert_eq!(r["n"], 753);
+    assert_eq!(r["n_selected"], 428);
+    // Wooldridge, Introductory Econometrics, Example 17.5 (from memory): educ .109 (.016),
+    // exper .044 (.016), expersq -.00086 (.00044), lambda .032 (.134), as printed.
+    let printed: [(usize, f64, f64); 4] = [
+        (1, 0.109, 0.016),
+        (2, 0.044, 0.016),
+        (3, -0.00086, 0.00044),
+        (4, 0.032, 0.134),
+    ];
+    let coef = floats(&r["outcome"]["coef"]);
+    let se = floats(&r["outcome"]["se"]);
+    let rounds_to = |a: f64, e: f64| {
         let decimals = if e.abs() < 0.01 { 5 } else { 3 };
         let f = 10f64.powi(decimals);
-        assert!(((a * f).round() / f - e).abs() < 1e-9, "{a} vs {e}");
+        ((a * f).round() / f - e).abs() < 1e-9
+    };
+    for (j, b, s) in printed {
+        assert!(
+            rounds_to(coef[j], b),
+            "term {j}: {} vs printed {b}",
+            coef[j]
+        );
+        assert!(rounds_to(se[j], s), "term {j}: se {} vs printed {s}", se[j]);
     }
 }
 
 #[test]
-fn regress_reports_bad_input_clearly() {
+fn clustered_two_step_matches_murphy_topel_reference() {
+    // Offline reference (make_twostep_fixtures.py): Murphy-Topel by stacked estimating
+    // equations, clusters = age in years (an arbitrary grouping for the check); its probit
+    // and uncorrected parts were checked there against statsmodels' clustered fits.
+    let r = two_step("mroz_by_age.csv", &["--country", "age_group"]);
+    let fx = &twostep_reference()["mroz_two_step_by_age"];
+    assert_eq!(r["clusters"], fx["clusters"]);
+    assert_eq!(r["standard_errors"], "murphy-topel-cluster");
+    assert_close(
+        &floats(&r["outcome"]["se"]),
+        &floats(&fx["se"]),
+        1e-6,
+        "M-T se",
+    );
+    assert_close(
+        &floats(&r["outcome"]["se_uncorrected"]),
+        &floats(&fx["se_uncorrected"]),
+        1e-6,
+        "clustered OLS se",
+    );
+    assert_close(
+        &floats(&r["selection"]["se"]),
+        &floats(&fx["selection_se"]),
+        1e-6,
+        "clustered probit se",
+    );
+}
+
+#[test]
+fn two_step_warns_when_identified_by_functional_form_only() {
+    // Common practice (Wooldridge 2010, section 19.6): with no excluded selection
+    // predictor, identification rests on the probit's non-linearity alone.
+    let path = fixtures().join("mroz.csv");
+    let out = gapwise(&[
+        "two-step",
+        path.to_str().unwrap(),
+        "--outcome",
+        "lwage",
+        "--predictors",
+        "educ,exper,expersq",
+        "--selected",
+        "inlf",
+        "--selection-predictors",
+        "educ,exper",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let r: Value = serde_json::from_str(&out.stdout).unwrap();
+    let notes = r["notes"].as_array().unwrap();
+    assert!(
+        notes
+            .iter()
+            .any(|n| n.as_str().unwrap().contains("functional form")),
+        "{notes:?}"
+    );
+    // A flag that is not 0/1 is reported with its row and column.
+    let out = gapwise(&[
+        "two-step",
+        path.to_str().unwrap(),
+        "--outcome",
+        "lwage",
+        "--predictors",
+        "educ",
+        "--selected",
+        "kidsge6",
+        "--selection-predictors",
+        "age",
+    ]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("mroz.csv:"), "{}", out.stderr);
+    assert!(out.stderr.contains("0 or 1"), "{}", out.stderr);
+}
+
+#[test]
+fn few_country_inference_uses_t_with_g_minus_one_df() {
+    // statsmodels OLS(...).fit(cov_type="cluster", use_t=True), offline fixture.
+    for case in twostep_reference()["t_inference"].as_array().unwrap() {
+        let g = case["clusters"].as_u64().unwrap() as usize;
+        let (x, y, cluster) = wagepan_first_men(g, "lwage");
+        let fit = regression::fit(x.view(), &y, None, &cluster, regression::Kind::Linear).unwrap();
+        assert_close(&fit.se, &floats(&case["se"]), 1e-6, "se");
+        let t = regression::t_inference(&fit.coef, &fit.se, fit.clusters);
+        assert_eq!(t.df as u64, case["df"].as_u64().unwrap());
+        let some = |v: &[Option<f64>]| v.iter().map(|x| x.unwrap()).collect::<Vec<_>>();
+        assert_close(&some(&t.p), &floats(&case["p"]), 1e-6, "p");
+        assert_close(&some(&t.ci95_low), &floats(&case["ci95_low"]), 1e-6, "low");
+        assert_close(
+            &some(&t.ci95_high),
+            &floats(&case["ci95_high"]),
+            1e-6,
+            "high",
+        );
+    }
+    // The command's JSON carries the same for the whole panel.
+    let r = pooled(&[
+        "lwage",
+        "--predictors",
+        "educ,exper,married",
+        "--country",
+        "nr",
+    ]);
+    let case = &twostep_reference()["t_inference"][1];
+    assert_eq!(r["df"], case["df"]);
+    assert_close(&floats(&r["p"]), &floats(&case["p"]), 1e-6, "command p");
+    assert_close(
+        &floats(&r["ci95_low"]),
+        &floats(&case["ci95_low"]),
+        1e-6,
+        "command low",
+    );
+}
+
+#[test]
+fn bootstrap_p_values_are_never_zero() {
+    // Davison & Hinkley (1997, eq. 4.11): (1 + #{|t*| >= |t|}) / (B + 1).
+    assert_eq!(regression::bootstrap_p(0, 99), 0.01);
+    assert_eq!(regression::bootstrap_p(99, 99), 1.0);
+    let (x, y, cluster) = wagepan_first_men(10, "lwage");
+    let p = regression::wild_cluster_bootstrap(x.view(), &y, None, &cluster, 1, 9, 1).unwrap();
+    assert!(p >= 0.1 - 1e-12, "{p}");
+}
+
+#[test]
+fn pooled_reports_bad_input_clearly() {
     let path = fixtures().join("wagepan.csv");
     let p = path.to_str().unwrap();
     let out = gapwise(&[
-        "regress",
+        "pooled",
         p,
         "--outcome",
         "lwage",
         "--predictors",
         "educ,nothing",
-        "--cluster",
+        "--country",
         "nr",
     ]);
     assert_eq!(out.code, 1);
@@ -275,33 +469,29 @@ fn regress_reports_bad_input_clearly() {
         out.stderr
     );
     let out = gapwise(&[
-        "regress",
+        "pooled",
         p,
         "--outcome",
         "lwage",
         "--predictors",
         "educ",
-        "--cluster",
+        "--country",
         "nr",
-        "--family",
+        "--kind",
         "poisson",
     ]);
-    assert!(
-        out.stderr.contains("gaussian or binomial"),
-        "{}",
-        out.stderr
-    );
+    assert!(out.stderr.contains("linear or logistic"), "{}", out.stderr);
     let out = gapwise(&[
-        "regress",
+        "pooled",
         p,
         "--outcome",
         "lwage",
         "--predictors",
         "educ",
-        "--cluster",
+        "--country",
         "nr",
-        "--family",
-        "binomial",
+        "--kind",
+        "logistic",
     ]);
     assert!(out.stderr.contains("must be 0 or 1"), "{}", out.stderr);
 }

@@ -631,13 +631,13 @@ fn a_binary_outcome_that_is_not_0_or_1_is_placed() {
         csv.push_str(&format!("{y},{},{}\n", i % 7, ["XAA", "XAB", "XAC"][i % 3]));
     }
     dir.write("people.csv", &csv);
-    let result = gapwise::analysis::microdata::regress_file(
+    let result = gapwise::analysis::microdata::pooled_file(
         &dir.path().join("people.csv"),
         "y",
         &["x".to_string()],
         "country",
         None,
-        gapwise::stats::regression::Family::Binomial,
+        gapwise::stats::regression::Kind::Logistic,
     );
     let Err(e) = result else {
         panic!("an outcome of 35 was accepted for a binomial model")

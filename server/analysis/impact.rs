@@ -9,10 +9,10 @@ use serde::Serialize;
 
 use super::design;
 use super::participation::{self, AnalysisError};
-use super::settings::{ModelKind, Settings, WeightingKind};
+use super::settings::{Settings, WeightingKind};
 use crate::project::{Project, WaveView};
-use crate::stats::normal;
-use crate::stats::regression::{self, Family};
+use crate::stats::regression::{self, Kind, TwoStepInput};
+use crate::stats::weights;
 
 /// What the impact view estimates.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -20,7 +20,9 @@ pub struct ImpactSettings {
     pub outcome: String,
     /// Respondent variables or country indicators (joined by country).
     pub predictors: Vec<String>,
-    pub family: Family,
+    pub kind: Kind,
+    /// Country indicators in the outcome equation of the two-step (Mills-ratio) variant.
+    pub country_indicators: Vec<String>,
     /// Country shares: each participating country counts by its weight ("equal"), or by
     /// its weight times its population ("population", from `population_column`).
     pub shares: Shares,
@@ -52,7 +54,8 @@ pub struct Variant {
     pub pooled: Option<Pooled>,
     pub coef: Vec<f64>,
     pub se: Vec<f64>,
-    /// Two-sided p-values from the CR1 z statistic.
+    /// Two-sided p-values from the CR1 t statistic with (countries - 1) degrees of freedom
+    /// (Cameron & Miller 2015, section VI.C).
     pub p_cluster: Vec<f64>,
     /// Wild cluster bootstrap p-values (linear models).
     pub p_bootstrap: Option<Vec<f64>>,
@@ -60,6 +63,14 @@ pub struct Variant {
     pub sign_changed: Vec<bool>,
     /// Per term: significant at 5% here but not unweighted, or the reverse.
     pub verdict_changed: Vec<bool>,
+    /// Per balance indicator (the report's `balance_terms`): standardised mean difference of
+    /// the participants under this variant's country shares against the reference
+    /// universe (`balance_reference`); null where not computed.
+    pub smd: Vec<Option<f64>>,
+    /// The largest |SMD| of `smd`; null where not computed.
+    pub max_abs_smd: Option<f64>,
+    /// What the variant's standard errors are.
+    pub se_kind: String,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -70,6 +81,13 @@ pub struct ImpactReport {
     pub terms: Vec<String>,
     pub n_respondents: usize,
     pub n_countries: usize,
+    /// Degrees of freedom of the t reference for p-values and intervals: countries - 1.
+    pub df: usize,
+    /// The indicators whose balance each variant's `smd` shows.
+    pub balance_terms: Vec<String>,
+    /// What the SMDs compare with: the eligible universe with each country counting the
+    /// same, or weighted by population.
+    pub balance_reference: String,
     pub variants: Vec<Variant>,
     pub notes: Vec<String>,
 }
@@ -210,82 +228,160 @@ pub fn impact(
             )
         }
     };
+    let population_ok = population
+        .as_ref()
+        .is_none_or(|p| p.iter().all(|v| v.is_finite() && *v > 0.0));
     // Respondent weight: design weight rescaled so each country's respondents sum to the
-    // country's weight (times its population share when asked).
-    let respondent_weights = |country_weight: &dyn Fn(usize) -> f64| -> Vec<f64> {
+    // country's share.
+    let respondent_weights = |share: &dyn Fn(usize) -> f64| -> Vec<f64> {
         rows.iter()
             .enumerate()
             .map(|(r, &i)| {
                 let u = unit_of[r];
-                let share = population.as_ref().map_or(1.0, |p| p[u]);
-                country_weight(u) * share * design_weight[i].unwrap_or(0.0) / design_total[&u]
+                share(u) * design_weight[i].unwrap_or(0.0) / design_total[&u]
             })
             .collect()
     };
+    let base = |u: usize| population.as_ref().map_or(1.0, |p| p[u]);
+    // The reference universe of the balance columns: every eligible country counting the
+    // same, or by population (Hainmueller 2012's base weights q).
+    let n_units = design.n();
+    let q: Vec<f64> = (0..n_units).map(base).collect();
+    let q_total: f64 = q.iter().sum();
+    let balance_terms: Vec<String> = design.balance.iter().map(|b| b.label.clone()).collect();
+    let moments: Vec<(f64, f64)> = design
+        .balance
+        .iter()
+        .map(|b| {
+            let m = b.values.iter().zip(&q).map(|(v, w)| v * w).sum::<f64>() / q_total;
+            let var = b
+                .values
+                .iter()
+                .zip(&q)
+                .map(|(v, w)| w * (v - m).powi(2))
+                .sum::<f64>()
+                / q_total;
+            (m, var.sqrt())
+        })
+        .collect();
+    let smd_of = |share: &dyn Fn(usize) -> f64| -> Vec<Option<f64>> {
+        if !population_ok {
+            return vec![None; design.balance.len()];
+        }
+        let s: Vec<f64> = (0..n_units)
+            .map(|u| {
+                if design.participated[u] {
+                    share(u)
+                } else {
+                    0.0
+                }
+            })
+            .collect();
+        let total: f64 = s.iter().sum();
+        design
+            .balance
+            .iter()
+            .zip(&moments)
+            .map(|(b, &(m, sd))| {
+                let mean = b.values.iter().zip(&s).map(|(v, w)| v * w).sum::<f64>() / total;
+                (sd > 0.0 && total > 0.0).then(|| (mean - m) / sd)
+            })
+            .collect()
+    };
+    let df = cluster_ids.len().saturating_sub(1);
 
     let mut terms = vec!["intercept".to_string()];
     terms.extend(imp.predictors.iter().cloned());
     let mut variants = Vec::new();
     let seed = settings.seed;
-    let run = |key: &str, label: &str, w: Result<Vec<f64>, String>, x: &Array2<f64>| -> Variant {
-        match w {
+    let run = |key: &str, label: &str, share: Result<Vec<f64>, String>, se_kind: &str| -> Variant {
+        match share {
             Err(e) => failed(key, label, e, x.ncols()),
-            Ok(w) => estimate(key, label, x, &y, &w, &cluster, imp, seed),
+            Ok(share) => {
+                let w = respondent_weights(&|u| share[u]);
+                let mut v = estimate(key, label, &x, &y, &w, &cluster, imp, seed, df);
+                v.smd = smd_of(&|u| share[u]);
+                v.max_abs_smd = v
+                    .smd
+                    .iter()
+                    .flatten()
+                    .map(|x| x.abs())
+                    .fold(None, |m: Option<f64>, x| Some(m.map_or(x, |m| m.max(x))));
+                v.se_kind = se_kind.to_string();
+                v
+            }
         }
     };
+    let equal_label = if population.is_some() {
+        "Each participating country counts by its population"
+    } else {
+        "Every participating country counts the same"
+    };
+    let cr1 = "clustered by country (CR1), weights taken as given";
     variants.push(run(
         "unweighted",
-        "Every participating country counts the same",
-        Ok(respondent_weights(&|_| 1.0)),
-        &x,
+        equal_label,
+        if population_ok {
+            Ok(q.clone())
+        } else {
+            Err("a country's population is missing or not positive".to_string())
+        },
+        cr1,
     ));
     for kind in WeightingKind::ALL {
         let s = Settings {
             weighting: kind,
             ..settings.clone()
         };
-        let w = participation::weigh(&design, &s, &model)
-            .map(|w| w.weights)
-            .map_err(|e| e.to_string());
-        let rw = w.map(|w| respondent_weights(&|u| w[u]));
-        variants.push(run(kind.as_str(), kind.label(), rw, &x));
+        let share = if !population_ok {
+            Err("a country's population is missing or not positive".to_string())
+        } else if kind == WeightingKind::Entropy && population.is_some() {
+            population_entropy(&design, &q, &moments, settings.match_variances)
+        } else {
+            participation::weigh(&design, &s, &model)
+                .map(|w| (0..n_units).map(|u| w.weights[u] * base(u)).collect())
+                .map_err(|e| e.to_string())
+        };
+        let label = if kind == WeightingKind::Entropy && population.is_some() {
+            "Entropy balancing to the population-weighted universe (population as base weights)"
+                .to_string()
+        } else if population.is_some() {
+            format!("{} × population", kind.label())
+        } else {
+            kind.label().to_string()
+        };
+        variants.push(run(kind.as_str(), &label, share, cr1));
     }
-    // Heckman-type: the inverse Mills ratio of the country-level probit as a regressor.
-    let mills = participation::fit_model(&design, ModelKind::Probit, false).map(|probit| {
-        probit
-            .propensity
-            .iter()
-            .map(|&p| normal::inverse_mills(normal::quantile(p)))
-            .collect::<Vec<f64>>()
-    });
-    let mut x_mills = Array2::<f64>::ones((rows.len(), k + 1));
-    x_mills.slice_mut(ndarray::s![.., ..k]).assign(&x);
-    let mills_ok = match &mills {
-        Ok(lambda) => {
-            for (r, u) in unit_of.iter().enumerate() {
-                x_mills[[r, k]] = lambda[*u];
-            }
-            Ok(respondent_weights(&|_| 1.0))
-        }
-        Err(e) => Err(e.to_string()),
-    };
-    // Its last coefficient is the ratio's own; the flags compare the substantive terms only.
-    variants.push(run(
-        "mills-ratio",
-        "Inverse Mills ratio of the country probit added",
-        mills_ok,
-        &x_mills,
-    ));
+    // Heckman-type: the two-step with the country-level probit.
+    let mut notes_extra = Vec::new();
+    variants.push(
+        mills_variant(
+            &MillsInput {
+                design: &design,
+                view,
+                x: &x,
+                y: &y,
+                w: &respondent_weights(&|_| 1.0),
+                unit_of: &unit_of,
+                q: &q,
+                df,
+            },
+            imp,
+            &mut notes_extra,
+        )
+        .unwrap_or_else(|e| failed("mills-ratio", MILLS_LABEL, e, k + 1)),
+    );
 
     flag_changes(&mut variants, k);
     let mut notes = vec![
         "Unweighted: design weights rescaled so that every participating country counts the same. Weighted: so that each country counts by its country weight.".to_string(),
-        "Confidence intervals and p-values use standard errors clustered by country (CR1); with few countries they are rough, and the wild cluster bootstrap p-values are the safer guide.".to_string(),
-        "The Mills-ratio variant changes the model, not the weights (its pooled mean is the unweighted one), and does not correct its standard errors for the estimated first step.".to_string(),
+        format!("Confidence intervals and p-values use standard errors clustered by country (CR1) with t on {df} degrees of freedom (countries - 1); with few countries the wild cluster bootstrap p-values are the safer guide."),
+        "The two-step (Mills-ratio) variant changes the model, not the weights: the outcome equation carries the predictors, the chosen country indicators and the inverse Mills ratio of the country probit; its pooled mean and intercept are the outcome equation's prediction without the selection term averaged over the whole eligible universe, with standard errors that include the estimated first step (Murphy & Topel 1985, clustered by country).".to_string(),
     ];
+    notes.extend(notes_extra);
     if let Shares::Population(c) = &imp.shares {
         notes.push(format!(
-            "Country shares are proportional to population ({c}) times the country weight."
+            "Country shares are proportional to population ({c}): entropy balancing takes the population as base weights and balances to the population-weighted universe (Hainmueller 2012); the other weightings multiply their country weights by population, so their balance against that universe is not exact (see the SMDs)."
         ));
     }
     let mut all_terms = terms.clone();
@@ -297,8 +393,219 @@ pub fn impact(
         terms: all_terms,
         n_respondents: rows.len(),
         n_countries: cluster_ids.len(),
+        df,
+        balance_terms,
+        balance_reference: if population.is_some() {
+            "the eligible universe weighted by population".to_string()
+        } else {
+            "the eligible universe, every country counting the same".to_string()
+        },
         variants,
         notes,
+    })
+}
+
+const MILLS_LABEL: &str = "Two-step: inverse Mills ratio of the country probit";
+
+/// Entropy balancing with the population as base weights q_i, to the population-weighted
+/// universe's means (and variances when asked): Hainmueller (2012), eq. 1-4 with q.
+/// Returns each design unit's share (zero for non-participants).
+fn population_entropy(
+    design: &design::Design,
+    q: &[f64],
+    moments: &[(f64, f64)],
+    variances: bool,
+) -> Result<Vec<f64>, String> {
+    let n = design.n();
+    let mut columns: Vec<(String, Vec<f64>, f64, f64)> = design
+        .balance
+        .iter()
+        .zip(moments)
+        .map(|(b, &(m, sd))| (b.label.clone(), b.values.clone(), m, sd))
+        .collect();
+    if variances {
+        let q_total: f64 = q.iter().sum();
+        for (b, &(m, _)) in design.balance.iter().zip(moments) {
+            if b.is_level {
+                continue;
+            }
+            let sq: Vec<f64> = b.values.iter().map(|v| (v - m).powi(2)).collect();
+            let target = sq.iter().zip(q).map(|(v, w)| v * w).sum::<f64>() / q_total;
+            let sd = (sq
+                .iter()
+                .zip(q)
+                .map(|(v, w)| w * (v - target).powi(2))
+                .sum::<f64>()
+                / q_total)
+                .sqrt();
+            columns.push((format!("{} (variance)", b.label), sq, target, sd));
+        }
+    }
+    let mut c = Array2::<f64>::zeros((n, columns.len()));
+    for (j, col) in columns.iter().enumerate() {
+        for (i, v) in col.1.iter().enumerate() {
+            c[[i, j]] = *v;
+        }
+    }
+    let targets: Vec<f64> = columns.iter().map(|c| c.2).collect();
+    let scale: Vec<f64> = columns
+        .iter()
+        .map(|c| if c.3 > 0.0 { c.3 } else { 1.0 })
+        .collect();
+    weights::entropy_balance(c.view(), &design.participated, &targets, &scale, Some(q))
+        .map_err(|e| match e {
+            weights::WeightError::Infeasible { column, reason } => format!(
+                "cannot match {}: {reason}",
+                columns.get(column).map_or("an indicator", |c| c.0.as_str())
+            ),
+            e => e.to_string(),
+        })
+        .and_then(|fit| {
+            if fit.converged {
+                Ok(fit.weights)
+            } else {
+                Err(format!(
+                    "entropy balancing to the population-weighted universe did not converge (largest gap {:.2e})",
+                    fit.max_gap
+                ))
+            }
+        })
+}
+
+struct MillsInput<'a> {
+    design: &'a design::Design,
+    view: &'a WaveView,
+    /// Respondent rows: intercept and predictors.
+    x: &'a Array2<f64>,
+    y: &'a [f64],
+    w: &'a [f64],
+    unit_of: &'a [usize],
+    /// Each eligible country's weight in the universe average.
+    q: &'a [f64],
+    df: usize,
+}
+
+/// The two-step variant (Heckman 1979 with a country-level probit; Wooldridge 2010, ch. 19):
+/// y = x'b + c'd + theta lambda_c + e among participants' respondents, lambda_c the inverse
+/// Mills ratio of the country's probit index. The universe quantity is the prediction
+/// without the selection term averaged over every eligible country, a'beta with
+/// a = (1, 0, ..., mean_U(c), 0), and its standard error sqrt(a'Va) with V the
+/// Murphy-Topel covariance clustered by country (regression::heckman_two_step).
+fn mills_variant(
+    m: &MillsInput,
+    imp: &ImpactSettings,
+    notes: &mut Vec<String>,
+) -> Result<Variant, String> {
+    let design = m.design;
+    let n = design.n();
+    let k = m.x.ncols();
+    let extra: Vec<&String> = imp
+        .country_indicators
+        .iter()
+        .filter(|c| !imp.predictors.contains(c))
+        .collect();
+    let mut c_values: Vec<Vec<f64>> = Vec::new();
+    for col in &extra {
+        let ind = m
+            .view
+            .numeric
+            .iter()
+            .find(|n| &&n.column == col)
+            .ok_or_else(|| format!("'{col}' is not a numeric country indicator"))?;
+        let values: Option<Vec<f64>> = design.units.iter().map(|&u| ind.values[u]).collect();
+        c_values.push(values.ok_or_else(|| {
+            format!("'{col}' is missing for an eligible country, so its universe mean is unknown")
+        })?);
+    }
+    let participation_terms: Vec<&String> = design.terms.iter().skip(1).collect();
+    if !participation_terms.is_empty()
+        && participation_terms
+            .iter()
+            .all(|t| imp.country_indicators.contains(t) || imp.predictors.contains(t))
+    {
+        notes.push("Every participation indicator is also in the two-step's outcome equation: the correction is identified only by the probit's functional form, and its estimates can be fragile.".to_string());
+    }
+    let q_total: f64 = m.q.iter().sum();
+    let c_mean: Vec<f64> = c_values
+        .iter()
+        .map(|v| v.iter().zip(m.q).map(|(a, b)| a * b).sum::<f64>() / q_total)
+        .collect();
+    let z = design.standardised();
+    let clusters: Vec<usize> = (0..n).collect();
+    let with_indicators = |base: &Array2<f64>| -> Array2<f64> {
+        let kb = base.ncols();
+        let mut out = Array2::<f64>::zeros((base.nrows(), kb + c_values.len()));
+        out.slice_mut(ndarray::s![.., ..kb]).assign(base);
+        for (r, &u) in m.unit_of.iter().enumerate() {
+            for (j, v) in c_values.iter().enumerate() {
+                out[[r, kb + j]] = v[u];
+            }
+        }
+        out
+    };
+    let two_step = |xx: &Array2<f64>| {
+        regression::heckman_two_step(&TwoStepInput {
+            z: z.view(),
+            selected: &design.participated,
+            x: xx.view(),
+            y: m.y,
+            w: Some(m.w),
+            unit: m.unit_of,
+            cluster: Some(&clusters),
+        })
+        .map_err(|e| e.to_string())
+    };
+    // a'beta and sqrt(a'Va) for the universe-averaged intercept of a model whose first
+    // `kb` columns are the base design.
+    let universe = |fit: &regression::TwoStepFit, kb: usize| -> (f64, f64) {
+        let mut a = vec![0.0; fit.coef.len()];
+        a[0] = 1.0;
+        for (j, cm) in c_mean.iter().enumerate() {
+            a[kb + j] = *cm;
+        }
+        let a = ndarray::Array1::from(a);
+        let est = a.dot(&ndarray::Array1::from(fit.coef.clone()));
+        let var = a.dot(&fit.cov.dot(&a));
+        (est, var.max(0.0).sqrt())
+    };
+    let ones = Array2::<f64>::ones((m.y.len(), 1));
+    let pooled_fit = two_step(&with_indicators(&ones))?;
+    let (pm, pse) = universe(&pooled_fit, 1);
+    let q975 = regression::student::upper_quantile(0.975, m.df as f64);
+    let fit = two_step(&with_indicators(m.x))?;
+    let (b0, se0) = universe(&fit, k);
+    let last = fit.coef.len() - 1;
+    let mut coef = vec![b0];
+    let mut se = vec![se0];
+    coef.extend_from_slice(&fit.coef[1..k]);
+    se.extend_from_slice(&fit.se[1..k]);
+    coef.push(fit.coef[last]);
+    se.push(fit.se[last]);
+    let p_cluster = coef
+        .iter()
+        .zip(&se)
+        .map(|(c, s)| regression::student::two_sided_p(c / s, m.df as f64))
+        .collect();
+    Ok(Variant {
+        key: "mills-ratio".to_string(),
+        label: MILLS_LABEL.to_string(),
+        error: None,
+        pooled: Some(Pooled {
+            estimate: pm,
+            se: pse,
+            low: pm - q975 * pse,
+            high: pm + q975 * pse,
+        }),
+        sign_changed: vec![false; coef.len()],
+        verdict_changed: vec![false; coef.len()],
+        coef,
+        se,
+        p_cluster,
+        p_bootstrap: None,
+        smd: vec![None; design.balance.len()],
+        max_abs_smd: None,
+        se_kind: "Murphy-Topel, clustered by country: includes the estimated country probit"
+            .to_string(),
     })
 }
 
@@ -314,6 +621,9 @@ fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
         p_bootstrap: None,
         sign_changed: vec![false; k],
         verdict_changed: vec![false; k],
+        smd: Vec::new(),
+        max_abs_smd: None,
+        se_kind: String::new(),
     }
 }
 
@@ -327,7 +637,9 @@ fn estimate(
     cluster: &[usize],
     imp: &ImpactSettings,
     seed: u64,
+    df: usize,
 ) -> Variant {
+    let q975 = regression::student::upper_quantile(0.975, df as f64);
     // Drop respondents of countries without weight (never for participants, but trimming
     // to zero is possible in principle).
     let keep: Vec<usize> = (0..y.len()).filter(|&i| w[i] > 0.0).collect();
@@ -336,28 +648,28 @@ fn estimate(
     let ws: Vec<f64> = keep.iter().map(|&i| w[i]).collect();
     let cs: Vec<usize> = keep.iter().map(|&i| cluster[i]).collect();
     let ones = Array2::<f64>::ones((keep.len(), 1));
-    let pooled = regression::fit(ones.view(), &ys, Some(&ws), &cs, Family::Gaussian)
+    let pooled = regression::fit(ones.view(), &ys, Some(&ws), &cs, Kind::Linear)
         .ok()
         .map(|f| Pooled {
             estimate: f.coef[0],
             se: f.se[0],
-            low: f.coef[0] - 1.959_963_984_540_054 * f.se[0],
-            high: f.coef[0] + 1.959_963_984_540_054 * f.se[0],
+            low: f.coef[0] - q975 * f.se[0],
+            high: f.coef[0] + q975 * f.se[0],
         });
-    match regression::fit(xs.view(), &ys, Some(&ws), &cs, imp.family) {
+    match regression::fit(xs.view(), &ys, Some(&ws), &cs, imp.kind) {
         Err(e) => failed(key, label, e.to_string(), x.ncols()),
         Ok(f) => {
             let p_cluster: Vec<f64> = f
                 .coef
                 .iter()
                 .zip(&f.se)
-                .map(|(c, s)| 2.0 * normal::cdf(-(c / s).abs()))
+                .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
                 .collect();
             let p_bootstrap = (imp.replicates > 0).then(|| {
                 (0..x.ncols())
                     .map(|j| {
-                        let p = match imp.family {
-                            Family::Gaussian => regression::wild_cluster_bootstrap(
+                        let p = match imp.kind {
+                            Kind::Linear => regression::wild_cluster_bootstrap(
                                 xs.view(),
                                 &ys,
                                 Some(&ws),
@@ -366,7 +678,7 @@ fn estimate(
                                 imp.replicates,
                                 seed,
                             ),
-                            Family::Binomial => regression::score_cluster_bootstrap(
+                            Kind::Logistic => regression::score_cluster_bootstrap(
                                 xs.view(),
                                 &ys,
                                 Some(&ws),
@@ -391,6 +703,9 @@ fn estimate(
                 se: f.se,
                 p_cluster,
                 p_bootstrap,
+                smd: Vec::new(),
+                max_abs_smd: None,
+                se_kind: String::new(),
             }
         }
     }

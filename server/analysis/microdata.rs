@@ -9,17 +9,24 @@ use serde::Serialize;
 
 use crate::project::table::{load_table, ColumnKind, ColumnSpec};
 use crate::project::Problem;
-use crate::stats::regression::{self, Family};
+use crate::stats::regression::{self, Kind, TwoStepInput};
 
-/// The result of `gapwise regress`.
+/// The result of `gapwise pooled`.
 #[derive(Debug, Clone, Serialize)]
-pub struct RegressReport {
-    pub family: &'static str,
+pub struct PooledReport {
+    pub kind: &'static str,
     /// Intercept first.
     pub terms: Vec<String>,
     pub coef: Vec<f64>,
     /// CR1 cluster-robust standard errors.
     pub se: Vec<f64>,
+    /// Degrees of freedom of the t reference distribution: countries - 1 (Cameron & Miller
+    /// 2015, section VI.C).
+    pub df: usize,
+    /// Two-sided p-values from t(G - 1); null where not estimable.
+    pub p: Vec<Option<f64>>,
+    pub ci95_low: Vec<Option<f64>>,
+    pub ci95_high: Vec<Option<f64>>,
     pub n: usize,
     pub clusters: usize,
     /// Rows left out for a missing value in a used column.
@@ -62,7 +69,7 @@ pub fn read_regression_file(
     );
     let mut specs = vec![
         ColumnSpec::new(outcome, ColumnKind::Number, "--outcome"),
-        ColumnSpec::new(cluster, ColumnKind::Text, "--cluster"),
+        ColumnSpec::new(cluster, ColumnKind::Text, "--country"),
     ];
     specs.extend(
         predictors
@@ -70,7 +77,7 @@ pub fn read_regression_file(
             .map(|p| ColumnSpec::new(p, ColumnKind::Number, "--predictors")),
     );
     if let Some(w) = weight {
-        specs.push(ColumnSpec::new(w, ColumnKind::Number, "--weight"));
+        specs.push(ColumnSpec::new(w, ColumnKind::Number, "--design-weight"));
     }
     let table = load_table(path, &label, &specs).map_err(MicrodataError::Input)?;
     if let Some(data) = dense_regression_data(&table, outcome, predictors, cluster, weight) {
@@ -182,7 +189,6 @@ fn dense_regression_data(
     }))
 }
 
-/// `gapwise regress`: one pooled regression with CR1 standard errors.
 /// The first outcome that is neither 0 nor 1, with its file, row and column (read again:
 /// this runs only when the model refused the outcome).
 fn not_binary(path: &Path, outcome: &str) -> Option<MicrodataError> {
@@ -198,18 +204,19 @@ fn not_binary(path: &Path, outcome: &str) -> Option<MicrodataError> {
         &label,
         Some(table.row_number(i)),
         Some(outcome),
-        format!("the outcome is {v}; a binomial outcome must be 0 or 1: recode it, or use --family gaussian"),
+        format!("the outcome is {v}; a binomial outcome must be 0 or 1: recode it, or use --kind linear"),
     )]))
 }
 
-pub fn regress_file(
+/// `gapwise pooled`: one pooled regression with CR1 standard errors and t(G - 1) inference.
+pub fn pooled_file(
     path: &Path,
     outcome: &str,
     predictors: &[String],
     cluster: &str,
     weight: Option<&str>,
-    family: Family,
-) -> Result<RegressReport, MicrodataError> {
+    kind: Kind,
+) -> Result<PooledReport, MicrodataError> {
     if predictors.is_empty() {
         return Err(MicrodataError::Request(
             "name at least one predictor (--predictors a,b,c)".to_string(),
@@ -221,22 +228,224 @@ pub fn regress_file(
         &data.y,
         data.weight.as_deref(),
         &data.cluster,
-        family,
+        kind,
     )
     .map_err(|e| match e {
         regression::RegressionError::NotBinary(_) => not_binary(path, outcome).unwrap_or(e.into()),
         e => e.into(),
     })?;
+    let inference = regression::t_inference(&fit.coef, &fit.se, fit.clusters);
     let mut terms = vec!["intercept".to_string()];
     terms.extend(predictors.iter().cloned());
-    Ok(RegressReport {
-        family: family.as_str(),
+    Ok(PooledReport {
+        kind: kind.as_str(),
         terms,
         coef: fit.coef,
         se: fit.se,
+        df: inference.df,
+        p: inference.p,
+        ci95_low: inference.ci95_low,
+        ci95_high: inference.ci95_high,
         n: fit.n,
         clusters: fit.clusters,
         dropped: data.dropped,
         converged: fit.converged,
+    })
+}
+
+/// One equation of `gapwise two-step`'s result.
+#[derive(Debug, Clone, Serialize)]
+pub struct Equation {
+    pub terms: Vec<String>,
+    pub coef: Vec<f64>,
+    pub se: Vec<f64>,
+    /// Outcome equation only: least-squares standard errors that take the inverse Mills
+    /// ratio as known (clustered when --country is given).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub se_uncorrected: Option<Vec<f64>>,
+}
+
+/// The result of `gapwise two-step`.
+#[derive(Debug, Clone, Serialize)]
+pub struct TwoStepReport {
+    pub selection: Equation,
+    /// `lambda` (the inverse Mills ratio) is the last term.
+    pub outcome: Equation,
+    /// lambda's coefficient over sigma (not truncated to [-1, 1]).
+    pub rho: f64,
+    pub sigma: f64,
+    /// Rows in the selection equation, and of them selected with a complete outcome.
+    pub n: usize,
+    pub n_selected: usize,
+    /// Countries (clusters), when --country is given.
+    pub clusters: Option<usize>,
+    /// "heckman-1979" without clusters, "murphy-topel-cluster" with them.
+    pub standard_errors: &'static str,
+    /// Rows left out for a missing value in a used column.
+    pub dropped: usize,
+    pub notes: Vec<String>,
+}
+
+/// Column names of `gapwise two-step`.
+pub struct TwoStepColumns<'a> {
+    pub outcome: &'a str,
+    pub predictors: &'a [String],
+    pub selected: &'a str,
+    pub selection_predictors: &'a [String],
+    pub country: Option<&'a str>,
+}
+
+/// `gapwise two-step`: the Heckman (1979) two-step estimator on a file with one row per
+/// unit. Rows need the selection columns; selected rows also the outcome columns (a
+/// selected row without them is left out and counted).
+pub fn two_step_file(path: &Path, cols: &TwoStepColumns) -> Result<TwoStepReport, MicrodataError> {
+    if cols.predictors.is_empty() || cols.selection_predictors.is_empty() {
+        return Err(MicrodataError::Request(
+            "name the outcome's predictors (--predictors a,b) and the selection's (--selection-predictors c,d)".to_string(),
+        ));
+    }
+    let label = path.file_name().map_or_else(
+        || path.display().to_string(),
+        |n| n.to_string_lossy().to_string(),
+    );
+    let mut specs = vec![
+        ColumnSpec::new(cols.outcome, ColumnKind::Number, "--outcome"),
+        ColumnSpec::new(cols.selected, ColumnKind::Number, "--selected"),
+    ];
+    let mut seen: Vec<&str> = vec![cols.outcome, cols.selected];
+    for (p, role) in cols.predictors.iter().map(|p| (p, "--predictors")).chain(
+        cols.selection_predictors
+            .iter()
+            .map(|p| (p, "--selection-predictors")),
+    ) {
+        if !seen.contains(&p.as_str()) {
+            seen.push(p);
+            specs.push(ColumnSpec::new(p, ColumnKind::Number, role));
+        }
+    }
+    if let Some(c) = cols.country {
+        if seen.contains(&c) {
+            return Err(MicrodataError::Request(format!(
+                "'{c}' is the country column (--country) and also an outcome, flag or predictor; name a column that identifies countries"
+            )));
+        }
+        specs.push(ColumnSpec::new(c, ColumnKind::Text, "--country"));
+    }
+    let table = load_table(path, &label, &specs).map_err(MicrodataError::Input)?;
+    let y_all = table.numbers(cols.outcome);
+    let s_all = table.numbers(cols.selected);
+    let x_all: Vec<Vec<Option<f64>>> = cols.predictors.iter().map(|p| table.numbers(p)).collect();
+    let z_all: Vec<Vec<Option<f64>>> = cols
+        .selection_predictors
+        .iter()
+        .map(|p| table.numbers(p))
+        .collect();
+    let country = cols.country.map(|c| table.factorise(c));
+    let n_all = y_all.len();
+    let mut units = Vec::new();
+    let mut selected = Vec::new();
+    let mut outcome_rows = Vec::new();
+    for i in 0..n_all {
+        let Some(s) = s_all[i] else { continue };
+        if s != 0.0 && s != 1.0 {
+            return Err(MicrodataError::Input(vec![Problem::at(
+                &label,
+                Some(table.row_number(i)),
+                Some(cols.selected),
+                format!("the selection flag must be 0 or 1; found {s}"),
+            )]));
+        }
+        if z_all.iter().any(|c| c[i].is_none())
+            || country
+                .as_ref()
+                .is_some_and(|(codes, _)| codes[i].is_none())
+        {
+            continue;
+        }
+        let chosen = s == 1.0;
+        if chosen && (y_all[i].is_none() || x_all.iter().any(|c| c[i].is_none())) {
+            continue;
+        }
+        if chosen {
+            outcome_rows.push((i, units.len()));
+        }
+        units.push(i);
+        selected.push(chosen);
+    }
+    let n = units.len();
+    let mut z = Array2::<f64>::ones((n, cols.selection_predictors.len() + 1));
+    for (r, &i) in units.iter().enumerate() {
+        for (j, c) in z_all.iter().enumerate() {
+            z[[r, j + 1]] = c[i].unwrap_or(0.0);
+        }
+    }
+    let mut x = Array2::<f64>::ones((outcome_rows.len(), cols.predictors.len() + 1));
+    for (r, &(i, _)) in outcome_rows.iter().enumerate() {
+        for (j, c) in x_all.iter().enumerate() {
+            x[[r, j + 1]] = c[i].unwrap_or(0.0);
+        }
+    }
+    let y: Vec<f64> = outcome_rows
+        .iter()
+        .map(|&(i, _)| y_all[i].unwrap_or(0.0))
+        .collect();
+    let unit: Vec<usize> = outcome_rows.iter().map(|&(_, u)| u).collect();
+    let cluster: Option<Vec<usize>> = country.as_ref().map(|(codes, _)| {
+        let mut renumber: HashMap<usize, usize> = HashMap::new();
+        units
+            .iter()
+            .map(|&i| {
+                let next = renumber.len();
+                *renumber.entry(codes[i].unwrap_or(0)).or_insert(next)
+            })
+            .collect()
+    });
+    let fit = regression::heckman_two_step(&TwoStepInput {
+        z: z.view(),
+        selected: &selected,
+        x: x.view(),
+        y: &y,
+        w: None,
+        unit: &unit,
+        cluster: cluster.as_deref(),
+    })?;
+    let mut selection_terms = vec!["intercept".to_string()];
+    selection_terms.extend(cols.selection_predictors.iter().cloned());
+    let mut outcome_terms = vec!["intercept".to_string()];
+    outcome_terms.extend(cols.predictors.iter().cloned());
+    outcome_terms.push("lambda".to_string());
+    let mut notes = Vec::new();
+    if cols
+        .selection_predictors
+        .iter()
+        .all(|c| cols.predictors.contains(c))
+    {
+        notes.push("Every selection predictor is also in the outcome equation: the correction is identified only by the probit's functional form, and its estimates can be fragile.".to_string());
+    }
+    Ok(TwoStepReport {
+        selection: Equation {
+            terms: selection_terms,
+            coef: fit.selection_coef,
+            se: fit.selection_se,
+            se_uncorrected: None,
+        },
+        outcome: Equation {
+            terms: outcome_terms,
+            coef: fit.coef,
+            se: fit.se,
+            se_uncorrected: Some(fit.se_uncorrected),
+        },
+        rho: fit.rho,
+        sigma: fit.sigma,
+        n: fit.n,
+        n_selected: fit.n_selected,
+        clusters: fit.clusters,
+        standard_errors: if fit.clusters.is_some() {
+            "murphy-topel-cluster"
+        } else {
+            "heckman-1979"
+        },
+        dropped: n_all - n,
+        notes,
     })
 }

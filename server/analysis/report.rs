@@ -11,7 +11,7 @@ use super::participation::{fit, FitReport};
 use super::planner::{plan, Plan, PlanSettings};
 use super::settings::Settings;
 use crate::project::{LoadedFile, Project};
-use crate::stats::regression::Family;
+use crate::stats::regression::Kind;
 
 #[derive(Debug, Clone, Serialize)]
 pub struct Report {
@@ -61,7 +61,8 @@ pub fn report(project: &Project, settings: &Settings) -> Result<Report, String> 
             let imp = ImpactSettings {
                 outcome,
                 predictors,
-                family: Family::Gaussian,
+                kind: Kind::Linear,
+                country_indicators: Vec::new(),
                 shares: Shares::Equal,
                 replicates: 399,
             };

@@ -38,8 +38,10 @@ impl WeightingKind {
     pub fn label(self) -> &'static str {
         match self {
             WeightingKind::InverseProbability => "Inverse probability",
-            WeightingKind::CovariateBalancing => "Covariate-balancing propensity (exact)",
-            WeightingKind::CovariateBalancingGmm => "Covariate-balancing propensity (GMM)",
+            WeightingKind::CovariateBalancing => "Covariate-balancing propensity, just-identified",
+            WeightingKind::CovariateBalancingGmm => {
+                "Covariate-balancing propensity, over-identified (GMM)"
+            }
             WeightingKind::Entropy => "Entropy balancing",
             WeightingKind::Raking => "Raking to category shares",
         }

@@ -10,25 +10,25 @@ use super::normal;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "kebab-case")]
-pub enum Family {
+pub enum Kind {
     /// Linear model, least squares.
-    Gaussian,
+    Linear,
     /// Logistic model for a 0/1 outcome, maximum likelihood.
-    Binomial,
+    Logistic,
 }
 
-impl Family {
-    pub fn parse(s: &str) -> Option<Family> {
+impl Kind {
+    pub fn parse(s: &str) -> Option<Kind> {
         match s {
-            "gaussian" => Some(Family::Gaussian),
-            "binomial" => Some(Family::Binomial),
+            "linear" => Some(Kind::Linear),
+            "logistic" => Some(Kind::Logistic),
             _ => None,
         }
     }
     pub fn as_str(self) -> &'static str {
         match self {
-            Family::Gaussian => "gaussian",
-            Family::Binomial => "binomial",
+            Kind::Linear => "linear",
+            Kind::Logistic => "logistic",
         }
     }
 }
@@ -43,10 +43,14 @@ pub enum RegressionError {
     Singular,
     #[error("clustered standard errors need at least two clusters (countries); there is {0}")]
     OneCluster(usize),
-    #[error("a binomial outcome must be 0 or 1; found {0}")]
+    #[error("a logistic model's outcome must be 0 or 1; found {0}")]
     NotBinary(f64),
     #[error("weights must be positive and finite; found {0}")]
     BadWeight(f64),
+    #[error("the inputs do not line up (rows of the selection and outcome equations)")]
+    Shape,
+    #[error("the selection probit did not converge (separation or a near-singular design)")]
+    NotConverged,
 }
 
 /// A fitted regression with CR1 cluster-robust standard errors.
@@ -65,7 +69,7 @@ pub struct RegressionFit {
 }
 
 /// Sums, over rows i, w_i x_i x_i' (lower triangle), v_i x_i and a scalar s_i, split across
-/// the cores; `weights(i)` gives (w_i, v_i, s_i). Works on the contiguous rows of `x` directly, since this
+/// rayon's pool; `weights(i)` gives (w_i, v_i, s_i). Works on the contiguous rows of `x` directly, since this
 /// is the inner loop of every fit on millions of respondents.
 fn accumulate<F>(x: ArrayView2<f64>, weights: F) -> (Array2<f64>, Array1<f64>, f64)
 where
@@ -80,48 +84,40 @@ where
             owned.as_slice().unwrap_or(&[])
         }
     };
-    let threads = std::thread::available_parallelism()
-        .map_or(1, |t| t.get())
-        .clamp(1, 8);
-    let threads = if n < 20_000 { 1 } else { threads };
-    let chunk = n.div_ceil(threads).max(1);
-    let (m, v, s) = std::thread::scope(|scope| {
-        let handles: Vec<_> = (0..threads)
-            .map(|t| {
-                let weights = &weights;
-                scope.spawn(move || {
-                    let mut m = vec![0.0; k * k];
-                    let mut v = vec![0.0; k];
-                    let mut total = 0.0;
-                    for i in (t * chunk)..((t + 1) * chunk).min(n) {
-                        let row = &flat[i * k..(i + 1) * k];
-                        let (w, wy, extra) = weights(i);
-                        total += extra;
-                        for a in 0..k {
-                            let wa = w * row[a];
-                            v[a] += wy * row[a];
-                            let m_row = &mut m[a * k..a * k + a + 1];
-                            for (b, cell) in m_row.iter_mut().enumerate() {
-                                *cell += wa * row[b];
-                            }
-                        }
+    // Rows in blocks: each block sums into its own accumulators on rayon's pool, and the
+    // blocks are added up in a fixed order (the same result on every run).
+    use rayon::prelude::*;
+    let block = if n < 20_000 { n.max(1) } else { 8192 };
+    let parts: Vec<(Vec<f64>, Vec<f64>, f64)> = (0..n.div_ceil(block))
+        .into_par_iter()
+        .map(|b| {
+            let mut m = vec![0.0; k * k];
+            let mut v = vec![0.0; k];
+            let mut total = 0.0;
+            for i in (b * block)..((b + 1) * block).min(n) {
+                let row = &flat[i * k..(i + 1) * k];
+                let (w, wy, extra) = weights(i);
+                total += extra;
+                for a in 0..k {
+                    let wa = w * row[a];
+                    v[a] += wy * row[a];
+                    let m_row = &mut m[a * k..a * k + a + 1];
+                    for (b, cell) in m_row.iter_mut().enumerate() {
+                        *cell += wa * row[b];
                     }
-                    (m, v, total)
-                })
-            })
-            .collect();
-        let mut m = vec![0.0; k * k];
-        let mut v = vec![0.0; k];
-        let mut total = 0.0;
-        for h in handles {
-            if let Ok((hm, hv, ht)) = h.join() {
-                m.iter_mut().zip(hm).for_each(|(a, b)| *a += b);
-                v.iter_mut().zip(hv).for_each(|(a, b)| *a += b);
-                total += ht;
+                }
             }
-        }
-        (m, v, total)
-    });
+            (m, v, total)
+        })
+        .collect();
+    let mut m = vec![0.0; k * k];
+    let mut v = vec![0.0; k];
+    let mut s = 0.0;
+    for (hm, hv, ht) in parts {
+        m.iter_mut().zip(hm).for_each(|(a, b)| *a += b);
+        v.iter_mut().zip(hv).for_each(|(a, b)| *a += b);
+        s += ht;
+    }
     (
         Array2::from_shape_vec((k, k), m).unwrap_or_else(|_| Array2::zeros((k, k))),
         Array1::from(v),
@@ -256,7 +252,7 @@ pub fn fit(
     y: &[f64],
     w: Option<&[f64]>,
     cluster: &[usize],
-    family: Family,
+    kind: Kind,
 ) -> Result<RegressionFit, RegressionError> {
     let (n, k) = x.dim();
     if n <= k {
@@ -275,14 +271,14 @@ pub fn fit(
         return Err(RegressionError::OneCluster(distinct));
     }
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
-    let (beta, bread, scores, converged, iterations) = match family {
-        Family::Gaussian => {
+    let (beta, bread, scores, converged, iterations) = match kind {
+        Kind::Linear => {
             let (beta, bread) = weighted_least_squares(x, y, w)?;
             let fitted = x.dot(&beta);
             let s: Vec<f64> = (0..n).map(|i| weight(i) * (y[i] - fitted[i])).collect();
             (beta, bread, s, true, 1)
         }
-        Family::Binomial => {
+        Kind::Logistic => {
             if let Some(bad) = y.iter().find(|v| **v != 0.0 && **v != 1.0) {
                 return Err(RegressionError::NotBinary(*bad));
             }
@@ -410,7 +406,8 @@ fn cluster_multipliers(rng: &mut crate::stats::random::Rng, clusters: usize) -> 
 /// sum_i w_i (y_i - p~_i) x_i and information H = X' diag(w p~ (1-p~)) X give the statistic
 /// t = (H^-1 S)_j / sqrt((H^-1 V H^-1)_jj), V = c sum_g S_g S_g' (c the CR1 factor). Each
 /// replicate multiplies S_g by one draw v_g per cluster (Rademacher, or Webb's six points
-/// below 12 clusters); the p-value is the share of |t*| at least |t|. No refits are needed.
+/// below 12 clusters); the p-value is (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley
+/// 1997, eq. 4.11), never 0. No refits are needed.
 pub fn score_cluster_bootstrap(
     x: ArrayView2<f64>,
     y: &[f64],
@@ -465,15 +462,15 @@ pub fn score_cluster_bootstrap(
             exceed += 1;
         }
     }
-    Ok(exceed as f64 / replicates.max(1) as f64)
+    Ok(bootstrap_p(exceed, replicates))
 }
 
 /// Wild cluster bootstrap p-value for H0: beta_j = 0 in a linear model, with the null
 /// imposed (Cameron, Gelbach & Miller 2008, "WCR"): residuals u~ and fitted values y~ of
 /// the model without x_j; for each replicate, y* = y~ + v_g u~ with one draw v_g per
 /// cluster (Rademacher +-1, or Webb's six-point distribution with fewer than 12 clusters,
-/// Webb 2014), the full model is refitted and t* = b*_j / se*_j (CR1). The p-value is the
-/// share of |t*| at least |t|. Refits use per-cluster sums, so a replicate costs O(G k^2).
+/// Webb 2014), the full model is refitted and t* = b*_j / se*_j (CR1). The p-value is
+/// (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley 1997, eq. 4.11), never 0. Refits use per-cluster sums, so a replicate costs O(G k^2).
 pub fn wild_cluster_bootstrap(
     x: ArrayView2<f64>,
     y: &[f64],
@@ -484,7 +481,7 @@ pub fn wild_cluster_bootstrap(
     seed: u64,
 ) -> Result<f64, RegressionError> {
     let (n, k) = x.dim();
-    let full = fit(x, y, w, cluster, Family::Gaussian)?;
+    let full = fit(x, y, w, cluster, Kind::Linear)?;
     let t_observed = full.coef[j] / full.se[j];
     let keep: Vec<usize> = (0..k).filter(|&c| c != j).collect();
     let restricted_x = x.select(ndarray::Axis(1), &keep);
@@ -531,46 +528,376 @@ pub fn wild_cluster_bootstrap(
             exceed += 1;
         }
     }
-    Ok(exceed as f64 / replicates.max(1) as f64)
+    Ok(bootstrap_p(exceed, replicates))
 }
 
-/// The Heckman (1979) two-step estimator: a probit of selection on `z` (with intercept),
-/// the inverse Mills ratio lambda_i = phi(z_i'g) / Phi(z_i'g) for the selected units, and
-/// least squares of y on [x, lambda] among them (Wooldridge, Introductory Econometrics,
-/// section 17.5). Returns the probit coefficients, the outcome coefficients (lambda last),
-/// and each selected unit's lambda.
-pub fn heckman_two_step(
-    z: ArrayView2<f64>,
-    selected: &[bool],
-    x: ArrayView2<f64>,
-    y: &[f64],
-) -> Result<HeckmanFit, RegressionError> {
+/// Bootstrap p-value (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley 1997, eq. 4.11):
+/// the observed statistic counts as one of the B + 1 draws, so it is never 0.
+pub fn bootstrap_p(exceed: usize, replicates: usize) -> f64 {
+    (1.0 + exceed as f64) / (replicates as f64 + 1.0)
+}
+
+/// Student's t distribution with `df` degrees of freedom, for cluster-robust inference with
+/// few clusters (t with G - 1 degrees of freedom: Cameron & Miller 2015, section VI.C).
+pub mod student {
+    /// Regularised incomplete beta function I_x(a, b) by the continued fraction of
+    /// Numerical Recipes (Press et al. 2007, section 6.4; modified Lentz's method).
+    pub fn incomplete_beta(a: f64, b: f64, x: f64) -> f64 {
+        if x <= 0.0 {
+            return 0.0;
+        }
+        if x >= 1.0 {
+            return 1.0;
+        }
+        let ln_front = libm::lgamma(a + b) - libm::lgamma(a) - libm::lgamma(b)
+            + a * x.ln()
+            + b * (1.0 - x).ln();
+        if x < (a + 1.0) / (a + b + 2.0) {
+            ln_front.exp() * continued_fraction(a, b, x) / a
+        } else {
+            1.0 - ln_front.exp() * continued_fraction(b, a, 1.0 - x) / b
+        }
+    }
+
+    fn continued_fraction(a: f64, b: f64, x: f64) -> f64 {
+        const TINY: f64 = 1e-300;
+        let (qab, qap, qam) = (a + b, a + 1.0, a - 1.0);
+        let mut c = 1.0;
+        let mut d = 1.0 - qab * x / qap;
+        if d.abs() < TINY {
+            d = TINY;
+        }
+        d = 1.0 / d;
+        let mut h = d;
+        for m in 1..=10_000 {
+            let m = f64::from(m);
+            let m2 = 2.0 * m;
+            let aa = m * (b - m) * x / ((qam + m2) * (a + m2));
+            d = 1.0 + aa * d;
+            if d.abs() < TINY {
+                d = TINY;
+            }
+            c = 1.0 + aa / c;
+            if c.abs() < TINY {
+                c = TINY;
+            }
+            d = 1.0 / d;
+            h *= d * c;
+            let aa = -(a + m) * (qab + m) * x / ((a + m2) * (qap + m2));
+            d = 1.0 + aa * d;
+            if d.abs() < TINY {
+                d = TINY;
+            }
+            c = 1.0 + aa / c;
+            if c.abs() < TINY {
+                c = TINY;
+            }
+            d = 1.0 / d;
+            let delta = d * c;
+            h *= delta;
+            if (delta - 1.0).abs() < 1e-16 {
+                break;
+            }
+        }
+        h
+    }
+
+    /// Two-sided p-value P(|T| >= |t|) = I_{df/(df+t^2)}(df/2, 1/2).
+    pub fn two_sided_p(t: f64, df: f64) -> f64 {
+        if !t.is_finite() || df <= 0.0 {
+            return f64::NAN;
+        }
+        incomplete_beta(0.5 * df, 0.5, df / (df + t * t))
+    }
+
+    /// Quantile q with P(T <= q) = p, for p in (0.5, 1): bisection on the distribution
+    /// function to full double precision.
+    pub fn upper_quantile(p: f64, df: f64) -> f64 {
+        if !(0.5..1.0).contains(&p) || df <= 0.0 {
+            return f64::NAN;
+        }
+        let target = 2.0 * (1.0 - p);
+        let (mut lo, mut hi) = (0.0f64, 1.0f64);
+        while two_sided_p(hi, df) > target {
+            hi *= 2.0;
+            if hi > 1e300 {
+                return f64::INFINITY;
+            }
+        }
+        for _ in 0..200 {
+            let mid = 0.5 * (lo + hi);
+            if two_sided_p(mid, df) > target {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+            if hi - lo <= 1e-15 * hi {
+                break;
+            }
+        }
+        0.5 * (lo + hi)
+    }
+}
+
+/// Inference on each coefficient from cluster-robust standard errors with t(G - 1)
+/// (Cameron & Miller 2015, section VI.C; statsmodels' `use_t=True` with clusters).
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct TInference {
+    pub df: usize,
+    /// Two-sided p-values; `None` where the standard error is not estimable.
+    pub p: Vec<Option<f64>>,
+    pub ci95_low: Vec<Option<f64>>,
+    pub ci95_high: Vec<Option<f64>>,
+}
+
+/// t statistics b / se with G - 1 degrees of freedom, p-values and 95% intervals.
+pub fn t_inference(coef: &[f64], se: &[f64], clusters: usize) -> TInference {
+    let df = clusters.saturating_sub(1);
+    let q = student::upper_quantile(0.975, df as f64);
+    let ok = |s: f64| s.is_finite() && s > 0.0;
+    TInference {
+        df,
+        p: coef
+            .iter()
+            .zip(se)
+            .map(|(b, s)| ok(*s).then(|| student::two_sided_p(b / s, df as f64)))
+            .collect(),
+        ci95_low: coef
+            .iter()
+            .zip(se)
+            .map(|(b, s)| ok(*s).then(|| b - q * s))
+            .collect(),
+        ci95_high: coef
+            .iter()
+            .zip(se)
+            .map(|(b, s)| ok(*s).then(|| b + q * s))
+            .collect(),
+    }
+}
+
+/// What the two-step estimator needs. The selection equation has one row per selection
+/// unit (a respondent, or a country); the outcome equation has one row per observed
+/// outcome, each belonging to a selected unit.
+pub struct TwoStepInput<'a> {
+    /// Selection predictors with the intercept column, one row per unit.
+    pub z: ArrayView2<'a, f64>,
+    pub selected: &'a [bool],
+    /// Outcome predictors with the intercept column, one row per outcome row.
+    pub x: ArrayView2<'a, f64>,
+    pub y: &'a [f64],
+    /// Weights of the outcome rows (analytic weights; `None` for 1).
+    pub w: Option<&'a [f64]>,
+    /// The selection unit of each outcome row (must be a selected unit).
+    pub unit: &'a [usize],
+    /// The cluster of each selection unit, in 0..G; `None`: Heckman's (1979) formula,
+    /// which needs one unweighted outcome row per selected unit.
+    pub cluster: Option<&'a [usize]>,
+}
+
+/// A fitted two-step selection model.
+#[derive(Debug, Clone)]
+pub struct TwoStepFit {
+    pub selection_coef: Vec<f64>,
+    /// Probit standard errors (clustered when clusters are given).
+    pub selection_se: Vec<f64>,
+    /// Outcome coefficients, the inverse Mills ratio's last.
+    pub coef: Vec<f64>,
+    /// Standard errors that account for the estimated first step.
+    pub se: Vec<f64>,
+    /// Least-squares standard errors that take the Mills ratio as known (clustered when
+    /// clusters are given).
+    pub se_uncorrected: Vec<f64>,
+    /// The corrected covariance of `coef`.
+    pub cov: Array2<f64>,
+    pub rho: f64,
+    pub sigma: f64,
+    /// Selection units and selected units.
+    pub n: usize,
+    pub n_selected: usize,
+    /// Outcome rows.
+    pub n_outcome: usize,
+    pub clusters: Option<usize>,
+    /// Each selection unit's inverse Mills ratio phi(z'g) / Phi(z'g).
+    pub lambda: Vec<f64>,
+}
+
+/// The Heckman (1979) two-step estimator: a probit of selection on `z`, the inverse Mills
+/// ratio lambda_i = phi(z_i'g) / Phi(z_i'g), and (weighted) least squares of y on
+/// x* = [x, lambda] among the selected (Wooldridge 2010, section 19.6.1; Wooldridge,
+/// Introductory Econometrics, section 17.5).
+///
+/// With delta_i = lambda_i (lambda_i + z_i'g), b_l the ratio's coefficient and
+/// C = sum_i w_i x*_i b_l delta_i z_i' (the derivative of the outcome scores in g):
+/// sigma^2 = e'We / sum w + b_l^2 mean_w(delta), rho = b_l / sigma.
+///
+/// Without clusters, Heckman's (1979) covariance as Greene (Econometric Analysis, 7th ed.,
+/// eq. 19-25) writes it: V = (X*'X*)^-1 [sigma^2 X*'(I - rho^2 D)X* + C V_g C'] (X*'X*)^-1,
+/// D = diag(delta), V_g the probit's inverse information.
+///
+/// With clusters, the Murphy & Topel (1985) correction in its cluster-robust form (stacked
+/// estimating equations; Hardin 2002): u_g = sum_{i in g} w_i x*_i e_i + C V_g s_g, with
+/// s_g the cluster's summed probit scores; V = c A^-1 (sum_g u_g u_g') A^-1, A = X*'WX*,
+/// c = G/(G-1) (N-1)/(N-K) over the N outcome rows and K outcome terms (CR1). The probit's
+/// own standard errors are then CR1-clustered too: c1 V_g (sum_g s_g s_g') V_g with
+/// c1 = G/(G-1) (n-1)/(n-p).
+pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionError> {
+    let TwoStepInput {
+        z,
+        selected,
+        x,
+        y,
+        w,
+        unit,
+        cluster,
+    } = *input;
+    let (n, p) = z.dim();
+    let (rows, k) = x.dim();
+    if selected.len() != n || y.len() != rows || unit.len() != rows {
+        return Err(RegressionError::Shape);
+    }
+    if unit.iter().any(|&u| u >= n || !selected[u]) {
+        return Err(RegressionError::Shape);
+    }
+    if let Some(c) = cluster {
+        if c.len() != n {
+            return Err(RegressionError::Shape);
+        }
+    } else if w.is_some() || rows != selected.iter().filter(|s| **s).count() {
+        return Err(RegressionError::Shape);
+    }
+    if let Some(bad) = w.and_then(|w| w.iter().find(|v| !(v.is_finite() && **v > 0.0))) {
+        return Err(RegressionError::BadWeight(*bad));
+    }
+    if rows <= k + 1 {
+        return Err(RegressionError::TooFew { n: rows, k: k + 1 });
+    }
     let probit = super::binary::fit(super::binary::ModelKind::Probit, z, selected)
         .map_err(|_| RegressionError::Singular)?;
-    let index = z.dot(&probit.coef);
-    let rows: Vec<usize> = (0..selected.len()).filter(|&i| selected[i]).collect();
-    let lambda: Vec<f64> = rows
-        .iter()
-        .map(|&i| normal::inverse_mills(index[i]))
-        .collect();
-    let k = x.ncols();
-    let mut xl = Array2::<f64>::zeros((rows.len(), k + 1));
-    for (r, &i) in rows.iter().enumerate() {
-        xl.slice_mut(ndarray::s![r, ..k]).assign(&x.row(i));
-        xl[[r, k]] = lambda[r];
+    if !probit.converged {
+        return Err(RegressionError::NotConverged);
     }
-    let yy: Vec<f64> = rows.iter().map(|&i| y[i]).collect();
-    let (beta, _) = weighted_least_squares(xl.view(), &yy, None)?;
-    Ok(HeckmanFit {
-        selection: probit.coef.to_vec(),
-        outcome: beta.to_vec(),
+    let index = z.dot(&probit.coef);
+    let lambda: Vec<f64> = index.iter().map(|&c| normal::inverse_mills(c)).collect();
+    let delta: Vec<f64> = lambda
+        .iter()
+        .zip(index.iter())
+        .map(|(l, c)| l * (l + c))
+        .collect();
+    // Probit score of each unit: lambda(c) z for the selected, -lambda(-c) z for the others.
+    let score_unit: Vec<f64> = (0..n)
+        .map(|i| {
+            if selected[i] {
+                lambda[i]
+            } else {
+                -normal::inverse_mills(-index[i])
+            }
+        })
+        .collect();
+    let mut xs = Array2::<f64>::zeros((rows, k + 1));
+    for r in 0..rows {
+        xs.slice_mut(ndarray::s![r, ..k]).assign(&x.row(r));
+        xs[[r, k]] = lambda[unit[r]];
+    }
+    let (beta, bread) = weighted_least_squares(xs.view(), y, w)?;
+    let weight = |r: usize| w.map_or(1.0, |w| w[r]);
+    let fitted = xs.dot(&beta);
+    let e: Vec<f64> = (0..rows).map(|r| y[r] - fitted[r]).collect();
+    let b_l = beta[k];
+    let sum_w: f64 = (0..rows).map(weight).sum();
+    let sse: f64 = (0..rows).map(|r| weight(r) * e[r] * e[r]).sum();
+    let mean_delta: f64 = (0..rows).map(|r| weight(r) * delta[unit[r]]).sum::<f64>() / sum_w;
+    let sigma2 = sse / sum_w + b_l * b_l * mean_delta;
+    let sigma = sigma2.sqrt();
+    let rho = b_l / sigma;
+    // C = sum_r w_r x*_r b_l delta_r z_r'.
+    let mut c = Array2::<f64>::zeros((k + 1, p));
+    for r in 0..rows {
+        let f = weight(r) * b_l * delta[unit[r]];
+        let zr = z.row(unit[r]);
+        for a in 0..=k {
+            let xa = f * xs[[r, a]];
+            for b in 0..p {
+                c[[a, b]] += xa * zr[b];
+            }
+        }
+    }
+    let vg = &probit.cov;
+    let (cov, cov_uncorrected, selection_cov, clusters) = match cluster {
+        None => {
+            // Heckman (1979), Greene eq. 19-25.
+            let mut middle = Array2::<f64>::zeros((k + 1, k + 1));
+            for r in 0..rows {
+                let f = sigma2 - b_l * b_l * delta[unit[r]];
+                for a in 0..=k {
+                    for b in 0..=k {
+                        middle[[a, b]] += f * xs[[r, a]] * xs[[r, b]];
+                    }
+                }
+            }
+            middle = middle + c.dot(vg).dot(&c.t());
+            let cov = bread.dot(&middle).dot(&bread);
+            let s2 = sse / (rows as f64 - (k + 1) as f64);
+            (cov, &bread * s2, vg.clone(), None)
+        }
+        Some(cl) => {
+            let groups = cl.iter().max().map_or(0, |m| m + 1);
+            let distinct = {
+                let mut seen = vec![false; groups];
+                cl.iter().for_each(|&g| seen[g] = true);
+                seen.iter().filter(|&&s| s).count()
+            };
+            if distinct < 2 {
+                return Err(RegressionError::OneCluster(distinct));
+            }
+            let mut s1 = Array2::<f64>::zeros((groups, p));
+            for i in 0..n {
+                s1.row_mut(cl[i]).scaled_add(score_unit[i], &z.row(i));
+            }
+            let mut s2 = Array2::<f64>::zeros((groups, k + 1));
+            for r in 0..rows {
+                s2.row_mut(cl[unit[r]])
+                    .scaled_add(weight(r) * e[r], &xs.row(r));
+            }
+            let u = &s2 + &s1.dot(vg).dot(&c.t());
+            let cov = cluster_covariance(&bread, &u, rows);
+            let cov_uncorrected = cluster_covariance(&bread, &s2, rows);
+            let selection_cov = cluster_covariance(vg, &s1, n);
+            (cov, cov_uncorrected, selection_cov, Some(distinct))
+        }
+    };
+    let sqrt_diag =
+        |m: &Array2<f64>| -> Vec<f64> { m.diag().iter().map(|v| v.max(0.0).sqrt()).collect() };
+    Ok(TwoStepFit {
+        selection_coef: probit.coef.to_vec(),
+        selection_se: sqrt_diag(&selection_cov),
+        coef: beta.to_vec(),
+        se: sqrt_diag(&cov),
+        se_uncorrected: sqrt_diag(&cov_uncorrected),
+        cov,
+        rho,
+        sigma,
+        n,
+        n_selected: selected.iter().filter(|s| **s).count(),
+        n_outcome: rows,
+        clusters,
         lambda,
     })
 }
 
-#[derive(Debug, Clone)]
-pub struct HeckmanFit {
-    pub selection: Vec<f64>,
-    pub outcome: Vec<f64>,
-    pub lambda: Vec<f64>,
+#[cfg(test)]
+mod tests {
+    use super::student;
+
+    #[test]
+    fn t_quantiles_match_printed_tables() {
+        // Two-sided 5% critical values of t (any statistics textbook's t table, from
+        // memory): df 1: 12.706, 9: 2.262, 30: 2.042, 120: 1.980.
+        for (df, q) in [(1.0, 12.706), (9.0, 2.262), (30.0, 2.042), (120.0, 1.980)] {
+            let got = student::upper_quantile(0.975, df);
+            assert!((got - q).abs() < 5e-4, "df {df}: {got} vs {q}");
+            assert!((student::two_sided_p(got, df) - 0.05).abs() < 1e-12);
+        }
+        // df 1 is the Cauchy distribution: P(|T| >= 1) = 1/2 exactly.
+        assert!((student::two_sided_p(1.0, 1.0) - 0.5).abs() < 1e-14);
+    }
 }

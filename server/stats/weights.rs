@@ -490,7 +490,20 @@ pub fn entropy_dual(
             break;
         }
         let cov = linalg::weighted_cross_product(d, w.view()) - outer(&mean);
-        let Ok(step) = linalg::solve_spd(cov.view(), mean.view()) else {
+        // When the weights concentrate on few rows (for example under very unequal base
+        // weights) the Hessian can be numerically singular; a small ridge, grown until
+        // the Cholesky factorisation succeeds, keeps Newton's direction a descent one
+        // (Levenberg 1944) without changing the solution.
+        let scale = cov.diag().iter().fold(0.0f64, |m, v| m.max(*v)).max(1e-300);
+        let mut step = linalg::solve_spd(cov.view(), mean.view()).ok();
+        let mut ridge = 1e-12 * scale;
+        while step.is_none() && ridge <= 1e-2 * scale {
+            let mut damped = cov.clone();
+            damped.diag_mut().mapv_inplace(|v| v + ridge);
+            step = linalg::solve_spd(damped.view(), mean.view()).ok();
+            ridge *= 100.0;
+        }
+        let Some(step) = step else {
             break;
         };
         let mut s = 1.0;

@@ -25,13 +25,14 @@ pub const PLAN_KEYS: [&str; 6] = [
 ];
 
 /// Query keys that belong to the impact view.
-pub const IMPACT_KEYS: [&str; 6] = [
+pub const IMPACT_KEYS: [&str; 7] = [
     "outcome",
     "predictor",
     "family",
     "shares",
     "population",
     "bootstrap",
+    "country_indicator",
 ];
 
 /// Folds the form's repeated `covariate` / `factor` checkboxes into the settings' lists.

@@ -18,7 +18,7 @@ use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 use crate::project::Project;
-use crate::stats::regression::Family;
+use crate::stats::regression::Kind;
 
 #[derive(Template)]
 #[template(path = "impact.html")]
@@ -31,6 +31,8 @@ struct ImpactPage<'a> {
     outcomes: Vec<Choice>,
     predictors: Vec<Choice>,
     families: Vec<Choice>,
+    /// Country indicators offered for the two-step outcome equation.
+    country_choices: Vec<Choice>,
     /// Country shares: equal, or proportional to a population column.
     shares: Vec<Choice>,
     impact_query: String,
@@ -129,10 +131,10 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     } else {
         ticked
     };
-    let family = match get("family").as_deref() {
-        None => Family::Gaussian,
-        Some(f) => Family::parse(f).ok_or_else(|| {
-            AppError::BadRequest(format!("family must be gaussian or binomial, not '{f}'"))
+    let kind = match get("family").as_deref() {
+        None => Kind::Linear,
+        Some(f) => Kind::parse(f).ok_or_else(|| {
+            AppError::BadRequest(format!("the model must be linear or logistic, not '{f}'"))
         })?,
     };
     let shares = match (get("shares").as_deref(), get("population")) {
@@ -164,10 +166,17 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
                 ))
             })?,
     };
+    let country_indicators = query
+        .iter()
+        .filter(|(k, _)| k == "country_indicator")
+        .map(|(_, v)| v.trim().to_string())
+        .filter(|v| !v.is_empty())
+        .collect();
     Ok(ImpactSettings {
         outcome,
         predictors,
-        family,
+        kind,
+        country_indicators,
         shares,
         replicates,
     })
@@ -182,16 +191,24 @@ fn compute(state: &AppState, query: &PageQuery) -> AppResult<(SettingsForm, Impa
     Ok((form, r))
 }
 
-fn impact_query(imp: &ImpactSettings) -> String {
-    let mut parts = vec![
-        format!("outcome={}", imp.outcome),
-        format!("family={}", imp.family.as_str()),
-    ];
-    parts.extend(imp.predictors.iter().map(|p| format!("predictor={p}")));
-    if let Shares::Population(c) = &imp.shares {
-        parts.push(format!("shares=population&population={c}"));
+/// The impact keys of a query that reproduces `imp` (percent-encoded, so that names with
+/// `&`, `=`, `+` or spaces survive the round trip).
+pub fn impact_query(imp: &ImpactSettings) -> String {
+    let mut q = form_urlencoded::Serializer::new(String::new());
+    q.append_pair("outcome", &imp.outcome);
+    q.append_pair("family", imp.kind.as_str());
+    for p in &imp.predictors {
+        q.append_pair("predictor", p);
     }
-    parts.join("&")
+    for c in &imp.country_indicators {
+        q.append_pair("country_indicator", c);
+    }
+    if let Shares::Population(c) = &imp.shares {
+        q.append_pair("shares", "population");
+        q.append_pair("population", c);
+    }
+    q.append_pair("bootstrap", &imp.replicates.to_string());
+    q.finish()
 }
 
 pub async fn page(
@@ -231,6 +248,14 @@ pub async fn page(
                 selected: r.impact.predictors.contains(c),
             }))
             .collect(),
+        country_choices: indicators
+            .iter()
+            .map(|c| Choice {
+                value: c.clone(),
+                label: project.manifest.label(c).to_string(),
+                selected: r.impact.country_indicators.contains(c),
+            })
+            .collect(),
         shares: std::iter::once(Choice {
             value: "equal".into(),
             label: "each country by its weight".into(),
@@ -256,14 +281,14 @@ pub async fn page(
         )
         .collect(),
         families: [
-            (Family::Gaussian, "Linear (least squares)"),
-            (Family::Binomial, "Logistic (0/1 outcome)"),
+            (Kind::Linear, "Linear (least squares)"),
+            (Kind::Logistic, "Logistic (0/1 outcome)"),
         ]
         .into_iter()
         .map(|(k, l)| Choice {
             value: k.as_str().into(),
             label: l.into(),
-            selected: r.impact.family == k,
+            selected: r.impact.kind == k,
         })
         .collect(),
         impact_query: impact_query(&r.impact),
@@ -349,5 +374,30 @@ pub async fn artifact(
         _ => Err(AppError::NotFound(format!(
             "no {item} here; try pooled.svg, coefficients.svg or table.csv"
         ))),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn impact_settings_survive_the_query_round_trip() {
+        // Common practice: the settings written into page links read back unchanged, also
+        // for names that need percent-encoding.
+        let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+        let project = Project::load(&dir).expect("demo project");
+        let imp = ImpactSettings {
+            outcome: "trust_parliament".to_string(),
+            predictors: vec!["age".to_string(), "a&b=c d+e".to_string()],
+            kind: Kind::Logistic,
+            country_indicators: vec!["log_gdp_pc".to_string()],
+            shares: Shares::Population("log_population".to_string()),
+            replicates: 99,
+        };
+        let query: PageQuery = form_urlencoded::parse(impact_query(&imp).as_bytes())
+            .map(|(k, v)| (k.into_owned(), v.into_owned()))
+            .collect();
+        assert_eq!(impact_settings(&project, &query).expect("settings"), imp);
     }
 }
