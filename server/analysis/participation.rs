@@ -681,7 +681,7 @@ fn compute_weights(
                 fell_back_to = Some("inverse-probability");
                 warnings.push(format!(
                     "fell back to plain inverse-probability weights: the over-identified (GMM) fit could not move from its starting logit{}, so these are the logit's inverse-probability weights and balance nothing beyond them",
-                    if unreachable.is_empty() { String::new() } else { format!(" because no participant has a different value of {} than the others (a level without participants cannot be balanced)", name_list(&unreachable)) }
+                    if unreachable.is_empty() { String::new() } else { format!(" because every participant has the same value of {} (a level without participants), whose universe share no weighting of participants can reach", name_list(&unreachable)) }
                 ));
             } else if gmm && !unreachable.is_empty() {
                 warnings.push(format!(
