@@ -307,8 +307,15 @@ pub fn fit_text(r: &FitReport) -> String {
         "term", "coefficient", "std. error"
     );
     for c in &m.coefficients {
-        let number = |x: Option<f64>| x.map_or_else(|| "not estimable".to_string(), |v| format!("{v:.5}"));
-        let _ = writeln!(out, "  {:<34} {:>12} {:>12}", c.term, number(c.coef), number(c.se));
+        let number =
+            |x: Option<f64>| x.map_or_else(|| "not estimable".to_string(), |v| format!("{v:.5}"));
+        let _ = writeln!(
+            out,
+            "  {:<34} {:>12} {:>12}",
+            c.term,
+            number(c.coef),
+            number(c.se)
+        );
     }
     for w in &m.warnings {
         let _ = writeln!(out, "  warning: {w}");

@@ -567,7 +567,11 @@ fn model_report(
         warnings.push(format!(
             "not estimable: {} (standard errors, z values and intervals are not shown for {})",
             name_list(&not_estimable),
-            if not_estimable.len() == 1 { "it" } else { "them" }
+            if not_estimable.len() == 1 {
+                "it"
+            } else {
+                "them"
+            }
         ));
     }
     let (auc_loo, auc_loo_units, loo_failed) = if leave_one_out {

@@ -466,7 +466,11 @@ fn newton(
             }
             t *= 0.5;
         }
-        last_step = if accepted { max_abs(step.view()) * t } else { 0.0 };
+        last_step = if accepted {
+            max_abs(step.view()) * t
+        } else {
+            0.0
+        };
         criterion_met = met(max_abs(current.score.view()), last_step);
         if !accepted || last_step < 1e-15 {
             break;
@@ -755,4 +759,134 @@ fn prediction_estimable(f: &BinaryFit, xs: ArrayView2<f64>, row: ArrayView1<f64>
     f.weak_directions
         .iter()
         .all(|d| row.dot(d).abs() <= 1e-6 * size)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::random::Rng;
+
+    /// n rows: intercept, two standard normal columns; y from a logit in the first.
+    fn frame(n: usize, seed: u64) -> (Array2<f64>, Vec<bool>) {
+        let mut rng = Rng::new(seed);
+        let x = Array2::from_shape_fn((n, 3), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
+        let y = (0..n)
+            .map(|i| rng.bernoulli(logistic(0.2 + 0.9 * x[[i, 1]] - 0.5 * x[[i, 2]])))
+            .collect();
+        (x, y)
+    }
+
+    fn with_column(x: &Array2<f64>, column: impl Fn(usize) -> f64) -> Array2<f64> {
+        let extra = Array2::from_shape_fn((x.nrows(), 1), |(i, _)| column(i));
+        ndarray::concatenate(Axis(1), &[x.view(), extra.view()]).unwrap()
+    }
+
+    #[test]
+    fn an_exactly_collinear_column_is_aliased_and_the_rest_is_the_reduced_fit() {
+        // Common practice (aliased terms in a rank-deficient fit): the model without the
+        // aliased column gives the same coefficients and standard errors for the others.
+        let (x, y) = frame(80, 1);
+        let xc = with_column(&x, |i| 2.0 * x[[i, 1]] - 3.0 * x[[i, 2]] + 1.0);
+        for kind in [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit] {
+            let full = fit(kind, xc.view(), &y).unwrap();
+            let reduced = fit(kind, x.view(), &y).unwrap();
+            assert_eq!(
+                full.aliased,
+                vec![Alias {
+                    term: 3,
+                    combination_of: vec![0, 1, 2]
+                }]
+            );
+            assert!(
+                full.converged && full.weak_directions.is_empty(),
+                "{kind:?}"
+            );
+            assert_eq!(full.coef[3], 0.0);
+            assert!(full.se()[3].is_nan());
+            for j in 0..3 {
+                assert!(
+                    (full.coef[j] - reduced.coef[j]).abs() < 1e-8,
+                    "{kind:?} {j}"
+                );
+                assert!(
+                    (full.se()[j] - reduced.se()[j]).abs() < 1e-8,
+                    "{kind:?} {j}"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn probit_under_complete_separation_does_not_claim_convergence() {
+        // Albert & Anderson (1984): under complete separation no finite estimate exists.
+        let (x, _) = frame(40, 2);
+        let y: Vec<bool> = (0..40).map(|i| x[[i, 1]] > 0.1).collect();
+        for kind in [ModelKind::Logit, ModelKind::Probit] {
+            let f = fit(kind, x.view(), &y).unwrap();
+            assert!(!f.converged, "{kind:?} claims convergence");
+            assert!(!f.weak_directions.is_empty(), "{kind:?}");
+            assert!(f.extreme_units > 0);
+        }
+        let firth = fit(ModelKind::Firth, x.view(), &y).unwrap();
+        assert!(firth.converged && firth.weak_directions.is_empty());
+        assert!(firth.se().iter().all(|s| s.is_finite() && *s > 0.0));
+    }
+
+    #[test]
+    fn a_dummy_only_one_participant_has_is_a_weak_direction_and_the_rest_settles() {
+        // Quasi-complete separation by one unit: its dummy runs off to infinity; the
+        // other coefficients converge to the fit without that unit (common practice).
+        let (x, mut y) = frame(120, 3);
+        let lone = (0..120).find(|&i| y[i]).unwrap();
+        y[lone] = true;
+        let xd = with_column(&x, |i| f64::from(u8::from(i == lone)));
+        let f = fit(ModelKind::Logit, xd.view(), &y).unwrap();
+        assert!(!f.converged && f.criterion_met);
+        assert_eq!(f.weak_directions.len(), 1);
+        let d = &f.weak_directions[0];
+        assert!(d[3].abs() > 0.99, "{d:?}");
+        let keep: Vec<usize> = (0..120).filter(|&i| i != lone).collect();
+        let xs = x.select(Axis(0), &keep);
+        let ys: Vec<bool> = keep.iter().map(|&i| y[i]).collect();
+        let without = fit(ModelKind::Logit, xs.view(), &ys).unwrap();
+        for j in 0..3 {
+            assert!((f.coef[j] - without.coef[j]).abs() < 1e-6, "{j}");
+            assert!((f.se()[j] - without.se()[j]).abs() < 1e-6, "{j}");
+        }
+        // Leaving out the lone unit, its prediction rests on the dummy the others
+        // cannot estimate: no prediction, not the full fit's.
+        let loo = leave_one_out(ModelKind::Logit, xd.view(), &y, &f);
+        assert_eq!(loo.len(), 120);
+        assert!(loo[lone].is_none());
+        assert!(loo.iter().filter(|p| p.is_some()).count() >= 118);
+    }
+
+    #[test]
+    fn leave_one_out_predictions_equal_explicit_refits() {
+        // Hand computation: refit without unit i from scratch and predict it.
+        let (x, y) = frame(30, 4);
+        let full = fit(ModelKind::Logit, x.view(), &y).unwrap();
+        let loo = leave_one_out(ModelKind::Logit, x.view(), &y, &full);
+        for i in [0, 7, 29] {
+            let keep: Vec<usize> = (0..30).filter(|&j| j != i).collect();
+            let xs = x.select(Axis(0), &keep);
+            let ys: Vec<bool> = keep.iter().map(|&j| y[j]).collect();
+            let f = fit(ModelKind::Logit, xs.view(), &ys).unwrap();
+            let p = logistic(x.row(i).dot(&f.coef));
+            assert!((loo[i].unwrap() - p).abs() < 1e-6, "{i}");
+        }
+    }
+
+    #[test]
+    fn auc_of_a_small_example_by_hand() {
+        // Hand count: pairs (participant, non-participant) with the participant higher,
+        // ties one half: scores 0.9, 0.4 (1) vs 0.4, 0.2, 0.1 (0): (3 + 2.5) / 6.
+        let auc = auc(
+            &[0.9, 0.4, 0.4, 0.2, 0.1],
+            &[true, true, false, false, false],
+        )
+        .unwrap();
+        assert!((auc - 5.5 / 6.0).abs() < 1e-15);
+        assert_eq!(super::auc(&[0.1, 0.2], &[true, true]), None);
+    }
 }

@@ -103,7 +103,10 @@ pub fn unreachable_columns(x: ArrayView2<f64>, t: &[bool]) -> Vec<usize> {
             let Some(first) = participants.next() else {
                 return false;
             };
-            let size = column.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-300);
+            let size = column
+                .iter()
+                .fold(0.0f64, |m, v| m.max(v.abs()))
+                .max(1e-300);
             let constant = participants.all(|v| (v - first).abs() <= 1e-12 * size);
             let mean = column.sum() / n;
             constant && (mean - first).abs() > 1e-9 * size
