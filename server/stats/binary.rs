@@ -878,6 +878,28 @@ mod tests {
     }
 
     #[test]
+    fn firth_on_a_large_separated_frame_meets_its_criterion() {
+        // 5,000 units separated at x1 = 0.3: Fisher scoring alone stopped after 200
+        // iterations with a penalised score of 1.9e-6 and reported no convergence; the
+        // exact penalised Hessian (Heinze & Schemper 2002's criterion on score and step)
+        // settles it. The penalised score itself is checked here.
+        let mut rng = Rng::new(9);
+        let n = 5000;
+        let x = Array2::from_shape_fn((n, 3), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
+        let y: Vec<bool> = (0..n).map(|i| x[[i, 1]] > 0.3).collect();
+        let f = fit(ModelKind::Firth, x.view(), &y).unwrap();
+        assert!(
+            f.converged,
+            "iterations {} score {:e}",
+            f.iterations, f.max_score
+        );
+        assert!(f.iterations < MAX_ITERATIONS);
+        let e = evaluate(ModelKind::Firth, x.view(), &y, &f.coef, true).unwrap();
+        assert!(max_abs(e.score.view()) < FIRTH_LOOSE_SCORE);
+        assert!(f.se().iter().all(|s| s.is_finite() && *s > 0.0));
+    }
+
+    #[test]
     fn auc_of_a_small_example_by_hand() {
         // Hand count: pairs (participant, non-participant) with the participant higher,
         // ties one half: scores 0.9, 0.4 (1) vs 0.4, 0.2, 0.1 (0): (3 + 2.5) / 6.
