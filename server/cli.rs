@@ -275,6 +275,12 @@ pub fn fit_text(r: &FitReport) -> String {
         "{wave}{} eligible, {} took part; {}",
         r.n_eligible, r.n_participants, r.missing_note
     );
+    if let Some(inc) = &r.incomplete {
+        let _ = writeln!(out, "warning: {}", inc.warning);
+    }
+    if let Some(caveat) = &r.missing_caveat {
+        let _ = writeln!(out, "note: {caveat}");
+    }
     let m = &r.model;
     let _ = writeln!(
         out,
@@ -290,8 +296,16 @@ pub fn fit_text(r: &FitReport) -> String {
         "  {:<34} {:>12} {:>12}",
         "term", "coefficient", "std. error"
     );
-    for ((t, c), s) in m.terms.iter().zip(&m.coef).zip(&m.se) {
-        let _ = writeln!(out, "  {t:<34} {c:>12.5} {s:>12.5}");
+    for c in &m.coefficients {
+        let number =
+            |x: Option<f64>| x.map_or_else(|| "not estimable".to_string(), |v| format!("{v:.5}"));
+        let _ = writeln!(
+            out,
+            "  {:<34} {:>12} {:>12}",
+            c.term,
+            number(c.coef),
+            number(c.se)
+        );
     }
     for w in &m.warnings {
         let _ = writeln!(out, "  warning: {w}");

@@ -235,7 +235,7 @@ struct AnalysisArgs {
     /// Cap weights at this quantile of participants' weights (e.g. 0.95).
     #[arg(long)]
     trim: Option<String>,
-    /// complete-cases or median-fill.
+    /// complete-cases, median-fill, or fill-and-balance (median fill, and the weights also balance the missingness indicators).
     #[arg(long, default_value = "complete-cases")]
     missing: String,
     /// Entropy balancing also matches the universe's variances.

@@ -591,3 +591,500 @@ fn entropy_balancing_can_also_match_variances() {
         assert!(gap.abs() < 1e-8 * b["universe_mean"].as_f64().unwrap().abs().max(1.0));
     }
 }
+
+fn model_checks() -> Value {
+    serde_json::from_str(&std::fs::read_to_string(fixtures().join("model_checks.json")).unwrap())
+        .unwrap()
+}
+
+/// The acceptance line of the not-estimable rule, on one fit's JSON: no standard error of
+/// 0, no zero-width interval, no infinite z (serde writes non-finite numbers as null, so
+/// a null must come with a reason), and every coefficient either complete or marked.
+fn assert_honest_coefficients(r: &Value, what: &str) {
+    let coefficients = r["model"]["coefficients"].as_array().unwrap();
+    assert_eq!(
+        coefficients.len(),
+        r["model"]["terms"].as_array().unwrap().len(),
+        "{what}: lengths"
+    );
+    for c in coefficients {
+        let field = |k: &str| c[k].as_f64();
+        match (
+            field("coef"),
+            field("se"),
+            field("z"),
+            field("ci95_low"),
+            field("ci95_high"),
+        ) {
+            (Some(b), Some(se), Some(z), Some(lo), Some(hi)) => {
+                assert!(c["not_estimable"].is_null(), "{what}: {c}");
+                assert!(se > 0.0 && se.is_finite() && se < 1e6, "{what}: se {c}");
+                assert!(hi > lo, "{what}: zero-width interval {c}");
+                assert!(z.is_finite() && (z - b / se).abs() < 1e-9 * z.abs().max(1.0));
+                // 1.959963984540054 is the 0.975 normal quantile (any table, e.g.
+                // Abramowitz & Stegun 26.2).
+                assert!((hi - b - 1.959_963_984_540_054 * se).abs() < 1e-9 * (1.0 + hi.abs()));
+            }
+            (None, None, None, None, None) => {
+                let why = c["not_estimable"].as_str().unwrap_or("");
+                assert!(why.len() > 20, "{what}: no reason for {c}");
+            }
+            _ => panic!("{what}: partly estimable coefficient {c}"),
+        }
+    }
+}
+
+fn frame_fit(dir: &TempDir, name: &str, csv: &str, covariates: &str, extra: &[&str]) -> Value {
+    dir.write(name, csv);
+    let path = dir.path().join(name);
+    let mut args = vec![
+        path.to_str().unwrap().to_string(),
+        "--id".into(),
+        "id".into(),
+        "--flag".into(),
+        "t".into(),
+        "--covariates".into(),
+        covariates.into(),
+    ];
+    args.extend(extra.iter().map(|s| s.to_string()));
+    fit_json(&args.iter().map(String::as_str).collect::<Vec<_>>())
+}
+
+/// 60 units with a participation flag from a logit in `a` (seeded, hand-rolled).
+fn base_rows() -> Vec<(bool, i64, i64)> {
+    let mut rng = gapwise::stats::random::Rng::new(11);
+    (0..60)
+        .map(|_| {
+            let a = (rng.normal() * 1000.0).round() as i64;
+            let b = (rng.normal() * 1000.0).round() as i64;
+            let p = 1.0 / (1.0 + (-(0.2 + 0.8 * a as f64 / 1000.0)).exp());
+            (rng.bernoulli(p), a, b)
+        })
+        .collect()
+}
+
+/// An integer number of thousandths written exactly as a decimal.
+fn thousandths(v: i64) -> String {
+    let sign = if v < 0 { "-" } else { "" };
+    format!("{sign}{}.{:03}", v.abs() / 1000, v.abs() % 1000)
+}
+
+#[test]
+fn exactly_collinear_indicators_are_not_estimable_not_zero() {
+    // c = 2a - b + 1, written exactly in decimals (thousandths as integers).
+    let dir = TempDir::new("collinear");
+    let mut csv = String::from("id,t,a,b,c\n");
+    for (i, (t, a, b)) in base_rows().into_iter().enumerate() {
+        let c = 2 * a - b + 1000;
+        csv.push_str(&format!(
+            "U{i:02},{},{},{},{}\n",
+            u8::from(t),
+            thousandths(a),
+            thousandths(b),
+            thousandths(c)
+        ));
+    }
+    for model in ["logit", "firth", "probit"] {
+        let r = frame_fit(
+            &dir,
+            "collinear.csv",
+            &csv,
+            "a,b,c",
+            &["--model", model, "--weighting", "inverse-probability"],
+        );
+        assert_honest_coefficients(&r, model);
+        let m = &r["model"];
+        // Every term of the relation c = 2a - b + 1 is not estimable; the fit and the
+        // weights still exist (predictions do not depend on the split).
+        for j in 0..4 {
+            assert!(m["se"][j].is_null(), "{model}: se[{j}] {}", m["se"]);
+            assert!(m["coefficients"][j]["not_estimable"]
+                .as_str()
+                .unwrap()
+                .contains("exact linear combination"));
+        }
+        assert!(
+            m["warnings"]
+                .to_string()
+                .contains("c is an exact linear combination of a and b"),
+            "{}",
+            m["warnings"]
+        );
+        assert_eq!(m["converged"], true, "{model}");
+        assert!(r["units"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .all(|u| u["weight"].as_f64().unwrap().is_finite()));
+    }
+}
+
+#[test]
+fn separated_and_quasi_separated_fits_say_so_and_never_claim_convergence() {
+    let dir = TempDir::new("separated");
+    let rows = base_rows();
+    // Complete: took part exactly when a > 0.1. Quasi: also a at the boundary for both.
+    let mut complete = String::from("id,t,a,b\n");
+    let mut quasi = String::from("id,t,a,b\n");
+    for (i, (_, a, b)) in rows.iter().enumerate() {
+        complete.push_str(&format!(
+            "U{i:02},{},{},{}\n",
+            u8::from(*a > 100),
+            *a as f64 / 1000.0,
+            *b as f64 / 1000.0
+        ));
+        let (t, a) = match i {
+            0 => (true, 0),
+            1 => (false, 0),
+            _ => (*a > 0, *a),
+        };
+        quasi.push_str(&format!(
+            "U{i:02},{},{},{}\n",
+            u8::from(t),
+            a as f64 / 1000.0,
+            *b as f64 / 1000.0
+        ));
+    }
+    for (name, csv, word) in [
+        ("complete", &complete, "complete separation"),
+        ("quasi", &quasi, "quasi-complete separation"),
+    ] {
+        for model in ["logit", "probit"] {
+            let r = frame_fit(
+                &dir,
+                "sep.csv",
+                csv,
+                "a,b",
+                &["--model", model, "--weighting", "inverse-probability"],
+            );
+            assert_honest_coefficients(&r, name);
+            let m = &r["model"];
+            assert_eq!(m["converged"], false, "{name} {model}: {m}");
+            assert_eq!(m["separation"], true);
+            assert!(
+                m["warnings"].to_string().contains(word),
+                "{}",
+                m["warnings"]
+            );
+            // The separating indicator's coefficient is not estimable.
+            assert!(
+                m["se"][1].is_null() && m["coef"][1].is_null(),
+                "{name} {model}: {}",
+                m["se"]
+            );
+        }
+        let firth = frame_fit(
+            &dir,
+            "sep.csv",
+            csv,
+            "a,b",
+            &["--model", "firth", "--weighting", "inverse-probability"],
+        );
+        assert_honest_coefficients(&firth, name);
+        assert_eq!(firth["model"]["converged"], true);
+        assert!(firth["model"]["se"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .all(|s| s.as_f64().is_some()));
+    }
+}
+
+#[test]
+fn a_dummy_only_one_participant_has_is_not_estimable_and_its_refit_is_counted() {
+    // The demo's wave 4 with median fill: internet_use is missing for one country only,
+    // which took part, so its missingness dummy separates (quasi-completely).
+    let demo = demo_dir();
+    let r = fit_json(&[
+        demo.to_str().unwrap(),
+        "--wave",
+        "4",
+        "--missing",
+        "median-fill",
+    ]);
+    assert_honest_coefficients(&r, "median fill");
+    let m = &r["model"];
+    let terms: Vec<&str> = m["terms"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t.as_str().unwrap())
+        .collect();
+    let j = terms
+        .iter()
+        .position(|t| *t == "internet_use missing")
+        .unwrap();
+    assert!(m["se"][j].is_null());
+    assert!(m["coefficients"][j]["not_estimable"]
+        .as_str()
+        .unwrap()
+        .contains("separation"));
+    // The other standard errors are positive numbers (they were all 0.000 before).
+    assert!(m["se"][1].as_f64().unwrap() > 0.01);
+    assert_eq!(m["converged"], false);
+    // Leaving out a country whose dummy nobody else has cannot predict it: counted, and
+    // the leave-one-out AUC differs from the in-sample one.
+    let failed: Vec<&str> = m["loo_failed"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert!(failed.contains(&"XNG"), "{failed:?}");
+    assert_eq!(
+        m["auc_loo_units"].as_u64().unwrap() as usize + failed.len(),
+        145
+    );
+    assert!((m["auc_loo"].as_f64().unwrap() - m["auc"].as_f64().unwrap()).abs() > 0.01);
+    // The page offers the same view with the Firth model, and says "not estimable";
+    // the CSV says it too.
+    let addr = start_server(&demo);
+    let page = http(addr, "GET", "/model?wave=4&missing=median-fill", &[]);
+    assert_eq!(page.status, 200);
+    assert!(page.body.contains("not estimable"));
+    assert!(page.body.contains("id=\"firth-link\""));
+    assert!(page.body.contains("model=firth"));
+    assert!(!page.body.contains("13.569 to 13.569"));
+    let csv = http(
+        addr,
+        "GET",
+        "/model/coefficients.csv?wave=4&missing=median-fill",
+        &[],
+    );
+    let line = csv
+        .body
+        .lines()
+        .find(|l| l.starts_with("internet_use missing"))
+        .unwrap();
+    assert!(line.contains("not estimable"), "{line}");
+    let api = http(addr, "GET", "/api/model?wave=4&missing=median-fill", &[]);
+    let json: Value = serde_json::from_str(&api.body).unwrap();
+    assert!(json["model"]["se"][j].is_null());
+    let firth = http(
+        addr,
+        "GET",
+        "/model?wave=4&missing=median-fill&model=firth",
+        &[],
+    );
+    assert!(!firth.body.contains("firth-link"));
+}
+
+#[test]
+fn auc_and_leave_one_out_auc_match_scikit_learn() {
+    // model_checks.json: statsmodels refits without each unit, roc_auc_score (offline).
+    let r = spector("logit");
+    let checks = model_checks();
+    let reference = &checks["spector_auc"];
+    let auc = r["model"]["auc"].as_f64().unwrap();
+    let loo = r["model"]["auc_loo"].as_f64().unwrap();
+    assert!(
+        (auc - reference["auc"].as_f64().unwrap()).abs() < 1e-12,
+        "{auc}"
+    );
+    assert!(
+        (loo - reference["auc_loo"].as_f64().unwrap()).abs() < 1e-12,
+        "{loo}"
+    );
+    assert!(r["model"]["loo_failed"].as_array().unwrap().is_empty());
+    assert_eq!(r["model"]["auc_loo_units"], 32);
+}
+
+#[test]
+fn firth_on_a_quasi_separated_frame_converges_and_matches_scipy() {
+    // model_checks.json: scipy BFGS on the penalised likelihood (make_model_checks.py).
+    let path = fixtures().join("firth_quasi.csv");
+    let r = fit_json(&[
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "y",
+        "--covariates",
+        "x1,x2",
+        "--model",
+        "firth",
+        "--weighting",
+        "inverse-probability",
+    ]);
+    let checks = model_checks();
+    let fx = &checks["firth_quasi"];
+    assert_eq!(r["model"]["converged"], true);
+    assert!(
+        !r["model"]["warnings"].to_string().contains("converge"),
+        "{}",
+        r["model"]["warnings"]
+    );
+    assert!(r["model"]["max_score"].as_f64().unwrap() < 1e-8);
+    assert_close(
+        &floats(&r["model"]["coef"]),
+        &floats(&fx["coef"]),
+        1e-6,
+        "firth coef",
+    );
+    assert_close(
+        &floats(&r["model"]["se"]),
+        &floats(&fx["se"]),
+        1e-6,
+        "firth se",
+    );
+    assert_honest_coefficients(&r, "firth");
+}
+
+#[test]
+fn gmm_with_an_empty_level_says_it_fell_back() {
+    // A level of g that no participant has: its balance condition cannot be met.
+    let dir = TempDir::new("gmm-level");
+    let mut csv = String::from("id,t,a,b,g\n");
+    for (i, (t, a, b)) in base_rows().into_iter().enumerate() {
+        let g = ["x", "y", "z"][i % 3];
+        let t = t && g != "z";
+        csv.push_str(&format!(
+            "U{i:02},{},{},{},{g}\n",
+            u8::from(t),
+            a as f64 / 1000.0,
+            b as f64 / 1000.0
+        ));
+    }
+    let r = frame_fit(
+        &dir,
+        "level.csv",
+        &csv,
+        "a,b",
+        &[
+            "--categorical",
+            "g",
+            "--weighting",
+            "covariate-balancing-gmm",
+        ],
+    );
+    let w = &r["weighting"];
+    assert_eq!(w["converged"], false, "{w}");
+    assert_eq!(w["fell_back_to"], "inverse-probability", "{w}");
+    assert!(
+        w["warnings"].to_string().contains("g=z"),
+        "{}",
+        w["warnings"]
+    );
+    let ipw = frame_fit(
+        &dir,
+        "level.csv",
+        &csv,
+        "a,b",
+        &["--categorical", "g", "--weighting", "inverse-probability"],
+    );
+    // Exactly the plain weights, as the warning says.
+    assert_close(
+        &unit_weights(&r),
+        &unit_weights(&ipw),
+        1e-9,
+        "fallback weights",
+    );
+}
+
+#[test]
+fn weights_worse_than_none_are_flagged_wherever_they_appear() {
+    // The demo's wave 4: inverse-probability weights raise the largest |SMD| from 0.49 to
+    // 1.12 (issue text; values recomputed here from the balance rows).
+    let demo = demo_dir();
+    let r = fit_json(&[
+        demo.to_str().unwrap(),
+        "--wave",
+        "4",
+        "--weighting",
+        "inverse-probability",
+    ]);
+    let w = &r["weighting"];
+    assert_eq!(w["worse_than_none"], true);
+    let rows = r["balance"].as_array().unwrap();
+    let largest = |k: &str| {
+        rows.iter()
+            .filter_map(|b| b[k].as_f64())
+            .fold(0.0f64, |m, v| m.max(v.abs()))
+    };
+    assert!((w["max_abs_smd_before"].as_f64().unwrap() - largest("smd_before")).abs() < 1e-12);
+    assert!((w["max_abs_smd_after"].as_f64().unwrap() - largest("smd_after")).abs() < 1e-12);
+    assert!(
+        (largest("smd_before") - 0.49).abs() < 0.005 && (largest("smd_after") - 1.12).abs() < 0.005
+    );
+    let entropy = fit_json(&[demo.to_str().unwrap(), "--wave", "4"]);
+    assert_eq!(entropy["weighting"]["worse_than_none"], false);
+    let addr = start_server(&demo);
+    let balance: Value =
+        serde_json::from_str(&http(addr, "GET", "/api/balance?wave=4", &[]).body).unwrap();
+    let ipw = balance["methods"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|m| m["kind"] == "inverse-probability")
+        .unwrap();
+    assert_eq!(ipw["worse_than_none"], true);
+    for page in [
+        "/balance?wave=4",
+        "/sensitivity?wave=4",
+        "/model?wave=4&weighting=inverse-probability",
+        "/report?wave=4",
+    ] {
+        let body = http(addr, "GET", page, &[]).body;
+        assert!(
+            body.to_lowercase().contains("worse than no weighting"),
+            "{page}"
+        );
+    }
+}
+
+#[test]
+fn incomplete_countries_are_warned_about_and_can_be_kept() {
+    // The demo's wave 4 has five countries with a missing indicator (four took part).
+    let demo = demo_dir();
+    let r = fit_json(&[demo.to_str().unwrap(), "--wave", "4"]);
+    let inc = &r["incomplete"];
+    assert_eq!(inc["dropped_participants"], 4);
+    assert_eq!(inc["dropped_non_participants"], 1);
+    // Hand computation: 86 of 145 eligible took part; 82 of the 140 analysed.
+    assert!((inc["share_eligible"].as_f64().unwrap() - 86.0 / 145.0).abs() < 1e-12);
+    assert!((inc["share_analysed"].as_f64().unwrap() - 82.0 / 140.0).abs() < 1e-12);
+    let addr = start_server(&demo);
+    for page in [
+        "/model?wave=4",
+        "/balance?wave=4",
+        "/sensitivity?wave=4",
+        "/report?wave=4",
+    ] {
+        let body = http(addr, "GET", page, &[]).body;
+        assert!(
+            body.contains("Leaving out incomplete countries dropped 5 of 145"),
+            "{page}"
+        );
+    }
+    for api in ["/api/balance?wave=4", "/api/sensitivity?wave=4"] {
+        let json: Value = serde_json::from_str(&http(addr, "GET", api, &[]).body).unwrap();
+        assert_eq!(json["incomplete"]["dropped_participants"], 4, "{api}");
+    }
+    // Kept: filled, the missingness flags balanced too (entropy weights match their
+    // universe shares exactly), and the caveat shown.
+    let kept = fit_json(&[
+        demo.to_str().unwrap(),
+        "--wave",
+        "4",
+        "--missing",
+        "fill-and-balance",
+    ]);
+    assert_eq!(kept["n_eligible"], 145);
+    assert!(kept["incomplete"].is_null());
+    assert!(kept["missing_caveat"]
+        .as_str()
+        .unwrap()
+        .contains("Missing-indicator approach"));
+    let flags: Vec<&Value> = kept["balance"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|b| b["covariate"].as_str().unwrap().ends_with(" missing"))
+        .collect();
+    assert_eq!(flags.len(), 3);
+    for f in flags {
+        assert!(f["smd_after"].as_f64().unwrap().abs() < 1e-8, "{f}");
+    }
+    let page = http(addr, "GET", "/model?wave=4&missing=fill-and-balance", &[]).body;
+    assert!(page.contains("id=\"missing-caveat\""));
+}

@@ -106,6 +106,96 @@ fn universe(dir: &TempDir, csv: &str, covariates: &[&str], factors: &[&str]) -> 
     .expect("loads")
 }
 
+/// An integer number of thousandths written exactly as a decimal.
+fn thousandths(v: i64) -> String {
+    let sign = if v < 0 { "-" } else { "" };
+    format!("{sign}{}.{:03}", v.abs() / 1000, v.abs() % 1000)
+}
+
+/// A participation flag unrelated to the indicators (every third unit, shifted).
+fn rng_flag(i: usize) -> bool {
+    (i * 7 + 3) % 5 < 2
+}
+
+/// Fields of the fit result that are `Option`s (null means "none" or "not estimable");
+/// a null anywhere else is a non-finite number that serde wrote as null.
+const MAY_BE_NULL: [&str; 24] = [
+    "wave",
+    "covariates",
+    "factors",
+    "trim",
+    "coef",
+    "se",
+    "z",
+    "ci95_low",
+    "ci95_high",
+    "odds_ratio",
+    "odds_ratio_low",
+    "odds_ratio_high",
+    "not_estimable",
+    "auc",
+    "auc_loo",
+    "smd_before",
+    "smd_after",
+    "variance_ratio_before",
+    "variance_ratio_after",
+    "incomplete",
+    "fell_back_to",
+    "missing_caveat",
+    "cbps",
+    "population",
+];
+
+fn assert_no_stray_nulls(v: &serde_json::Value, key: &str, what: &str) {
+    match v {
+        serde_json::Value::Null => {
+            assert!(
+                MAY_BE_NULL.contains(&key),
+                "{what}: non-finite number at '{key}'"
+            )
+        }
+        serde_json::Value::Array(items) => {
+            for item in items {
+                assert_no_stray_nulls(item, key, what);
+            }
+        }
+        serde_json::Value::Object(map) => {
+            for (k, item) in map {
+                assert_no_stray_nulls(item, k, what);
+            }
+        }
+        _ => {}
+    }
+}
+
+/// Every coefficient is complete with a positive standard error and an interval of
+/// positive width, or marked not estimable with a reason (never a 0 or an infinity).
+fn assert_estimable_or_marked(r: &serde_json::Value, what: &str) {
+    let coefficients = r["model"]["coefficients"].as_array().expect("coefficients");
+    assert_eq!(
+        coefficients.len(),
+        r["model"]["terms"].as_array().unwrap().len()
+    );
+    for c in coefficients {
+        match (
+            c["se"].as_f64(),
+            c["ci95_low"].as_f64(),
+            c["ci95_high"].as_f64(),
+            c["z"].as_f64(),
+        ) {
+            (Some(se), Some(lo), Some(hi), Some(z)) => {
+                assert!(se > 0.0 && hi > lo && z.is_finite(), "{what}: {c}");
+            }
+            _ => assert!(
+                c["coef"].is_null()
+                    && c["se"].is_null()
+                    && c["not_estimable"].as_str().is_some_and(|s| s.len() > 20),
+                "{what}: {c}"
+            ),
+        }
+    }
+}
+
 fn frame(rows: usize, f: impl Fn(usize) -> String) -> String {
     let mut s = String::from("id,t,a,b,g\n");
     for i in 0..rows {
@@ -132,7 +222,21 @@ fn awkward_universes_get_finite_numbers_or_clear_messages() {
             }),
         ),
         (
-            "collinear indicators",
+            // b = 2a + 1 exactly: a in thousandths, b written from the same integer.
+            "exactly collinear indicators",
+            frame(60, |i| {
+                let a = (noise[i] * 1000.0).round() as i64;
+                format!(
+                    "{},{},{},{}",
+                    u8::from(rng_flag(i)),
+                    thousandths(a),
+                    thousandths(2 * a + 1000),
+                    ["x", "y"][i % 2]
+                )
+            }),
+        ),
+        (
+            "nearly collinear indicators",
             frame(60, |i| {
                 format!(
                     "{},{:.3},{:.3},{}",
@@ -225,11 +329,22 @@ fn awkward_universes_get_finite_numbers_or_clear_messages() {
                 };
                 match fit(&view, &settings) {
                     Ok(r) => {
-                        let json = serde_json::to_string(&r).unwrap();
-                        assert!(
-                            !json.contains("NaN") && !json.contains("inf"),
-                            "{name} / {model:?} / {weighting:?}: {json}"
-                        );
+                        // serde_json writes NaN and infinities as null: a null is only
+                        // allowed where the result says "none" on purpose.
+                        let json = serde_json::to_value(&r).unwrap();
+                        let what = format!("{name} / {model:?} / {weighting:?}");
+                        assert_no_stray_nulls(&json, "", &what);
+                        assert_estimable_or_marked(&json, &what);
+                        if name == "exactly collinear indicators" {
+                            // b = 2a + 1: a, b and the intercept are not estimable.
+                            for j in 0..3 {
+                                assert!(
+                                    json["model"]["se"][j].is_null(),
+                                    "{what}: {}",
+                                    json["model"]["se"]
+                                );
+                            }
+                        }
                         for u in &r.units {
                             assert!(
                                 u.weight.is_finite() && u.propensity.is_finite(),

@@ -24,6 +24,10 @@ pub struct MethodBalance {
     pub smd_after: Vec<Option<f64>>,
     pub variance_ratio_after: Vec<Option<f64>>,
     pub max_abs_smd: Option<f64>,
+    /// The weights leave the largest |SMD| worse than no weighting.
+    pub worse_than_none: bool,
+    /// The method returned another method's weights (named here).
+    pub fell_back_to: Option<&'static str>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -41,6 +45,10 @@ pub struct BalanceComparison {
     pub max_abs_smd_before: f64,
     pub sentences: Vec<String>,
     pub model_warnings: Vec<String>,
+    /// Set when leaving out incomplete countries dropped participants or non-participants.
+    pub incomplete: Option<participation::IncompleteCountries>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub missing_caveat: Option<String>,
 }
 
 /// Compares every weighting method on one wave.
@@ -81,6 +89,8 @@ pub fn compare(view: &WaveView, settings: &Settings) -> Result<BalanceComparison
         n_eligible: design.n(),
         n_participants: design.n_participants(),
         missing_note: participation::missing_note(&design, settings),
+        incomplete: participation::incomplete_countries(&design),
+        missing_caveat: participation::missing_caveat(settings),
         sentences: sentences(&design, &rows),
         rows,
         methods,
@@ -108,6 +118,8 @@ fn method_balance(
                 kind: kind.as_str(),
                 label: kind.label(),
                 error: None,
+                worse_than_none: w.report.worse_than_none,
+                fell_back_to: w.report.fell_back_to,
                 effective_n: Some(w.report.effective_n),
                 max_weight_share: Some(w.report.max_weight_share),
                 cv: Some(w.report.cv),
@@ -133,6 +145,8 @@ fn method_balance(
             smd_after: vec![None; design.balance.len()],
             variance_ratio_after: vec![None; design.balance.len()],
             max_abs_smd: None,
+            worse_than_none: false,
+            fell_back_to: None,
         },
     }
 }

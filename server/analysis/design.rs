@@ -41,6 +41,8 @@ pub struct Design {
     pub units: Vec<usize>,
     /// Countries left out for a missing value: "CODE (indicator)".
     pub dropped: Vec<String>,
+    /// Whether each country in `dropped` took part.
+    pub dropped_took_part: Vec<bool>,
     /// Indicators filled with the median: (indicator, count, median).
     pub filled: Vec<(String, usize, f64)>,
     pub balance: Vec<BalanceColumn>,
@@ -102,6 +104,11 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
     // Which units stay, and how missing values are handled.
     let mut units: Vec<usize> = Vec::new();
     let mut dropped = Vec::new();
+    let mut dropped_took_part = Vec::new();
+    let keep_incomplete = matches!(
+        settings.missing,
+        MissingRule::MedianFill | MissingRule::FillAndBalance
+    );
     for i in 0..view.len() {
         let missing: Vec<&str> = covariates
             .iter()
@@ -114,10 +121,11 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
                     .map(|&f| view.categorical[f].column.as_str()),
             )
             .collect();
-        if missing.is_empty() || settings.missing == MissingRule::MedianFill {
+        if missing.is_empty() || keep_incomplete {
             units.push(i);
         } else {
             dropped.push(format!("{} ({})", view.codes[i], missing.join(", ")));
+            dropped_took_part.push(view.participated[i]);
         }
     }
     let n = units.len();
@@ -195,6 +203,14 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
         });
     }
     for (name, values) in missing_dummies {
+        if settings.missing == MissingRule::FillAndBalance {
+            balance.push(BalanceColumn {
+                name: name.clone(),
+                label: format!("{name} (share of countries)"),
+                values: values.clone(),
+                is_level: true,
+            });
+        }
         terms.push(name);
         columns.push(values);
     }
@@ -230,6 +246,7 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
         names: units.iter().map(|&i| view.names[i].clone()).collect(),
         units,
         dropped,
+        dropped_took_part,
         filled,
         balance,
         margins,
@@ -271,6 +288,7 @@ impl Design {
             names: rows.iter().map(|&i| self.names[i].clone()).collect(),
             units: rows.iter().map(|&i| self.units[i]).collect(),
             dropped: self.dropped.clone(),
+            dropped_took_part: self.dropped_took_part.clone(),
             filled: self.filled.clone(),
             balance: self
                 .balance

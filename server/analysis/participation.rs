@@ -7,21 +7,56 @@ use serde::Serialize;
 use super::design::{self, Design};
 use super::settings::{ModelKind, Settings, WeightingKind};
 use crate::project::WaveView;
-use crate::stats::{balance, binary, weights};
+use crate::stats::{balance, binary, normal, weights};
+
+/// One coefficient as every output shows it. A term the data cannot estimate has `None`
+/// everywhere and says why in `not_estimable`.
+#[derive(Debug, Clone, Serialize)]
+pub struct Coefficient {
+    pub term: String,
+    /// On the indicator's original scale.
+    pub coef: Option<f64>,
+    pub se: Option<f64>,
+    /// coef / se.
+    pub z: Option<f64>,
+    /// coef -/+ z_{0.975} se (normal approximation).
+    pub ci95_low: Option<f64>,
+    pub ci95_high: Option<f64>,
+    /// exp(coef) and its interval (logit models, not the intercept).
+    pub odds_ratio: Option<f64>,
+    pub odds_ratio_low: Option<f64>,
+    pub odds_ratio_high: Option<f64>,
+    /// Why the term is not estimable, if it is not.
+    pub not_estimable: Option<String>,
+}
 
 #[derive(Debug, Clone, Serialize)]
 pub struct ModelReport {
     pub kind: &'static str,
     /// Intercept first.
     pub terms: Vec<String>,
-    /// On the indicators' original scale.
-    pub coef: Vec<f64>,
-    pub se: Vec<f64>,
+    /// On the indicators' original scale; `None` where not estimable.
+    pub coef: Vec<Option<f64>>,
+    pub se: Vec<Option<f64>>,
+    /// Every term with its z value, 95% interval and (logit models) odds ratio.
+    pub coefficients: Vec<Coefficient>,
+    /// The standard normal quantile behind the 95% intervals.
+    pub z_critical: f64,
     pub log_likelihood: f64,
+    /// True only when the fit met its convergence criterion at a finite, determined estimate.
     pub converged: bool,
     pub iterations: usize,
+    /// Largest absolute (for Firth: penalised) score element at the estimate.
+    pub max_score: f64,
     pub auc: Option<f64>,
+    /// AUC of the leave-one-out predictions, over the units whose refit succeeded.
     pub auc_loo: Option<f64>,
+    /// Units whose leave-one-out prediction entered `auc_loo`.
+    pub auc_loo_units: usize,
+    /// Units whose leave-one-out refit failed (codes); their full-fit prediction is never used.
+    pub loo_failed: Vec<String>,
+    /// The model shows separation (the Firth model gives finite estimates then).
+    pub separation: bool,
     pub warnings: Vec<String>,
 }
 
@@ -32,11 +67,33 @@ pub struct WeightingReport {
     pub max_weight_share: f64,
     pub cv: f64,
     pub trim: Option<f64>,
+    /// True only when the method met its own criterion (and did what its name says).
     pub converged: bool,
     /// Coefficients of the covariate-balancing propensity model (original scale).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub coef: Option<Vec<f64>>,
+    /// Largest |SMD| over the balance columns without weighting and with these weights.
+    pub max_abs_smd_before: f64,
+    pub max_abs_smd_after: f64,
+    /// These weights leave the largest |SMD| worse than no weighting at all.
+    pub worse_than_none: bool,
+    /// The method could not do what its name says and returned another method's weights
+    /// (named here).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub fell_back_to: Option<&'static str>,
     pub warnings: Vec<String>,
+}
+
+/// Countries left out because an indicator value is missing, when that changes who is
+/// analysed.
+#[derive(Debug, Clone, Serialize)]
+pub struct IncompleteCountries {
+    pub dropped_participants: usize,
+    pub dropped_non_participants: usize,
+    /// Participant share among all eligible countries, and among those analysed.
+    pub share_eligible: f64,
+    pub share_analysed: f64,
+    pub warning: String,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -74,6 +131,11 @@ pub struct FitReport {
     pub dropped: Vec<String>,
     /// How missing values were handled, in words.
     pub missing_note: String,
+    /// Set when leaving out incomplete countries dropped participants or non-participants.
+    pub incomplete: Option<IncompleteCountries>,
+    /// Set when the missingness indicators are balanced as well (its caveat).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub missing_caveat: Option<String>,
     pub model: ModelReport,
     pub weighting: WeightingReport,
     pub units: Vec<UnitReport>,
@@ -140,10 +202,10 @@ pub fn weigh(
     model: &FittedModel,
 ) -> Result<Weighted, AnalysisError> {
     let y = &design.participated;
-    let (raw_weights, converged, cbps_coef) =
-        compute_weights(design, settings, &model.standardised, &model.propensity)?;
-    let mut w = raw_weights;
-    let mut warnings = Vec::new();
+    let raw = compute_weights(design, settings, &model.standardised, &model.propensity)?;
+    let (converged, cbps_coef) = (raw.converged, raw.coef);
+    let mut w = raw.weights;
+    let mut warnings = raw.warnings;
     if let Some(q) = settings.trim {
         w = weights::trim(&w, y, q);
         if matches!(
@@ -169,8 +231,24 @@ pub fn weigh(
         design,
         &w,
     ));
-    if !converged {
+    if !converged && raw.fell_back_to.is_none() {
         warnings.push("the weighting did not converge; its balance is approximate".to_string());
+    }
+    let rows = balance_table(design, &w);
+    let largest = |f: fn(&BalanceRow) -> Option<f64>| {
+        rows.iter()
+            .filter_map(f)
+            .fold(0.0f64, |m, v| m.max(v.abs()))
+    };
+    let max_abs_smd_before = largest(|r| r.smd_before);
+    let max_abs_smd_after = largest(|r| r.smd_after);
+    // Common practice: weights should bring participants closer to the universe; a
+    // larger worst |SMD| than without weights (beyond rounding) is flagged.
+    let worse_than_none = max_abs_smd_after > max_abs_smd_before + 1e-9;
+    if worse_than_none {
+        warnings.push(format!(
+            "worse than no weighting: with these weights the largest |SMD| is {max_abs_smd_after:.2}, against {max_abs_smd_before:.2} for the participants unweighted; they make participants less like the eligible universe"
+        ));
     }
     Ok(Weighted {
         report: WeightingReport {
@@ -181,6 +259,10 @@ pub fn weigh(
             trim: settings.trim,
             converged,
             coef: cbps_coef,
+            max_abs_smd_before,
+            max_abs_smd_after,
+            worse_than_none,
+            fell_back_to: raw.fell_back_to,
             warnings,
         },
         weights: w,
@@ -212,6 +294,8 @@ pub fn fit_design(
         n_participants: design.n_participants(),
         dropped: design.dropped.clone(),
         missing_note: missing_note(design, settings),
+        incomplete: incomplete_countries(design),
+        missing_caveat: missing_caveat(settings),
         balance: balance_table(design, &weighted.weights),
         model: model.report,
         weighting: weighted.report,
@@ -245,6 +329,161 @@ pub fn to_original_scale(
     (b.to_vec(), se)
 }
 
+/// The linear map from standardised to original-scale coefficients, b = A b*.
+fn scale_map(design: &Design, k: usize) -> Array2<f64> {
+    let mut a = Array2::<f64>::zeros((k, k));
+    a[[0, 0]] = 1.0;
+    for j in 1..k {
+        a[[j, j]] = 1.0 / design.scale[j];
+        a[[0, j]] = -design.centre[j] / design.scale[j];
+    }
+    a
+}
+
+/// Which original-scale terms a direction d* in standardised coefficient space moves:
+/// slope j when |d*_j| > 1e-4 (d* of unit length); the intercept when its image
+/// d*_0 - sum_j d*_j m_j / s_j does not cancel to within 1e-4 of its parts.
+fn terms_moved(design: &Design, d: &Array1<f64>) -> Vec<usize> {
+    let norm = d.dot(d).sqrt();
+    if norm == 0.0 || !norm.is_finite() {
+        return Vec::new();
+    }
+    let d = d / norm;
+    let mut out = Vec::new();
+    let parts: f64 = d[0].abs()
+        + (1..d.len())
+            .map(|j| (d[j] * design.centre[j] / design.scale[j]).abs())
+            .sum::<f64>();
+    let image: f64 = d[0]
+        - (1..d.len())
+            .map(|j| d[j] * design.centre[j] / design.scale[j])
+            .sum::<f64>();
+    if image.abs() > 1e-4 * parts.max(1.0) {
+        out.push(0);
+    }
+    out.extend((1..d.len()).filter(|&j| d[j].abs() > 1e-4));
+    out
+}
+
+fn name_list(names: &[&str]) -> String {
+    match names {
+        [] => String::new(),
+        [one] => (*one).to_string(),
+        [init @ .., last] => format!("{} and {last}", init.join(", ")),
+    }
+}
+
+/// For each term, why it is not estimable (if it is not): aliased columns and the terms in
+/// their relation; weak directions of the information (separation or near-singularity).
+fn not_estimable_reasons(
+    design: &Design,
+    kind: ModelKind,
+    fit: &binary::BinaryFit,
+) -> Vec<Option<String>> {
+    let k = fit.coef.len();
+    let mut reasons: Vec<Option<String>> = vec![None; k];
+    let name = |j: usize| design.terms[j].as_str();
+    for alias in &fit.aliased {
+        let mut d = Array1::<f64>::zeros(k);
+        d[alias.term] = 1.0;
+        // The relation z_term = sum c_l z_l on the standardised scale.
+        let zs = design.standardised();
+        let xk = zs.select(ndarray::Axis(1), &alias.combination_of);
+        let gram = xk.t().dot(&xk);
+        let rhs = xk.t().dot(&zs.column(alias.term));
+        if let Ok(c) = crate::stats::linalg::solve_spd(gram.view(), rhs.view()) {
+            for (&l, cl) in alias.combination_of.iter().zip(c.iter()) {
+                d[l] -= cl;
+            }
+        }
+        let moved = terms_moved(design, &d);
+        let others: Vec<&str> = alias
+            .combination_of
+            .iter()
+            .filter(|&&l| l != 0)
+            .map(|&l| name(l))
+            .collect();
+        let reason = format!(
+            "{} is an exact linear combination of {}{}, so the data cannot tell their effects apart; the model is fitted without {} (fitted probabilities and weights are unaffected)",
+            name(alias.term),
+            if others.is_empty() { "the intercept".to_string() } else { name_list(&others) },
+            if others.is_empty() || !alias.combination_of.contains(&0) { "" } else { " and the intercept" },
+            name(alias.term),
+        );
+        for j in moved.into_iter().chain(std::iter::once(alias.term)) {
+            reasons[j].get_or_insert_with(|| reason.clone());
+        }
+    }
+    for d in &fit.weak_directions {
+        let moved = terms_moved(design, d);
+        let names: Vec<&str> = moved.iter().map(|&j| name(j)).collect();
+        let reason = if fit.extreme_units > 0 && kind != ModelKind::Firth {
+            format!(
+                "separation: {} countr{} fitted with a probability of 0 or 1, and the likelihood keeps rising as the coefficients of {} grow without bound, so no finite estimate exists; the Firth model gives finite estimates",
+                fit.extreme_units,
+                if fit.extreme_units == 1 { "y is" } else { "ies are" },
+                name_list(&names)
+            )
+        } else {
+            format!(
+                "the information matrix is singular (to 1 part in 10^10) along a combination of {}: the data do not determine these coefficients (nearly collinear indicators)",
+                name_list(&names)
+            )
+        };
+        for j in moved {
+            reasons[j].get_or_insert_with(|| reason.clone());
+        }
+    }
+    reasons
+}
+
+/// Coefficients, standard errors, z values, 95% intervals and odds ratios on the original
+/// scale; every not-estimable term is `None` throughout.
+fn coefficients(design: &Design, kind: ModelKind, fit: &binary::BinaryFit) -> Vec<Coefficient> {
+    let k = fit.coef.len();
+    let a = scale_map(design, k);
+    let b = a.dot(&fit.coef);
+    // Aliased coefficients are fixed at 0 in the fit: their NaN covariance entries count 0.
+    let cov = fit.cov.mapv(|v| if v.is_finite() { v } else { 0.0 });
+    let variance = a.dot(&cov).dot(&a.t());
+    let reasons = not_estimable_reasons(design, kind, fit);
+    let zc = normal::quantile(0.975);
+    let logit = kind != ModelKind::Probit;
+    (0..k)
+        .map(|j| {
+            let v = variance[[j, j]];
+            let usable = reasons[j].is_none() && b[j].is_finite() && v.is_finite() && v > 0.0;
+            let mut reason = reasons[j].clone();
+            if reason.is_none() && !usable {
+                reason = Some(
+                    "the information matrix gives this term no positive, finite variance"
+                        .to_string(),
+                );
+            }
+            let (coef, se) = if usable {
+                (Some(b[j]), Some(v.sqrt()))
+            } else {
+                (None, None)
+            };
+            let low = coef.zip(se).map(|(c, s)| c - zc * s);
+            let high = coef.zip(se).map(|(c, s)| c + zc * s);
+            let or = |x: Option<f64>| x.filter(|_| logit && j > 0).map(f64::exp);
+            Coefficient {
+                term: design.terms[j].clone(),
+                coef,
+                se,
+                z: coef.zip(se).map(|(c, s)| c / s),
+                ci95_low: low,
+                ci95_high: high,
+                odds_ratio: or(coef),
+                odds_ratio_low: or(low),
+                odds_ratio_high: or(high),
+                not_estimable: reason,
+            }
+        })
+        .collect()
+}
+
 fn model_report(
     design: &Design,
     kind: ModelKind,
@@ -254,14 +493,7 @@ fn model_report(
     leave_one_out: bool,
 ) -> ModelReport {
     let y = &design.participated;
-    let (coef, se) = to_original_scale(design, &fit.coef, Some(&fit.cov));
-    let loo_complete: Option<Vec<f64>> = if leave_one_out {
-        binary::leave_one_out(kind, z.view(), y, fit)
-            .into_iter()
-            .collect()
-    } else {
-        None
-    };
+    let coefficients = coefficients(design, kind, fit);
     let mut warnings = Vec::new();
     let n1 = design.n_participants();
     let n0 = design.n() - n1;
@@ -273,53 +505,142 @@ fn model_report(
             if n1 <= n0 { "participants" } else { "non-participants" }
         ));
     }
+    for alias in &fit.aliased {
+        if let Some(reason) = &coefficients[alias.term].not_estimable {
+            warnings.push(format!("not estimable: {reason}"));
+        }
+    }
+    let mut separation = false;
     if kind != ModelKind::Firth {
         let separating = binary::separating_terms(z.view(), y);
         if let Some(s) = separating.first() {
+            separation = true;
             warnings.push(format!(
                 "{} separation: every participant's {} is {} every non-participant's, so the maximum-likelihood estimate does not exist; use the Firth model",
                 if s.complete { "complete" } else { "quasi-complete" },
                 design.terms[s.term],
                 if s.participants_above { "at or above" } else { "at or below" }
             ));
-        } else if binary::looks_separated(fit, kind, z.view()) {
-            let largest = (1..fit.coef.len())
-                .max_by(|&a, &b| fit.coef[a].abs().total_cmp(&fit.coef[b].abs()))
-                .unwrap_or(0);
+        } else if fit.extreme_units > 0 && !fit.weak_directions.is_empty() {
+            separation = true;
+            let moved: Vec<&str> = fit
+                .weak_directions
+                .iter()
+                .flat_map(|d| terms_moved(design, d))
+                .map(|j| design.terms[j].as_str())
+                .collect::<std::collections::BTreeSet<_>>()
+                .into_iter()
+                .collect();
             warnings.push(format!(
-                "the fit shows signs of separation (fitted probabilities of 0 or 1, or no convergence), driven mostly by {}; use the Firth model",
-                design.terms[largest]
+                "separation: {} countr{} fitted with a probability of 0 or 1 and the estimate runs off to infinity along {}, so the maximum-likelihood estimate does not exist; use the Firth model",
+                fit.extreme_units,
+                if fit.extreme_units == 1 { "y is" } else { "ies are" },
+                name_list(&moved)
             ));
+        } else if binary::looks_separated(fit, kind, z.view()) && fit.extreme_units > 0 {
+            separation = true;
+            warnings.push(
+                "the fit shows signs of separation (fitted probabilities of 0 or 1); use the Firth model"
+                    .to_string(),
+            );
         }
     }
     if !fit.converged {
+        if fit.weak_directions.is_empty() {
+            warnings.push(format!(
+                "the model did not meet its convergence criterion after {} iterations (largest score element {:.1e}); treat its numbers as approximate",
+                fit.iterations, fit.max_score
+            ));
+        } else if !separation {
+            warnings.push(
+                "the model has no determined estimate (a singular information matrix); the terms concerned are marked not estimable"
+                    .to_string(),
+            );
+        }
+    }
+    let not_estimable: Vec<&str> = coefficients
+        .iter()
+        .filter(|c| c.not_estimable.is_some())
+        .map(|c| c.term.as_str())
+        .collect();
+    if !not_estimable.is_empty() {
         warnings.push(format!(
-            "the model did not converge after {} iterations",
-            fit.iterations
+            "not estimable: {} (standard errors, z values and intervals are not shown for {})",
+            name_list(&not_estimable),
+            if not_estimable.len() == 1 {
+                "it"
+            } else {
+                "them"
+            }
         ));
     }
-    if leave_one_out && loo_complete.is_none() {
-        warnings.push(
-            "some leave-one-out refits failed, so the leave-one-out AUC is not reported"
-                .to_string(),
-        );
-    }
+    let (auc_loo, auc_loo_units, loo_failed) = if leave_one_out {
+        let predictions = binary::leave_one_out(kind, z.view(), y, fit);
+        let failed: Vec<String> = predictions
+            .iter()
+            .enumerate()
+            .filter(|(_, p)| p.is_none())
+            .map(|(i, _)| design.ids[i].clone())
+            .collect();
+        let (scores, outcomes): (Vec<f64>, Vec<bool>) = predictions
+            .iter()
+            .zip(y)
+            .filter_map(|(p, &t)| p.map(|p| (p, t)))
+            .unzip();
+        if !failed.is_empty() {
+            warnings.push(format!(
+                "{} of {} leave-one-out refits failed (without {}: the refit did not converge, or the country's prediction rests on a coefficient the other countries cannot estimate); the leave-one-out AUC {}",
+                failed.len(),
+                y.len(),
+                if failed.len() <= 10 { failed.join(", ") } else { format!("{} and {} more", failed[..10].join(", "), failed.len() - 10) },
+                if scores.is_empty() { "is not reported".to_string() } else { format!("uses the other {} countries", scores.len()) }
+            ));
+        }
+        (binary::auc(&scores, &outcomes), scores.len(), failed)
+    } else {
+        (None, 0, Vec::new())
+    };
     ModelReport {
         kind: kind.as_str(),
         terms: design.terms.clone(),
-        coef,
-        se: se.unwrap_or_default(),
+        coef: coefficients.iter().map(|c| c.coef).collect(),
+        se: coefficients.iter().map(|c| c.se).collect(),
+        coefficients,
+        z_critical: normal::quantile(0.975),
         log_likelihood: fit.log_likelihood,
         converged: fit.converged,
         iterations: fit.iterations,
+        max_score: fit.max_score,
         auc: binary::auc(propensity, y),
-        auc_loo: loo_complete.and_then(|p| binary::auc(&p, y)),
+        auc_loo,
+        auc_loo_units,
+        loo_failed,
+        separation,
         warnings,
     }
 }
 
-/// Raw (unnormalised) weights, whether the method converged, and CBPS coefficients.
-type RawWeights = (Vec<f64>, bool, Option<Vec<f64>>);
+/// Raw (unnormalised) weights of one method and what it says about them.
+struct RawWeights {
+    weights: Vec<f64>,
+    converged: bool,
+    /// CBPS coefficients (original scale).
+    coef: Option<Vec<f64>>,
+    fell_back_to: Option<&'static str>,
+    warnings: Vec<String>,
+}
+
+impl RawWeights {
+    fn plain(weights: Vec<f64>, converged: bool) -> Self {
+        RawWeights {
+            weights,
+            converged,
+            coef: None,
+            fell_back_to: None,
+            warnings: Vec::new(),
+        }
+    }
+}
 
 fn compute_weights(
     design: &Design,
@@ -332,7 +653,7 @@ fn compute_weights(
     let fail = |message: String| AnalysisError::Weighting { method, message };
     match settings.weighting {
         WeightingKind::InverseProbability => weights::inverse_probability(propensity, y)
-            .map(|w| (w, true, None))
+            .map(|w| RawWeights::plain(w, true))
             .map_err(|e| fail(e.to_string())),
         WeightingKind::CovariateBalancing | WeightingKind::CovariateBalancingGmm => {
             let cbps = if settings.weighting == WeightingKind::CovariateBalancing {
@@ -352,7 +673,34 @@ fn compute_weights(
             let w = weights::inverse_probability(&cbps.propensity, y)
                 .map_err(|e| fail(e.to_string()))?;
             let (coef, _) = to_original_scale(design, &cbps.coef, None);
-            Ok((w, cbps.converged, Some(coef)))
+            let mut warnings = Vec::new();
+            let mut fell_back_to = None;
+            let gmm = settings.weighting == WeightingKind::CovariateBalancingGmm;
+            let unreachable: Vec<&str> = cbps
+                .unreachable
+                .iter()
+                .map(|&j| design.terms[j].as_str())
+                .collect();
+            if gmm && cbps.stayed_at_start {
+                fell_back_to = Some("inverse-probability");
+                warnings.push(format!(
+                    "fell back to plain inverse-probability weights: the over-identified (GMM) fit could not move from its starting logit{}, so these are the logit's inverse-probability weights and balance nothing beyond them",
+                    if unreachable.is_empty() { String::new() } else { format!(" because every participant has the same value of {} (a level without participants), whose universe share no weighting of participants can reach", name_list(&unreachable)) }
+                ));
+            } else if gmm && !unreachable.is_empty() {
+                warnings.push(format!(
+                    "{} cannot be balanced: every participant has the same value (a level without participants), so the weights leave {} unbalanced",
+                    name_list(&unreachable),
+                    if unreachable.len() == 1 { "it" } else { "them" }
+                ));
+            }
+            Ok(RawWeights {
+                weights: w,
+                converged: cbps.converged && !cbps.stayed_at_start,
+                coef: Some(coef),
+                fell_back_to,
+                warnings,
+            })
         }
         WeightingKind::Entropy => {
             let mut columns: Vec<(String, Vec<f64>)> = design
@@ -390,7 +738,7 @@ fn compute_weights(
                 scale.push(if sd > 0.0 { sd } else { 1.0 });
             }
             match weights::entropy_balance(c.view(), y, &targets, &scale, None) {
-                Ok(fit) => Ok((fit.weights, fit.converged, None)),
+                Ok(fit) => Ok(RawWeights::plain(fit.weights, fit.converged)),
                 Err(weights::WeightError::Infeasible { column, reason }) => Err(fail(format!(
                     "cannot match {}: {reason}",
                     columns.get(column).map_or("an indicator", |c| c.0.as_str())
@@ -414,7 +762,7 @@ fn compute_weights(
                 })
                 .collect();
             match weights::rake(&margins, &targets, y) {
-                Ok(fit) => Ok((fit.weights, fit.converged, None)),
+                Ok(fit) => Ok(RawWeights::plain(fit.weights, fit.converged)),
                 Err(weights::WeightError::Infeasible { column, reason }) => {
                     let m = &design.margins[column];
                     let reason = m.levels.iter().enumerate().fold(reason, |r, (l, name)| {
@@ -468,11 +816,20 @@ fn concentration_warnings(
 }
 
 pub fn missing_note(design: &Design, settings: &Settings) -> String {
+    use super::settings::MissingRule;
+    let filled = || {
+        design
+            .filled
+            .iter()
+            .map(|(c, n, m)| format!("{c} ({n} filled with {m:.3})"))
+            .collect::<Vec<_>>()
+            .join("; ")
+    };
     match settings.missing {
-        super::settings::MissingRule::CompleteCases if design.dropped.is_empty() => {
+        MissingRule::CompleteCases if design.dropped.is_empty() => {
             "No missing values among the chosen indicators".to_string()
         }
-        super::settings::MissingRule::CompleteCases => format!(
+        MissingRule::CompleteCases => format!(
             "Complete cases: {} countr{} left out for missing values: {}",
             design.dropped.len(),
             if design.dropped.len() == 1 {
@@ -482,19 +839,54 @@ pub fn missing_note(design: &Design, settings: &Settings) -> String {
             },
             design.dropped.join("; ")
         ),
-        super::settings::MissingRule::MedianFill if design.filled.is_empty() => {
+        MissingRule::MedianFill | MissingRule::FillAndBalance if design.filled.is_empty() => {
             "No missing values among the chosen indicators".to_string()
         }
-        super::settings::MissingRule::MedianFill => format!(
+        MissingRule::MedianFill => format!(
             "Median fill with a missingness indicator per filled indicator: {}",
-            design
-                .filled
-                .iter()
-                .map(|(c, n, m)| format!("{c} ({n} filled with {m:.3})"))
-                .collect::<Vec<_>>()
-                .join("; ")
+            filled()
+        ),
+        MissingRule::FillAndBalance => format!(
+            "Median fill with a missingness indicator per filled indicator, in the model and among the balanced columns: {}",
+            filled()
         ),
     }
+}
+
+/// The warning when complete cases leave out participants or non-participants: counts,
+/// and the participant share among all eligible countries against the analysed ones.
+pub fn incomplete_countries(design: &Design) -> Option<IncompleteCountries> {
+    if design.dropped.is_empty() {
+        return None;
+    }
+    let dropped_participants = design.dropped_took_part.iter().filter(|&&t| t).count();
+    let dropped_non_participants = design.dropped_took_part.len() - dropped_participants;
+    let n_all = design.n() + design.dropped.len();
+    let share_eligible =
+        (design.n_participants() + dropped_participants) as f64 / n_all.max(1) as f64;
+    let share_analysed = design.n_participants() as f64 / design.n().max(1) as f64;
+    let warning = format!(
+        "Leaving out incomplete countries dropped {} of {n_all} eligible countries ({dropped_participants} participant{}, {dropped_non_participants} non-participant{}): the participant share moves from {:.1}% among all eligible countries to {:.1}% among those analysed, and the weights stand for the complete countries only. To keep them, choose missing values \"fill-and-balance\" (or \"median-fill\").",
+        design.dropped.len(),
+        if dropped_participants == 1 { "" } else { "s" },
+        if dropped_non_participants == 1 { "" } else { "s" },
+        100.0 * share_eligible,
+        100.0 * share_analysed,
+    );
+    Some(IncompleteCountries {
+        dropped_participants,
+        dropped_non_participants,
+        share_eligible,
+        share_analysed,
+        warning,
+    })
+}
+
+/// The caveat of balancing missingness indicators.
+pub fn missing_caveat(settings: &Settings) -> Option<String> {
+    (settings.missing == super::settings::MissingRule::FillAndBalance).then(|| {
+        "Missing-indicator approach: filled values stand in for unknown ones, and the weights match how often each indicator is missing, not the unknown values themselves. Participants then resemble the universe on the observed values and on the pattern of missingness (Rosenbaum & Rubin 1984, from memory); if the unknown values differ from the filled ones in a way related to participation, balance on them is not assured.".to_string()
+    })
 }
 
 /// SMDs and variance ratios before (unweighted participants) and after weighting,

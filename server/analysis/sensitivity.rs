@@ -24,6 +24,26 @@ pub struct Outcome {
     pub max_abs_smd: Option<f64>,
     pub max_weight_share: Option<f64>,
     pub error: Option<String>,
+    /// The weights leave the largest |SMD| worse than no weighting.
+    pub worse_than_none: bool,
+    /// The method returned another method's weights (named here).
+    pub fell_back_to: Option<&'static str>,
+    /// The method's own warnings.
+    pub warnings: Vec<String>,
+}
+
+impl Outcome {
+    fn failed(message: String) -> Outcome {
+        Outcome {
+            effective_n: None,
+            max_abs_smd: None,
+            max_weight_share: None,
+            error: Some(message),
+            worse_than_none: false,
+            fell_back_to: None,
+            warnings: Vec::new(),
+        }
+    }
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -50,6 +70,10 @@ pub struct Sensitivity {
     pub trims: Vec<TrimRow>,
     /// Every model and method, untrimmed.
     pub grid: Vec<GridRow>,
+    /// Set when leaving out incomplete countries dropped participants or non-participants.
+    pub incomplete: Option<participation::IncompleteCountries>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub missing_caveat: Option<String>,
 }
 
 pub fn sensitivity(view: &WaveView, settings: &Settings) -> Result<Sensitivity, AnalysisError> {
@@ -66,25 +90,16 @@ pub fn sensitivity(view: &WaveView, settings: &Settings) -> Result<Sensitivity, 
                 Err(e) => Err(e.clone()),
             };
             match weighted {
-                Ok(w) => {
-                    let rows = participation::balance_table(&design, &w.weights);
-                    Outcome {
-                        effective_n: Some(w.report.effective_n),
-                        max_abs_smd: Some(
-                            rows.iter()
-                                .filter_map(|r| r.smd_after)
-                                .fold(0.0f64, |m, v| m.max(v.abs())),
-                        ),
-                        max_weight_share: Some(w.report.max_weight_share),
-                        error: None,
-                    }
-                }
-                Err(e) => Outcome {
-                    effective_n: None,
-                    max_abs_smd: None,
-                    max_weight_share: None,
-                    error: Some(e.to_string()),
+                Ok(w) => Outcome {
+                    effective_n: Some(w.report.effective_n),
+                    max_abs_smd: Some(w.report.max_abs_smd_after),
+                    max_weight_share: Some(w.report.max_weight_share),
+                    error: None,
+                    worse_than_none: w.report.worse_than_none,
+                    fell_back_to: w.report.fell_back_to,
+                    warnings: w.report.warnings,
                 },
+                Err(e) => Outcome::failed(e.to_string()),
             }
         };
     let chosen_model = models
@@ -96,12 +111,7 @@ pub fn sensitivity(view: &WaveView, settings: &Settings) -> Result<Sensitivity, 
         .map(|&trim| TrimRow {
             trim,
             outcome: chosen_model.map_or_else(
-                || Outcome {
-                    effective_n: None,
-                    max_abs_smd: None,
-                    max_weight_share: None,
-                    error: Some("no model".into()),
-                },
+                || Outcome::failed("no model".into()),
                 |m| {
                     outcome(
                         &Settings {
@@ -149,5 +159,7 @@ pub fn sensitivity(view: &WaveView, settings: &Settings) -> Result<Sensitivity, 
             .fold(0.0f64, |m, v| m.max(v.abs())),
         trims,
         grid,
+        incomplete: participation::incomplete_countries(&design),
+        missing_caveat: participation::missing_caveat(settings),
     })
 }

@@ -60,6 +60,9 @@ pub enum MissingRule {
     CompleteCases,
     /// Fill with the median and add a missingness indicator per affected indicator.
     MedianFill,
+    /// As `MedianFill`, and the weights also balance the missingness indicators (the
+    /// missing-indicator approach for balancing weights).
+    FillAndBalance,
 }
 
 impl MissingRule {
@@ -67,6 +70,7 @@ impl MissingRule {
         match self {
             MissingRule::CompleteCases => "complete-cases",
             MissingRule::MedianFill => "median-fill",
+            MissingRule::FillAndBalance => "fill-and-balance",
         }
     }
 
@@ -74,6 +78,7 @@ impl MissingRule {
         match s {
             "complete-cases" => Some(MissingRule::CompleteCases),
             "median-fill" => Some(MissingRule::MedianFill),
+            "fill-and-balance" => Some(MissingRule::FillAndBalance),
             _ => None,
         }
     }
@@ -155,7 +160,7 @@ impl Settings {
                     }
                 }
                 "missing" => {
-                    s.missing = MissingRule::parse(value).ok_or_else(|| SettingsError(format!("missing must be complete-cases or median-fill, not '{value}'")))?;
+                    s.missing = MissingRule::parse(value).ok_or_else(|| SettingsError(format!("missing must be complete-cases, median-fill or fill-and-balance, not '{value}'")))?;
                 }
                 "variances" => s.match_variances = matches!(value, "1" | "true" | "yes" | "on"),
                 "seed" => s.seed = value.parse().map_err(|_| SettingsError(format!("seed must be a whole number, not '{value}'")))?,

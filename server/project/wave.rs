@@ -171,7 +171,7 @@ impl WaveView {
         specs.extend(
             factors
                 .iter()
-                .map(|f| ColumnSpec::new(f, ColumnKind::Text, "--factors")),
+                .map(|f| ColumnSpec::new(f, ColumnKind::Text, "--categorical")),
         );
         if let Some(c) = &extra.cost {
             specs.push(ColumnSpec::new(c, ColumnKind::Number, "--cost-column"));

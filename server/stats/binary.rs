@@ -66,21 +66,49 @@ impl From<LinalgError> for FitError {
     }
 }
 
+/// A column left out of the fit because it is, to rounding, a linear combination of the
+/// columns before it (exact collinearity): its coefficient is not estimable.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Alias {
+    /// Column index in the design matrix.
+    pub term: usize,
+    /// The earlier columns it is a combination of (the intercept is column 0).
+    pub combination_of: Vec<usize>,
+}
+
 /// A fitted binary model.
 #[derive(Debug, Clone)]
 pub struct BinaryFit {
+    /// Aliased columns hold 0 (they play no part in predictions).
     pub coef: Array1<f64>,
-    /// Inverse of the (observed) information matrix at the estimate.
+    /// Inverse of the information matrix at the estimate, on the directions the data
+    /// determine (the Moore-Penrose inverse, leaving out [`BinaryFit::weak_directions`]);
+    /// rows and columns of aliased columns are NaN.
     pub cov: Array2<f64>,
     /// The ordinary log-likelihood at the estimate (also for Firth).
     pub log_likelihood: f64,
+    /// The convergence criterion was met and the estimate is a finite, determined point.
     pub converged: bool,
+    /// The convergence criterion (on the score, for Firth also the step) was met, whether
+    /// or not some directions are undetermined.
+    pub criterion_met: bool,
     pub iterations: usize,
-    /// Largest absolute element of the (for Firth: modified) score at the estimate.
+    /// Largest absolute element of the (for Firth: penalised) score at the estimate.
     pub max_score: f64,
+    /// Largest absolute change of a coefficient in the last iteration.
+    pub last_step: f64,
+    /// Columns left out as exact linear combinations of earlier ones.
+    pub aliased: Vec<Alias>,
+    /// Unit vectors in coefficient space (all columns) along which the information
+    /// vanishes: the likelihood keeps rising towards infinity along them (separation), or
+    /// the data do not determine them. Empty for a regular fit.
+    pub weak_directions: Vec<Array1<f64>>,
+    /// Units whose fitted probability is within 1e-8 of 0 or 1 (maximum likelihood only).
+    pub extreme_units: usize,
 }
 
 impl BinaryFit {
+    /// Standard errors from [`BinaryFit::cov`] (NaN where not estimable).
     pub fn se(&self) -> Array1<f64> {
         self.cov.diag().mapv(f64::sqrt)
     }
@@ -88,7 +116,25 @@ impl BinaryFit {
 
 /// Newton iterations stop when the largest score element falls below this.
 pub const SCORE_TOLERANCE: f64 = 1e-10;
+/// A column whose residual sum of squares, after regressing it on the columns before it,
+/// is below this share of its own sum of squares counts as their exact linear combination
+/// (a variance inflation factor above 1e10).
+pub const ALIAS_TOLERANCE: f64 = 1e-10;
+/// Eigenvalues of the information below this share of its largest mark directions that
+/// the data do not determine.
+pub const WEAK_TOLERANCE: f64 = 1e-10;
+/// Fitted probabilities this close to 0 or 1 contribute nothing to the information.
+const EXTREME: f64 = 1e-8;
+/// Firth's fit also stops when a step changes no coefficient by more than this and the
+/// penalised score is below [`FIRTH_LOOSE_SCORE`] (Heinze & Schemper 2002 judge
+/// convergence on both the parameter change and the score).
+const FIRTH_STEP_TOLERANCE: f64 = 1e-10;
+const FIRTH_LOOSE_SCORE: f64 = 1e-6;
 const MAX_ITERATIONS: usize = 200;
+/// Fisher scoring for Firth's score converges only linearly; after this many iterations
+/// the step uses the exact Hessian of the penalised log-likelihood (by central
+/// differences of the analytic penalised score).
+const FIRTH_SCORING_ITERATIONS: usize = 25;
 
 pub fn logistic(eta: f64) -> f64 {
     if eta >= 0.0 {
@@ -109,23 +155,29 @@ fn softplus(x: f64) -> f64 {
 }
 
 /// Fits the chosen model. `x` includes the intercept column.
+///
+/// Columns that are exact linear combinations of earlier ones (to [`ALIAS_TOLERANCE`]) are
+/// left out and reported in [`BinaryFit::aliased`]; directions along which the information
+/// vanishes at the estimate (separation, or data that do not determine them) are reported
+/// in [`BinaryFit::weak_directions`], and such a fit is never `converged`.
 pub fn fit(kind: ModelKind, x: ArrayView2<f64>, y: &[bool]) -> Result<BinaryFit, FitError> {
     check_inputs(x, y)?;
-    match kind {
-        ModelKind::Logit => fit_logit(x, y),
-        ModelKind::Firth => newton(kind, x, y, None, true, SCORE_TOLERANCE),
+    with_independent_columns(x, |xr| match kind {
+        ModelKind::Logit => fit_logit(xr, y),
+        ModelKind::Firth => newton(kind, xr, y, None, true, SCORE_TOLERANCE),
         ModelKind::Probit => {
             // Start from the logit solution scaled by 1/1.6 (Amemiya 1981's rule of thumb).
-            let start = newton(ModelKind::Logit, x, y, None, false, SCORE_TOLERANCE)
+            let start = newton(ModelKind::Logit, xr, y, None, false, SCORE_TOLERANCE)
                 .ok()
                 .filter(|f| f.converged)
                 .map(|f| f.coef / 1.6);
-            newton(kind, x, y, start, false, SCORE_TOLERANCE)
+            newton(kind, xr, y, start, false, SCORE_TOLERANCE)
         }
-    }
+    })
 }
 
-/// Refits from a starting value (used for leave-one-out refits).
+/// Refits from a starting value (used for leave-one-out refits); `start` has one value
+/// per column of `x`.
 pub fn refit(
     kind: ModelKind,
     x: ArrayView2<f64>,
@@ -134,14 +186,103 @@ pub fn refit(
     tolerance: f64,
 ) -> Result<BinaryFit, FitError> {
     check_inputs(x, y)?;
-    newton(
-        kind,
-        x,
-        y,
-        Some(start.clone()),
-        kind == ModelKind::Firth,
-        tolerance,
-    )
+    let (kept, _) = independent_columns(x);
+    let start = start.select(Axis(0), &kept);
+    with_independent_columns(x, |xr| {
+        newton(
+            kind,
+            xr,
+            y,
+            Some(start.clone()),
+            kind == ModelKind::Firth,
+            tolerance,
+        )
+    })
+}
+
+/// Fits on the linearly independent columns of `x` and expands the result to all columns.
+fn with_independent_columns(
+    x: ArrayView2<f64>,
+    fit_on: impl Fn(ArrayView2<f64>) -> Result<BinaryFit, FitError>,
+) -> Result<BinaryFit, FitError> {
+    let (kept, aliased) = independent_columns(x);
+    if aliased.is_empty() {
+        return fit_on(x);
+    }
+    let xr = x.select(Axis(1), &kept);
+    let reduced = fit_on(xr.view())?;
+    let k = x.ncols();
+    let mut coef = Array1::zeros(k);
+    let mut cov = Array2::from_elem((k, k), f64::NAN);
+    for (a, &ja) in kept.iter().enumerate() {
+        coef[ja] = reduced.coef[a];
+        for (b, &jb) in kept.iter().enumerate() {
+            cov[[ja, jb]] = reduced.cov[[a, b]];
+        }
+    }
+    let weak_directions = reduced
+        .weak_directions
+        .iter()
+        .map(|d| {
+            let mut full = Array1::zeros(k);
+            for (a, &ja) in kept.iter().enumerate() {
+                full[ja] = d[a];
+            }
+            full
+        })
+        .collect();
+    Ok(BinaryFit {
+        coef,
+        cov,
+        aliased,
+        weak_directions,
+        ..reduced
+    })
+}
+
+/// The columns to keep and the aliased ones: modified Gram-Schmidt over the columns in
+/// order, a column being aliased when its residual sum of squares is below
+/// [`ALIAS_TOLERANCE`] times its own (Golub & Van Loan, Matrix Computations, 5.2.8).
+pub fn independent_columns(x: ArrayView2<f64>) -> (Vec<usize>, Vec<Alias>) {
+    let mut basis: Vec<Array1<f64>> = Vec::new();
+    let mut kept = Vec::new();
+    let mut aliased = Vec::new();
+    for j in 0..x.ncols() {
+        let column = x.column(j).to_owned();
+        let norm2 = column.dot(&column);
+        let mut r = column.clone();
+        for q in &basis {
+            let c = q.dot(&r);
+            r.scaled_add(-c, q);
+        }
+        let rr = r.dot(&r);
+        if norm2 > 0.0 && rr > ALIAS_TOLERANCE * norm2 {
+            basis.push(r / rr.sqrt());
+            kept.push(j);
+        } else {
+            // Which kept columns it is made of: least squares on them.
+            let xk = x.select(Axis(1), &kept);
+            let gram = xk.t().dot(&xk);
+            let rhs = xk.t().dot(&column);
+            let combination_of = linalg::solve_spd(gram.view(), rhs.view())
+                .map(|c| {
+                    kept.iter()
+                        .zip(c.iter())
+                        .filter(|(&jk, &cj)| {
+                            let size = x.column(jk).dot(&x.column(jk)).sqrt();
+                            (cj * size).abs() > 1e-6 * norm2.sqrt().max(1e-300)
+                        })
+                        .map(|(&jk, _)| jk)
+                        .collect()
+                })
+                .unwrap_or_default();
+            aliased.push(Alias {
+                term: j,
+                combination_of,
+            });
+        }
+    }
+    (kept, aliased)
 }
 
 fn check_inputs(x: ArrayView2<f64>, y: &[bool]) -> Result<(), FitError> {
@@ -263,8 +404,15 @@ fn max_abs(v: ArrayView1<f64>) -> f64 {
     v.iter().fold(0.0f64, |m, x| m.max(x.abs()))
 }
 
-/// Newton-Raphson (Fisher scoring for Firth's modified score) with step halving on the
-/// objective. Stops when the score is below `tolerance` or after a fixed number of iterations.
+/// Newton-Raphson (Fisher scoring for Firth's modified score, then the exact Hessian of
+/// the penalised log-likelihood if scoring is slow) with step halving on the objective.
+///
+/// Convergence: the largest score element below `tolerance`; for Firth also a step that
+/// changes no coefficient by more than 1e-10 with the penalised score below 1e-6 (Heinze
+/// & Schemper 2002). Where the information is singular along some direction the step is
+/// taken in the directions the data determine (the Moore-Penrose inverse), so the other
+/// coefficients still settle; such a fit is reported with its weak directions and never
+/// as converged.
 fn newton(
     kind: ModelKind,
     x: ArrayView2<f64>,
@@ -278,20 +426,28 @@ fn newton(
     // A diverged starting value (e.g. from a separated fit) can make the information
     // singular; start again from the intercept-only value then.
     let mut current = match evaluate(kind, x, y, &beta, firth) {
-        Ok(e) => e,
-        Err(_) => {
+        Ok(e) if e.objective.is_finite() => e,
+        _ => {
             beta = null_start(kind, y, k);
             evaluate(kind, x, y, &beta, firth)?
         }
     };
     let mut iterations = 0;
-    let mut converged = max_abs(current.score.view()) < tolerance;
-    while !converged && iterations < MAX_ITERATIONS {
+    let mut last_step = f64::INFINITY;
+    let met = |score: f64, step: f64| {
+        score < tolerance || (firth && step <= FIRTH_STEP_TOLERANCE && score < FIRTH_LOOSE_SCORE)
+    };
+    let mut criterion_met = max_abs(current.score.view()) < tolerance;
+    while !criterion_met && iterations < MAX_ITERATIONS {
         iterations += 1;
-        // Under separation the information degenerates as the estimates run off; stop
-        // there and report no convergence rather than fail.
-        let Ok(step) = linalg::solve_spd(current.information.view(), current.score.view()) else {
-            break;
+        let hessian = if firth && iterations > FIRTH_SCORING_ITERATIONS {
+            penalised_hessian(kind, x, y, &beta).unwrap_or_else(|| current.information.clone())
+        } else {
+            current.information.clone()
+        };
+        let step = match linalg::solve_spd(hessian.view(), current.score.view()) {
+            Ok(step) => step,
+            Err(_) => pseudo_solve(&hessian, &current.score),
         };
         let mut t = 1.0;
         let mut accepted = false;
@@ -310,22 +466,139 @@ fn newton(
             }
             t *= 0.5;
         }
-        converged = max_abs(current.score.view()) < tolerance;
-        if !accepted || max_abs(step.view()) * t < 1e-15 {
+        last_step = if accepted {
+            max_abs(step.view()) * t
+        } else {
+            0.0
+        };
+        criterion_met = met(max_abs(current.score.view()), last_step);
+        if !accepted || last_step < 1e-15 {
             break;
         }
     }
-    // Without an invertible information the standard errors are unbounded.
-    let cov = linalg::inverse_spd(current.information.view())
-        .unwrap_or_else(|_| Array2::from_elem((k, k), f64::INFINITY));
+    let max_score = max_abs(current.score.view());
+    // Maximum likelihood: units fitted at 0 or 1 carry no information; under separation
+    // the information of the others is singular along the direction the estimate runs off.
+    let eta = x.dot(&beta);
+    let mut w = Array1::zeros(y.len());
+    let mut extreme_units = 0;
+    for i in 0..y.len() {
+        let p = kind.probability(eta[i]);
+        let extreme = !firth && !(EXTREME..=1.0 - EXTREME).contains(&p);
+        if extreme {
+            extreme_units += 1;
+        } else {
+            w[i] = unit_terms(kind, eta[i], y[i]).2;
+        }
+    }
+    let information = if extreme_units > 0 {
+        linalg::weighted_cross_product(x, w.view())
+    } else {
+        current.information.clone()
+    };
+    let largest = symmetric_eigen(&current.information)
+        .map(|(values, _)| values.iter().fold(0.0f64, |m, &v| m.max(v)))
+        .unwrap_or(0.0);
+    let (cov, weak_directions) = determined_inverse(&information, largest);
     Ok(BinaryFit {
         coef: beta,
         cov,
         log_likelihood: current.log_likelihood,
-        converged,
+        converged: criterion_met && weak_directions.is_empty(),
+        criterion_met,
         iterations,
-        max_score: max_abs(current.score.view()),
+        max_score,
+        last_step,
+        aliased: Vec::new(),
+        weak_directions,
+        extreme_units,
     })
+}
+
+/// Eigenvalues and eigenvectors (columns) of a symmetric matrix.
+fn symmetric_eigen(a: &Array2<f64>) -> Option<(Array1<f64>, Array2<f64>)> {
+    use linfa_linalg::eigh::Eigh;
+    if a.iter().any(|v| !v.is_finite()) {
+        return None;
+    }
+    if a.nrows() == 0 {
+        return Some((Array1::zeros(0), Array2::zeros((0, 0))));
+    }
+    a.eigh().ok()
+}
+
+/// The Moore-Penrose inverse of the information on the directions whose eigenvalue is at
+/// least [`WEAK_TOLERANCE`] times `largest`, and the unit eigenvectors of the others.
+fn determined_inverse(information: &Array2<f64>, largest: f64) -> (Array2<f64>, Vec<Array1<f64>>) {
+    let k = information.nrows();
+    let Some((values, vectors)) = symmetric_eigen(information) else {
+        return (
+            Array2::from_elem((k, k), f64::NAN),
+            (0..k)
+                .map(|j| {
+                    let mut e = Array1::zeros(k);
+                    e[j] = 1.0;
+                    e
+                })
+                .collect(),
+        );
+    };
+    let floor = WEAK_TOLERANCE * largest;
+    let mut cov = Array2::zeros((k, k));
+    let mut weak = Vec::new();
+    for (m, &value) in values.iter().enumerate() {
+        let v = vectors.column(m);
+        if value > floor && value > 0.0 {
+            for a in 0..k {
+                for b in 0..k {
+                    cov[[a, b]] += v[a] * v[b] / value;
+                }
+            }
+        } else {
+            weak.push(v.to_owned());
+        }
+    }
+    (cov, weak)
+}
+
+/// Solves H s = g on the directions H determines (eigenvalues above [`WEAK_TOLERANCE`]
+/// times the largest), leaving the others unchanged.
+fn pseudo_solve(h: &Array2<f64>, g: &Array1<f64>) -> Array1<f64> {
+    let largest = symmetric_eigen(h)
+        .map(|(values, _)| values.iter().fold(0.0f64, |m, &v| m.max(v)))
+        .unwrap_or(0.0);
+    let (inverse, _) = determined_inverse(h, largest);
+    if inverse.iter().any(|v| !v.is_finite()) {
+        return Array1::zeros(g.len());
+    }
+    inverse.dot(g)
+}
+
+/// Minus the Hessian of Firth's penalised log-likelihood l(b) + 1/2 log|X'WX|, by central
+/// differences of its analytic gradient (the penalised score), symmetrised; `None` when it
+/// is not positive definite or cannot be evaluated.
+fn penalised_hessian(
+    kind: ModelKind,
+    x: ArrayView2<f64>,
+    y: &[bool],
+    beta: &Array1<f64>,
+) -> Option<Array2<f64>> {
+    let k = beta.len();
+    let mut h = Array2::zeros((k, k));
+    for j in 0..k {
+        let step = 1e-5 * beta[j].abs().max(1.0);
+        let mut up = beta.clone();
+        let mut down = beta.clone();
+        up[j] += step;
+        down[j] -= step;
+        let su = evaluate(kind, x, y, &up, true).ok()?.score;
+        let sd = evaluate(kind, x, y, &down, true).ok()?.score;
+        for a in 0..k {
+            h[[a, j]] = -(su[a] - sd[a]) / (2.0 * step);
+        }
+    }
+    let h = (&h + &h.t()) * 0.5;
+    linalg::cholesky(h.view()).ok().map(|_| h)
 }
 
 /// Intercept at the logit (or probit) of the participation share, slopes zero.
@@ -439,46 +712,203 @@ pub fn auc(scores: &[f64], y: &[bool]) -> Option<f64> {
 }
 
 /// Leave-one-out predictions: each unit's probability from the model refitted without it
-/// (warm-started at the full fit). `None` for a unit whose refit fails.
+/// (warm-started at the full fit). `None` for a unit whose refit fails: an error, a refit
+/// that does not meet its convergence criterion, or a held-out unit whose prediction involves a coefficient the
+/// refit cannot estimate (a column aliased, or a weak direction, among the other units
+/// but not for this unit). Never the full fit's prediction in its place.
 pub fn leave_one_out(
     kind: ModelKind,
     x: ArrayView2<f64>,
     y: &[bool],
     full: &BinaryFit,
 ) -> Vec<Option<f64>> {
+    use rayon::prelude::*;
     let n = y.len();
-    let refit_without = |i: usize| {
+    let refit_without = |i: usize| -> Option<f64> {
         let keep: Vec<usize> = (0..n).filter(|&j| j != i).collect();
         let xs = x.select(Axis(0), &keep);
         let ys: Vec<bool> = keep.iter().map(|&j| y[j]).collect();
         // A looser tolerance suffices: the refits only rank units for the AUC.
-        refit(kind, xs.view(), &ys, &full.coef, 1e-7)
-            .ok()
-            .map(|f| kind.probability(x.row(i).dot(&f.coef)))
+        let f = refit(kind, xs.view(), &ys, &full.coef, 1e-7).ok()?;
+        if !f.criterion_met || !prediction_estimable(&f, xs.view(), x.row(i)) {
+            return None;
+        }
+        Some(kind.probability(x.row(i).dot(&f.coef)))
     };
-    // The refits are independent: share them among the available cores.
-    let threads = std::thread::available_parallelism()
-        .map_or(1, |t| t.get())
-        .min(n.max(1));
-    let chunk = n.div_ceil(threads.max(1)).max(1);
-    let mut out = vec![None; n];
-    std::thread::scope(|scope| {
-        let handles: Vec<_> = (0..n)
-            .step_by(chunk)
-            .map(|start| {
-                let refit_without = &refit_without;
-                scope.spawn(move || {
-                    (start..(start + chunk).min(n))
-                        .map(refit_without)
-                        .collect::<Vec<_>>()
-                })
-            })
+    // The refits are independent: rayon shares them among the cores.
+    (0..n).into_par_iter().map(refit_without).collect()
+}
+
+/// Whether x_i'b is determined by a fit on `xs`: the held-out row obeys each aliasing
+/// relation of the fitted rows and has no component along a weak direction.
+fn prediction_estimable(f: &BinaryFit, xs: ArrayView2<f64>, row: ArrayView1<f64>) -> bool {
+    let size = row.dot(&row).sqrt().max(1.0);
+    for alias in &f.aliased {
+        let kept = &alias.combination_of;
+        let xk = xs.select(Axis(1), kept);
+        let gram = xk.t().dot(&xk);
+        let rhs = xk.t().dot(&xs.column(alias.term));
+        let Ok(c) = linalg::solve_spd(gram.view(), rhs.view()) else {
+            return false;
+        };
+        let implied: f64 = kept.iter().zip(c.iter()).map(|(&j, cj)| cj * row[j]).sum();
+        if (row[alias.term] - implied).abs() > 1e-6 * size {
+            return false;
+        }
+    }
+    f.weak_directions
+        .iter()
+        .all(|d| row.dot(d).abs() <= 1e-6 * size)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::random::Rng;
+
+    /// n rows: intercept, two standard normal columns; y from a logit in the first.
+    fn frame(n: usize, seed: u64) -> (Array2<f64>, Vec<bool>) {
+        let mut rng = Rng::new(seed);
+        let x = Array2::from_shape_fn((n, 3), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
+        let y = (0..n)
+            .map(|i| rng.bernoulli(logistic(0.2 + 0.9 * x[[i, 1]] - 0.5 * x[[i, 2]])))
             .collect();
-        for (h, start) in handles.into_iter().zip((0..n).step_by(chunk)) {
-            if let Ok(values) = h.join() {
-                out[start..start + values.len()].clone_from_slice(&values);
+        (x, y)
+    }
+
+    fn with_column(x: &Array2<f64>, column: impl Fn(usize) -> f64) -> Array2<f64> {
+        let extra = Array2::from_shape_fn((x.nrows(), 1), |(i, _)| column(i));
+        ndarray::concatenate(Axis(1), &[x.view(), extra.view()]).unwrap()
+    }
+
+    #[test]
+    fn an_exactly_collinear_column_is_aliased_and_the_rest_is_the_reduced_fit() {
+        // Common practice (aliased terms in a rank-deficient fit): the model without the
+        // aliased column gives the same coefficients and standard errors for the others.
+        let (x, y) = frame(80, 1);
+        let xc = with_column(&x, |i| 2.0 * x[[i, 1]] - 3.0 * x[[i, 2]] + 1.0);
+        for kind in [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit] {
+            let full = fit(kind, xc.view(), &y).unwrap();
+            let reduced = fit(kind, x.view(), &y).unwrap();
+            assert_eq!(
+                full.aliased,
+                vec![Alias {
+                    term: 3,
+                    combination_of: vec![0, 1, 2]
+                }]
+            );
+            assert!(
+                full.converged && full.weak_directions.is_empty(),
+                "{kind:?}"
+            );
+            assert_eq!(full.coef[3], 0.0);
+            assert!(full.se()[3].is_nan());
+            for j in 0..3 {
+                assert!(
+                    (full.coef[j] - reduced.coef[j]).abs() < 1e-8,
+                    "{kind:?} {j}"
+                );
+                assert!(
+                    (full.se()[j] - reduced.se()[j]).abs() < 1e-8,
+                    "{kind:?} {j}"
+                );
             }
         }
-    });
-    out
+    }
+
+    #[test]
+    fn probit_under_complete_separation_does_not_claim_convergence() {
+        // Albert & Anderson (1984): under complete separation no finite estimate exists.
+        let (x, _) = frame(40, 2);
+        let y: Vec<bool> = (0..40).map(|i| x[[i, 1]] > 0.1).collect();
+        for kind in [ModelKind::Logit, ModelKind::Probit] {
+            let f = fit(kind, x.view(), &y).unwrap();
+            assert!(!f.converged, "{kind:?} claims convergence");
+            assert!(!f.weak_directions.is_empty(), "{kind:?}");
+            assert!(f.extreme_units > 0);
+        }
+        let firth = fit(ModelKind::Firth, x.view(), &y).unwrap();
+        assert!(firth.converged && firth.weak_directions.is_empty());
+        assert!(firth.se().iter().all(|s| s.is_finite() && *s > 0.0));
+    }
+
+    #[test]
+    fn a_dummy_only_one_participant_has_is_a_weak_direction_and_the_rest_settles() {
+        // Quasi-complete separation by one unit: its dummy runs off to infinity; the
+        // other coefficients converge to the fit without that unit (common practice).
+        let (x, mut y) = frame(120, 3);
+        let lone = (0..120).find(|&i| y[i]).unwrap();
+        y[lone] = true;
+        let xd = with_column(&x, |i| f64::from(u8::from(i == lone)));
+        let f = fit(ModelKind::Logit, xd.view(), &y).unwrap();
+        assert!(!f.converged && f.criterion_met);
+        assert_eq!(f.weak_directions.len(), 1);
+        let d = &f.weak_directions[0];
+        assert!(d[3].abs() > 0.99, "{d:?}");
+        let keep: Vec<usize> = (0..120).filter(|&i| i != lone).collect();
+        let xs = x.select(Axis(0), &keep);
+        let ys: Vec<bool> = keep.iter().map(|&i| y[i]).collect();
+        let without = fit(ModelKind::Logit, xs.view(), &ys).unwrap();
+        for j in 0..3 {
+            assert!((f.coef[j] - without.coef[j]).abs() < 1e-6, "{j}");
+            assert!((f.se()[j] - without.se()[j]).abs() < 1e-6, "{j}");
+        }
+        // Leaving out the lone unit, its prediction rests on the dummy the others
+        // cannot estimate: no prediction, not the full fit's.
+        let loo = leave_one_out(ModelKind::Logit, xd.view(), &y, &f);
+        assert_eq!(loo.len(), 120);
+        assert!(loo[lone].is_none());
+        assert!(loo.iter().filter(|p| p.is_some()).count() >= 118);
+    }
+
+    #[test]
+    fn leave_one_out_predictions_equal_explicit_refits() {
+        // Hand computation: refit without unit i from scratch and predict it.
+        let (x, y) = frame(30, 4);
+        let full = fit(ModelKind::Logit, x.view(), &y).unwrap();
+        let loo = leave_one_out(ModelKind::Logit, x.view(), &y, &full);
+        for i in [0, 7, 29] {
+            let keep: Vec<usize> = (0..30).filter(|&j| j != i).collect();
+            let xs = x.select(Axis(0), &keep);
+            let ys: Vec<bool> = keep.iter().map(|&j| y[j]).collect();
+            let f = fit(ModelKind::Logit, xs.view(), &ys).unwrap();
+            let p = logistic(x.row(i).dot(&f.coef));
+            assert!((loo[i].unwrap() - p).abs() < 1e-6, "{i}");
+        }
+    }
+
+    #[test]
+    fn firth_on_a_large_separated_frame_meets_its_criterion() {
+        // 5,000 units separated at x1 = 0.3: Fisher scoring alone stopped after 200
+        // iterations with a penalised score of 1.9e-6 and reported no convergence; the
+        // exact penalised Hessian (Heinze & Schemper 2002's criterion on score and step)
+        // settles it. The penalised score itself is checked here.
+        let mut rng = Rng::new(9);
+        let n = 5000;
+        let x = Array2::from_shape_fn((n, 3), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
+        let y: Vec<bool> = (0..n).map(|i| x[[i, 1]] > 0.3).collect();
+        let f = fit(ModelKind::Firth, x.view(), &y).unwrap();
+        assert!(
+            f.converged,
+            "iterations {} score {:e}",
+            f.iterations, f.max_score
+        );
+        assert!(f.iterations < MAX_ITERATIONS);
+        let e = evaluate(ModelKind::Firth, x.view(), &y, &f.coef, true).unwrap();
+        assert!(max_abs(e.score.view()) < FIRTH_LOOSE_SCORE);
+        assert!(f.se().iter().all(|s| s.is_finite() && *s > 0.0));
+    }
+
+    #[test]
+    fn auc_of_a_small_example_by_hand() {
+        // Hand count: pairs (participant, non-participant) with the participant higher,
+        // ties one half: scores 0.9, 0.4 (1) vs 0.4, 0.2, 0.1 (0): (3 + 2.5) / 6.
+        let auc = auc(
+            &[0.9, 0.4, 0.4, 0.2, 0.1],
+            &[true, true, false, false, false],
+        )
+        .unwrap();
+        assert!((auc - 5.5 / 6.0).abs() < 1e-15);
+        assert_eq!(super::auc(&[0.1, 0.2], &[true, true]), None);
+    }
 }

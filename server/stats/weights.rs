@@ -83,6 +83,35 @@ pub struct CbpsFit {
     pub iterations: usize,
     /// Largest absolute balance condition (mean over units) at the solution.
     pub max_imbalance: f64,
+    /// Columns whose balance condition no weighting of participants can meet: every
+    /// participant has the same value and the universe mean differs (e.g. a category level
+    /// without participants).
+    pub unreachable: Vec<usize>,
+    /// The over-identified fit ended where it started (no step lowered the criterion), so
+    /// its weights are those of the starting logit.
+    pub stayed_at_start: bool,
+}
+
+/// Columns of `x` whose universe mean participants cannot reproduce with any positive
+/// weights because they all share one value that differs from it.
+pub fn unreachable_columns(x: ArrayView2<f64>, t: &[bool]) -> Vec<usize> {
+    let n = t.len() as f64;
+    (0..x.ncols())
+        .filter(|&j| {
+            let column = x.column(j);
+            let mut participants = column.iter().zip(t).filter(|(_, &ti)| ti).map(|(v, _)| *v);
+            let Some(first) = participants.next() else {
+                return false;
+            };
+            let size = column
+                .iter()
+                .fold(0.0f64, |m, v| m.max(v.abs()))
+                .max(1e-300);
+            let constant = participants.all(|v| (v - first).abs() <= 1e-12 * size);
+            let mean = column.sum() / n;
+            constant && (mean - first).abs() > 1e-9 * size
+        })
+        .collect()
 }
 
 /// Just-identified covariate-balancing propensity score (Imai & Ratkovic 2014, JRSS B 76,
@@ -159,12 +188,15 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
     let max_imbalance = balance_conditions(x, t, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
+    let unreachable = unreachable_columns(x, t);
     Ok(CbpsFit {
         coef: b,
         propensity,
-        converged,
+        converged: converged && unreachable.is_empty(),
         iterations,
         max_imbalance,
+        unreachable,
+        stayed_at_start: false,
     })
 }
 
@@ -201,17 +233,24 @@ pub fn cbps_over_identified(
         .filter(|f| f.converged)
         .map(|f| f.coef);
     let b0 = just.unwrap_or_else(|| start.clone());
-    let (coef, converged, iterations) = bfgs(&objective, b0, 500, 1e-8);
+    let (coef, converged, iterations) = bfgs(&objective, b0.clone(), 500, 1e-8);
     let propensity: Vec<f64> = x.dot(&coef).iter().map(|&e| logistic(e)).collect();
     let max_imbalance = balance_conditions(x, t, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
+    // BFGS returns its start when no step lowers the criterion; that is a solution only
+    // if the gradient already vanishes there.
+    let (q0, g0) = objective(&b0);
+    let optimal_at_start = q0.is_finite() && g0.iter().all(|v| v.abs() < 1e-8);
+    let stayed_at_start = !optimal_at_start && (&coef - &b0).iter().all(|d| *d == 0.0);
     Ok(CbpsFit {
         coef,
         propensity,
-        converged,
+        converged: converged && !stayed_at_start,
         iterations,
         max_imbalance,
+        unreachable: unreachable_columns(x, t),
+        stayed_at_start,
     })
 }
 

@@ -150,6 +150,10 @@ impl SettingsForm {
                     "Leave out countries with missing values",
                 ),
                 (MissingRule::MedianFill, "Fill with median + missing flag"),
+                (
+                    MissingRule::FillAndBalance,
+                    "Fill with median + missing flag, and balance the flags",
+                ),
             ]
             .into_iter()
             .map(|(k, label)| Choice {

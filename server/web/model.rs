@@ -14,20 +14,10 @@ use super::format::Fmt;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
-use crate::analysis::participation::{fit, FitReport};
+use crate::analysis::participation::{fit, Coefficient, FitReport};
+use crate::analysis::settings::{ModelKind, Settings};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
-
-/// A coefficient row as shown: odds ratios and 95% intervals for the logit models.
-pub struct CoefficientRow {
-    pub term: String,
-    pub coef: f64,
-    pub se: f64,
-    pub z: f64,
-    pub odds_ratio: Option<f64>,
-    pub low: f64,
-    pub high: f64,
-}
 
 #[derive(Template)]
 #[template(path = "model.html")]
@@ -37,7 +27,9 @@ struct ModelPage<'a> {
     form: SettingsForm,
     f: Fmt,
     r: &'a FitReport,
-    rows: Vec<CoefficientRow>,
+    rows: &'a [Coefficient],
+    /// The same view with Firth's model, offered when the model warns of separation.
+    firth_query: Option<String>,
     propensity_chart: String,
     overlap_chart: String,
     cautions: &'a [Caution],
@@ -53,26 +45,25 @@ fn compute(
     Ok((form, r))
 }
 
-/// Coefficient rows with z statistics, 95% intervals (normal approximation) and, for the
-/// logit models, odds ratios exp(b) (the intercept has none).
-pub fn coefficient_rows(r: &FitReport) -> Vec<CoefficientRow> {
-    let logit = r.model.kind != "probit";
-    r.model
-        .terms
-        .iter()
-        .zip(&r.model.coef)
-        .zip(&r.model.se)
-        .enumerate()
-        .map(|(j, ((term, &coef), &se))| CoefficientRow {
-            term: term.clone(),
-            coef,
-            se,
-            z: coef / se,
-            odds_ratio: (logit && j > 0).then(|| coef.exp()),
-            low: coef - 1.959_963_984_540_054 * se,
-            high: coef + 1.959_963_984_540_054 * se,
-        })
-        .collect()
+/// The settings' query string with the Firth model, when the fitted model shows separation.
+pub fn firth_query(r: &FitReport) -> Option<String> {
+    (r.model.separation && r.settings.model != ModelKind::Firth).then(|| {
+        Settings {
+            model: ModelKind::Firth,
+            wave: r.settings.wave.or(r.wave),
+            ..r.settings.clone()
+        }
+        .to_query()
+    })
+}
+
+/// A number for the CSV, or the words "not estimable" where the model cannot estimate it.
+fn estimable_cell(x: Option<f64>, c: &Coefficient) -> String {
+    match x {
+        Some(v) if v.is_finite() => v.to_string(),
+        _ if c.not_estimable.is_some() => "not estimable".to_string(),
+        _ => String::new(),
+    }
 }
 
 pub async fn page(
@@ -85,7 +76,8 @@ pub async fn page(
         nav_query: form.query.clone(),
         form,
         f: Fmt,
-        rows: coefficient_rows(&r),
+        rows: &r.model.coefficients,
+        firth_query: firth_query(&r),
         propensity_chart: charts::model::propensity_vs_weight(&r),
         overlap_chart: charts::model::overlap(&r),
         r: &r,
@@ -125,19 +117,33 @@ pub async fn artifact(
                     "coefficient",
                     "std_error",
                     "z",
-                    "odds_ratio",
                     "ci95_low",
                     "ci95_high",
+                    "odds_ratio",
+                    "odds_ratio_ci95_low",
+                    "odds_ratio_ci95_high",
+                    "not_estimable_because",
                 ],
-                coefficient_rows(&r).into_iter().map(|c| {
+                r.model.coefficients.iter().map(|c| {
+                    let odds = |x: Option<f64>| {
+                        if r.model.kind == "probit" || c.term == crate::analysis::design::INTERCEPT
+                        {
+                            String::new()
+                        } else {
+                            estimable_cell(x, c)
+                        }
+                    };
                     vec![
-                        c.term,
-                        cell(Some(c.coef)),
-                        cell(Some(c.se)),
-                        cell(Some(c.z)),
-                        cell(c.odds_ratio),
-                        cell(Some(c.low)),
-                        cell(Some(c.high)),
+                        c.term.clone(),
+                        estimable_cell(c.coef, c),
+                        estimable_cell(c.se, c),
+                        estimable_cell(c.z, c),
+                        estimable_cell(c.ci95_low, c),
+                        estimable_cell(c.ci95_high, c),
+                        odds(c.odds_ratio),
+                        odds(c.odds_ratio_low),
+                        odds(c.odds_ratio_high),
+                        c.not_estimable.clone().unwrap_or_default(),
                     ]
                 }),
             ),

@@ -13,9 +13,9 @@ use super::context::{off_thread_heavy, settings_from_query, Query as PageQuery};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::impact::{side_by_side, Cell};
-use super::model::{coefficient_rows, CoefficientRow};
 use super::state::AppState;
 use crate::analysis::cautions::{Caution, STANDING};
+use crate::analysis::participation::Coefficient;
 use crate::analysis::report::{report, Report};
 use crate::analysis::Settings;
 use crate::charts;
@@ -31,7 +31,7 @@ struct ReportPage<'a> {
     f: Fmt,
     css: &'static str,
     cautions: &'a [Caution],
-    coefficients: Vec<CoefficientRow>,
+    coefficients: Vec<Coefficient>,
     impact_table: Vec<(String, Vec<Cell>)>,
     coverage_chart: String,
     propensity_chart: String,
@@ -54,7 +54,11 @@ pub fn render(project: &Project, settings: &Settings) -> Result<String, String> 
         f: Fmt,
         css: CSS,
         cautions: &STANDING,
-        coefficients: r.fit.as_ref().map(coefficient_rows).unwrap_or_default(),
+        coefficients: r
+            .fit
+            .as_ref()
+            .map(|f| f.model.coefficients.clone())
+            .unwrap_or_default(),
         impact_table: r
             .impact
             .as_ref()

@@ -84,6 +84,8 @@ pub async fn artifact(
                     cell(t.outcome.effective_n),
                     cell(t.outcome.max_abs_smd),
                     cell(t.outcome.max_weight_share),
+                    u8::from(t.outcome.worse_than_none).to_string(),
+                    t.outcome.fell_back_to.unwrap_or_default().to_string(),
                     t.outcome.error.clone().unwrap_or_default(),
                 ]
             });
@@ -95,6 +97,8 @@ pub async fn artifact(
                     cell(g.outcome.effective_n),
                     cell(g.outcome.max_abs_smd),
                     cell(g.outcome.max_weight_share),
+                    u8::from(g.outcome.worse_than_none).to_string(),
+                    g.outcome.fell_back_to.unwrap_or_default().to_string(),
                     g.outcome.error.clone().unwrap_or_default(),
                 ]
             });
@@ -108,6 +112,8 @@ pub async fn artifact(
                         "effective_n",
                         "max_abs_smd",
                         "max_weight_share",
+                        "worse_than_no_weighting",
+                        "fell_back_to",
                         "error",
                     ],
                     trims.chain(grid),
