@@ -7,6 +7,7 @@ pub mod coverage;
 pub mod design;
 pub mod impact;
 pub mod microdata;
+pub mod multilevel;
 pub mod overview;
 pub mod participation;
 pub mod planner;
