@@ -507,20 +507,26 @@ impl Grouped {
     }
 }
 
-fn log1pexp(eta: f64) -> f64 {
-    if eta > 0.0 {
-        eta + (-eta).exp().ln_1p()
+/// p = 1 / (1 + e^-eta) and log(1 + e^eta) from one exponential.
+#[inline]
+fn logistic_parts(eta: f64) -> (f64, f64) {
+    let t = (-eta.abs()).exp();
+    if eta >= 0.0 {
+        (1.0 / (1.0 + t), eta + t.ln_1p())
     } else {
-        eta.exp().ln_1p()
+        (t / (1.0 + t), t.ln_1p())
     }
 }
 
-/// One country's contribution at (b, tau): the conditional mode, the curvature and the
-/// log-likelihood approximation, plus the Laplace gradient pieces when asked.
+/// One country's contribution at (b, tau).
 struct Country {
     mode: f64,
     curvature: f64,
     log_lik: f64,
+    /// Laplace gradient over (b, log tau), when asked.
+    grad: Vec<f64>,
+    /// Approximate Hessian of g at the mode over (b, log tau) (row-major), when asked.
+    hess: Vec<f64>,
 }
 
 /// The per-country work of the logistic model.
@@ -537,33 +543,62 @@ impl Logistic<'_> {
         let mut s = 0.0;
         for ((e, yi), wi) in eta0.iter().zip(y).zip(w) {
             let eta = e + u;
-            s += wi * (yi * eta - log1pexp(eta));
+            s += wi * (yi * eta - logistic_parts(eta).1);
         }
         s - u * u / (2.0 * tau2)
     }
 
-    fn country(&self, eta0: &[f64], y: &[f64], w: &[f64], tau2: f64, start: f64) -> Country {
-        let mut u = start;
-        let mut gu = self.g(eta0, y, w, u, tau2);
-        for _ in 0..100 {
+    /// Newton's method for the mode of g (concave), warm-started; each pass gives g, its
+    /// first two derivatives at the current point.
+    fn country(
+        &self,
+        j: usize,
+        beta: &[f64],
+        tau2: f64,
+        start: f64,
+        want: bool,
+        want_hess: bool,
+    ) -> Country {
+        let d = self.data;
+        let p = d.p;
+        let (a, b) = (d.start[j], d.start[j + 1]);
+        let y = &d.y[a..b];
+        let w = &d.w[a..b];
+        let eta0: Vec<f64> = (a..b)
+            .map(|r| {
+                d.x[r * p..(r + 1) * p]
+                    .iter()
+                    .zip(beta)
+                    .map(|(x, c)| x * c)
+                    .sum::<f64>()
+            })
+            .collect();
+        let pass = |u: f64| -> (f64, f64, f64) {
+            let mut gu = -u * u / (2.0 * tau2);
             let mut d1 = -u / tau2;
             let mut h = 1.0 / tau2;
             for ((e, yi), wi) in eta0.iter().zip(y).zip(w) {
-                let p = 1.0 / (1.0 + (-(e + u)).exp());
-                d1 += wi * (yi - p);
-                h += wi * p * (1.0 - p);
+                let eta = e + u;
+                let (pr, l1p) = logistic_parts(eta);
+                gu += wi * (yi * eta - l1p);
+                d1 += wi * (yi - pr);
+                h += wi * pr * (1.0 - pr);
             }
+            (gu, d1, h)
+        };
+        let mut u = start;
+        let (mut gu, mut d1, mut h) = pass(u);
+        for _ in 0..100 {
             let mut step = d1 / h;
-            if step.abs() < 1e-12 * (1.0 + u.abs()) {
+            if step.abs() < 1e-10 * (1.0 + u.abs()) {
                 break;
             }
             let mut accepted = false;
             for _ in 0..40 {
-                let trial = u + step;
-                let gt = self.g(eta0, y, w, trial, tau2);
-                if gt >= gu - 1e-12 * gu.abs().max(1.0) {
-                    u = trial;
-                    gu = gt;
+                let trial = pass(u + step);
+                if trial.0 >= gu - 1e-12 * gu.abs().max(1.0) {
+                    u += step;
+                    (gu, d1, h) = trial;
                     accepted = true;
                     break;
                 }
@@ -573,38 +608,135 @@ impl Logistic<'_> {
                 break;
             }
         }
-        // Curvature at the mode.
-        let mut hm = 1.0 / tau2;
-        for (e, wi) in eta0.iter().zip(w) {
-            let p = 1.0 / (1.0 + (-(e + u)).exp());
-            hm += wi * p * (1.0 - p);
-        }
         let log_lik = if self.agq <= 1 {
-            gu - 0.5 * (tau2 * hm).ln()
+            gu - 0.5 * (tau2 * h).ln()
         } else {
             // Adaptive Gauss-Hermite: integral ~ sqrt(2/h) sum_k w_k e^{z_k^2} e^{G(u + sqrt(2/h) z_k)}
             // with G = g - log(2 pi tau^2) / 2.
-            let scale = (2.0 / hm).sqrt();
+            let scale = (2.0 / h).sqrt();
             let terms: Vec<f64> = self
                 .nodes
                 .0
                 .iter()
                 .zip(&self.nodes.1)
-                .map(|(z, wk)| wk.ln() + z * z + self.g(eta0, y, w, u + scale * z, tau2) - gu)
+                .map(|(z, wk)| wk.ln() + z * z + self.g(&eta0, y, w, u + scale * z, tau2) - gu)
                 .collect();
             let mx = terms.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
             let sum: f64 = terms.iter().map(|t| (t - mx).exp()).sum();
             gu + mx + sum.ln() + scale.ln() - 0.5 * (2.0 * std::f64::consts::PI * tau2).ln()
         };
+        let mut grad = Vec::new();
+        let mut hess = Vec::new();
+        if want {
+            let k = p + 1;
+            let mut sqx = vec![0.0; p];
+            let mut svx = vec![0.0; p];
+            let mut score = vec![0.0; p];
+            let mut vxx = vec![0.0; p * p];
+            let mut sq = 0.0;
+            for (i, r) in (a..b).enumerate() {
+                let row = &d.x[r * p..(r + 1) * p];
+                let pr = logistic_parts(eta0[i] + u).0;
+                let wi = w[i];
+                let v = wi * pr * (1.0 - pr);
+                let q = v * (1.0 - 2.0 * pr);
+                let resid = wi * (y[i] - pr);
+                sq += q;
+                for m in 0..p {
+                    sqx[m] += q * row[m];
+                    svx[m] += v * row[m];
+                    score[m] += resid * row[m];
+                    if want_hess {
+                        let vm = v * row[m];
+                        for l in 0..=m {
+                            vxx[m * p + l] += vm * row[l];
+                        }
+                    }
+                }
+            }
+            grad = vec![0.0; k];
+            for m in 0..p {
+                let du = -svx[m] / h;
+                let dh = sqx[m] + sq * du;
+                grad[m] = score[m] - 0.5 * dh / h;
+            }
+            let du_ds = 2.0 * u / (tau2 * h);
+            let dh_ds = -2.0 / tau2 + sq * du_ds;
+            grad[p] = u * u / tau2 - 1.0 - 0.5 * dh_ds / h;
+            // Hessian of g(u-hat(b, s); b, s), leaving out the curvature term's derivatives.
+            hess = vec![0.0; k * k];
+            for m in 0..p {
+                for l in 0..=m {
+                    let v = -vxx[m * p + l] + svx[m] * svx[l] / h;
+                    hess[m * k + l] = v;
+                    hess[l * k + m] = v;
+                }
+                let c = -svx[m] * du_ds;
+                hess[m * k + p] = c;
+                hess[p * k + m] = c;
+            }
+            hess[p * k + p] = 4.0 * u * u / (tau2 * tau2 * h) - 2.0 * u * u / tau2;
+        }
         Country {
             mode: u,
-            curvature: hm,
+            curvature: h,
             log_lik,
+            grad,
+            hess,
         }
     }
 
     /// Approximate log-likelihood at params = (b, log tau), updating the modes (warm start);
-    /// with `gradient`, also the Laplace gradient.
+    /// with `gradient`, also the Laplace gradient, and with `hessian` an approximate Hessian.
+    fn evaluate_full(
+        &self,
+        params: &[f64],
+        modes: &mut [f64],
+        curvature: &mut [f64],
+        gradient: Option<&mut [f64]>,
+        hessian: Option<&mut Array2<f64>>,
+    ) -> f64 {
+        use rayon::prelude::*;
+        let d = self.data;
+        let p = d.p;
+        let k = p + 1;
+        let beta = &params[..p];
+        let tau2 = (2.0 * params[p]).exp();
+        let want = gradient.is_some() || hessian.is_some();
+        let want_hess = hessian.is_some();
+        let results: Vec<Option<Country>> = (0..modes.len())
+            .into_par_iter()
+            .map(|j| {
+                (d.start[j + 1] > d.start[j])
+                    .then(|| self.country(j, beta, tau2, modes[j], want, want_hess))
+            })
+            .collect();
+        let mut total = 0.0;
+        let mut grad = vec![0.0; k];
+        let mut hess = Array2::<f64>::zeros((k, k));
+        for (j, c) in results.into_iter().enumerate() {
+            let Some(c) = c else { continue };
+            modes[j] = c.mode;
+            curvature[j] = c.curvature;
+            total += c.log_lik;
+            if want {
+                for m in 0..k {
+                    grad[m] += c.grad[m];
+                    for l in 0..k {
+                        hess[[m, l]] += c.hess[m * k + l];
+                    }
+                }
+            }
+        }
+        if let Some(g) = gradient {
+            g.copy_from_slice(&grad);
+        }
+        if let Some(h) = hessian {
+            *h = hess;
+        }
+        total
+    }
+
     fn evaluate(
         &self,
         params: &[f64],
@@ -612,66 +744,7 @@ impl Logistic<'_> {
         curvature: &mut [f64],
         gradient: Option<&mut [f64]>,
     ) -> f64 {
-        let d = self.data;
-        let p = d.p;
-        let beta = &params[..p];
-        let tau2 = (2.0 * params[p]).exp();
-        let want = gradient.is_some();
-        let mut grad = vec![0.0; p + 1];
-        let mut total = 0.0;
-        let mut eta0 = Vec::new();
-        let mut sqx = vec![0.0; p];
-        let mut svx = vec![0.0; p];
-        let mut score = vec![0.0; p];
-        for j in 0..modes.len() {
-            let (a, b) = (d.start[j], d.start[j + 1]);
-            if a == b {
-                continue;
-            }
-            eta0.clear();
-            for r in a..b {
-                let row = &d.x[r * p..(r + 1) * p];
-                eta0.push(row.iter().zip(beta).map(|(x, c)| x * c).sum::<f64>());
-            }
-            let c = self.country(&eta0, &d.y[a..b], &d.w[a..b], tau2, modes[j]);
-            modes[j] = c.mode;
-            curvature[j] = c.curvature;
-            total += c.log_lik;
-            if want {
-                let u = c.mode;
-                let h = c.curvature;
-                sqx.iter_mut().for_each(|v| *v = 0.0);
-                svx.iter_mut().for_each(|v| *v = 0.0);
-                score.iter_mut().for_each(|v| *v = 0.0);
-                let mut sq = 0.0;
-                for (k, r) in (a..b).enumerate() {
-                    let row = &d.x[r * p..(r + 1) * p];
-                    let pr = 1.0 / (1.0 + (-(eta0[k] + u)).exp());
-                    let wi = d.w[r];
-                    let v = wi * pr * (1.0 - pr);
-                    let q = v * (1.0 - 2.0 * pr);
-                    let resid = wi * (d.y[r] - pr);
-                    sq += q;
-                    for m in 0..p {
-                        sqx[m] += q * row[m];
-                        svx[m] += v * row[m];
-                        score[m] += resid * row[m];
-                    }
-                }
-                for m in 0..p {
-                    let du = -svx[m] / h;
-                    let dh = sqx[m] + sq * du;
-                    grad[m] += score[m] - 0.5 * dh / h;
-                }
-                let du_ds = 2.0 * u / (tau2 * h);
-                let dh_ds = -2.0 / tau2 + sq * du_ds;
-                grad[p] += u * u / tau2 - 1.0 - 0.5 * dh_ds / h;
-            }
-        }
-        if let Some(g) = gradient {
-            g.copy_from_slice(&grad);
-        }
-        total
+        self.evaluate_full(params, modes, curvature, gradient, None)
     }
 }
 
@@ -733,7 +806,7 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
         };
         let step = step.mapv(|v| v.clamp(-5.0, 5.0));
         beta += &step;
-        if step.iter().all(|s| s.abs() < 1e-8) {
+        if step.iter().all(|s| s.abs() < 1e-4) {
             break;
         }
     }
@@ -745,9 +818,15 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     let mut params: Vec<f64> = beta.iter().copied().chain([0.5f64.ln()]).collect();
     let mut modes = vec![0.0; data.n_groups];
     let mut curvature = vec![0.0; data.n_groups];
+    let approximate = |prm: &[f64], modes: &mut [f64], curv: &mut [f64]| {
+        let mut h = Array2::<f64>::zeros((p + 1, p + 1));
+        laplace.evaluate_full(prm, modes, curv, None, Some(&mut h));
+        h
+    };
     let (params, converged) = newton(
         &mut params,
         |prm, modes, curv, grad| laplace.evaluate(prm, modes, curv, grad),
+        Some(&approximate),
         &mut modes,
         &mut curvature,
     );
@@ -789,7 +868,7 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
         value
     };
     let mut start = params;
-    let (prm, ok) = newton(&mut start, numeric, &mut modes, &mut curvature);
+    let (prm, ok) = newton(&mut start, numeric, None, &mut modes, &mut curvature);
     finish(
         &quad,
         prm,
@@ -868,6 +947,9 @@ fn finish(
     })
 }
 
+/// An approximate Hessian at the parameters (for Newton steps).
+type Approximate<'a> = dyn Fn(&[f64], &mut [f64], &mut [f64]) -> Array2<f64> + 'a;
+
 type Objective<'a> = dyn Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64 + 'a;
 
 /// Hessian by central differences of the gradient.
@@ -909,6 +991,7 @@ fn numeric_hessian(
 fn newton(
     params: &mut Vec<f64>,
     objective: impl Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64,
+    approximate: Option<&Approximate>,
     modes: &mut [f64],
     curvature: &mut [f64],
 ) -> (Vec<f64>, bool) {
@@ -917,8 +1000,14 @@ fn newton(
     let mut value = objective(params, modes, curvature, Some(&mut grad));
     let mut converged = false;
     for _ in 0..100 {
-        let hessian = numeric_hessian(params, &objective, modes, curvature);
-        objective(params, modes, curvature, None);
+        let hessian = match approximate {
+            Some(f) => f(params, modes, curvature),
+            None => {
+                let h = numeric_hessian(params, &objective, modes, curvature);
+                objective(params, modes, curvature, None);
+                h
+            }
+        };
         let neg = -&hessian;
         let g = Array1::from(grad.clone());
         let mut lambda = 0.0;
