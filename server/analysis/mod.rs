@@ -11,6 +11,7 @@ pub mod multilevel;
 pub mod overview;
 pub mod participation;
 pub mod planner;
+pub mod projection;
 pub mod report;
 pub mod sensitivity;
 pub mod settings;
