@@ -330,3 +330,145 @@ fn bad_requests_get_a_message_not_a_panic() {
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("nothing"), "{}", out.stderr);
 }
+
+/// A known universe: 80 countries, true country means 5 + 0.8 z_j + u_j (u_j ~ N(0, 0.3^2)),
+/// participation more likely for high z (logit 1.2 z), 60 respondents per participant with
+/// unit-variance noise. The target is the mean of the 80 true country means. Over 100
+/// universes the projection's 95% interval should cover it at close to 95% (binomial SD
+/// 2.2 points; accepted 86-100%), and its mean absolute error should be below that of the
+/// participants' unweighted mean (common practice for a simulation check).
+#[test]
+fn projection_recovers_a_known_universe() {
+    use gapwise::analysis::projection::{projection, ProjectionSettings};
+    use gapwise::analysis::Settings;
+    use gapwise::project::{Project, WaveView};
+    use gapwise::stats::random::Rng;
+    use std::fmt::Write as _;
+
+    let manifest = r#"
+title = "Simulated universe"
+[columns]
+code = "iso"
+name = "name"
+wave = "wave"
+participation = "took_part"
+[indicators]
+numeric = ["z", "noise"]
+[microdata]
+country = "iso"
+wave = "wave"
+design_weight = "dweight"
+variables = ["y"]
+"#;
+    let replicates = 100;
+    let mut covered = 0;
+    let mut error_projection = 0.0;
+    let mut error_participants = 0.0;
+    let dir = TempDir::new("known-universe");
+    dir.write("project.toml", manifest);
+    for rep in 0..replicates {
+        let mut rng = Rng::stream(17, rep);
+        let mut frame = String::from("iso,name,wave,took_part,z,noise\n");
+        let mut micro = String::from("iso,wave,dweight,y\n");
+        let mut truth = 0.0;
+        let mut part_means = Vec::new();
+        for j in 0..80 {
+            let z = rng.normal();
+            let mu = 5.0 + 0.8 * z + 0.3 * rng.normal();
+            truth += mu / 80.0;
+            let took_part = rng.bernoulli(1.0 / (1.0 + (-1.2 * z).exp()));
+            let code = format!(
+                "X{}{}",
+                (b'A' + (j / 26) as u8) as char,
+                (b'A' + (j % 26) as u8) as char
+            );
+            let _ = writeln!(
+                frame,
+                "{code},Country {j},1,{},{z:.6},{:.6}",
+                u8::from(took_part),
+                rng.normal()
+            );
+            if took_part {
+                let mut s = 0.0;
+                for _ in 0..60 {
+                    let y = mu + rng.normal();
+                    s += y;
+                    let _ = writeln!(micro, "{code},1,1.0,{y:.6}");
+                }
+                part_means.push(s / 60.0);
+            }
+        }
+        dir.write("frame.csv", &frame);
+        dir.write("microdata.csv", &micro);
+        let project = Project::load(dir.path()).unwrap_or_else(|p| panic!("{p:?}"));
+        let view = WaveView::new(&project, 1).unwrap();
+        let settings = Settings {
+            wave: Some(1),
+            seed: 1000 + rep,
+            ..Settings::default()
+        };
+        let r = projection(
+            &project,
+            &view,
+            &settings,
+            &ProjectionSettings {
+                outcome: "y".into(),
+                predictors: vec![],
+            },
+        )
+        .unwrap();
+        assert_eq!(r.countries.len(), 80);
+        assert_eq!(r.n_participants, part_means.len());
+        if r.universe_low <= truth && truth <= r.universe_high {
+            covered += 1;
+        }
+        error_projection += (r.universe_estimate - truth).abs();
+        let naive = part_means.iter().sum::<f64>() / part_means.len() as f64;
+        assert!((naive - r.participants_mean).abs() < 1e-5);
+        error_participants += (naive - truth).abs();
+    }
+    let rate = covered as f64 / replicates as f64;
+    assert!((0.86..=1.0).contains(&rate), "coverage {rate}");
+    assert!(
+        error_projection < 0.7 * error_participants,
+        "mean abs error {} vs participants' {}",
+        error_projection / replicates as f64,
+        error_participants / replicates as f64
+    );
+    println!(
+        "coverage {rate}; mean absolute error {:.4} (projection) vs {:.4} (participants)",
+        error_projection / replicates as f64,
+        error_participants / replicates as f64
+    );
+}
+
+#[test]
+fn projection_page_twin_and_download_agree() {
+    // Common practice: the page, its JSON twin and the CSV render one result.
+    let addr = start_server(&demo_dir());
+    let query = "outcome=trust_parliament&predictor=age";
+    let page = http(addr, "GET", &format!("/projection?{query}"), &[]);
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert!(page
+        .body
+        .contains("What would the whole eligible universe say?"));
+    let twin = http(addr, "GET", &format!("/api/projection?{query}"), &[]);
+    assert_eq!(twin.status, 200);
+    let r: Value = serde_json::from_str(&twin.body).unwrap();
+    let estimate = f(&r["universe_estimate"]);
+    let (low, high) = (f(&r["universe_low"]), f(&r["universe_high"]));
+    assert!(low < estimate && estimate < high, "{low} {estimate} {high}");
+    assert!(page.body.contains(&format!("{estimate:.3}")));
+    assert!(page.body.contains(&format!("seed {}", r["seed"])));
+    let countries = r["countries"].as_array().unwrap();
+    let csv = http(addr, "GET", &format!("/projection/table.csv?{query}"), &[]);
+    assert_eq!(csv.status, 200);
+    assert_eq!(csv.body.lines().count(), countries.len() + 1);
+    assert!(!r["regions"].as_array().unwrap().is_empty());
+    // Countries with a missing indicator are not estimable: null, never 0.
+    for c in countries {
+        if c["prediction"].is_null() {
+            assert!(c["low"].is_null() && c["high"].is_null());
+        }
+    }
+}
