@@ -818,14 +818,34 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     let mut params: Vec<f64> = beta.iter().copied().chain([0.5f64.ln()]).collect();
     let mut modes = vec![0.0; data.n_groups];
     let mut curvature = vec![0.0; data.n_groups];
+    // The approximate Hessian comes with every gradient evaluation of the Newton phase and
+    // is kept for the next step at the same point.
+    let cached: std::cell::RefCell<(Vec<f64>, Array2<f64>)> =
+        std::cell::RefCell::new((Vec::new(), Array2::zeros((p + 1, p + 1))));
     let approximate = |prm: &[f64], modes: &mut [f64], curv: &mut [f64]| {
+        {
+            let c = cached.borrow();
+            if c.0.as_slice() == prm {
+                return c.1.clone();
+            }
+        }
         let mut h = Array2::<f64>::zeros((p + 1, p + 1));
         laplace.evaluate_full(prm, modes, curv, None, Some(&mut h));
         h
     };
+    let with_hessian =
+        |prm: &[f64], modes: &mut [f64], curv: &mut [f64], grad: Option<&mut [f64]>| {
+            if grad.is_none() {
+                return laplace.evaluate(prm, modes, curv, None);
+            }
+            let mut h = Array2::<f64>::zeros((p + 1, p + 1));
+            let v = laplace.evaluate_full(prm, modes, curv, grad, Some(&mut h));
+            *cached.borrow_mut() = (prm.to_vec(), h);
+            v
+        };
     let (params, converged) = newton(
         &mut params,
-        |prm, modes, curv, grad| laplace.evaluate(prm, modes, curv, grad),
+        with_hessian,
         Some(&approximate),
         &mut modes,
         &mut curvature,
@@ -894,7 +914,7 @@ fn finish(
 ) -> Result<MultilevelFit, MultilevelError> {
     let p = model.data.p;
     let log_likelihood = objective(&params, modes, curvature, None);
-    let hessian = numeric_hessian(&params, &objective, modes, curvature);
+    let hessian = numeric_hessian(&params, &objective, modes, curvature, model.agq > 1);
     objective(&params, modes, curvature, None);
     let info = -&hessian;
     let tau = params[p].exp();
@@ -952,22 +972,35 @@ type Approximate<'a> = dyn Fn(&[f64], &mut [f64], &mut [f64]) -> Array2<f64> + '
 
 type Objective<'a> = dyn Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64 + 'a;
 
-/// Hessian by central differences of the gradient.
+/// Hessian by differences of the gradient: central (steps 1e-4), or forward (steps 1e-5,
+/// half the evaluations) where the gradient is analytic and so accurate enough.
 fn numeric_hessian(
     params: &[f64],
     objective: &Objective,
     modes: &mut [f64],
     curvature: &mut [f64],
+    central: bool,
 ) -> Array2<f64> {
     let k = params.len();
     let mut h = Array2::<f64>::zeros((k, k));
     let mut q = params.to_vec();
     let mut gu = vec![0.0; k];
     let mut gd = vec![0.0; k];
+    let mut g0 = vec![0.0; k];
+    if !central {
+        objective(params, modes, curvature, Some(&mut g0));
+    }
     for a in 0..k {
-        let step = 1e-4 * (1.0 + params[a].abs());
+        let step = if central { 1e-4 } else { 1e-5 } * (1.0 + params[a].abs());
         q[a] = params[a] + step;
         objective(&q, modes, curvature, Some(&mut gu));
+        q[a] = params[a];
+        if !central {
+            for b in 0..k {
+                h[[a, b]] = (gu[b] - g0[b]) / step;
+            }
+            continue;
+        }
         q[a] = params[a] - step;
         objective(&q, modes, curvature, Some(&mut gd));
         q[a] = params[a];
@@ -1003,7 +1036,7 @@ fn newton(
         let hessian = match approximate {
             Some(f) => f(params, modes, curvature),
             None => {
-                let h = numeric_hessian(params, &objective, modes, curvature);
+                let h = numeric_hessian(params, &objective, modes, curvature, true);
                 objective(params, modes, curvature, None);
                 h
             }
