@@ -648,6 +648,71 @@ fn impact_text(r: &crate::analysis::impact::ImpactReport) -> String {
     out
 }
 
+/// Arguments of `gapwise multilevel`.
+pub struct MultilevelArgs<'a> {
+    pub outcome: &'a str,
+    pub predictors: &'a [String],
+    pub country: &'a str,
+    pub kind: &'a str,
+    pub ml: bool,
+    pub weight: Option<&'a str>,
+    pub nodes: usize,
+}
+
+/// `gapwise multilevel`: a random-intercept model with countries as the second level.
+pub fn multilevel(path: &Path, a: &MultilevelArgs, json: bool) -> i32 {
+    use crate::analysis::multilevel::{multilevel_file, Kind, Request};
+    let Some(kind) = Kind::parse(a.kind) else {
+        eprintln!("--kind must be linear or logistic, not '{}'", a.kind);
+        return 2;
+    };
+    let request = Request {
+        outcome: a.outcome,
+        predictors: a.predictors,
+        country: a.country,
+        weight: a.weight,
+        kind,
+        ml: a.ml,
+        nodes: a.nodes,
+    };
+    match multilevel_file(path, &request) {
+        Ok(r) => {
+            if json {
+                emit_json(&r);
+            } else {
+                let mut out = format!(
+                    "{} random-intercept model of {} ({}): {} respondents in {} countries ({} rows with missing values left out){}\n",
+                    r.kind,
+                    a.outcome,
+                    r.method,
+                    r.n,
+                    r.countries,
+                    r.dropped,
+                    if r.converged { "" } else { "; NOT CONVERGED" }
+                );
+                let _ = writeln!(out, "  {:<28} {:>14} {:>14}", "term", "coefficient", "s.e.");
+                for ((t, c), s) in r.terms.iter().zip(&r.coef).zip(&r.se) {
+                    let _ = writeln!(out, "  {t:<28} {c:>14.6} {s:>14.6}");
+                }
+                let _ = writeln!(out, "  country SD {:.6}", r.country_sd);
+                if let (Some(s), Some(icc)) = (r.residual_sd, r.icc) {
+                    let _ = writeln!(out, "  residual SD {s:.6}; intraclass correlation {icc:.4}");
+                }
+                let _ = writeln!(out, "  log-likelihood {:.4}", r.log_likelihood);
+                if let Some(n) = &r.note {
+                    let _ = writeln!(out, "note: {n}");
+                }
+                emit(&out);
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
 /// `gapwise report`: renders the meeting report and writes it atomically.
 pub fn report(dir: &Path, settings: &Settings, out: &Path) -> i32 {
     let project = match Project::load(dir) {

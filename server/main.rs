@@ -173,6 +173,35 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Random-intercept model of a respondent outcome, countries as the second level.
+    Multilevel {
+        /// A CSV or Parquet file with one row per respondent.
+        microdata: PathBuf,
+        /// The outcome column (0/1 for --kind logistic).
+        #[arg(long)]
+        outcome: String,
+        /// Predictor columns, comma-separated.
+        #[arg(long, value_delimiter = ',')]
+        predictors: Vec<String>,
+        /// The country column.
+        #[arg(long)]
+        country: String,
+        /// linear or logistic.
+        #[arg(long, default_value = "linear")]
+        kind: String,
+        /// Full maximum likelihood instead of REML (linear).
+        #[arg(long)]
+        ml: bool,
+        /// Design weights within countries (pseudo-likelihood; approximate).
+        #[arg(long)]
+        design_weight: Option<String>,
+        /// Adaptive Gauss-Hermite nodes for --kind logistic (1 = Laplace).
+        #[arg(long, default_value_t = 1)]
+        nodes: usize,
+        /// Print one JSON object instead of a table.
+        #[arg(long)]
+        json: bool,
+    },
     /// Write a self-contained HTML report of one wave for a meeting.
     Report {
         /// Project folder.
@@ -402,6 +431,29 @@ fn main() -> ExitCode {
                 2
             }
         },
+        Some(Command::Multilevel {
+            microdata,
+            outcome,
+            predictors,
+            country,
+            kind,
+            ml,
+            design_weight,
+            nodes,
+            json,
+        }) => cli::multilevel(
+            &microdata,
+            &cli::MultilevelArgs {
+                outcome: &outcome,
+                predictors: &predictors,
+                country: &country,
+                kind: &kind,
+                ml,
+                weight: design_weight.as_deref(),
+                nodes,
+            },
+            json,
+        ),
         Some(Command::Plan {
             source,
             universe,

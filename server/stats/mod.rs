@@ -5,6 +5,7 @@ pub mod balance;
 pub mod binary;
 pub mod describe;
 pub mod linalg;
+pub mod multilevel;
 pub mod normal;
 pub mod pca;
 pub mod random;

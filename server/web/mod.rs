@@ -10,6 +10,7 @@ pub mod impact;
 pub mod model;
 pub mod overview;
 pub mod plan;
+pub mod projection;
 pub mod projects;
 pub mod report;
 pub mod sensitivity;
@@ -82,6 +83,10 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/impact", get(impact::page))
         .route("/api/impact", get(impact::json))
         .route("/impact/{item}", get(impact::artifact))
+        // Projection to the whole eligible universe
+        .route("/projection", get(projection::page))
+        .route("/api/projection", get(projection::json))
+        .route("/projection/{item}", get(projection::artifact))
         // Meeting report
         .route("/report", get(report::download))
         // Sensitivity

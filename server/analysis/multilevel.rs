@@ -1,0 +1,146 @@
+//! `gapwise multilevel`: a random-intercept model of a respondent outcome with the country
+//! as the grouping level (stats::multilevel does the numerics).
+
+use std::path::Path;
+
+use serde::Serialize;
+
+use crate::analysis::microdata::{read_regression_file, MicrodataError};
+use crate::stats::multilevel::{self, Criterion, Data, MultilevelError};
+
+/// Linear or logistic outcome model.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Kind {
+    Linear,
+    Logistic,
+}
+
+impl Kind {
+    pub fn parse(text: &str) -> Option<Kind> {
+        match text {
+            "linear" => Some(Kind::Linear),
+            "logistic" => Some(Kind::Logistic),
+            _ => None,
+        }
+    }
+}
+
+/// The result of `gapwise multilevel`.
+#[derive(Debug, Clone, Serialize)]
+pub struct MultilevelReport {
+    pub kind: &'static str,
+    /// Intercept first.
+    pub terms: Vec<String>,
+    pub coef: Vec<f64>,
+    /// Model-based standard errors (null where not estimable).
+    pub se: Vec<f64>,
+    /// Standard deviation of the country effects (tau).
+    pub country_sd: f64,
+    /// Residual standard deviation (null for the logistic model).
+    pub residual_sd: Option<f64>,
+    /// Intraclass correlation (null for the logistic model).
+    pub icc: Option<f64>,
+    /// REML: the restricted log-likelihood; Laplace / quadrature: its approximation.
+    pub log_likelihood: f64,
+    /// "REML", "ML", "Laplace" or "adaptive Gauss-Hermite (k nodes)".
+    pub method: String,
+    pub n: usize,
+    pub countries: usize,
+    pub dropped: usize,
+    pub converged: bool,
+    /// Countries in order, with their conditional modes and conditional variances.
+    pub country_codes: Vec<String>,
+    pub modes: Vec<f64>,
+    pub mode_variance: Vec<f64>,
+    /// Set when design weights were used: the standard errors are approximate.
+    pub note: Option<String>,
+}
+
+/// Options of one multilevel fit.
+#[derive(Debug, Clone)]
+pub struct Request<'a> {
+    pub outcome: &'a str,
+    pub predictors: &'a [String],
+    pub country: &'a str,
+    pub weight: Option<&'a str>,
+    pub kind: Kind,
+    pub ml: bool,
+    /// Quadrature nodes for the logistic model (1 = Laplace).
+    pub nodes: usize,
+}
+
+fn model_error(e: MultilevelError) -> MicrodataError {
+    MicrodataError::Request(format!("the multilevel model cannot be fitted: {e}"))
+}
+
+/// Reads the file and fits the model.
+pub fn multilevel_file(path: &Path, req: &Request) -> Result<MultilevelReport, MicrodataError> {
+    if req.predictors.is_empty() {
+        return Err(MicrodataError::Request(
+            "name at least one predictor (--predictors a,b,c)".to_string(),
+        ));
+    }
+    if req.ml && req.kind == Kind::Logistic {
+        return Err(MicrodataError::Request(
+            "--ml applies to the linear model; the logistic one is always maximum likelihood (Laplace or quadrature)".to_string(),
+        ));
+    }
+    let data = read_regression_file(path, req.outcome, req.predictors, req.country, req.weight)?;
+    let input = Data {
+        x: data.x.view(),
+        y: &data.y,
+        group: &data.cluster,
+        n_groups: data.clusters.len(),
+        weight: data.weight.as_deref(),
+    };
+    let (fit, method) = match req.kind {
+        Kind::Linear => {
+            let criterion = if req.ml {
+                Criterion::Ml
+            } else {
+                Criterion::Reml
+            };
+            (
+                multilevel::fit_linear(&input, criterion).map_err(model_error)?,
+                criterion.as_str().to_string(),
+            )
+        }
+        Kind::Logistic => {
+            let method = if req.nodes <= 1 {
+                "Laplace".to_string()
+            } else {
+                format!("adaptive Gauss-Hermite ({} nodes)", req.nodes)
+            };
+            (
+                multilevel::fit_logistic(&input, req.nodes).map_err(model_error)?,
+                method,
+            )
+        }
+    };
+    let mut terms = vec!["intercept".to_string()];
+    terms.extend(req.predictors.iter().cloned());
+    Ok(MultilevelReport {
+        kind: match req.kind {
+            Kind::Linear => "linear",
+            Kind::Logistic => "logistic",
+        },
+        terms,
+        coef: fit.coef,
+        se: fit.se,
+        country_sd: fit.country_sd,
+        residual_sd: fit.residual_sd,
+        icc: fit.icc,
+        log_likelihood: fit.log_likelihood,
+        method,
+        n: fit.n,
+        countries: fit.groups,
+        dropped: data.dropped,
+        converged: fit.converged,
+        country_codes: data.clusters,
+        modes: fit.modes,
+        mode_variance: fit.mode_variance,
+        note: fit.weighted.then(|| {
+            "design weights by pseudo-likelihood, scaled to each country's effective sample size: estimates and standard errors are approximate".to_string()
+        }),
+    })
+}

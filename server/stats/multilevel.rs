@@ -1,0 +1,1148 @@
+//! Random-intercept (two-level) models: respondents i nested in countries j.
+//!
+//! Linear: y_ij = x_ij'b + u_j + e_ij, u_j ~ N(0, tau^2), e_ij ~ N(0, sigma^2), fitted by
+//! restricted (REML; Patterson & Thompson 1971) or full maximum likelihood. With
+//! theta = tau^2 / sigma^2 the covariance of country j is V_j = sigma^2 (I + theta 11'), whose
+//! inverse is (I - w_j 11') / sigma^2 with w_j = theta / (1 + n_j theta) and whose log
+//! determinant is n_j log sigma^2 + log(1 + n_j theta). Every quantity of the likelihood is
+//! therefore a function of the totals X'X, X'y, y'y and of each country's n_j, X_j'1 and
+//! 1'y_j, gathered in one pass over the respondents. For fixed theta, with
+//! M = X'X - sum_j w_j (X_j'1)(X_j'1)', r = X'y - sum_j w_j (X_j'1)(1'y_j), b = M^-1 r and
+//! RSS = y'y - sum_j w_j (1'y_j)^2 - r'b, the profiled deviances are (Bates et al. 2015,
+//! "Fitting linear mixed-effects models using lme4", J. Stat. Softw. 67(1), eqs. 34 and 41)
+//!
+//!   ML:   -2 l(theta)   = N (1 + log(2 pi RSS / N)) + sum_j log(1 + n_j theta)
+//!   REML: -2 l_R(theta) = (N - p)(1 + log(2 pi RSS / (N - p))) + sum_j log(1 + n_j theta)
+//!                         + log det M,
+//!
+//! minimised over rho = sqrt(theta) >= 0 (a grid, then golden-section search). Then
+//! sigma^2 = RSS / N (ML) or RSS / (N - p) (REML), Var(b) = sigma^2 M^-1 (conditional on
+//! theta, as lme4 reports), the conditional modes u_j = w_j (1'y_j - (X_j'1)'b) and their
+//! conditional variances sigma^2 w_j.
+//!
+//! Logistic: logit P(y_ij = 1) = x_ij'b + u_j. The marginal likelihood of country j,
+//! the integral over u of prod_i p(y_ij | u) N(u; 0, tau^2), is approximated by Laplace's
+//! method around the conditional mode (as lme4's default, nAGQ = 1) or by adaptive
+//! Gauss-Hermite quadrature with k nodes centred on the mode and scaled by its curvature
+//! (Pinheiro & Bates 1995, J. Comput. Graph. Stat. 4, 12-35; Liu & Pierce 1994). The
+//! approximate log-likelihood is maximised over (b, log tau) jointly by damped Newton steps
+//! (the Laplace gradient analytic, its Hessian by differences of the gradient); standard
+//! errors of b come from the inverse of that Hessian (as lme4's vcov with use.hessian).
+//!
+//! Design weights within countries (optional): pseudo-maximum likelihood with each
+//! country's weights scaled to sum to its effective sample size (sum w)^2 / sum w^2
+//! (Pfeffermann, Skinner, Holmes, Goldstein & Rasbash 1998, JRSS B 60, 23-40, scaling
+//! method 2). Each respondent's log-likelihood contribution is multiplied by its scaled
+//! weight; standard errors are then model-based on the pseudo-likelihood, an approximation
+//! (the fit says so in `weighted`).
+
+use ndarray::{Array1, Array2, ArrayView2};
+
+use crate::stats::linalg;
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum MultilevelError {
+    #[error("{0}")]
+    Shape(String),
+    #[error("a value is missing or not finite (row {0}); drop or fix incomplete rows")]
+    NotFinite(usize),
+    #[error("a multilevel model needs at least two countries with respondents; found {0}")]
+    TooFewGroups(usize),
+    #[error("the predictors are collinear or constant: the fixed effects are not estimable")]
+    Singular,
+    #[error("weights must be positive and finite (row {0})")]
+    Weight(usize),
+    #[error("a logistic outcome must be 0 or 1 (row {0})")]
+    NotBinary(usize),
+    #[error("the number of quadrature nodes must be between 1 and 25, not {0}")]
+    Nodes(usize),
+}
+
+/// Linear estimation criterion.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Criterion {
+    Reml,
+    Ml,
+}
+
+impl Criterion {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Criterion::Reml => "REML",
+            Criterion::Ml => "ML",
+        }
+    }
+}
+
+/// Respondent data of a two-level model: design `x` (n x p, the intercept a column of it),
+/// outcome `y`, country index `group` in `0..n_groups`, optional design weights.
+#[derive(Debug, Clone, Copy)]
+pub struct Data<'a> {
+    pub x: ArrayView2<'a, f64>,
+    pub y: &'a [f64],
+    pub group: &'a [usize],
+    pub n_groups: usize,
+    pub weight: Option<&'a [f64]>,
+}
+
+/// A fitted random-intercept model (linear or logistic).
+#[derive(Debug, Clone, PartialEq)]
+pub struct MultilevelFit {
+    pub coef: Vec<f64>,
+    /// Standard errors of `coef`; NaN where not estimable.
+    pub se: Vec<f64>,
+    /// Covariance of `coef` (p x p).
+    pub cov: Array2<f64>,
+    /// Country-level standard deviation tau.
+    pub country_sd: f64,
+    /// Residual standard deviation sigma (linear only).
+    pub residual_sd: Option<f64>,
+    /// Log-likelihood (REML criterion / -2 for REML; approximate for the logistic model).
+    pub log_likelihood: f64,
+    /// Intraclass correlation tau^2 / (tau^2 + sigma^2) (linear only).
+    pub icc: Option<f64>,
+    /// Conditional mode of each country's effect (0 for a country without respondents).
+    pub modes: Vec<f64>,
+    /// Conditional variance of each mode (tau^2 for a country without respondents).
+    pub mode_variance: Vec<f64>,
+    /// Approximate sampling variance of log tau (NaN where tau is on the boundary 0).
+    pub log_sd_variance: f64,
+    pub n: usize,
+    /// Countries with at least one respondent.
+    pub groups: usize,
+    pub converged: bool,
+    /// Design weights were used (pseudo-likelihood; approximate).
+    pub weighted: bool,
+}
+
+fn check(data: &Data) -> Result<(), MultilevelError> {
+    let (n, p) = data.x.dim();
+    if data.y.len() != n || data.group.len() != n {
+        return Err(MultilevelError::Shape(format!(
+            "x has {n} rows but y has {} and group {}",
+            data.y.len(),
+            data.group.len()
+        )));
+    }
+    if let Some(w) = data.weight {
+        if w.len() != n {
+            return Err(MultilevelError::Shape(format!(
+                "x has {n} rows but the weights {}",
+                w.len()
+            )));
+        }
+        if let Some(i) = w.iter().position(|v| !(v.is_finite() && *v > 0.0)) {
+            return Err(MultilevelError::Weight(i));
+        }
+    }
+    if p == 0 || n <= p {
+        return Err(MultilevelError::Shape(format!(
+            "{n} respondents are too few for {p} fixed effects"
+        )));
+    }
+    if let Some(i) = data.group.iter().position(|&g| g >= data.n_groups) {
+        return Err(MultilevelError::Shape(format!(
+            "row {i}: country index out of range"
+        )));
+    }
+    if let Some(i) = data.y.iter().position(|v| !v.is_finite()) {
+        return Err(MultilevelError::NotFinite(i));
+    }
+    if let Some(s) = data.x.as_slice() {
+        if let Some(k) = s.iter().position(|v| !v.is_finite()) {
+            return Err(MultilevelError::NotFinite(k / p));
+        }
+    } else if let Some((i, _)) = data.x.indexed_iter().find(|(_, v)| !v.is_finite()) {
+        return Err(MultilevelError::NotFinite(i.0));
+    }
+    Ok(())
+}
+
+/// Each country's weights scaled to sum to its effective sample size (Pfeffermann et al.
+/// 1998, method 2): w* = w sum(w) / sum(w^2) within the country.
+pub fn scaled_weights(weight: &[f64], group: &[usize], n_groups: usize) -> Vec<f64> {
+    let mut s1 = vec![0.0; n_groups];
+    let mut s2 = vec![0.0; n_groups];
+    for (w, &g) in weight.iter().zip(group) {
+        s1[g] += w;
+        s2[g] += w * w;
+    }
+    weight
+        .iter()
+        .zip(group)
+        .map(|(w, &g)| w * s1[g] / s2[g])
+        .collect()
+}
+
+/// Sufficient statistics of the linear random-intercept model.
+struct LinearSums {
+    p: usize,
+    xtx: Array2<f64>,
+    xty: Array1<f64>,
+    yty: f64,
+    /// Per country: weighted count, X_j'1 (p), 1'y_j.
+    n: Vec<f64>,
+    sx: Array2<f64>,
+    sy: Vec<f64>,
+    total: f64,
+}
+
+impl LinearSums {
+    fn gather(data: &Data, weight: Option<&[f64]>) -> LinearSums {
+        let (nrow, p) = data.x.dim();
+        let g = data.n_groups;
+        let mut xtx = Array2::<f64>::zeros((p, p));
+        let mut xty = Array1::<f64>::zeros(p);
+        let mut yty = 0.0;
+        let mut n = vec![0.0; g];
+        let mut sx = Array2::<f64>::zeros((g, p));
+        let mut sy = vec![0.0; g];
+        let mut row = vec![0.0; p];
+        for i in 0..nrow {
+            let w = weight.map_or(1.0, |w| w[i]);
+            for (k, r) in row.iter_mut().enumerate() {
+                *r = data.x[[i, k]];
+            }
+            let y = data.y[i];
+            let gi = data.group[i];
+            n[gi] += w;
+            sy[gi] += w * y;
+            yty += w * y * y;
+            for a in 0..p {
+                let wa = w * row[a];
+                sx[[gi, a]] += wa;
+                xty[a] += wa * y;
+                for b in 0..=a {
+                    xtx[[a, b]] += wa * row[b];
+                }
+            }
+        }
+        for a in 0..p {
+            for b in 0..a {
+                xtx[[b, a]] = xtx[[a, b]];
+            }
+        }
+        let total = n.iter().sum();
+        LinearSums {
+            p,
+            xtx,
+            xty,
+            yty,
+            n,
+            sx,
+            sy,
+            total,
+        }
+    }
+
+    /// (M, r, b, RSS) at theta; `None` when M is singular.
+    fn solve(&self, theta: f64) -> Option<(Array2<f64>, Array1<f64>, f64)> {
+        let p = self.p;
+        let mut m = self.xtx.clone();
+        let mut r = self.xty.clone();
+        let mut rss0 = self.yty;
+        for j in 0..self.n.len() {
+            if self.n[j] == 0.0 {
+                continue;
+            }
+            let w = theta / (1.0 + self.n[j] * theta);
+            let sx = self.sx.row(j);
+            for a in 0..p {
+                r[a] -= w * sx[a] * self.sy[j];
+                for b in 0..p {
+                    m[[a, b]] -= w * sx[a] * sx[b];
+                }
+            }
+            rss0 -= w * self.sy[j] * self.sy[j];
+        }
+        let b = linalg::solve_spd(m.view(), r.view()).ok()?;
+        let rss = rss0 - r.dot(&b);
+        Some((m, b, rss.max(0.0)))
+    }
+
+    fn deviance(&self, rho: f64, criterion: Criterion) -> f64 {
+        let theta = rho * rho;
+        let Some((m, _, rss)) = self.solve(theta) else {
+            return f64::INFINITY;
+        };
+        let log_l: f64 = self
+            .n
+            .iter()
+            .filter(|n| **n > 0.0)
+            .map(|n| (1.0 + n * theta).ln())
+            .sum();
+        let two_pi = 2.0 * std::f64::consts::PI;
+        match criterion {
+            Criterion::Ml => {
+                let n = self.total;
+                n * (1.0 + (two_pi * rss / n).ln()) + log_l
+            }
+            Criterion::Reml => {
+                let df = self.total - self.p as f64;
+                let log_det = linalg::log_det_spd(m.view()).unwrap_or(f64::INFINITY);
+                df * (1.0 + (two_pi * rss / df).ln()) + log_l + log_det
+            }
+        }
+    }
+}
+
+/// Minimises a function of one variable on [0, inf): a coarse log grid, then golden-section
+/// search between the grid neighbours of the best point. Returns (argmin, min, converged).
+fn minimise_nonnegative(f: impl Fn(f64) -> f64) -> (f64, f64, bool) {
+    let mut grid = vec![0.0];
+    grid.extend((-16..=16).map(|k| 10f64.powf(k as f64 / 4.0)));
+    let values: Vec<f64> = grid.iter().map(|&r| f(r)).collect();
+    let (best, _) =
+        values.iter().enumerate().fold(
+            (0, f64::INFINITY),
+            |(bi, bv), (i, &v)| {
+                if v < bv {
+                    (i, v)
+                } else {
+                    (bi, bv)
+                }
+            },
+        );
+    if !values[best].is_finite() {
+        return (f64::NAN, f64::NAN, false);
+    }
+    let mut lo = if best == 0 { 0.0 } else { grid[best - 1] };
+    let mut hi = if best + 1 < grid.len() {
+        grid[best + 1]
+    } else {
+        grid[best]
+    };
+    let phi = (5f64.sqrt() - 1.0) / 2.0;
+    let mut c = hi - phi * (hi - lo);
+    let mut d = lo + phi * (hi - lo);
+    let (mut fc, mut fd) = (f(c), f(d));
+    let mut iterations = 0;
+    while (hi - lo) > 1e-11 * (1.0 + hi) && iterations < 200 {
+        if fc < fd {
+            hi = d;
+            d = c;
+            fd = fc;
+            c = hi - phi * (hi - lo);
+            fc = f(c);
+        } else {
+            lo = c;
+            c = d;
+            fc = fd;
+            d = lo + phi * (hi - lo);
+            fd = f(d);
+        }
+        iterations += 1;
+    }
+    let mut x = (lo + hi) / 2.0;
+    let mut fx = f(x);
+    // The boundary: a variance ratio of zero can be the optimum.
+    let f0 = values[0];
+    if f0 <= fx {
+        x = 0.0;
+        fx = f0;
+    }
+    (x, fx, best + 1 < grid.len() && iterations < 200)
+}
+
+/// Fits the linear random-intercept model by REML or ML (see the module comment).
+pub fn fit_linear(data: &Data, criterion: Criterion) -> Result<MultilevelFit, MultilevelError> {
+    check(data)?;
+    let scaled = data
+        .weight
+        .map(|w| scaled_weights(w, data.group, data.n_groups));
+    let sums = LinearSums::gather(data, scaled.as_deref());
+    let groups = sums.n.iter().filter(|n| **n > 0.0).count();
+    if groups < 2 {
+        return Err(MultilevelError::TooFewGroups(groups));
+    }
+    if linalg::cholesky(sums.xtx.view()).is_err() {
+        return Err(MultilevelError::Singular);
+    }
+    let (rho, dev, converged) = minimise_nonnegative(|r| sums.deviance(r, criterion));
+    if !dev.is_finite() {
+        return Err(MultilevelError::Singular);
+    }
+    let theta = rho * rho;
+    let (m, coef, rss) = sums.solve(theta).ok_or(MultilevelError::Singular)?;
+    let p = sums.p;
+    let df = match criterion {
+        Criterion::Ml => sums.total,
+        Criterion::Reml => sums.total - p as f64,
+    };
+    let sigma2 = rss / df;
+    let minv = linalg::inverse_spd(m.view()).map_err(|_| MultilevelError::Singular)?;
+    let cov = minv * sigma2;
+    let se = (0..p).map(|k| cov[[k, k]].max(0.0).sqrt()).collect();
+    let tau2 = theta * sigma2;
+    let mut modes = vec![0.0; data.n_groups];
+    let mut mode_variance = vec![tau2; data.n_groups];
+    for j in 0..data.n_groups {
+        if sums.n[j] > 0.0 {
+            let w = theta / (1.0 + sums.n[j] * theta);
+            let fitted: f64 = sums.sx.row(j).dot(&coef);
+            modes[j] = w * (sums.sy[j] - fitted);
+            mode_variance[j] = sigma2 * w;
+        }
+    }
+    // Sampling variance of log tau from the curvature of the profiled deviance in log rho
+    // (sigma held at its estimate): an approximation used only for prediction intervals.
+    let log_sd_variance = if rho > 0.0 {
+        let h = 1e-3;
+        let f = |s: f64| sums.deviance(s.exp(), criterion) / 2.0;
+        let s0 = rho.ln();
+        let curvature = (f(s0 + h) - 2.0 * f(s0) + f(s0 - h)) / (h * h);
+        if curvature > 0.0 {
+            1.0 / curvature
+        } else {
+            f64::NAN
+        }
+    } else {
+        f64::NAN
+    };
+    Ok(MultilevelFit {
+        coef: coef.to_vec(),
+        se,
+        cov,
+        country_sd: tau2.sqrt(),
+        residual_sd: Some(sigma2.sqrt()),
+        log_likelihood: -dev / 2.0,
+        icc: Some(if tau2 + sigma2 > 0.0 {
+            tau2 / (tau2 + sigma2)
+        } else {
+            f64::NAN
+        }),
+        modes,
+        mode_variance,
+        log_sd_variance,
+        n: data.y.len(),
+        groups,
+        converged,
+        weighted: data.weight.is_some(),
+    })
+}
+
+/// Gauss-Hermite nodes and weights for the integral of exp(-z^2) f(z) (Newton's method on
+/// the orthonormal Hermite recurrence; Press et al., Numerical Recipes, 2nd ed., sec. 4.5).
+pub fn gauss_hermite(k: usize) -> (Vec<f64>, Vec<f64>) {
+    let mut x = vec![0.0; k];
+    let mut w = vec![0.0; k];
+    let pim4 = std::f64::consts::PI.powf(-0.25);
+    let n = k as f64;
+    let mut z = 0.0f64;
+    for i in 0..k.div_ceil(2) {
+        z = match i {
+            0 => (2.0 * n + 1.0).sqrt() - 1.85575 * (2.0 * n + 1.0).powf(-1.0 / 6.0),
+            1 => z - 1.14 * n.powf(0.426) / z,
+            2 => 1.86 * z - 0.86 * x[0],
+            3 => 1.91 * z - 0.91 * x[1],
+            _ => 2.0 * z - x[i - 2],
+        };
+        let mut pp = 1.0;
+        for _ in 0..100 {
+            let mut p1 = pim4;
+            let mut p2 = 0.0;
+            for j in 1..=k {
+                let p3 = p2;
+                p2 = p1;
+                let jf = j as f64;
+                p1 = z * (2.0 / jf).sqrt() * p2 - ((jf - 1.0) / jf).sqrt() * p3;
+            }
+            pp = (2.0 * n).sqrt() * p2;
+            let z1 = z;
+            z = z1 - p1 / pp;
+            if (z - z1).abs() <= 1e-14 {
+                break;
+            }
+        }
+        x[i] = z;
+        x[k - 1 - i] = -z;
+        w[i] = 2.0 / (pp * pp);
+        w[k - 1 - i] = w[i];
+    }
+    if k % 2 == 1 {
+        x[k / 2] = 0.0;
+    }
+    (x, w)
+}
+
+/// Respondents sorted by country for the logistic model's per-country integrals.
+struct Grouped {
+    p: usize,
+    /// Row-major design in country order.
+    x: Vec<f64>,
+    y: Vec<f64>,
+    w: Vec<f64>,
+    /// Country j's rows are start[j]..start[j + 1].
+    start: Vec<usize>,
+}
+
+impl Grouped {
+    fn new(data: &Data, weight: Option<&[f64]>) -> Grouped {
+        let (n, p) = data.x.dim();
+        let g = data.n_groups;
+        let mut start = vec![0usize; g + 1];
+        for &gi in data.group {
+            start[gi + 1] += 1;
+        }
+        for j in 0..g {
+            start[j + 1] += start[j];
+        }
+        let mut next = start.clone();
+        let mut x = vec![0.0; n * p];
+        let mut y = vec![0.0; n];
+        let mut w = vec![1.0; n];
+        for i in 0..n {
+            let gi = data.group[i];
+            let r = next[gi];
+            next[gi] += 1;
+            for k in 0..p {
+                x[r * p + k] = data.x[[i, k]];
+            }
+            y[r] = data.y[i];
+            if let Some(wt) = weight {
+                w[r] = wt[i];
+            }
+        }
+        Grouped { p, x, y, w, start }
+    }
+}
+
+/// p = 1 / (1 + e^-eta) and log(1 + e^eta) from one exponential.
+#[inline]
+fn logistic_parts(eta: f64) -> (f64, f64) {
+    let t = (-eta.abs()).exp();
+    if eta >= 0.0 {
+        (1.0 / (1.0 + t), eta + t.ln_1p())
+    } else {
+        (t / (1.0 + t), t.ln_1p())
+    }
+}
+
+/// One country's contribution at (b, tau).
+struct Country {
+    mode: f64,
+    curvature: f64,
+    log_lik: f64,
+    /// Laplace gradient over (b, log tau), when asked.
+    grad: Vec<f64>,
+    /// Approximate Hessian of g at the mode over (b, log tau) (row-major), when asked.
+    hess: Vec<f64>,
+}
+
+/// The per-country work of the logistic model.
+struct Logistic<'a> {
+    data: &'a Grouped,
+    nodes: (Vec<f64>, Vec<f64>),
+    agq: usize,
+}
+
+impl Logistic<'_> {
+    /// Conditional log density g(u) = sum_i w_i (y_i eta_i - log(1 + e^eta_i)) - u^2 / (2 tau^2)
+    /// of one country's rows with the fixed part `eta0`.
+    fn g(&self, eta0: &[f64], y: &[f64], w: &[f64], u: f64, tau2: f64) -> f64 {
+        let mut s = 0.0;
+        for ((e, yi), wi) in eta0.iter().zip(y).zip(w) {
+            let eta = e + u;
+            s += wi * (yi * eta - logistic_parts(eta).1);
+        }
+        s - u * u / (2.0 * tau2)
+    }
+
+    /// Newton's method for the mode of g (concave), warm-started; each pass gives g, its
+    /// first two derivatives at the current point.
+    fn country(
+        &self,
+        j: usize,
+        beta: &[f64],
+        tau2: f64,
+        start: f64,
+        want: bool,
+        want_hess: bool,
+    ) -> Country {
+        let d = self.data;
+        let p = d.p;
+        let (a, b) = (d.start[j], d.start[j + 1]);
+        let y = &d.y[a..b];
+        let w = &d.w[a..b];
+        let eta0: Vec<f64> = (a..b)
+            .map(|r| {
+                d.x[r * p..(r + 1) * p]
+                    .iter()
+                    .zip(beta)
+                    .map(|(x, c)| x * c)
+                    .sum::<f64>()
+            })
+            .collect();
+        let pass = |u: f64| -> (f64, f64, f64) {
+            let mut gu = -u * u / (2.0 * tau2);
+            let mut d1 = -u / tau2;
+            let mut h = 1.0 / tau2;
+            for ((e, yi), wi) in eta0.iter().zip(y).zip(w) {
+                let eta = e + u;
+                let (pr, l1p) = logistic_parts(eta);
+                gu += wi * (yi * eta - l1p);
+                d1 += wi * (yi - pr);
+                h += wi * pr * (1.0 - pr);
+            }
+            (gu, d1, h)
+        };
+        let mut u = start;
+        let (mut gu, mut d1, mut h) = pass(u);
+        for _ in 0..100 {
+            let mut step = d1 / h;
+            if step.abs() < 1e-10 * (1.0 + u.abs()) {
+                break;
+            }
+            let mut accepted = false;
+            for _ in 0..40 {
+                let trial = pass(u + step);
+                if trial.0 >= gu - 1e-12 * gu.abs().max(1.0) {
+                    u += step;
+                    (gu, d1, h) = trial;
+                    accepted = true;
+                    break;
+                }
+                step /= 2.0;
+            }
+            if !accepted {
+                break;
+            }
+        }
+        let log_lik = if self.agq <= 1 {
+            gu - 0.5 * (tau2 * h).ln()
+        } else {
+            // Adaptive Gauss-Hermite: integral ~ sqrt(2/h) sum_k w_k e^{z_k^2} e^{G(u + sqrt(2/h) z_k)}
+            // with G = g - log(2 pi tau^2) / 2.
+            let scale = (2.0 / h).sqrt();
+            let terms: Vec<f64> = self
+                .nodes
+                .0
+                .iter()
+                .zip(&self.nodes.1)
+                .map(|(z, wk)| wk.ln() + z * z + self.g(&eta0, y, w, u + scale * z, tau2) - gu)
+                .collect();
+            let mx = terms.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+            let sum: f64 = terms.iter().map(|t| (t - mx).exp()).sum();
+            gu + mx + sum.ln() + scale.ln() - 0.5 * (2.0 * std::f64::consts::PI * tau2).ln()
+        };
+        let mut grad = Vec::new();
+        let mut hess = Vec::new();
+        if want {
+            let k = p + 1;
+            let mut sqx = vec![0.0; p];
+            let mut svx = vec![0.0; p];
+            let mut score = vec![0.0; p];
+            let mut vxx = vec![0.0; p * p];
+            let mut sq = 0.0;
+            for (i, r) in (a..b).enumerate() {
+                let row = &d.x[r * p..(r + 1) * p];
+                let pr = logistic_parts(eta0[i] + u).0;
+                let wi = w[i];
+                let v = wi * pr * (1.0 - pr);
+                let q = v * (1.0 - 2.0 * pr);
+                let resid = wi * (y[i] - pr);
+                sq += q;
+                for m in 0..p {
+                    sqx[m] += q * row[m];
+                    svx[m] += v * row[m];
+                    score[m] += resid * row[m];
+                    if want_hess {
+                        let vm = v * row[m];
+                        for l in 0..=m {
+                            vxx[m * p + l] += vm * row[l];
+                        }
+                    }
+                }
+            }
+            grad = vec![0.0; k];
+            for m in 0..p {
+                let du = -svx[m] / h;
+                let dh = sqx[m] + sq * du;
+                grad[m] = score[m] - 0.5 * dh / h;
+            }
+            let du_ds = 2.0 * u / (tau2 * h);
+            let dh_ds = -2.0 / tau2 + sq * du_ds;
+            grad[p] = u * u / tau2 - 1.0 - 0.5 * dh_ds / h;
+            // Hessian of g(u-hat(b, s); b, s), leaving out the curvature term's derivatives.
+            hess = vec![0.0; k * k];
+            for m in 0..p {
+                for l in 0..=m {
+                    let v = -vxx[m * p + l] + svx[m] * svx[l] / h;
+                    hess[m * k + l] = v;
+                    hess[l * k + m] = v;
+                }
+                let c = -svx[m] * du_ds;
+                hess[m * k + p] = c;
+                hess[p * k + m] = c;
+            }
+            hess[p * k + p] = 4.0 * u * u / (tau2 * tau2 * h) - 2.0 * u * u / tau2;
+        }
+        Country {
+            mode: u,
+            curvature: h,
+            log_lik,
+            grad,
+            hess,
+        }
+    }
+
+    /// Approximate log-likelihood at params = (b, log tau), updating the modes (warm start);
+    /// with `gradient`, also the Laplace gradient, and with `hessian` an approximate Hessian.
+    fn evaluate_full(
+        &self,
+        params: &[f64],
+        modes: &mut [f64],
+        curvature: &mut [f64],
+        gradient: Option<&mut [f64]>,
+        hessian: Option<&mut Array2<f64>>,
+    ) -> f64 {
+        use rayon::prelude::*;
+        let d = self.data;
+        let p = d.p;
+        let k = p + 1;
+        let beta = &params[..p];
+        let tau2 = (2.0 * params[p]).exp();
+        let want = gradient.is_some() || hessian.is_some();
+        let want_hess = hessian.is_some();
+        let results: Vec<Option<Country>> = (0..modes.len())
+            .into_par_iter()
+            .map(|j| {
+                (d.start[j + 1] > d.start[j])
+                    .then(|| self.country(j, beta, tau2, modes[j], want, want_hess))
+            })
+            .collect();
+        let mut total = 0.0;
+        let mut grad = vec![0.0; k];
+        let mut hess = Array2::<f64>::zeros((k, k));
+        for (j, c) in results.into_iter().enumerate() {
+            let Some(c) = c else { continue };
+            modes[j] = c.mode;
+            curvature[j] = c.curvature;
+            total += c.log_lik;
+            if want {
+                for m in 0..k {
+                    grad[m] += c.grad[m];
+                    for l in 0..k {
+                        hess[[m, l]] += c.hess[m * k + l];
+                    }
+                }
+            }
+        }
+        if let Some(g) = gradient {
+            g.copy_from_slice(&grad);
+        }
+        if let Some(h) = hessian {
+            *h = hess;
+        }
+        total
+    }
+
+    fn evaluate(
+        &self,
+        params: &[f64],
+        modes: &mut [f64],
+        curvature: &mut [f64],
+        gradient: Option<&mut [f64]>,
+    ) -> f64 {
+        self.evaluate_full(params, modes, curvature, gradient, None)
+    }
+}
+
+/// Fits the logistic random-intercept model by the Laplace approximation (`nodes` = 1) or
+/// adaptive Gauss-Hermite quadrature with `nodes` points (see the module comment).
+pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, MultilevelError> {
+    check(data)?;
+    if !(1..=25).contains(&nodes) {
+        return Err(MultilevelError::Nodes(nodes));
+    }
+    if let Some(i) = data.y.iter().position(|v| *v != 0.0 && *v != 1.0) {
+        return Err(MultilevelError::NotBinary(i));
+    }
+    let (n, p) = data.x.dim();
+    let scaled = data
+        .weight
+        .map(|w| scaled_weights(w, data.group, data.n_groups));
+    let grouped = Grouped::new(data, scaled.as_deref());
+    let groups = (0..data.n_groups)
+        .filter(|&j| grouped.start[j + 1] > grouped.start[j])
+        .count();
+    if groups < 2 {
+        return Err(MultilevelError::TooFewGroups(groups));
+    }
+    // Starting values: an ordinary logistic regression (Newton), log tau = log 0.5.
+    let xtx = {
+        let mut m = Array2::<f64>::zeros((p, p));
+        for r in 0..n {
+            let row = &grouped.x[r * p..(r + 1) * p];
+            for a in 0..p {
+                for b in 0..p {
+                    m[[a, b]] += row[a] * row[b];
+                }
+            }
+        }
+        m
+    };
+    if linalg::cholesky(xtx.view()).is_err() {
+        return Err(MultilevelError::Singular);
+    }
+    let mut beta = Array1::<f64>::zeros(p);
+    for _ in 0..30 {
+        let mut info = Array2::<f64>::eye(p) * 1e-8;
+        let mut score = Array1::<f64>::zeros(p);
+        for r in 0..n {
+            let row = &grouped.x[r * p..(r + 1) * p];
+            let eta: f64 = row.iter().zip(beta.iter()).map(|(x, c)| x * c).sum();
+            let pr = 1.0 / (1.0 + (-eta).exp());
+            let wi = grouped.w[r];
+            for a in 0..p {
+                score[a] += wi * (grouped.y[r] - pr) * row[a];
+                for b in 0..p {
+                    info[[a, b]] += wi * pr * (1.0 - pr) * row[a] * row[b];
+                }
+            }
+        }
+        let Ok(step) = linalg::solve_spd(info.view(), score.view()) else {
+            break;
+        };
+        let step = step.mapv(|v| v.clamp(-5.0, 5.0));
+        beta += &step;
+        if step.iter().all(|s| s.abs() < 1e-4) {
+            break;
+        }
+    }
+    let laplace = Logistic {
+        data: &grouped,
+        nodes: (vec![0.0], vec![std::f64::consts::PI.sqrt()]),
+        agq: 1,
+    };
+    let mut params: Vec<f64> = beta.iter().copied().chain([0.5f64.ln()]).collect();
+    let mut modes = vec![0.0; data.n_groups];
+    let mut curvature = vec![0.0; data.n_groups];
+    // The approximate Hessian comes with every gradient evaluation of the Newton phase and
+    // is kept for the next step at the same point.
+    let cached: std::cell::RefCell<(Vec<f64>, Array2<f64>)> =
+        std::cell::RefCell::new((Vec::new(), Array2::zeros((p + 1, p + 1))));
+    let approximate = |prm: &[f64], modes: &mut [f64], curv: &mut [f64]| {
+        {
+            let c = cached.borrow();
+            if c.0.as_slice() == prm {
+                return c.1.clone();
+            }
+        }
+        let mut h = Array2::<f64>::zeros((p + 1, p + 1));
+        laplace.evaluate_full(prm, modes, curv, None, Some(&mut h));
+        h
+    };
+    let with_hessian =
+        |prm: &[f64], modes: &mut [f64], curv: &mut [f64], grad: Option<&mut [f64]>| {
+            if grad.is_none() {
+                return laplace.evaluate(prm, modes, curv, None);
+            }
+            let mut h = Array2::<f64>::zeros((p + 1, p + 1));
+            let v = laplace.evaluate_full(prm, modes, curv, grad, Some(&mut h));
+            *cached.borrow_mut() = (prm.to_vec(), h);
+            v
+        };
+    let (params, converged) = newton(
+        &mut params,
+        with_hessian,
+        Some(&approximate),
+        &mut modes,
+        &mut curvature,
+    );
+    if nodes == 1 {
+        return finish(
+            &laplace,
+            params,
+            converged,
+            &mut modes,
+            &mut curvature,
+            data,
+            groups,
+            |prm: &[f64], modes: &mut [f64], curv: &mut [f64], grad: Option<&mut [f64]>| {
+                laplace.evaluate(prm, modes, curv, grad)
+            },
+        );
+    }
+    // Adaptive quadrature: start from the Laplace optimum, gradient by central differences.
+    let quad = Logistic {
+        data: &grouped,
+        nodes: gauss_hermite(nodes),
+        agq: nodes,
+    };
+    let numeric = |prm: &[f64], modes: &mut [f64], curv: &mut [f64], grad: Option<&mut [f64]>| {
+        let value = quad.evaluate(prm, modes, curv, None);
+        if let Some(g) = grad {
+            let mut q = prm.to_vec();
+            for k in 0..prm.len() {
+                let h = 1e-5 * (1.0 + prm[k].abs());
+                q[k] = prm[k] + h;
+                let up = quad.evaluate(&q, modes, curv, None);
+                q[k] = prm[k] - h;
+                let down = quad.evaluate(&q, modes, curv, None);
+                q[k] = prm[k];
+                g[k] = (up - down) / (2.0 * h);
+            }
+            quad.evaluate(prm, modes, curv, None);
+        }
+        value
+    };
+    let mut start = params;
+    let (prm, ok) = newton(&mut start, numeric, None, &mut modes, &mut curvature);
+    finish(
+        &quad,
+        prm,
+        ok && converged,
+        &mut modes,
+        &mut curvature,
+        data,
+        groups,
+        numeric,
+    )
+}
+
+#[allow(clippy::too_many_arguments)]
+fn finish(
+    model: &Logistic,
+    params: Vec<f64>,
+    converged: bool,
+    modes: &mut [f64],
+    curvature: &mut [f64],
+    data: &Data,
+    groups: usize,
+    objective: impl Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64,
+) -> Result<MultilevelFit, MultilevelError> {
+    let p = model.data.p;
+    let log_likelihood = objective(&params, modes, curvature, None);
+    let hessian = numeric_hessian(&params, &objective, modes, curvature, model.agq > 1);
+    objective(&params, modes, curvature, None);
+    let info = -&hessian;
+    let tau = params[p].exp();
+    let (cov, log_sd_variance) = match linalg::inverse_spd(info.view()) {
+        Ok(inv) => {
+            let cov = inv.slice(ndarray::s![..p, ..p]).to_owned();
+            (cov, inv[[p, p]])
+        }
+        Err(_) => {
+            // tau at or near the boundary: condition on tau for the fixed effects.
+            let sub = info.slice(ndarray::s![..p, ..p]).to_owned();
+            match linalg::inverse_spd(sub.view()) {
+                Ok(inv) => (inv, f64::NAN),
+                Err(_) => (Array2::from_elem((p, p), f64::NAN), f64::NAN),
+            }
+        }
+    };
+    let se = (0..p)
+        .map(|k| {
+            let v = cov[[k, k]];
+            if v.is_finite() && v >= 0.0 {
+                v.sqrt()
+            } else {
+                f64::NAN
+            }
+        })
+        .collect();
+    let tau2 = tau * tau;
+    let mut mode_variance = vec![tau2; data.n_groups];
+    for j in 0..data.n_groups {
+        if model.data.start[j + 1] > model.data.start[j] {
+            mode_variance[j] = 1.0 / curvature[j];
+        }
+    }
+    Ok(MultilevelFit {
+        coef: params[..p].to_vec(),
+        se,
+        cov,
+        country_sd: tau,
+        residual_sd: None,
+        log_likelihood,
+        icc: None,
+        modes: modes.to_vec(),
+        mode_variance,
+        log_sd_variance,
+        n: data.y.len(),
+        groups,
+        converged,
+        weighted: data.weight.is_some(),
+    })
+}
+
+/// An approximate Hessian at the parameters (for Newton steps).
+type Approximate<'a> = dyn Fn(&[f64], &mut [f64], &mut [f64]) -> Array2<f64> + 'a;
+
+type Objective<'a> = dyn Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64 + 'a;
+
+/// Hessian by differences of the gradient: central (steps 1e-4), or forward (steps 1e-5,
+/// half the evaluations) where the gradient is analytic and so accurate enough.
+fn numeric_hessian(
+    params: &[f64],
+    objective: &Objective,
+    modes: &mut [f64],
+    curvature: &mut [f64],
+    central: bool,
+) -> Array2<f64> {
+    let k = params.len();
+    let mut h = Array2::<f64>::zeros((k, k));
+    let mut q = params.to_vec();
+    let mut gu = vec![0.0; k];
+    let mut gd = vec![0.0; k];
+    let mut g0 = vec![0.0; k];
+    if !central {
+        objective(params, modes, curvature, Some(&mut g0));
+    }
+    for a in 0..k {
+        let step = if central { 1e-4 } else { 1e-5 } * (1.0 + params[a].abs());
+        q[a] = params[a] + step;
+        objective(&q, modes, curvature, Some(&mut gu));
+        q[a] = params[a];
+        if !central {
+            for b in 0..k {
+                h[[a, b]] = (gu[b] - g0[b]) / step;
+            }
+            continue;
+        }
+        q[a] = params[a] - step;
+        objective(&q, modes, curvature, Some(&mut gd));
+        q[a] = params[a];
+        for b in 0..k {
+            h[[a, b]] = (gu[b] - gd[b]) / (2.0 * step);
+        }
+    }
+    // Symmetrise.
+    for a in 0..k {
+        for b in 0..a {
+            let m = (h[[a, b]] + h[[b, a]]) / 2.0;
+            h[[a, b]] = m;
+            h[[b, a]] = m;
+        }
+    }
+    h
+}
+
+/// Maximises `objective` by Newton steps with a Hessian from differences of the gradient,
+/// damped (Levenberg) when not negative definite and halved until the value improves.
+fn newton(
+    params: &mut Vec<f64>,
+    objective: impl Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64,
+    approximate: Option<&Approximate>,
+    modes: &mut [f64],
+    curvature: &mut [f64],
+) -> (Vec<f64>, bool) {
+    let k = params.len();
+    let mut grad = vec![0.0; k];
+    let mut value = objective(params, modes, curvature, Some(&mut grad));
+    let mut converged = false;
+    for _ in 0..100 {
+        let hessian = match approximate {
+            Some(f) => f(params, modes, curvature),
+            None => {
+                let h = numeric_hessian(params, &objective, modes, curvature, true);
+                objective(params, modes, curvature, None);
+                h
+            }
+        };
+        let neg = -&hessian;
+        let g = Array1::from(grad.clone());
+        let mut lambda = 0.0;
+        let step = loop {
+            let mut a = neg.clone();
+            let scale = (0..k).map(|i| neg[[i, i]].abs()).fold(1e-8, f64::max);
+            for i in 0..k {
+                a[[i, i]] += lambda * scale;
+            }
+            match linalg::solve_spd(a.view(), g.view()) {
+                Ok(s) => break s,
+                Err(_) => {
+                    lambda = if lambda == 0.0 { 1e-6 } else { lambda * 10.0 };
+                    if lambda > 1e6 {
+                        break g.mapv(|v| v / scale);
+                    }
+                }
+            }
+        };
+        let mut step: Vec<f64> = step.to_vec();
+        // Keep log tau from leaping (tau below e^-12 counts as the boundary).
+        let max_step = step.iter().fold(0.0f64, |m, s| m.max(s.abs()));
+        if max_step > 3.0 {
+            step.iter_mut().for_each(|s| *s *= 3.0 / max_step);
+        }
+        let decrement: f64 = step.iter().zip(&grad).map(|(s, g)| s * g).sum();
+        if decrement.abs() < 1e-10 {
+            converged = true;
+            break;
+        }
+        let saved_modes = modes.to_vec();
+        let mut improved = false;
+        let mut trial = params.clone();
+        let mut t = 1.0;
+        for _ in 0..30 {
+            for i in 0..k {
+                trial[i] = params[i] + t * step[i];
+            }
+            trial[k - 1] = trial[k - 1].max(-12.0);
+            let mut gt = vec![0.0; k];
+            let vt = objective(&trial, modes, curvature, Some(&mut gt));
+            if vt.is_finite() && vt >= value - 1e-10 * value.abs().max(1.0) {
+                *params = trial.clone();
+                value = vt;
+                grad = gt;
+                improved = true;
+                break;
+            }
+            modes.copy_from_slice(&saved_modes);
+            t /= 2.0;
+        }
+        if !improved {
+            converged = grad.iter().all(|g| g.abs() < 1e-4);
+            break;
+        }
+    }
+    (params.clone(), converged)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn gauss_hermite_integrates_moments() {
+        // Exact moments of exp(-z^2): sqrt(pi), 0, sqrt(pi)/2, 0, 3 sqrt(pi)/4 (common practice).
+        for k in [1usize, 2, 5, 10, 20] {
+            let (x, w) = gauss_hermite(k);
+            let m = |e: i32| -> f64 { x.iter().zip(&w).map(|(x, w)| w * x.powi(e)).sum() };
+            let sp = std::f64::consts::PI.sqrt();
+            assert!((m(0) - sp).abs() < 1e-12, "k={k}");
+            if k >= 2 {
+                assert!((m(2) - sp / 2.0).abs() < 1e-12, "k={k}");
+            }
+            if k >= 3 {
+                assert!((m(4) - 3.0 * sp / 4.0).abs() < 1e-11, "k={k}");
+            }
+        }
+    }
+
+    #[test]
+    fn rejects_bad_input() {
+        let x = Array2::<f64>::ones((3, 1));
+        let data = Data {
+            x: x.view(),
+            y: &[1.0, 2.0, f64::NAN],
+            group: &[0, 1, 1],
+            n_groups: 2,
+            weight: None,
+        };
+        assert_eq!(
+            fit_linear(&data, Criterion::Reml),
+            Err(MultilevelError::NotFinite(2))
+        );
+        let data = Data {
+            y: &[1.0, 2.0, 3.0],
+            group: &[0, 0, 0],
+            ..data
+        };
+        assert_eq!(
+            fit_linear(&data, Criterion::Reml),
+            Err(MultilevelError::TooFewGroups(1))
+        );
+    }
+}

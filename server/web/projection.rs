@@ -1,0 +1,151 @@
+//! The projection page: what the whole eligible universe would say, from a multilevel
+//! model projected to the countries that did not take part.
+
+use std::sync::Arc;
+
+use askama::Template;
+use axum::extract::{Path, Query, State};
+use axum::response::{Html, Response};
+use axum::Json;
+
+use super::context::{off_thread, resolve, SettingsForm};
+use super::csv_response;
+use super::error::{AppError, AppResult};
+use super::format::Fmt;
+use super::state::AppState;
+use crate::analysis::cautions::{Caution, STANDING};
+use crate::analysis::projection::{projection, ProjectionReport, ProjectionSettings};
+use crate::csv_out::{cell, csv_text};
+use crate::project::Project;
+
+#[derive(Template)]
+#[template(path = "projection.html")]
+struct ProjectionPage<'a> {
+    page: &'static str,
+    nav_query: String,
+    form: SettingsForm,
+    f: Fmt,
+    r: &'a ProjectionReport,
+    variables: Vec<String>,
+    own_query: String,
+    cautions: &'a [Caution],
+}
+
+/// The outcome and respondent predictors from the query (`outcome`, repeated `predictor`);
+/// without an outcome, the project's last survey variable.
+fn projection_settings(
+    project: &Project,
+    query: &super::context::Query,
+) -> AppResult<ProjectionSettings> {
+    let variables = project
+        .manifest
+        .microdata
+        .as_ref()
+        .map(|m| m.variables.clone())
+        .unwrap_or_default();
+    let outcome = query
+        .iter()
+        .find(|(k, _)| k == "outcome")
+        .map(|(_, v)| v.clone())
+        .or_else(|| variables.last().cloned())
+        .ok_or_else(|| AppError::BadRequest("the project has no survey variables".into()))?;
+    let predictors = query
+        .iter()
+        .filter(|(k, v)| k == "predictor" && !v.is_empty())
+        .map(|(_, v)| v.clone())
+        .collect();
+    Ok(ProjectionSettings {
+        outcome,
+        predictors,
+    })
+}
+
+fn compute(
+    state: &AppState,
+    query: &super::context::Query,
+) -> AppResult<(SettingsForm, ProjectionReport, Vec<String>)> {
+    let (project, settings, view) = resolve(state, query)?;
+    let form = SettingsForm::new("/projection", &project, &settings);
+    let ps = projection_settings(&project, query)?;
+    let r = projection(&project, &view, &settings, &ps)
+        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let variables = project
+        .manifest
+        .microdata
+        .as_ref()
+        .map(|m| m.variables.clone())
+        .unwrap_or_default();
+    Ok((form, r, variables))
+}
+
+fn own_query(r: &ProjectionReport) -> String {
+    let mut parts = vec![format!("outcome={}", r.outcome)];
+    parts.extend(r.predictors.iter().map(|p| format!("predictor={p}")));
+    parts.join("&")
+}
+
+pub async fn page(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Html<String>> {
+    let (form, r, variables) = off_thread(&state, &query, compute).await?;
+    let html = ProjectionPage {
+        page: "projection",
+        nav_query: form.query.clone(),
+        own_query: own_query(&r),
+        form,
+        f: Fmt,
+        r: &r,
+        variables,
+        cautions: &STANDING,
+    }
+    .render()?;
+    Ok(Html(html))
+}
+
+pub async fn json(
+    State(state): State<Arc<AppState>>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Json<ProjectionReport>> {
+    Ok(Json(off_thread(&state, &query, compute).await?.1))
+}
+
+pub async fn artifact(
+    State(state): State<Arc<AppState>>,
+    Path(item): Path<String>,
+    Query(query): Query<super::context::Query>,
+) -> AppResult<Response> {
+    let (_, r, _) = off_thread(&state, &query, compute).await?;
+    match item.as_str() {
+        "table.csv" => Ok(csv_response(
+            "projection.csv",
+            csv_text(
+                &[
+                    "code",
+                    "name",
+                    "region",
+                    "took_part",
+                    "respondents",
+                    "prediction",
+                    "low_95",
+                    "high_95",
+                    "outside_participants_range",
+                ],
+                r.countries.iter().map(|c| {
+                    vec![
+                        c.code.clone(),
+                        c.name.clone(),
+                        c.region.clone().unwrap_or_default(),
+                        u8::from(c.participated).to_string(),
+                        c.respondents.to_string(),
+                        cell(c.prediction),
+                        cell(c.low),
+                        cell(c.high),
+                        c.outside_range.join(" "),
+                    ]
+                }),
+            ),
+        )),
+        _ => Err(AppError::NotFound(format!("no /projection/{item}"))),
+    }
+}

@@ -1,0 +1,474 @@
+//! The random-intercept models checked against R's lme4 (1.1-31, Debian's r-cran-lme4) and
+//! statsmodels' MixedLM (0.15): fixtures written offline by tests/fixtures/
+//! make_lme4_fixtures.R and tests/fixtures/make_mixedlm_fixture.py. Data: lme4's
+//! `sleepstudy` (reaction ~ days + (1 | subject)) and `cbpp` expanded to one row per animal
+//! (incidence ~ period + (1 | herd)).
+
+mod common;
+use common::*;
+
+use serde_json::Value;
+
+fn fixtures() -> std::path::PathBuf {
+    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
+}
+
+fn load(name: &str) -> Value {
+    serde_json::from_str(&std::fs::read_to_string(fixtures().join(name)).unwrap()).unwrap()
+}
+
+fn floats(v: &Value) -> Vec<f64> {
+    v.as_array()
+        .unwrap_or_else(|| panic!("not an array: {v}"))
+        .iter()
+        .map(|x| x.as_f64().unwrap_or(f64::NAN))
+        .collect()
+}
+
+fn run(args: &[&str]) -> Value {
+    let out = gapwise(args);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    serde_json::from_str(&out.stdout).unwrap()
+}
+
+fn sleepstudy(extra: &[&str]) -> Value {
+    let file = fixtures().join("sleepstudy.csv");
+    let mut args = vec![
+        "multilevel",
+        file.to_str().unwrap(),
+        "--outcome",
+        "reaction",
+        "--predictors",
+        "days",
+        "--country",
+        "subject",
+        "--json",
+    ];
+    args.extend_from_slice(extra);
+    run(&args)
+}
+
+fn cbpp(extra: &[&str]) -> Value {
+    let file = fixtures().join("cbpp_animals.csv");
+    let mut args = vec![
+        "multilevel",
+        file.to_str().unwrap(),
+        "--outcome",
+        "incidence",
+        "--predictors",
+        "period2,period3,period4",
+        "--country",
+        "herd",
+        "--kind",
+        "logistic",
+        "--json",
+    ];
+    args.extend_from_slice(extra);
+    run(&args)
+}
+
+fn close_abs(what: &str, got: &[f64], want: &[f64], tol: f64) {
+    assert_eq!(got.len(), want.len(), "{what}: lengths");
+    for (k, (g, w)) in got.iter().zip(want).enumerate() {
+        assert!((g - w).abs() <= tol, "{what}[{k}]: {g} vs {w} (tol {tol})");
+    }
+}
+
+fn close_rel(what: &str, got: &[f64], want: &[f64], tol: f64) {
+    assert_eq!(got.len(), want.len(), "{what}: lengths");
+    for (k, (g, w)) in got.iter().zip(want).enumerate() {
+        assert!(
+            (g - w).abs() <= tol * w.abs(),
+            "{what}[{k}]: {g} vs {w} (relative tol {tol})"
+        );
+    }
+}
+
+fn f(v: &Value) -> f64 {
+    v.as_f64().unwrap_or(f64::NAN)
+}
+
+fn check_linear(got: &Value, want: &Value, tol_abs: f64, tol_se: f64) {
+    close_abs(
+        "coef",
+        &floats(&got["coef"]),
+        &floats(&want["coef"]),
+        tol_abs,
+    );
+    close_rel("se", &floats(&got["se"]), &floats(&want["se"]), tol_se);
+    close_abs(
+        "country_sd",
+        &[f(&got["country_sd"])],
+        &[f(&want["country_sd"])],
+        tol_abs,
+    );
+    close_abs(
+        "residual_sd",
+        &[f(&got["residual_sd"])],
+        &[f(&want["residual_sd"])],
+        tol_abs,
+    );
+    close_abs(
+        "log_likelihood",
+        &[f(&got["log_likelihood"])],
+        &[f(&want["log_likelihood"])],
+        1e-4,
+    );
+}
+
+#[test]
+fn sleepstudy_reml_matches_lme4() {
+    // lme4 1.1-31: lmer(Reaction ~ Days + (1 | Subject), REML = TRUE).
+    let reference = load("lme4_reference.json");
+    let want = &reference["sleepstudy_reml"];
+    let got = sleepstudy(&[]);
+    assert_eq!(got["method"], "REML");
+    assert_eq!(got["n"], 180);
+    assert_eq!(got["countries"], 18);
+    assert_eq!(got["converged"], true);
+    assert_eq!(got["terms"], serde_json::json!(["intercept", "days"]));
+    check_linear(&got, want, 1e-4, 1e-3);
+    // Conditional modes and variances (lme4's ranef with condVar), subjects in file order.
+    assert_eq!(got["country_codes"], reference["sleepstudy_subjects"]);
+    close_abs(
+        "modes",
+        &floats(&got["modes"]),
+        &floats(&want["modes"]),
+        1e-4,
+    );
+    close_rel(
+        "mode_variance",
+        &floats(&got["mode_variance"]),
+        &floats(&want["mode_variance"]),
+        1e-4,
+    );
+    // Intraclass correlation from the same fit (definition: tau^2 / (tau^2 + sigma^2)).
+    let (tau, sigma) = (f(&want["country_sd"]), f(&want["residual_sd"]));
+    let icc = tau * tau / (tau * tau + sigma * sigma);
+    assert!((f(&got["icc"]) - icc).abs() < 1e-6);
+}
+
+#[test]
+fn sleepstudy_ml_matches_lme4() {
+    // lme4 1.1-31: lmer(..., REML = FALSE).
+    let reference = load("lme4_reference.json");
+    let want = &reference["sleepstudy_ml"];
+    let got = sleepstudy(&["--ml"]);
+    assert_eq!(got["method"], "ML");
+    check_linear(&got, want, 1e-4, 1e-3);
+    close_abs(
+        "modes",
+        &floats(&got["modes"]),
+        &floats(&want["modes"]),
+        1e-4,
+    );
+}
+
+#[test]
+fn sleepstudy_matches_statsmodels_mixedlm() {
+    // statsmodels 0.15 MixedLM (lbfgs): its optimiser stops a little earlier than lme4's,
+    // so the variance components agree to about 2e-5 relative; checked to 1e-4 relative.
+    let reference = load("mixedlm_reference.json");
+    for (name, extra) in [("reml", vec![]), ("ml", vec!["--ml"])] {
+        let want = &reference[name];
+        let got = sleepstudy(&extra);
+        close_rel("coef", &floats(&got["coef"]), &floats(&want["coef"]), 1e-6);
+        close_rel("se", &floats(&got["se"]), &floats(&want["se"]), 1e-3);
+        close_rel(
+            "sds",
+            &[f(&got["country_sd"]), f(&got["residual_sd"])],
+            &[f(&want["country_sd"]), f(&want["residual_sd"])],
+            1e-4,
+        );
+        close_abs(
+            "log_likelihood",
+            &[f(&got["log_likelihood"])],
+            &[f(&want["log_likelihood"])],
+            1e-4,
+        );
+    }
+}
+
+#[test]
+fn cbpp_laplace_matches_lme4_and_the_exact_laplace_optimum() {
+    // lme4 1.1-31: glmer(incidence ~ period + (1 | herd), binomial), nAGQ = 1. lme4's
+    // penalised IRLS stops with its deviance about 3e-4 short of the exact Laplace
+    // approximation (see the R script), so against lme4 the fixed effects agree to about
+    // 6e-4 and are checked to 1e-3; against the exact Laplace optimum computed directly in
+    // R (each herd's mode by optimize and Newton, optim over the parameters, optimHess for
+    // the standard errors) to 1e-4, standard errors to 1e-3 relative.
+    let reference = load("lme4_reference.json");
+    let want = &reference["cbpp_laplace"];
+    let exact = &reference["cbpp_exact_laplace"];
+    let got = cbpp(&[]);
+    assert_eq!(got["method"], "Laplace");
+    assert_eq!(got["n"], 842);
+    assert_eq!(got["countries"], 15);
+    assert_eq!(got["converged"], true);
+    assert!(got["residual_sd"].is_null());
+    assert!(got["icc"].is_null());
+    close_abs("coef", &floats(&got["coef"]), &floats(&exact["coef"]), 1e-4);
+    close_abs(
+        "country_sd",
+        &[f(&got["country_sd"])],
+        &[f(&exact["country_sd"])],
+        1e-4,
+    );
+    close_abs(
+        "log_likelihood",
+        &[f(&got["log_likelihood"])],
+        &[f(&exact["log_likelihood"])],
+        1e-6,
+    );
+    close_abs(
+        "coef vs lme4",
+        &floats(&got["coef"]),
+        &floats(&want["coef"]),
+        1e-3,
+    );
+    close_abs(
+        "country_sd vs lme4",
+        &[f(&got["country_sd"])],
+        &[f(&want["country_sd"])],
+        1e-3,
+    );
+    // Standard errors: inverse Hessian over (beta, tau), as lme4's vcov(use.hessian = TRUE);
+    // lme4 differentiates its IRLS-based deviance numerically, about 1.2% off here.
+    close_rel("se", &floats(&got["se"]), &floats(&exact["se"]), 1e-3);
+    close_rel(
+        "se vs lme4",
+        &floats(&got["se"]),
+        &floats(&want["se"]),
+        2e-2,
+    );
+    assert_eq!(got["country_codes"], reference["cbpp_herds"]);
+    close_abs(
+        "modes",
+        &floats(&got["modes"]),
+        &floats(&want["modes"]),
+        2e-3,
+    );
+    close_rel(
+        "mode_variance",
+        &floats(&got["mode_variance"]),
+        &floats(&want["mode_variance"]),
+        1e-2,
+    );
+}
+
+#[test]
+fn cbpp_adaptive_quadrature_matches_lme4() {
+    // lme4 1.1-31: glmer(..., nAGQ = 9).
+    let reference = load("lme4_reference.json");
+    let want = &reference["cbpp_agq9"];
+    let got = cbpp(&["--nodes", "9"]);
+    assert_eq!(got["converged"], true);
+    close_abs("coef", &floats(&got["coef"]), &floats(&want["coef"]), 1e-4);
+    close_abs(
+        "country_sd",
+        &[f(&got["country_sd"])],
+        &[f(&want["country_sd"])],
+        1e-4,
+    );
+    close_rel("se", &floats(&got["se"]), &floats(&want["se"]), 1e-3);
+    close_abs(
+        "log_likelihood",
+        &[f(&got["log_likelihood"])],
+        &[f(&want["log_likelihood"])],
+        1e-4,
+    );
+    close_abs(
+        "modes",
+        &floats(&got["modes"]),
+        &floats(&want["modes"]),
+        1e-4,
+    );
+}
+
+#[test]
+fn bad_requests_get_a_message_not_a_panic() {
+    let file = fixtures().join("sleepstudy.csv");
+    let path = file.to_str().unwrap();
+    let out = gapwise(&[
+        "multilevel",
+        path,
+        "--outcome",
+        "reaction",
+        "--predictors",
+        "days",
+        "--country",
+        "subject",
+        "--kind",
+        "probit",
+    ]);
+    assert_eq!(out.code, 2);
+    assert!(out.stderr.contains("--kind"), "{}", out.stderr);
+    let out = gapwise(&[
+        "multilevel",
+        path,
+        "--outcome",
+        "reaction",
+        "--predictors",
+        "days",
+        "--country",
+        "subject",
+        "--kind",
+        "logistic",
+    ]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("0 or 1"), "{}", out.stderr);
+    let out = gapwise(&[
+        "multilevel",
+        path,
+        "--outcome",
+        "nothing",
+        "--predictors",
+        "days",
+        "--country",
+        "subject",
+    ]);
+    assert_eq!(out.code, 1);
+    assert!(out.stderr.contains("nothing"), "{}", out.stderr);
+}
+
+/// A known universe: 80 countries, true country means 5 + 0.8 z_j + u_j (u_j ~ N(0, 0.3^2)),
+/// participation more likely for high z (logit 1.2 z), 60 respondents per participant with
+/// unit-variance noise. The target is the mean of the 80 true country means. Over 100
+/// universes the projection's 95% interval should cover it at close to 95% (binomial SD
+/// 2.2 points; accepted 86-100%), and its mean absolute error should be below that of the
+/// participants' unweighted mean (common practice for a simulation check).
+#[test]
+fn projection_recovers_a_known_universe() {
+    use gapwise::analysis::projection::{projection, ProjectionSettings};
+    use gapwise::analysis::Settings;
+    use gapwise::project::{Project, WaveView};
+    use gapwise::stats::random::Rng;
+    use std::fmt::Write as _;
+
+    let manifest = r#"
+title = "Simulated universe"
+[columns]
+code = "iso"
+name = "name"
+wave = "wave"
+participation = "took_part"
+[indicators]
+numeric = ["z", "noise"]
+[microdata]
+country = "iso"
+wave = "wave"
+design_weight = "dweight"
+variables = ["y"]
+"#;
+    let replicates = 100;
+    let mut covered = 0;
+    let mut error_projection = 0.0;
+    let mut error_participants = 0.0;
+    let dir = TempDir::new("known-universe");
+    dir.write("project.toml", manifest);
+    for rep in 0..replicates {
+        let mut rng = Rng::stream(17, rep);
+        let mut frame = String::from("iso,name,wave,took_part,z,noise\n");
+        let mut micro = String::from("iso,wave,dweight,y\n");
+        let mut truth = 0.0;
+        let mut part_means = Vec::new();
+        for j in 0..80 {
+            let z = rng.normal();
+            let mu = 5.0 + 0.8 * z + 0.3 * rng.normal();
+            truth += mu / 80.0;
+            let took_part = rng.bernoulli(1.0 / (1.0 + (-1.2 * z).exp()));
+            let code = format!(
+                "X{}{}",
+                (b'A' + (j / 26) as u8) as char,
+                (b'A' + (j % 26) as u8) as char
+            );
+            let _ = writeln!(
+                frame,
+                "{code},Country {j},1,{},{z:.6},{:.6}",
+                u8::from(took_part),
+                rng.normal()
+            );
+            if took_part {
+                let mut s = 0.0;
+                for _ in 0..60 {
+                    let y = mu + rng.normal();
+                    s += y;
+                    let _ = writeln!(micro, "{code},1,1.0,{y:.6}");
+                }
+                part_means.push(s / 60.0);
+            }
+        }
+        dir.write("frame.csv", &frame);
+        dir.write("microdata.csv", &micro);
+        let project = Project::load(dir.path()).unwrap_or_else(|p| panic!("{p:?}"));
+        let view = WaveView::new(&project, 1).unwrap();
+        let settings = Settings {
+            wave: Some(1),
+            seed: 1000 + rep,
+            ..Settings::default()
+        };
+        let r = projection(
+            &project,
+            &view,
+            &settings,
+            &ProjectionSettings {
+                outcome: "y".into(),
+                predictors: vec![],
+            },
+        )
+        .unwrap();
+        assert_eq!(r.countries.len(), 80);
+        assert_eq!(r.n_participants, part_means.len());
+        if r.universe_low <= truth && truth <= r.universe_high {
+            covered += 1;
+        }
+        error_projection += (r.universe_estimate - truth).abs();
+        let naive = part_means.iter().sum::<f64>() / part_means.len() as f64;
+        assert!((naive - r.participants_mean).abs() < 1e-5);
+        error_participants += (naive - truth).abs();
+    }
+    let rate = covered as f64 / replicates as f64;
+    assert!((0.86..=1.0).contains(&rate), "coverage {rate}");
+    assert!(
+        error_projection < 0.7 * error_participants,
+        "mean abs error {} vs participants' {}",
+        error_projection / replicates as f64,
+        error_participants / replicates as f64
+    );
+    println!(
+        "coverage {rate}; mean absolute error {:.4} (projection) vs {:.4} (participants)",
+        error_projection / replicates as f64,
+        error_participants / replicates as f64
+    );
+}
+
+#[test]
+fn projection_page_twin_and_download_agree() {
+    // Common practice: the page, its JSON twin and the CSV render one result.
+    let addr = start_server(&demo_dir());
+    let query = "outcome=trust_parliament&predictor=age";
+    let page = http(addr, "GET", &format!("/projection?{query}"), &[]);
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert!(page
+        .body
+        .contains("What would the whole eligible universe say?"));
+    let twin = http(addr, "GET", &format!("/api/projection?{query}"), &[]);
+    assert_eq!(twin.status, 200);
+    let r: Value = serde_json::from_str(&twin.body).unwrap();
+    let estimate = f(&r["universe_estimate"]);
+    let (low, high) = (f(&r["universe_low"]), f(&r["universe_high"]));
+    assert!(low < estimate && estimate < high, "{low} {estimate} {high}");
+    assert!(page.body.contains(&format!("{estimate:.3}")));
+    assert!(page.body.contains(&format!("seed {}", r["seed"])));
+    let countries = r["countries"].as_array().unwrap();
+    let csv = http(addr, "GET", &format!("/projection/table.csv?{query}"), &[]);
+    assert_eq!(csv.status, 200);
+    assert_eq!(csv.body.lines().count(), countries.len() + 1);
+    assert!(!r["regions"].as_array().unwrap().is_empty());
+    // Countries with a missing indicator are not estimable: null, never 0.
+    for c in countries {
+        if c["prediction"].is_null() {
+            assert!(c["low"].is_null() && c["high"].is_null());
+        }
+    }
+}
