@@ -73,23 +73,25 @@ fn recruits_from_the_uncovered_cluster_first() {
         "{}",
         steps[0]["id"]
     );
-    assert!(steps[0]["gain"].as_f64().unwrap() > 0.0);
+    assert!(steps[0]["expected_gain"].as_f64().unwrap() > 0.0);
     let mut previous = p["current"]["effective_n"].as_f64().unwrap();
     for s in steps {
-        let now = s["effective_n"].as_f64().unwrap();
-        assert!((now - previous - s["gain"].as_f64().unwrap()).abs() < 1e-9);
+        let now = s["expected_effective_n"].as_f64().unwrap();
+        assert!((now - previous - s["expected_gain"].as_f64().unwrap()).abs() < 1e-9);
         previous = now;
+        // Every chance is 1 here: the expectation is the set with everyone in.
+        assert!((now - s["effective_n_if_all_join"].as_f64().unwrap()).abs() < 1e-9);
     }
     // Baselines have one entry per recruit.
     assert_eq!(
-        p["baselines"]["likeliest"]["effective_n"]
+        p["baselines"]["likeliest"]["expected_effective_n"]
             .as_array()
             .unwrap()
             .len(),
         3
     );
     assert_eq!(
-        p["baselines"]["random"]["effective_n"]
+        p["baselines"]["random"]["expected_effective_n"]
             .as_array()
             .unwrap()
             .len(),
@@ -143,7 +145,7 @@ fn a_candidate_that_makes_balance_feasible_comes_first() {
     assert_eq!(p["current"]["feasible"], false);
     assert_eq!(p["current"]["effective_n"], 0.0);
     let first = &p["steps"][0];
-    assert_eq!(first["feasible"], true);
+    assert_eq!(first["feasible_if_all_join"], true);
     let id = first["id"].as_str().unwrap();
     let n: usize = id[1..].parse().unwrap();
     assert_eq!(n % 3, 2, "the first recruit {id} should come from the east");
@@ -192,9 +194,9 @@ fn steps_equal_what_fit_reports_for_the_same_set() {
         let fit: Value = serde_json::from_str(&out.stdout).unwrap();
         let ess = fit["weighting"]["effective_n"].as_f64().unwrap();
         assert!(
-            (ess - step["effective_n"].as_f64().unwrap()).abs() < 1e-6,
+            (ess - step["effective_n_if_all_join"].as_f64().unwrap()).abs() < 1e-6,
             "step {j}: fit {ess} vs plan {}",
-            step["effective_n"]
+            step["effective_n_if_all_join"]
         );
         let max_smd = fit["balance"]
             .as_array()
@@ -202,7 +204,7 @@ fn steps_equal_what_fit_reports_for_the_same_set() {
             .iter()
             .map(|b| b["smd_before"].as_f64().unwrap().abs())
             .fold(0.0, f64::max);
-        assert!((max_smd - step["max_abs_smd"].as_f64().unwrap()).abs() < 1e-9);
+        assert!((max_smd - step["max_abs_smd_if_all_join"].as_f64().unwrap()).abs() < 1e-9);
     }
 }
 
@@ -229,7 +231,7 @@ fn invariant_to_row_order() {
             .map(|s| {
                 (
                     s["id"].as_str().unwrap().to_string(),
-                    (s["effective_n"].as_f64().unwrap() * 1e6).round(),
+                    (s["expected_effective_n"].as_f64().unwrap() * 1e6).round(),
                 )
             })
             .collect::<Vec<_>>()
