@@ -9,7 +9,9 @@ use super::objective::{outcomes, Draws, Expected, Memo, Offer, REPORT_DRAWS, REP
 use super::search::Budget;
 use crate::stats::random::Rng;
 
-/// Join outcomes drawn per random plan (common random numbers shared with every plan).
+/// Join outcomes drawn per random plan (common random numbers shared with every plan): the
+/// plan's expected score is the mean over them; its path after each recruit (the chart)
+/// uses the first, and its final effective number all of them.
 pub const OUTCOMES_PER_RANDOM_PLAN: usize = 4;
 
 /// A rule's expected balance after each number of recruits (index 0: one recruit).
@@ -148,27 +150,40 @@ pub fn baselines(
             let mut order = plain.to_vec();
             rng.shuffle(&mut order);
             let plan = within_budget(&order, budget);
+            // The path after each recruit from the plan's first join draw; its expected
+            // score from all its draws (only the final set is needed for those).
             let mut path = vec![[0.0; 4]; plan.len()];
             let mut score = 0.0;
             let r_count = OUTCOMES_PER_RANDOM_PLAN;
+            let mut last_effective_n = 0.0;
             for r in 0..r_count {
                 // Draw r of the common random numbers, offset per plan so that the random
                 // plans do not all share the same few outcomes.
                 let row = (d * r_count + r) % REPORT_DRAWS;
                 let mut joined: Vec<usize> = Vec::new();
-                let mut m = memo_ref.compute(&joined);
-                for (j, o) in plan.iter().enumerate() {
-                    if draws.joins(row, o) {
-                        joined.push(o.unit);
-                        joined.sort_unstable();
-                        m = memo_ref.known(&joined).unwrap_or_else(|| memo_ref.compute(&joined));
+                let look = |joined: &[usize]| memo_ref.known(joined).unwrap_or_else(|| memo_ref.compute(joined));
+                if r == 0 {
+                    let mut m = look(&joined);
+                    for (j, o) in plan.iter().enumerate() {
+                        if draws.joins(row, o) {
+                            joined.push(o.unit);
+                            joined.sort_unstable();
+                            m = look(&joined);
+                        }
+                        path[j] = [m.effective_n, m.max_abs_smd, m.mean_abs_smd, f64::from(u8::from(m.feasible))];
                     }
-                    path[j][0] += m.effective_n / r_count as f64;
-                    path[j][1] += m.max_abs_smd / r_count as f64;
-                    path[j][2] += m.mean_abs_smd / r_count as f64;
-                    path[j][3] += f64::from(u8::from(m.feasible)) / r_count as f64;
+                    score += memo_ref.kind.score(&m) / r_count as f64;
+                    last_effective_n += m.effective_n / r_count as f64;
+                } else {
+                    joined.extend(plan.iter().filter(|o| draws.joins(row, o)).map(|o| o.unit));
+                    joined.sort_unstable();
+                    let m = look(&joined);
+                    score += memo_ref.kind.score(&m) / r_count as f64;
+                    last_effective_n += m.effective_n / r_count as f64;
                 }
-                score += memo_ref.kind.score(&m) / r_count as f64;
+            }
+            if let Some(end) = path.last_mut() {
+                end[0] = last_effective_n;
             }
             (plan, path, score)
         })

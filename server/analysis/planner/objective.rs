@@ -27,9 +27,9 @@ use crate::stats::random::Rng;
 /// Reported figures: exact while at most 2^10 outcomes, else this many Monte Carlo draws.
 pub const REPORT_EXACT_OUTCOMES: usize = 1 << 10;
 pub const REPORT_DRAWS: usize = 1000;
-/// The search (greedy and exchange): exact while at most 16 outcomes, else 16 draws; each
+/// The search (greedy and exchange): exact while at most 8 outcomes, else 8 draws; each
 /// trial candidate's own join is integrated exactly (conditional Monte Carlo).
-pub const SEARCH_OUTCOMES: usize = 16;
+pub const SEARCH_OUTCOMES: usize = 8;
 
 /// What the planner maximises (in expectation over who joins).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]

@@ -134,7 +134,7 @@ pub struct Swap {
 }
 
 /// Candidates tried by the exchange step: the best of greedy's last round.
-pub const EXCHANGE_POOL: usize = 24;
+pub const EXCHANGE_POOL: usize = 16;
 
 /// Exchange: the best single swap of an invitation in the plan for one from the pool
 /// (or the same country with support toggled), repeated while the expected objective rises
@@ -149,7 +149,6 @@ pub fn exchange(
 ) -> Vec<Swap> {
     let mut swaps = Vec::new();
     for _ in 0..4 * plan.len().max(1) {
-        let (now, _) = memo.value(&search_outcomes(plan, draws, SEARCH_OUTCOMES));
         let mut best: Option<(f64, usize, usize)> = None;
         for position in 0..plan.len() {
             let rest: Vec<Offer> = plan
@@ -160,6 +159,9 @@ pub fn exchange(
                 .collect();
             let base = search_outcomes(&rest, draws, SEARCH_OUTCOMES);
             memo.value(&base);
+            // The plan as it stands, on the same estimator as the swaps: the others' join
+            // outcomes drawn, this invitation's own join integrated exactly.
+            let (now, _) = memo.with_offer(&base, &plan[position]);
             let memo_ref: &Memo = memo;
             let found = pool
                 .par_iter()
@@ -171,10 +173,9 @@ pub fn exchange(
                 .map(|&i| (memo_ref.with_offer(&base, &menu[i]).0, i))
                 .reduce_with(|a, b| if b.0 > a.0 || (b.0 == a.0 && b.1 < a.1) { b } else { a });
             if let Some((value, i)) = found {
-                if value > now + 1e-9 * now.abs().max(1.0)
-                    && best.is_none_or(|(v, ..)| value > v)
-                {
-                    best = Some((value, position, i));
+                let rise = value - now;
+                if rise > 1e-9 * now.abs().max(1.0) && best.is_none_or(|(r, ..)| rise > r) {
+                    best = Some((rise, position, i));
                 }
             }
         }
