@@ -46,31 +46,10 @@ struct PlanPage<'a> {
 impl PlanPage<'_> {
     /// The analysis settings as hidden fields, so the plan forms keep them.
     fn plan_hidden(&self) -> Vec<(String, String)> {
-        self.form
-            .query
-            .split('&')
-            .filter_map(|kv| kv.split_once('='))
-            .map(|(k, v)| (k.to_string(), percent_decode(v)))
+        form_urlencoded::parse(self.form.query.as_bytes())
+            .map(|(k, v)| (k.into_owned(), v.into_owned()))
             .collect()
     }
-}
-
-fn percent_decode(s: &str) -> String {
-    let bytes = s.as_bytes();
-    let mut out = Vec::with_capacity(bytes.len());
-    let mut i = 0;
-    while i < bytes.len() {
-        if bytes[i] == b'%' && i + 2 < bytes.len() {
-            if let Ok(b) = u8::from_str_radix(&s[i + 1..i + 3], 16) {
-                out.push(b);
-                i += 3;
-                continue;
-            }
-        }
-        out.push(if bytes[i] == b'+' { b' ' } else { bytes[i] });
-        i += 1;
-    }
-    String::from_utf8_lossy(&out).to_string()
 }
 
 /// The planner's settings from the page's query, validated once. `budget` and
@@ -360,5 +339,71 @@ pub async fn artifact(
         _ => Err(AppError::NotFound(format!(
             "no {item} here; try paths.svg, map.svg, plan.csv, baselines.csv or candidates.csv"
         ))),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse(query: &str) -> PlanSettings {
+        let pairs: PageQuery = form_urlencoded::parse(query.as_bytes())
+            .map(|(k, v)| (k.into_owned(), v.into_owned()))
+            .collect();
+        plan_settings(&pairs).unwrap()
+    }
+
+    #[test]
+    fn settings_survive_the_round_trip_through_the_query() {
+        let cases = [
+            PlanSettings {
+                budget: Some(7),
+                replicates: 0,
+                ..PlanSettings::default()
+            },
+            PlanSettings {
+                budget: None,
+                cost_budget: Some(250.5),
+                cost_column: Some("cost & fees=%".to_string()),
+                feasibility: Feasibility::Column("chance of joining".to_string()),
+                objective: ObjectiveKind::LargestSmd,
+                replicates: 33,
+                joiners: vec!["XAB".to_string(), "X&Y".to_string()],
+                ..PlanSettings::default()
+            },
+            PlanSettings {
+                feasibility: Feasibility::Model,
+                objective: ObjectiveKind::Feasibility,
+                ..PlanSettings::default()
+            },
+        ];
+        for settings in cases {
+            let query = plan_query(&settings);
+            assert_eq!(parse(&query), settings, "{query}");
+        }
+        // Values are encoded: no raw '&' or '=' inside a value.
+        let q = plan_query(&PlanSettings {
+            cost_column: Some("a&b=c".to_string()),
+            ..PlanSettings::default()
+        });
+        assert!(q.contains("cost_column=a%26b%3Dc"), "{q}");
+    }
+
+    #[test]
+    fn empty_fields_are_absent_and_bad_values_are_refused() {
+        let s = parse("budget=&cost_budget=120&feasibility=&replicates=5");
+        assert_eq!(s.budget, None);
+        assert_eq!(s.cost_budget, Some(120.0));
+        assert_eq!(s.feasibility, Feasibility::Auto);
+        let bad = |q: &str| {
+            let pairs: PageQuery = form_urlencoded::parse(q.as_bytes())
+                .map(|(k, v)| (k.into_owned(), v.into_owned()))
+                .collect();
+            plan_settings(&pairs).is_err()
+        };
+        assert!(bad("budget=two"));
+        assert!(bad("cost_budget=inf"));
+        assert!(bad("objective=most"));
+        assert!(bad("replicates=99999"));
     }
 }
