@@ -402,7 +402,14 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
     let _ = writeln!(
         out,
         "\n{:<4} {:<8} {:>8} {:>12} {:>9} {:>10} {:>11} {:>9}",
-        "step", "country", "p(join)", "expected n", "exp. gain", "exp. max|d|", "n if all join", "stability"
+        "step",
+        "country",
+        "p(join)",
+        "expected n",
+        "exp. gain",
+        "exp. max|d|",
+        "n if all join",
+        "stability"
     );
     for (j, s) in p.steps.iter().enumerate() {
         let _ = writeln!(

@@ -358,8 +358,12 @@ fn plan_page_and_twin() {
 
 /// Reads a committed fixture of tests/fixtures.
 fn fixture(name: &str) -> String {
-    std::fs::read_to_string(std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(name))
-        .unwrap()
+    std::fs::read_to_string(
+        std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("tests/fixtures")
+            .join(name),
+    )
+    .unwrap()
 }
 
 #[test]
@@ -378,10 +382,26 @@ fn expected_objective_equals_an_offline_enumeration() {
         let (a, b) = (ours.as_f64().unwrap(), theirs.as_f64().unwrap());
         assert!((a - b).abs() < tol, "{a} vs {b}");
     };
-    close(&last["expected_effective_n"], &reference["expected_effective_n"], 1e-6);
-    close(&last["expected_max_abs_smd"], &reference["expected_max_abs_smd"], 1e-9);
-    close(&last["effective_n_if_all_join"], &reference["effective_n_if_all_join"], 1e-6);
-    close(&p["current"]["effective_n"], &reference["effective_n_now"], 1e-6);
+    close(
+        &last["expected_effective_n"],
+        &reference["expected_effective_n"],
+        1e-6,
+    );
+    close(
+        &last["expected_max_abs_smd"],
+        &reference["expected_max_abs_smd"],
+        1e-9,
+    );
+    close(
+        &last["effective_n_if_all_join"],
+        &reference["effective_n_if_all_join"],
+        1e-6,
+    );
+    close(
+        &p["current"]["effective_n"],
+        &reference["effective_n_now"],
+        1e-6,
+    );
     assert!(last.get("expected_effective_n_mc_error").is_none());
 }
 
@@ -441,10 +461,18 @@ fn the_exact_optimum_equals_brute_force() {
             }
         }
     }
-    assert!((p.optimality.best_found - best).abs() < 1e-6, "{} vs {best}", p.optimality.best_found);
+    assert!(
+        (p.optimality.best_found - best).abs() < 1e-6,
+        "{} vs {best}",
+        p.optimality.best_found
+    );
     // The plan cannot beat the optimum, and greedy plus exchange should come close.
     assert!(p.optimality.plan_value <= best + 1e-6);
-    assert!(p.optimality.plan_value >= 0.97 * best, "{} vs {best}", p.optimality.plan_value);
+    assert!(
+        p.optimality.plan_value >= 0.97 * best,
+        "{} vs {best}",
+        p.optimality.plan_value
+    );
 }
 
 #[test]
@@ -472,7 +500,10 @@ fn the_demo_plan_beats_95_percent_of_random_plans() {
         assert!((o["plan_value"].as_f64().unwrap() - plan_value).abs() < 1e-9);
         for rule in ["likeliest", "random", "most_different"] {
             let b = &p["baselines"][rule];
-            assert!(b["expected_effective_n_mean"].as_f64().unwrap() <= plan_value + 1e-9, "{rule}");
+            assert!(
+                b["expected_effective_n_mean"].as_f64().unwrap() <= plan_value + 1e-9,
+                "{rule}"
+            );
             assert!(b["draws"].as_u64().unwrap() >= 1);
         }
         assert!(p["baselines"]["random"]["mc_error"].as_f64().unwrap() > 0.0);

@@ -69,7 +69,9 @@ pub fn plan_settings(query: &PageQuery) -> AppResult<PlanSettings> {
             v.parse::<f64>()
                 .ok()
                 .filter(|b| b.is_finite())
-                .ok_or_else(|| AppError::BadRequest(format!("cost_budget must be a number, not '{v}'")))
+                .ok_or_else(|| {
+                    AppError::BadRequest(format!("cost_budget must be a number, not '{v}'"))
+                })
         })
         .transpose()?;
     let budget = get("budget")

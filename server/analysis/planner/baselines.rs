@@ -5,7 +5,9 @@ use rayon::prelude::*;
 use serde::Serialize;
 
 use super::evaluate::Evaluator;
-use super::objective::{outcomes, Draws, Expected, Memo, Offer, REPORT_DRAWS, REPORT_EXACT_OUTCOMES};
+use super::objective::{
+    outcomes, Draws, Expected, Memo, Offer, REPORT_DRAWS, REPORT_EXACT_OUTCOMES,
+};
 use super::search::Budget;
 use crate::stats::random::Rng;
 
@@ -67,7 +69,14 @@ pub fn within_budget(order: &[Offer], budget: Budget) -> Vec<Offer> {
 /// Expected balance after each prefix of `plan` (reported precision).
 pub fn prefix_path(memo: &mut Memo, draws: &Draws, plan: &[Offer]) -> Vec<Expected> {
     (1..=plan.len())
-        .map(|j| memo.expected(&outcomes(&plan[..j], draws, REPORT_EXACT_OUTCOMES, REPORT_DRAWS)))
+        .map(|j| {
+            memo.expected(&outcomes(
+                &plan[..j],
+                draws,
+                REPORT_EXACT_OUTCOMES,
+                REPORT_DRAWS,
+            ))
+        })
         .collect()
 }
 
@@ -161,7 +170,11 @@ pub fn baselines(
                 // plans do not all share the same few outcomes.
                 let row = (d * r_count + r) % REPORT_DRAWS;
                 let mut joined: Vec<usize> = Vec::new();
-                let look = |joined: &[usize]| memo_ref.known(joined).unwrap_or_else(|| memo_ref.compute(joined));
+                let look = |joined: &[usize]| {
+                    memo_ref
+                        .known(joined)
+                        .unwrap_or_else(|| memo_ref.compute(joined))
+                };
                 if r == 0 {
                     let mut m = look(&joined);
                     for (j, o) in plan.iter().enumerate() {
@@ -170,7 +183,12 @@ pub fn baselines(
                             joined.sort_unstable();
                             m = look(&joined);
                         }
-                        path[j] = [m.effective_n, m.max_abs_smd, m.mean_abs_smd, f64::from(u8::from(m.feasible))];
+                        path[j] = [
+                            m.effective_n,
+                            m.max_abs_smd,
+                            m.mean_abs_smd,
+                            f64::from(u8::from(m.feasible)),
+                        ];
                     }
                     score += memo_ref.kind.score(&m) / r_count as f64;
                     last_effective_n += m.effective_n / r_count as f64;
@@ -204,8 +222,8 @@ pub fn baselines(
         .map(|(_, p, _)| p.last().map_or(0.0, |v| v[0]))
         .collect();
     let average = finals.iter().sum::<f64>() / draws_n as f64;
-    let variance = finals.iter().map(|v| (v - average).powi(2)).sum::<f64>()
-        / (draws_n.max(2) - 1) as f64;
+    let variance =
+        finals.iter().map(|v| (v - average).powi(2)).sum::<f64>() / (draws_n.max(2) - 1) as f64;
     let random_scores: Vec<f64> = results.iter().map(|r| r.2).collect();
     let random = BaselinePath {
         rule: "random",

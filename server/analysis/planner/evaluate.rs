@@ -141,7 +141,8 @@ impl Evaluator {
         self.smd_columns
             .iter()
             .map(|(values, mean, sd)| {
-                let m = members.iter().map(|&i| values[i]).sum::<f64>() / members.len().max(1) as f64;
+                let m =
+                    members.iter().map(|&i| values[i]).sum::<f64>() / members.len().max(1) as f64;
                 if *sd > 0.0 {
                     (m - mean) / sd
                 } else {

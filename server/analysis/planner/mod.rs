@@ -20,8 +20,10 @@ use self::baselines::{baselines, prefix_path, Baselines};
 use self::chances::{chances, cost_column, costs, Chances};
 use self::evaluate::Evaluator;
 pub use self::evaluate::SetMetrics;
-use self::objective::{outcomes, Draws, Expected, Memo, Offer, REPORT_DRAWS, REPORT_EXACT_OUTCOMES};
 pub use self::objective::ObjectiveKind;
+use self::objective::{
+    outcomes, Draws, Expected, Memo, Offer, REPORT_DRAWS, REPORT_EXACT_OUTCOMES,
+};
 use self::search::{exact_optimum, exchange, greedy, Budget, Swap, EXCHANGE_POOL};
 use super::design::{self, Design};
 use super::participation::AnalysisError;
@@ -234,10 +236,18 @@ struct Inputs {
 }
 
 impl Inputs {
-    fn gather(view: &WaveView, settings: &Settings, ps: &PlanSettings) -> Result<Inputs, PlanError> {
+    fn gather(
+        view: &WaveView,
+        settings: &Settings,
+        ps: &PlanSettings,
+    ) -> Result<Inputs, PlanError> {
         let design = design::build(view, settings).map_err(AnalysisError::from)?;
-        let members: Vec<usize> = (0..design.n()).filter(|&i| design.participated[i]).collect();
-        let candidates: Vec<usize> = (0..design.n()).filter(|&i| !design.participated[i]).collect();
+        let members: Vec<usize> = (0..design.n())
+            .filter(|&i| design.participated[i])
+            .collect();
+        let candidates: Vec<usize> = (0..design.n())
+            .filter(|&i| !design.participated[i])
+            .collect();
         if candidates.is_empty() {
             return Err(PlanError::Request(
                 "every eligible country already takes part: there is nobody to recruit".to_string(),
@@ -320,10 +330,21 @@ pub fn plan(
     let menu = inputs.menu();
 
     // Search: greedy, then exchange.
-    let found = greedy(&mut memo, &draws, &menu, inputs.budget, objective::SEARCH_OUTCOMES);
+    let found = greedy(
+        &mut memo,
+        &draws,
+        &menu,
+        inputs.budget,
+        objective::SEARCH_OUTCOMES,
+    );
     let greedy_plan = found.plan.clone();
     let mut chosen = found.plan;
-    let mut pool: Vec<usize> = found.last_round.iter().take(EXCHANGE_POOL).map(|t| t.offer).collect();
+    let mut pool: Vec<usize> = found
+        .last_round
+        .iter()
+        .take(EXCHANGE_POOL)
+        .map(|t| t.offer)
+        .collect();
     for o in &chosen {
         if let Some(i) = menu.iter().position(|m| m == o) {
             pool.push(i);
@@ -342,7 +363,16 @@ pub fn plan(
         plan_settings.random_draws,
         seed,
     );
-    let optimality = optimality(&mut memo, &draws, &inputs, &menu, &chosen, &greedy_plan, &swaps, &baselines);
+    let optimality = optimality(
+        &mut memo,
+        &draws,
+        &inputs,
+        &menu,
+        &chosen,
+        &greedy_plan,
+        &swaps,
+        &baselines,
+    );
 
     if plan_settings.replicates > 0 {
         let counts = stability::bootstrap(
@@ -355,7 +385,9 @@ pub fn plan(
             plan_settings.replicates,
             seed,
         )?;
-        let share = |id: &str| Some(counts.get(id).copied().unwrap_or(0.0) / plan_settings.replicates as f64);
+        let share = |id: &str| {
+            Some(counts.get(id).copied().unwrap_or(0.0) / plan_settings.replicates as f64)
+        };
         for r in &mut rows {
             r.stability = share(&r.id);
         }
@@ -365,7 +397,9 @@ pub fn plan(
     }
     let what_if = what_if(&memo, design, &inputs, &plan_settings.joiners)?;
     let notes = notes(&inputs, &current, &steps, &swaps);
-    let last_exact = steps.last().is_none_or(|s| s.expected_effective_n_mc_error.is_none());
+    let last_exact = steps
+        .last()
+        .is_none_or(|s| s.expected_effective_n_mc_error.is_none());
     Ok(Plan {
         wave: Some(view.wave),
         settings: settings.clone(),
@@ -389,7 +423,13 @@ pub fn plan(
 
 /// The reported figures of each step: expectations over who joins of the first j
 /// invitations, and the set if all of them joined.
-fn report_steps(memo: &mut Memo, draws: &Draws, inputs: &Inputs, chosen: &[Offer], greedy_plan: &[Offer]) -> Vec<Step> {
+fn report_steps(
+    memo: &mut Memo,
+    draws: &Draws,
+    inputs: &Inputs,
+    chosen: &[Offer],
+    greedy_plan: &[Offer],
+) -> Vec<Step> {
     let design = &inputs.design;
     let path = prefix_path(memo, draws, chosen);
     let current = memo.get(&[]);
@@ -432,10 +472,22 @@ fn report_steps(memo: &mut Memo, draws: &Draws, inputs: &Inputs, chosen: &[Offer
 }
 
 /// Each candidate on its own, ranked by expected gain.
-fn candidate_rows(memo: &mut Memo, view: &WaveView, inputs: &Inputs, chosen: &[Offer]) -> Vec<CandidateRow> {
+fn candidate_rows(
+    memo: &mut Memo,
+    view: &WaveView,
+    inputs: &Inputs,
+    chosen: &[Offer],
+) -> Vec<CandidateRow> {
     let design = &inputs.design;
     let current = memo.get(&[]);
-    memo.fill(inputs.candidates.iter().map(|&c| vec![c]).collect::<Vec<_>>().iter());
+    memo.fill(
+        inputs
+            .candidates
+            .iter()
+            .map(|&c| vec![c])
+            .collect::<Vec<_>>()
+            .iter(),
+    );
     let mut rows: Vec<CandidateRow> = inputs
         .candidates
         .iter()
@@ -530,7 +582,14 @@ fn optimality(
         method,
         objective: kind,
         plan_value: natural(kind, plan_score),
-        best_found: natural(kind, best_score.max(if method == "exact" { f64::NEG_INFINITY } else { plan_score })),
+        best_found: natural(
+            kind,
+            best_score.max(if method == "exact" {
+                f64::NEG_INFINITY
+            } else {
+                plan_score
+            }),
+        ),
         best_plan: best_plan.iter().map(|o| ids[o.unit].clone()).collect(),
         plan_percentile_among_random: percentile,
         random_plans: baselines.random_scores.len(),
@@ -542,7 +601,12 @@ fn optimality(
     }
 }
 
-fn what_if(memo: &Memo, design: &Design, inputs: &Inputs, joiners: &[String]) -> Result<Option<WhatIf>, PlanError> {
+fn what_if(
+    memo: &Memo,
+    design: &Design,
+    inputs: &Inputs,
+    joiners: &[String],
+) -> Result<Option<WhatIf>, PlanError> {
     if joiners.is_empty() {
         return Ok(None);
     }
@@ -584,6 +648,12 @@ fn notes(inputs: &Inputs, current: &SetMetrics, steps: &[Step], swaps: &[Swap]) 
     if !swaps.is_empty() {
         notes.push(format!("The exchange step improved the greedy plan by {} swap(s); swapped-in countries are marked.", swaps.len()));
     }
+    if inputs.applied.replicates > 0 {
+        notes.push(format!(
+            "Stability: each bootstrap resample is replanned greedily on one draw of who joins (each trial country's own join integrated exactly), without the exchange step{}.",
+            if inputs.chances.column.is_none() { ", with the refitted model's in-sample chances (a leave-one-out refit per country per resample would cost too much)" } else { "" }
+        ));
+    }
     if inputs.chances.in_sample_fallbacks > 0 {
         notes.push(format!("For {} countries the leave-one-out refit failed; their chance of joining is the in-sample one.", inputs.chances.in_sample_fallbacks));
     }
@@ -593,7 +663,9 @@ fn notes(inputs: &Inputs, current: &SetMetrics, steps: &[Step], swaps: &[Swap]) 
             .as_ref()
             .is_some_and(|c| inputs.candidates.iter().any(|&i| c[i].is_none()))
     {
-        notes.push("Candidates without a (positive) cost are left out of a cost-budget plan.".to_string());
+        notes.push(
+            "Candidates without a (positive) cost are left out of a cost-budget plan.".to_string(),
+        );
     }
     notes.push("Expectations assume the invited countries decide independently, with the chances of joining shown, and that their indicators stay as in the frame; both are estimates.".to_string());
     notes

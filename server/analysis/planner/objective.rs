@@ -154,7 +154,12 @@ pub fn outcomes(plan: &[Offer], draws: &Draws, exact_limit: usize, mc_draws: usi
     let mut order: Vec<Vec<usize>> = Vec::new();
     for r in 0..count {
         let mut set = certain.clone();
-        set.extend(uncertain.iter().filter(|o| draws.joins(r, o)).map(|o| o.unit));
+        set.extend(
+            uncertain
+                .iter()
+                .filter(|o| draws.joins(r, o))
+                .map(|o| o.unit),
+        );
         set.sort_unstable();
         let entry = tally.entry(set.clone()).or_insert(0.0);
         if *entry == 0.0 {
@@ -297,7 +302,11 @@ impl<'a> Memo<'a> {
         let mut value = 0.0;
         let mut tie = 0.0;
         for (set, w) in &base.sets {
-            let without = self.map.get(set).copied().unwrap_or_else(|| self.compute(set));
+            let without = self
+                .map
+                .get(set)
+                .copied()
+                .unwrap_or_else(|| self.compute(set));
             let with = if p > 0.0 {
                 let mut joined = set.clone();
                 joined.push(offer.unit);

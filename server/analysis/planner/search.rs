@@ -22,10 +22,7 @@ pub enum Budget {
 impl Budget {
     /// Whether `plan` plus `offer` (minus the invitation at `without`) stays in budget.
     pub fn fits(&self, plan: &[Offer], offer: &Offer, without: Option<usize>) -> bool {
-        let kept = plan
-            .iter()
-            .enumerate()
-            .filter(|(i, _)| Some(*i) != without);
+        let kept = plan.iter().enumerate().filter(|(i, _)| Some(*i) != without);
         match *self {
             Budget::Count(k) => kept.count() < k,
             Budget::Cost(b) => match offer.cost {
@@ -171,7 +168,13 @@ pub fn exchange(
                         && budget.fits(plan, &menu[i], Some(position))
                 })
                 .map(|&i| (memo_ref.with_offer(&base, &menu[i]).0, i))
-                .reduce_with(|a, b| if b.0 > a.0 || (b.0 == a.0 && b.1 < a.1) { b } else { a });
+                .reduce_with(|a, b| {
+                    if b.0 > a.0 || (b.0 == a.0 && b.1 < a.1) {
+                        b
+                    } else {
+                        a
+                    }
+                });
             if let Some((value, i)) = found {
                 let rise = value - now;
                 if rise > 1e-9 * now.abs().max(1.0) && best.is_none_or(|(r, ..)| rise > r) {
@@ -234,13 +237,21 @@ pub fn exact_optimum(
                     if *w == 0.0 {
                         0.0
                     } else {
-                        w * memo_ref.kind.score(&memo_ref.known(s).unwrap_or_else(|| memo_ref.compute(s)))
+                        w * memo_ref
+                            .kind
+                            .score(&memo_ref.known(s).unwrap_or_else(|| memo_ref.compute(s)))
                     }
                 })
                 .sum();
             (value, combo.clone())
         })
-        .reduce_with(|a, b| if b.0 > a.0 + 1e-12 || ((b.0 - a.0).abs() <= 1e-12 && b.1 < a.1) { b } else { a })?;
+        .reduce_with(|a, b| {
+            if b.0 > a.0 + 1e-12 || ((b.0 - a.0).abs() <= 1e-12 && b.1 < a.1) {
+                b
+            } else {
+                a
+            }
+        })?;
     Some((best.0, best.1.iter().map(|&c| menu[c]).collect()))
 }
 
