@@ -21,7 +21,11 @@ fn main() {
     let candidates = view.len() - view.n_participants();
     println!("200 eligible units, {candidates} candidates, 10 numeric + 2 categorical indicators, plan of 10");
     let settings = Settings::default();
-    for replicates in [0, 200] {
+    let replicates_list: Vec<usize> = std::env::var("PLANNER_BENCH_REPLICATES")
+        .ok()
+        .and_then(|v| v.split(',').map(|r| r.parse().ok()).collect())
+        .unwrap_or_else(|| vec![0, 200]);
+    for replicates in replicates_list {
         let ps = PlanSettings {
             budget: Some(10),
             feasibility: Feasibility::Model,
