@@ -391,35 +391,71 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
     );
     let _ = writeln!(
         out,
-        "\n{:<4} {:<8} {:>11} {:>8} {:>8} {:>8} {:>8} {:>10} {:>9}",
+        "chances of joining: {}; expectations over who joins: {}{}",
+        p.chances.column.as_ref().map_or_else(
+            || "participation model, leave-one-out".to_string(),
+            |c| format!("column {c}")
+        ),
+        p.expectation,
+        if p.expectation_draws > 0 {
+            format!(" ({} draws)", p.expectation_draws)
+        } else {
+            String::new()
+        }
+    );
+    let _ = writeln!(
+        out,
+        "\n{:<4} {:<8} {:>8} {:>12} {:>9} {:>10} {:>11} {:>9}",
         "step",
         "country",
-        "effective n",
-        "mean|d|",
-        "max|d|",
-        "gain",
         "p(join)",
+        "expected n",
         "exp. gain",
+        "exp. max|d|",
+        "n if all join",
         "stability"
     );
     for (j, s) in p.steps.iter().enumerate() {
         let _ = writeln!(
             out,
-            "{:<4} {:<8} {:>11.1} {:>8.3} {:>8.3} {:>8.2} {:>8.2} {:>10.2} {:>9}",
+            "{:<4} {:<8} {:>8.2} {:>12} {:>9.2} {:>10.3} {:>11.1} {:>9}{}",
             j + 1,
             s.id,
-            s.effective_n,
-            s.mean_abs_smd,
-            s.max_abs_smd,
-            s.gain,
             s.probability,
+            match s.expected_effective_n_mc_error {
+                Some(e) => format!("{:.1}±{:.1}", s.expected_effective_n, e),
+                None => format!("{:.1}", s.expected_effective_n),
+            },
             s.expected_gain,
-            opt(s.stability, 2)
+            s.expected_max_abs_smd,
+            s.effective_n_if_all_join,
+            opt(s.stability, 2),
+            if s.exchanged { "  (by exchange)" } else { "" }
         );
     }
     let b = &p.baselines;
-    let last = |v: &Vec<f64>| v.last().copied().unwrap_or(0.0);
-    let _ = writeln!(out, "\nafter {} recruits: greedy plan effective n {:.1}; the {} likeliest {:.1}; at random (mean of {} draws) {:.1}", p.steps.len(), p.steps.last().map_or(c.effective_n, |s| s.effective_n), p.steps.len(), last(&b.likeliest.effective_n), b.draws, last(&b.random.effective_n));
+    let o = &p.optimality;
+    let plus = |e: Option<f64>| e.map_or(String::new(), |e| format!(" ± {e:.2}"));
+    let _ = writeln!(
+        out,
+        "\nexpected effective n with the whole budget: plan {:.1}; the likeliest {:.1}; the most different {:.1}; at random {:.1}{} (mean of {} random plans)",
+        p.steps.last().map_or(c.effective_n, |s| s.expected_effective_n),
+        b.likeliest.expected_effective_n_mean,
+        b.most_different.expected_effective_n_mean,
+        b.random.expected_effective_n_mean,
+        plus(b.random.mc_error),
+        b.random.draws
+    );
+    let _ = writeln!(
+        out,
+        "optimality ({}): plan {:.2}, best found {:.2} ({}); the plan is at the {:.1}th percentile of {} random plans",
+        o.method,
+        o.plan_value,
+        o.best_found,
+        o.best_plan.join(" "),
+        o.plan_percentile_among_random,
+        o.random_plans
+    );
     for n in &p.notes {
         let _ = writeln!(out, "note: {n}");
     }

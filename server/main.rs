@@ -71,18 +71,22 @@ enum Command {
         universe: UniverseArgs,
         #[command(flatten)]
         analysis: AnalysisArgs,
-        /// Number of countries to recruit.
-        #[arg(long)]
+        /// Number of countries to invite (default 5); the alternative to --cost-budget.
+        #[arg(long, conflicts_with = "cost_budget")]
         budget: Option<usize>,
-        /// Column with each country's recruitment cost.
+        /// Column with each country's recruitment cost (default: the project's [recruitment] cost).
         #[arg(long)]
         cost_column: Option<String>,
-        /// Total cost allowed (needs --cost-column).
+        /// Total cost allowed; the alternative to --budget.
         #[arg(long)]
         cost_budget: Option<f64>,
-        /// Probability of joining: "model" (the participation model) or a column of probabilities.
-        #[arg(long, default_value = "model")]
+        /// Chance of joining: "auto" (the project's feasibility column, else the model),
+        /// "model" (the participation model, leave-one-out) or a column of probabilities.
+        #[arg(long, default_value = "auto")]
         feasibility: String,
+        /// What to maximise over who joins: effective-n, largest-smd (made small) or feasibility.
+        #[arg(long, default_value = "effective-n")]
+        objective: String,
         /// Bootstrap replicates for the stability of each pick (0 to skip).
         #[arg(long, default_value_t = 200)]
         replicates: usize,
@@ -462,35 +466,40 @@ fn main() -> ExitCode {
             cost_column,
             cost_budget,
             feasibility,
+            objective,
             replicates,
             seed,
             json,
-        }) => match analysis.settings() {
-            Ok(mut settings) => {
+        }) => match (
+            analysis.settings(),
+            gapwise::analysis::planner::ObjectiveKind::parse(&objective),
+        ) {
+            (Err(message), _) => {
+                eprintln!("{message}");
+                2
+            }
+            (_, None) => {
+                eprintln!("--objective must be effective-n, largest-smd or feasibility, not '{objective}'");
+                2
+            }
+            (Ok(mut settings), Some(objective)) => {
                 if let Some(seed) = seed {
                     settings.seed = seed;
                 }
-                let feasibility = if feasibility == "model" {
-                    gapwise::analysis::planner::Feasibility::Model
-                } else {
-                    gapwise::analysis::planner::Feasibility::Column(feasibility)
-                };
+                let feasibility = gapwise::analysis::planner::Feasibility::parse(&feasibility);
                 let extra = gapwise::project::wave::ExtraColumns {
                     cost: cost_column.clone(),
                     feasibility: match &feasibility {
                         gapwise::analysis::planner::Feasibility::Column(c) => Some(c.clone()),
-                        gapwise::analysis::planner::Feasibility::Model => None,
+                        _ => None,
                     },
                 };
                 let plan_settings = gapwise::analysis::planner::PlanSettings {
-                    budget: if cost_budget.is_some() {
-                        None
-                    } else {
-                        budget.or(Some(5))
-                    },
+                    budget,
                     cost_budget,
                     cost_column,
                     feasibility,
+                    objective,
                     replicates,
                     ..Default::default()
                 };
@@ -506,10 +515,6 @@ fn main() -> ExitCode {
                     &plan_settings,
                     json,
                 )
-            }
-            Err(message) => {
-                eprintln!("{message}");
-                2
             }
         },
         Some(Command::Fit {

@@ -73,23 +73,25 @@ fn recruits_from_the_uncovered_cluster_first() {
         "{}",
         steps[0]["id"]
     );
-    assert!(steps[0]["gain"].as_f64().unwrap() > 0.0);
+    assert!(steps[0]["expected_gain"].as_f64().unwrap() > 0.0);
     let mut previous = p["current"]["effective_n"].as_f64().unwrap();
     for s in steps {
-        let now = s["effective_n"].as_f64().unwrap();
-        assert!((now - previous - s["gain"].as_f64().unwrap()).abs() < 1e-9);
+        let now = s["expected_effective_n"].as_f64().unwrap();
+        assert!((now - previous - s["expected_gain"].as_f64().unwrap()).abs() < 1e-9);
         previous = now;
+        // Every chance is 1 here: the expectation is the set with everyone in.
+        assert!((now - s["effective_n_if_all_join"].as_f64().unwrap()).abs() < 1e-9);
     }
     // Baselines have one entry per recruit.
     assert_eq!(
-        p["baselines"]["likeliest"]["effective_n"]
+        p["baselines"]["likeliest"]["expected_effective_n"]
             .as_array()
             .unwrap()
             .len(),
         3
     );
     assert_eq!(
-        p["baselines"]["random"]["effective_n"]
+        p["baselines"]["random"]["expected_effective_n"]
             .as_array()
             .unwrap()
             .len(),
@@ -143,7 +145,7 @@ fn a_candidate_that_makes_balance_feasible_comes_first() {
     assert_eq!(p["current"]["feasible"], false);
     assert_eq!(p["current"]["effective_n"], 0.0);
     let first = &p["steps"][0];
-    assert_eq!(first["feasible"], true);
+    assert_eq!(first["feasible_if_all_join"], true);
     let id = first["id"].as_str().unwrap();
     let n: usize = id[1..].parse().unwrap();
     assert_eq!(n % 3, 2, "the first recruit {id} should come from the east");
@@ -192,9 +194,9 @@ fn steps_equal_what_fit_reports_for_the_same_set() {
         let fit: Value = serde_json::from_str(&out.stdout).unwrap();
         let ess = fit["weighting"]["effective_n"].as_f64().unwrap();
         assert!(
-            (ess - step["effective_n"].as_f64().unwrap()).abs() < 1e-6,
+            (ess - step["effective_n_if_all_join"].as_f64().unwrap()).abs() < 1e-6,
             "step {j}: fit {ess} vs plan {}",
-            step["effective_n"]
+            step["effective_n_if_all_join"]
         );
         let max_smd = fit["balance"]
             .as_array()
@@ -202,7 +204,7 @@ fn steps_equal_what_fit_reports_for_the_same_set() {
             .iter()
             .map(|b| b["smd_before"].as_f64().unwrap().abs())
             .fold(0.0, f64::max);
-        assert!((max_smd - step["max_abs_smd"].as_f64().unwrap()).abs() < 1e-9);
+        assert!((max_smd - step["max_abs_smd_if_all_join"].as_f64().unwrap()).abs() < 1e-9);
     }
 }
 
@@ -229,7 +231,7 @@ fn invariant_to_row_order() {
             .map(|s| {
                 (
                     s["id"].as_str().unwrap().to_string(),
-                    (s["effective_n"].as_f64().unwrap() * 1e6).round(),
+                    (s["expected_effective_n"].as_f64().unwrap() * 1e6).round(),
                 )
             })
             .collect::<Vec<_>>()
@@ -352,4 +354,204 @@ fn plan_page_and_twin() {
         );
     }
     assert_eq!(http(addr, "GET", "/plan?budget=0", &[]).status, 400);
+}
+
+/// Reads a committed fixture of tests/fixtures.
+fn fixture(name: &str) -> String {
+    std::fs::read_to_string(
+        std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("tests/fixtures")
+            .join(name),
+    )
+    .unwrap()
+}
+
+#[test]
+fn expected_objective_equals_an_offline_enumeration() {
+    // Source: tests/fixtures/planner_expectation.py (numpy + scipy, its own entropy
+    // balancing), enumerating the 2^5 join outcomes of inviting the 5 candidates.
+    let reference: Value = serde_json::from_str(&fixture("planner_expectation.json")).unwrap();
+    let dir = TempDir::new("expectation");
+    dir.write("frame.csv", fixture("planner_expectation.csv"));
+    let p = plan_json(&dir, "frame.csv", &["--budget", "5", "--replicates", "0"]);
+    assert_eq!(p["expectation"], "exact");
+    let steps = p["steps"].as_array().unwrap();
+    assert_eq!(steps.len(), 5);
+    let last = &steps[4];
+    let close = |ours: &Value, theirs: &Value, tol: f64| {
+        let (a, b) = (ours.as_f64().unwrap(), theirs.as_f64().unwrap());
+        assert!((a - b).abs() < tol, "{a} vs {b}");
+    };
+    close(
+        &last["expected_effective_n"],
+        &reference["expected_effective_n"],
+        1e-6,
+    );
+    close(
+        &last["expected_max_abs_smd"],
+        &reference["expected_max_abs_smd"],
+        1e-9,
+    );
+    close(
+        &last["effective_n_if_all_join"],
+        &reference["effective_n_if_all_join"],
+        1e-6,
+    );
+    close(
+        &p["current"]["effective_n"],
+        &reference["effective_n_now"],
+        1e-6,
+    );
+    assert!(last.get("expected_effective_n_mc_error").is_none());
+}
+
+#[test]
+fn the_exact_optimum_equals_brute_force() {
+    use gapwise::analysis::design;
+    use gapwise::analysis::planner::evaluate::Evaluator;
+    use gapwise::analysis::planner::{plan, Feasibility, PlanSettings};
+    use gapwise::analysis::settings::Settings;
+    #[path = "../benches/synthetic.rs"]
+    mod synthetic;
+    let view = synthetic::synthetic_universe(40, 3, 7);
+    let settings = Settings::default();
+    let ps = PlanSettings {
+        budget: Some(3),
+        feasibility: Feasibility::Model,
+        replicates: 0,
+        random_draws: 200,
+        ..PlanSettings::default()
+    };
+    let p = plan(&view, &settings, &ps).unwrap();
+    assert_eq!(p.optimality.method, "exact");
+    // Brute force, independent of the planner's search and memo: every plan of 3, every
+    // join outcome, each set evaluated afresh.
+    let d = design::build(&view, &settings).unwrap();
+    let eval = Evaluator::new(&d);
+    let members: Vec<usize> = (0..d.n()).filter(|&i| d.participated[i]).collect();
+    let chance = |i: usize| {
+        p.candidates
+            .iter()
+            .find(|c| c.id == d.ids[i])
+            .unwrap()
+            .probability
+    };
+    let candidates: Vec<usize> = (0..d.n()).filter(|&i| !d.participated[i]).collect();
+    assert_eq!(candidates.len(), p.candidates.len());
+    let mut best = f64::NEG_INFINITY;
+    for a in 0..candidates.len() {
+        for b in a + 1..candidates.len() {
+            for c in b + 1..candidates.len() {
+                let trio = [candidates[a], candidates[b], candidates[c]];
+                let mut value = 0.0;
+                for mask in 0..8 {
+                    let mut set = members.clone();
+                    let mut w = 1.0;
+                    for (bit, &u) in trio.iter().enumerate() {
+                        if mask >> bit & 1 == 1 {
+                            set.push(u);
+                            w *= chance(u);
+                        } else {
+                            w *= 1.0 - chance(u);
+                        }
+                    }
+                    value += w * eval.evaluate(&set, None).0.effective_n;
+                }
+                best = best.max(value);
+            }
+        }
+    }
+    assert!(
+        (p.optimality.best_found - best).abs() < 1e-6,
+        "{} vs {best}",
+        p.optimality.best_found
+    );
+    // The plan cannot beat the optimum, and greedy plus exchange should come close.
+    assert!(p.optimality.plan_value <= best + 1e-6);
+    assert!(
+        p.optimality.plan_value >= 0.97 * best,
+        "{} vs {best}",
+        p.optimality.plan_value
+    );
+}
+
+#[test]
+fn the_demo_plan_beats_95_percent_of_random_plans() {
+    let demo = demo_dir();
+    for source in ["auto", "model"] {
+        let out = gapwise(&[
+            "plan",
+            demo.to_str().unwrap(),
+            "--feasibility",
+            source,
+            "--replicates",
+            "0",
+            "--json",
+        ]);
+        assert_eq!(out.code, 0, "{}", out.stderr);
+        let p: Value = serde_json::from_str(&out.stdout).unwrap();
+        let o = &p["optimality"];
+        assert!(o["random_plans"].as_u64().unwrap() >= 1000);
+        let pct = o["plan_percentile_among_random"].as_f64().unwrap();
+        assert!(pct >= 95.0, "{source}: {pct}");
+        let plan_value = p["steps"].as_array().unwrap().last().unwrap()["expected_effective_n"]
+            .as_f64()
+            .unwrap();
+        assert!((o["plan_value"].as_f64().unwrap() - plan_value).abs() < 1e-9);
+        for rule in ["likeliest", "random", "most_different"] {
+            let b = &p["baselines"][rule];
+            assert!(
+                b["expected_effective_n_mean"].as_f64().unwrap() <= plan_value + 1e-9,
+                "{rule}"
+            );
+            assert!(b["draws"].as_u64().unwrap() >= 1);
+        }
+        assert!(p["baselines"]["random"]["mc_error"].as_f64().unwrap() > 0.0);
+    }
+}
+
+#[test]
+fn chances_and_costs_default_to_the_manifest() {
+    let demo = demo_dir();
+    // The demo names [recruitment] cost = "recruitment_cost" and feasibility =
+    // "has_study_team".
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--cost-budget",
+        "300",
+        "--replicates",
+        "0",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert_eq!(p["plan"]["cost_column"], "recruitment_cost");
+    assert_eq!(p["chances"]["column"], "has_study_team");
+    let steps = p["steps"].as_array().unwrap();
+    assert!(!steps.is_empty());
+    let total = steps.last().unwrap()["cumulative_cost"].as_f64().unwrap();
+    assert!(total <= 300.0 + 1e-9, "{total}");
+    // The model's chances are leave-one-out ones.
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--feasibility",
+        "model",
+        "--replicates",
+        "0",
+        "--json",
+    ]);
+    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert_eq!(p["chances"]["source"], "model-leave-one-out");
+    // Both budgets at once: one or the other.
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--budget",
+        "3",
+        "--cost-budget",
+        "300",
+    ]);
+    assert_ne!(out.code, 0);
 }

@@ -5,10 +5,11 @@ use plotters::prelude::*;
 use super::{colour, failed_chart, font, legend, render, tick, GREY, SLIDE};
 use crate::analysis::planner::Plan;
 
-/// Effective number of countries (left) and mean |SMD| (right) after 0, 1, ... k recruits:
-/// the greedy plan, the k likeliest to join, and k at random (mean over draws).
+/// Expected effective number of countries (left) and expected mean |SMD| (right) after 0,
+/// 1, ... k invitations, over who joins: the plan, the k likeliest to join, the k most
+/// different from the participants, and k at random (mean over random plans).
 pub fn paths(p: &Plan) -> String {
-    const TITLE: &str = "Recruiting by plan, by likelihood, at random";
+    const TITLE: &str = "Expected balance: the plan against simple rules";
     if p.steps.is_empty() {
         return failed_chart(
             TITLE,
@@ -24,24 +25,28 @@ pub fn paths(p: &Plan) -> String {
             .collect::<Vec<_>>()
     };
     let series = |field: usize| -> Vec<(&'static str, Vec<(f64, f64)>)> {
-        let (start, plan, likeliest, random) = if field == 0 {
+        let b = &p.baselines;
+        let (start, plan, likeliest, different, random) = if field == 0 {
             (
                 p.current.effective_n,
-                p.steps.iter().map(|s| s.effective_n).collect(),
-                p.baselines.likeliest.effective_n.clone(),
-                p.baselines.random.effective_n.clone(),
+                p.steps.iter().map(|s| s.expected_effective_n).collect(),
+                b.likeliest.expected_effective_n.clone(),
+                b.most_different.expected_effective_n.clone(),
+                b.random.expected_effective_n.clone(),
             )
         } else {
             (
                 p.current.mean_abs_smd,
-                p.steps.iter().map(|s| s.mean_abs_smd).collect(),
-                p.baselines.likeliest.mean_abs_smd.clone(),
-                p.baselines.random.mean_abs_smd.clone(),
+                p.steps.iter().map(|s| s.expected_mean_abs_smd).collect(),
+                b.likeliest.expected_mean_abs_smd.clone(),
+                b.most_different.expected_mean_abs_smd.clone(),
+                b.random.expected_mean_abs_smd.clone(),
             )
         };
         vec![
-            ("Plan (greedy)", with_start(start, plan)),
+            ("Plan", with_start(start, plan)),
             ("Likeliest to join", with_start(start, likeliest)),
+            ("Most different", with_start(start, different)),
             ("At random (mean)", with_start(start, random)),
         ]
     };
@@ -49,8 +54,8 @@ pub fn paths(p: &Plan) -> String {
         let root = &root.titled(TITLE, font(24))?;
         let (left, right) = root.split_horizontally(SLIDE.0 / 2);
         for (field, area, desc) in [
-            (0, &left, "Effective number of countries"),
-            (1, &right, "Mean |SMD| of participants (unweighted)"),
+            (0, &left, "Expected effective number of countries"),
+            (1, &right, "Expected mean |SMD| (unweighted)"),
         ] {
             let all = series(field);
             let (lo, hi) = all
@@ -77,7 +82,7 @@ pub fn paths(p: &Plan) -> String {
                 .axis_desc_style(font(16))
                 .draw()?;
             for (i, (name, points)) in all.into_iter().enumerate() {
-                let c = if i == 2 { GREY } else { colour(i) };
+                let c = if i == 3 { GREY } else { colour(i) };
                 let style = c.stroke_width(3);
                 chart
                     .draw_series(LineSeries::new(points.clone(), style))?

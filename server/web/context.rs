@@ -15,13 +15,14 @@ use crate::project::{Project, WaveView};
 pub type Query = Vec<(String, String)>;
 
 /// Query keys that belong to the recruitment planner, not to the analysis settings.
-pub const PLAN_KEYS: [&str; 6] = [
+pub const PLAN_KEYS: [&str; 7] = [
     "budget",
     "cost_budget",
     "cost_column",
     "feasibility",
     "replicates",
     "joiner",
+    "objective",
 ];
 
 /// Query keys that belong to the impact view.

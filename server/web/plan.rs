@@ -15,12 +15,12 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
-use crate::analysis::planner::{plan, Feasibility, Plan, PlanSettings};
+use crate::analysis::planner::{plan, Feasibility, ObjectiveKind, Plan, PlanSettings};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 
 /// Bootstrap replicates on the page unless the query asks otherwise (the command line
-/// uses 200).
+/// uses [`crate::analysis::planner::DEFAULT_REPLICATES`]).
 const PAGE_REPLICATES: usize = 100;
 
 #[derive(Template)]
@@ -35,6 +35,8 @@ struct PlanPage<'a> {
     cost_budget: String,
     feasibility: String,
     feasibility_choices: Vec<(String, String)>,
+    objective: &'static str,
+    objective_choices: [(&'static str, &'static str); 3],
     path_chart: String,
     map_chart: String,
     plan_query: String,
@@ -44,35 +46,16 @@ struct PlanPage<'a> {
 impl PlanPage<'_> {
     /// The analysis settings as hidden fields, so the plan forms keep them.
     fn plan_hidden(&self) -> Vec<(String, String)> {
-        self.form
-            .query
-            .split('&')
-            .filter_map(|kv| kv.split_once('='))
-            .map(|(k, v)| (k.to_string(), percent_decode(v)))
+        form_urlencoded::parse(self.form.query.as_bytes())
+            .map(|(k, v)| (k.into_owned(), v.into_owned()))
             .collect()
     }
 }
 
-fn percent_decode(s: &str) -> String {
-    let bytes = s.as_bytes();
-    let mut out = Vec::with_capacity(bytes.len());
-    let mut i = 0;
-    while i < bytes.len() {
-        if bytes[i] == b'%' && i + 2 < bytes.len() {
-            if let Ok(b) = u8::from_str_radix(&s[i + 1..i + 3], 16) {
-                out.push(b);
-                i += 3;
-                continue;
-            }
-        }
-        out.push(if bytes[i] == b'+' { b' ' } else { bytes[i] });
-        i += 1;
-    }
-    String::from_utf8_lossy(&out).to_string()
-}
-
-/// Reads the planner's keys from the query string.
-pub fn plan_settings(query: &PageQuery, view_cost: Option<&str>) -> AppResult<PlanSettings> {
+/// The planner's settings from the page's query, validated once. `budget` and
+/// `cost_budget` are alternatives: an empty field counts as absent, and giving both is a
+/// bad request (the planner says so).
+pub fn plan_settings(query: &PageQuery) -> AppResult<PlanSettings> {
     let get = |key: &str| {
         query
             .iter()
@@ -81,15 +64,16 @@ pub fn plan_settings(query: &PageQuery, view_cost: Option<&str>) -> AppResult<Pl
             .map(|(_, v)| v.trim().to_string())
             .filter(|v| !v.is_empty())
     };
-    let number = |key: &str| -> AppResult<Option<f64>> {
-        get(key)
-            .map(|v| {
-                v.parse::<f64>()
-                    .map_err(|_| AppError::BadRequest(format!("{key} must be a number, not '{v}'")))
-            })
-            .transpose()
-    };
-    let cost_budget = number("cost_budget")?;
+    let cost_budget = get("cost_budget")
+        .map(|v| {
+            v.parse::<f64>()
+                .ok()
+                .filter(|b| b.is_finite())
+                .ok_or_else(|| {
+                    AppError::BadRequest(format!("cost_budget must be a number, not '{v}'"))
+                })
+        })
+        .transpose()?;
     let budget = get("budget")
         .map(|v| {
             v.parse::<usize>().map_err(|_| {
@@ -99,19 +83,20 @@ pub fn plan_settings(query: &PageQuery, view_cost: Option<&str>) -> AppResult<Pl
             })
         })
         .transpose()?;
+    let objective = match get("objective") {
+        None => ObjectiveKind::default(),
+        Some(v) => ObjectiveKind::parse(&v).ok_or_else(|| {
+            AppError::BadRequest(format!(
+                "objective must be effective-n, largest-smd or feasibility, not '{v}'"
+            ))
+        })?,
+    };
     Ok(PlanSettings {
-        budget: if cost_budget.is_some() {
-            None
-        } else {
-            budget.or(Some(5))
-        },
+        budget,
         cost_budget,
-        cost_column: get("cost_column").or_else(|| cost_budget.and(view_cost.map(str::to_string))),
-        feasibility: match get("feasibility") {
-            None => Feasibility::Model,
-            Some(v) if v == "model" => Feasibility::Model,
-            Some(v) => Feasibility::Column(v),
-        },
+        cost_column: get("cost_column"),
+        feasibility: get("feasibility").map_or(Feasibility::Auto, |v| Feasibility::parse(&v)),
+        objective,
         replicates: match get("replicates") {
             None => PAGE_REPLICATES,
             Some(v) => v
@@ -126,17 +111,43 @@ pub fn plan_settings(query: &PageQuery, view_cost: Option<&str>) -> AppResult<Pl
         },
         joiners: query
             .iter()
-            .filter(|(k, _)| k == "joiner")
-            .map(|(_, v)| v.clone())
+            .filter(|(k, v)| k == "joiner" && !v.trim().is_empty())
+            .map(|(_, v)| v.trim().to_string())
             .collect(),
         ..PlanSettings::default()
     })
 }
 
+/// The planner's own keys as an encoded query string (appended to the settings' query):
+/// read back by [`plan_settings`] it gives the same settings.
+pub fn plan_query(ps: &PlanSettings) -> String {
+    let mut q = form_urlencoded::Serializer::new(String::new());
+    if let Some(b) = ps.budget {
+        q.append_pair("budget", &b.to_string());
+    }
+    if let Some(b) = ps.cost_budget {
+        q.append_pair("cost_budget", &b.to_string());
+    }
+    if let Some(c) = &ps.cost_column {
+        q.append_pair("cost_column", c);
+    }
+    if ps.feasibility != Feasibility::Auto {
+        q.append_pair("feasibility", ps.feasibility.as_str());
+    }
+    if ps.objective != ObjectiveKind::default() {
+        q.append_pair("objective", ps.objective.as_str());
+    }
+    q.append_pair("replicates", &ps.replicates.to_string());
+    for j in &ps.joiners {
+        q.append_pair("joiner", j);
+    }
+    q.finish()
+}
+
 fn compute(state: &AppState, query: &PageQuery) -> AppResult<(SettingsForm, Plan, CoverageReport)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/plan", &project, &settings);
-    let ps = plan_settings(query, view.cost_column.as_deref())?;
+    let ps = plan_settings(query)?;
     let p = plan(&view, &settings, &ps).map_err(|e| AppError::BadRequest(e.to_string()))?;
     Ok((form, p, coverage(&view)))
 }
@@ -146,32 +157,25 @@ fn map(p: &Plan, c: &CoverageReport) -> String {
     charts::map::component_map_marked(c, &planned, &p.plan.joiners)
 }
 
-/// The planner's own keys as a query string (appended to the settings' query).
-fn plan_query(ps: &PlanSettings) -> String {
-    let mut parts = Vec::new();
-    if let Some(b) = ps.budget {
-        parts.push(format!("budget={b}"));
-    }
-    if let Some(b) = ps.cost_budget {
-        parts.push(format!("cost_budget={b}"));
-    }
-    if let Feasibility::Column(c) = &ps.feasibility {
-        parts.push(format!("feasibility={c}"));
-    }
-    for j in &ps.joiners {
-        parts.push(format!("joiner={j}"));
-    }
-    parts.join("&")
-}
-
 pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
     let (form, p, c) = off_thread_heavy(&state, &query, compute).await?;
     let project = state.project();
-    let mut feasibility_choices =
-        vec![("model".to_string(), "the participation model".to_string())];
+    let mut feasibility_choices = vec![
+        (
+            "auto".to_string(),
+            match &project.manifest.recruitment.feasibility {
+                Some(col) => format!("the project's column {col}"),
+                None => "the participation model (the project names no column)".to_string(),
+            },
+        ),
+        (
+            "model".to_string(),
+            "the participation model (leave-one-out)".to_string(),
+        ),
+    ];
     if let Some(col) = &project.manifest.recruitment.feasibility {
         feasibility_choices.push((col.clone(), format!("column {col}")));
     }
@@ -184,11 +188,14 @@ pub async fn page(
             .cost_budget
             .map(|b| b.to_string())
             .unwrap_or_default(),
-        feasibility: match &p.plan.feasibility {
-            Feasibility::Model => "model".to_string(),
-            Feasibility::Column(c) => c.clone(),
-        },
+        feasibility: p.plan.feasibility.as_str().to_string(),
         feasibility_choices,
+        objective: p.plan.objective.as_str(),
+        objective_choices: [
+            ("effective-n", "the expected effective number of countries"),
+            ("largest-smd", "a small expected largest |SMD|"),
+            ("feasibility", "the chance that balance is feasible"),
+        ],
         path_chart: charts::plan::paths(&p),
         map_chart: map(&p, &c),
         plan_query: plan_query(&p.plan),
@@ -227,15 +234,21 @@ pub async fn artifact(
                     "step",
                     "code",
                     "name",
-                    "effective_n",
-                    "mean_abs_smd",
-                    "max_abs_smd",
-                    "feasible",
-                    "gain",
+                    "supported",
                     "probability",
-                    "expected_gain",
                     "cost",
                     "cumulative_cost",
+                    "expected_effective_n",
+                    "expected_effective_n_mc_error",
+                    "expected_gain",
+                    "expected_gain_per_cost",
+                    "expected_max_abs_smd",
+                    "expected_mean_abs_smd",
+                    "feasible_chance",
+                    "effective_n_if_all_join",
+                    "max_abs_smd_if_all_join",
+                    "feasible_if_all_join",
+                    "by_exchange",
                     "stability",
                 ],
                 p.steps.iter().enumerate().map(|(j, s)| {
@@ -243,16 +256,49 @@ pub async fn artifact(
                         (j + 1).to_string(),
                         s.id.clone(),
                         s.name.clone(),
-                        cell(Some(s.effective_n)),
-                        cell(Some(s.mean_abs_smd)),
-                        cell(Some(s.max_abs_smd)),
-                        u8::from(s.feasible).to_string(),
-                        cell(Some(s.gain)),
+                        u8::from(s.supported).to_string(),
                         cell(Some(s.probability)),
-                        cell(Some(s.expected_gain)),
                         cell(s.cost),
                         cell(s.cumulative_cost),
+                        cell(Some(s.expected_effective_n)),
+                        cell(s.expected_effective_n_mc_error),
+                        cell(Some(s.expected_gain)),
+                        cell(s.expected_gain_per_cost),
+                        cell(Some(s.expected_max_abs_smd)),
+                        cell(Some(s.expected_mean_abs_smd)),
+                        cell(Some(s.feasible_chance)),
+                        cell(Some(s.effective_n_if_all_join)),
+                        cell(Some(s.max_abs_smd_if_all_join)),
+                        u8::from(s.feasible_if_all_join).to_string(),
+                        u8::from(s.exchanged).to_string(),
                         cell(s.stability),
+                    ]
+                }),
+            ),
+        )),
+        "baselines.csv" => Ok(csv_response(
+            "recruitment-baselines.csv",
+            csv_text(
+                &[
+                    "rule",
+                    "countries",
+                    "expected_effective_n_mean",
+                    "mc_error",
+                    "draws",
+                ],
+                [
+                    &p.baselines.likeliest,
+                    &p.baselines.most_different,
+                    &p.baselines.random,
+                ]
+                .into_iter()
+                .map(|b| {
+                    vec![
+                        b.rule.to_string(),
+                        b.ids.join(" "),
+                        cell(Some(b.expected_effective_n_mean)),
+                        cell(b.mc_error),
+                        b.draws.to_string(),
                     ]
                 }),
             ),
@@ -267,9 +313,10 @@ pub async fn artifact(
                     "probability",
                     "cost",
                     "effective_n_if_joined",
-                    "gain",
+                    "gain_if_joined",
                     "expected_gain",
                     "expected_gain_per_cost",
+                    "distance_to_participants",
                     "stability",
                     "in_plan",
                 ],
@@ -284,6 +331,7 @@ pub async fn artifact(
                         cell(Some(r.gain)),
                         cell(Some(r.expected_gain)),
                         cell(r.expected_gain_per_cost),
+                        cell(Some(r.distance)),
                         cell(r.stability),
                         u8::from(r.in_plan).to_string(),
                     ]
@@ -291,7 +339,73 @@ pub async fn artifact(
             ),
         )),
         _ => Err(AppError::NotFound(format!(
-            "no {item} here; try paths.svg, map.svg, plan.csv or candidates.csv"
+            "no {item} here; try paths.svg, map.svg, plan.csv, baselines.csv or candidates.csv"
         ))),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse(query: &str) -> PlanSettings {
+        let pairs: PageQuery = form_urlencoded::parse(query.as_bytes())
+            .map(|(k, v)| (k.into_owned(), v.into_owned()))
+            .collect();
+        plan_settings(&pairs).unwrap()
+    }
+
+    #[test]
+    fn settings_survive_the_round_trip_through_the_query() {
+        let cases = [
+            PlanSettings {
+                budget: Some(7),
+                replicates: 0,
+                ..PlanSettings::default()
+            },
+            PlanSettings {
+                budget: None,
+                cost_budget: Some(250.5),
+                cost_column: Some("cost & fees=%".to_string()),
+                feasibility: Feasibility::Column("chance of joining".to_string()),
+                objective: ObjectiveKind::LargestSmd,
+                replicates: 33,
+                joiners: vec!["XAB".to_string(), "X&Y".to_string()],
+                ..PlanSettings::default()
+            },
+            PlanSettings {
+                feasibility: Feasibility::Model,
+                objective: ObjectiveKind::Feasibility,
+                ..PlanSettings::default()
+            },
+        ];
+        for settings in cases {
+            let query = plan_query(&settings);
+            assert_eq!(parse(&query), settings, "{query}");
+        }
+        // Values are encoded: no raw '&' or '=' inside a value.
+        let q = plan_query(&PlanSettings {
+            cost_column: Some("a&b=c".to_string()),
+            ..PlanSettings::default()
+        });
+        assert!(q.contains("cost_column=a%26b%3Dc"), "{q}");
+    }
+
+    #[test]
+    fn empty_fields_are_absent_and_bad_values_are_refused() {
+        let s = parse("budget=&cost_budget=120&feasibility=&replicates=5");
+        assert_eq!(s.budget, None);
+        assert_eq!(s.cost_budget, Some(120.0));
+        assert_eq!(s.feasibility, Feasibility::Auto);
+        let bad = |q: &str| {
+            let pairs: PageQuery = form_urlencoded::parse(q.as_bytes())
+                .map(|(k, v)| (k.into_owned(), v.into_owned()))
+                .collect();
+            plan_settings(&pairs).is_err()
+        };
+        assert!(bad("budget=two"));
+        assert!(bad("cost_budget=inf"));
+        assert!(bad("objective=most"));
+        assert!(bad("replicates=99999"));
     }
 }

@@ -1,0 +1,154 @@
+//! The balance of one set of participants: the effective number of countries after entropy
+//! balancing the set to the eligible universe's means (0 when no positive weights of the
+//! set reach them: "infeasible"), and the set's unweighted imbalance (mean and largest
+//! |SMD| over the chosen indicators).
+
+use ndarray::{Array1, Array2};
+use serde::Serialize;
+
+use crate::analysis::design::{self, Design};
+use crate::stats::{balance, weights};
+
+/// Balance of one set of participants.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct SetMetrics {
+    /// Kish's effective number after entropy balancing to the universe; 0 when infeasible.
+    pub effective_n: f64,
+    pub mean_abs_smd: f64,
+    pub max_abs_smd: f64,
+    pub feasible: bool,
+}
+
+/// The numbers every evaluation needs, built once from the design.
+pub struct Evaluator {
+    /// Entropy-balancing moments (non-reference levels), centred at the universe means and
+    /// scaled by the universe standard deviations; one row per unit.
+    pub moments: Array2<f64>,
+    /// Balance columns for |SMD| (all levels): values, universe mean, universe sd.
+    pub smd_columns: Vec<(Vec<f64>, f64, f64)>,
+}
+
+impl Evaluator {
+    pub fn new(design: &Design) -> Evaluator {
+        let n = design.n();
+        let reference: Vec<String> = design
+            .margins
+            .iter()
+            .filter_map(|m| m.levels.first().map(|l| format!("{}={}", m.name, l)))
+            .collect();
+        let eb: Vec<&design::BalanceColumn> = design
+            .balance
+            .iter()
+            .filter(|b| !reference.contains(&b.name))
+            .collect();
+        let mut moments = Array2::<f64>::zeros((n, eb.len()));
+        for (j, col) in eb.iter().enumerate() {
+            let mean = col.values.iter().sum::<f64>() / n as f64;
+            let sd = (col.values.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n as f64).sqrt();
+            let sd = if sd > 0.0 { sd } else { 1.0 };
+            for (i, v) in col.values.iter().enumerate() {
+                moments[[i, j]] = (v - mean) / sd;
+            }
+        }
+        let all = vec![1.0; n];
+        let smd_columns = design
+            .balance
+            .iter()
+            .map(|col| {
+                let mean = balance::weighted_mean(&col.values, &all).unwrap_or(0.0);
+                let sd = if col.is_level {
+                    (mean * (1.0 - mean)).sqrt()
+                } else {
+                    balance::weighted_variance(&col.values, &all)
+                        .unwrap_or(0.0)
+                        .sqrt()
+                };
+                (col.values.clone(), mean, sd)
+            })
+            .collect();
+        Evaluator {
+            moments,
+            smd_columns,
+        }
+    }
+
+    /// Balance of the set of units `members`, warm-starting the dual at `start`.
+    pub fn evaluate(
+        &self,
+        members: &[usize],
+        start: Option<&Array1<f64>>,
+    ) -> (SetMetrics, Option<Array1<f64>>) {
+        let k = self.moments.ncols();
+        // Unweighted SMDs of the members.
+        let mut total = 0.0;
+        let mut largest = 0.0f64;
+        let mut counted = 0;
+        for (values, mean, sd) in &self.smd_columns {
+            if *sd <= 0.0 {
+                continue;
+            }
+            let m = members.iter().map(|&i| values[i]).sum::<f64>() / members.len().max(1) as f64;
+            let smd = ((m - mean) / sd).abs();
+            total += smd;
+            largest = largest.max(smd);
+            counted += 1;
+        }
+        let mean_abs_smd = if counted > 0 {
+            total / counted as f64
+        } else {
+            0.0
+        };
+        // Feasibility: every target (0 after centring) strictly inside the members' range.
+        let mut d = Array2::<f64>::zeros((members.len(), k));
+        for (r, &i) in members.iter().enumerate() {
+            d.row_mut(r).assign(&self.moments.row(i));
+        }
+        let inside = (0..k).all(|j| {
+            let column = d.column(j);
+            let (lo, hi) = column
+                .iter()
+                .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
+                    (l.min(v), h.max(v))
+                });
+            lo < -1e-9 && hi > 1e-9 || (hi - lo).abs() < 1e-12 && lo.abs() < 1e-9
+        });
+        let infeasible = SetMetrics {
+            effective_n: 0.0,
+            mean_abs_smd,
+            max_abs_smd: largest,
+            feasible: false,
+        };
+        if !inside || members.is_empty() {
+            return (infeasible, None);
+        }
+        let q = vec![1.0; members.len()];
+        let solution = weights::entropy_dual(d.view(), &q, start, 60);
+        if !solution.converged {
+            return (infeasible, None);
+        }
+        let metrics = SetMetrics {
+            effective_n: balance::effective_n(&solution.weights),
+            mean_abs_smd,
+            max_abs_smd: largest,
+            feasible: true,
+        };
+        (metrics, Some(solution.lambda))
+    }
+
+    /// Unweighted SMD of each balance column for the set `members` (0 where the universe
+    /// does not vary).
+    pub fn smds(&self, members: &[usize]) -> Vec<f64> {
+        self.smd_columns
+            .iter()
+            .map(|(values, mean, sd)| {
+                let m =
+                    members.iter().map(|&i| values[i]).sum::<f64>() / members.len().max(1) as f64;
+                if *sd > 0.0 {
+                    (m - mean) / sd
+                } else {
+                    0.0
+                }
+            })
+            .collect()
+    }
+}
