@@ -1,11 +1,9 @@
-//! Binary-response models of participation: logit (maximum likelihood, started by
-//! linfa-logistic), Firth's penalised logit, and probit. Pure functions over ndarray.
+//! Binary-response models of participation: logit (maximum likelihood by
+//! Newton-Raphson with step halving), Firth's penalised logit, and probit. Pure functions over ndarray.
 //!
 //! Every model is fitted on the design matrix as given (the caller standardises columns
 //! for conditioning and maps coefficients back); the first column is the intercept.
 
-use linfa::prelude::*;
-use linfa_logistic::LogisticRegression;
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 
 use super::linalg::{self, LinalgError};
@@ -301,34 +299,17 @@ fn check_inputs(x: ArrayView2<f64>, y: &[bool]) -> Result<(), FitError> {
     Ok(())
 }
 
-/// Logit by maximum likelihood: L-BFGS from linfa-logistic, then Newton-Raphson on the
-/// exact log-likelihood until the score is below [`SCORE_TOLERANCE`].
+/// Logit by maximum likelihood: Newton-Raphson with step halving on the exact
+/// log-likelihood, from the intercept-only estimate, until the score is below
+/// [`SCORE_TOLERANCE`].
 ///
 /// l(b) = sum_i [y_i x_i'b - log(1 + exp(x_i'b))]; score X'(y - p); information X'WX with
-/// W = diag(p(1-p)) (e.g. Greene, Econometric Analysis, ch. 17). linfa-logistic applies an
-/// L2 penalty of 1.0 by default (set to zero here) and models the more frequent class, so
-/// its signs are flipped when that class is non-participation.
+/// W = diag(p(1-p)) (e.g. Greene, Econometric Analysis, ch. 17). The log-likelihood is
+/// concave, so halving steps until it rises converges from any start. (An L-BFGS start
+/// from linfa-logistic was used before; its line search could loop forever on a
+/// separated bootstrap resample, and Newton needs no start to converge.)
 fn fit_logit(x: ArrayView2<f64>, y: &[bool]) -> Result<BinaryFit, FitError> {
-    let features = x.slice(ndarray::s![.., 1..]).to_owned();
-    let targets = Array1::from_iter(y.iter().copied());
-    let dataset = Dataset::new(features, targets);
-    let start = LogisticRegression::default()
-        .alpha(0.0)
-        .gradient_tolerance(1e-8)
-        .max_iterations(500)
-        .fit(&dataset)
-        .ok()
-        .map(|model| {
-            let sign = if model.labels().pos.class { 1.0 } else { -1.0 };
-            let mut coef = Array1::zeros(x.ncols());
-            coef[0] = sign * model.intercept();
-            for (j, b) in model.params().iter().enumerate() {
-                coef[j + 1] = sign * b;
-            }
-            coef
-        })
-        .filter(|c| c.iter().all(|v| v.is_finite()));
-    newton(ModelKind::Logit, x, y, start, false, SCORE_TOLERANCE)
+    newton(ModelKind::Logit, x, y, None, false, SCORE_TOLERANCE)
 }
 
 /// Per-unit log-likelihood, score weight s_i (score = X's) and information weight w_i
