@@ -2,7 +2,7 @@
 //! logistic regression, with standard errors clustered by country (CR1), the wild cluster
 //! bootstrap, and the Heckman two-step with the inverse Mills ratio.
 
-use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, ShapeBuilder};
 
 use super::binary::logistic;
 use super::linalg;
@@ -159,49 +159,59 @@ pub fn weighted_least_squares(
     if n <= k {
         return Err(RegressionError::TooFew { n, k });
     }
-    let mut a = x.to_owned();
+    // Column-major storage, so that every column the reflections walk down is one
+    // contiguous slice (the same operations in the same order as on rows, only faster).
+    let mut a = Array2::<f64>::zeros((n, k).f());
+    a.assign(&x);
     let mut b = Array1::from(y.to_vec());
     if let Some(w) = w {
-        for i in 0..n {
-            let s = w[i].sqrt();
-            a.row_mut(i).mapv_inplace(|v| v * s);
-            b[i] *= s;
+        let roots: Vec<f64> = w.iter().map(|v| v.sqrt()).collect();
+        for mut column in a.columns_mut() {
+            for (v, s) in column.iter_mut().zip(&roots) {
+                *v *= s;
+            }
+        }
+        for (v, s) in b.iter_mut().zip(&roots) {
+            *v *= s;
         }
     }
     let scale: Vec<f64> = (0..k)
         .map(|j| a.column(j).iter().fold(0.0f64, |m, v| m.max(v.abs())))
         .collect();
+    let b = b.as_slice_mut().ok_or(RegressionError::Singular)?;
     for j in 0..k {
         // Householder reflection zeroing a[j+1.., j].
-        let norm = a
-            .slice(ndarray::s![j.., j])
-            .iter()
-            .map(|v| v * v)
-            .sum::<f64>()
-            .sqrt();
+        let v: Vec<f64> = {
+            let column = a.column(j);
+            let column = column.as_slice().ok_or(RegressionError::Singular)?;
+            column[j..].to_vec()
+        };
+        let norm = v.iter().map(|t| t * t).sum::<f64>().sqrt();
         if norm <= 1e-13 * scale[j].max(1e-300) * (n as f64).sqrt() {
             return Err(RegressionError::Singular);
         }
-        let alpha = if a[[j, j]] > 0.0 { -norm } else { norm };
-        let mut v: Vec<f64> = a.slice(ndarray::s![j.., j]).to_vec();
+        let alpha = if v[0] > 0.0 { -norm } else { norm };
+        let mut v = v;
         v[0] -= alpha;
         let vnorm2: f64 = v.iter().map(|t| t * t).sum();
         if vnorm2 == 0.0 {
             continue;
         }
-        for c in j..k {
-            let dot: f64 = (j..n).map(|i| v[i - j] * a[[i, c]]).sum();
+        let reflect = |target: &mut [f64]| {
+            let dot: f64 = v.iter().zip(target.iter()).map(|(p, q)| p * q).sum();
             let f = 2.0 * dot / vnorm2;
-            for i in j..n {
-                a[[i, c]] -= f * v[i - j];
+            for (t, p) in target.iter_mut().zip(&v) {
+                *t -= f * p;
             }
+        };
+        for c in j..k {
+            let mut column = a.column_mut(c);
+            let column = column.as_slice_mut().ok_or(RegressionError::Singular)?;
+            reflect(&mut column[j..]);
         }
-        let dot: f64 = (j..n).map(|i| v[i - j] * b[i]).sum();
-        let f = 2.0 * dot / vnorm2;
-        for i in j..n {
-            b[i] -= f * v[i - j];
-        }
+        reflect(&mut b[j..]);
     }
+    let b = Array1::from(b.to_vec());
     // Back substitution R beta = Q'b, and R^-1.
     let mut r_inv = Array2::<f64>::zeros((k, k));
     for c in 0..k {
