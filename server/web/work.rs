@@ -16,14 +16,17 @@
 //!   [`PATIENCE`] gets a short "still computing" answer that reloads itself; the
 //!   computation goes on and lands in the cache, where the reload finds it.
 
+use std::collections::HashMap;
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
+
 use std::time::Duration;
+use tokio::sync::watch;
 
 use crate::analysis::cache::{CacheKey, ResultCache};
 
 /// Computations allowed to wait for a heavy thread, beyond those running.
-pub const HEAVY_QUEUE: usize = 16;
+pub const HEAVY_QUEUE: usize = 32;
 
 /// How long a request waits for heavy work before being told to come back.
 pub const PATIENCE: Duration = Duration::from_secs(20);
@@ -46,6 +49,9 @@ pub struct WorkPool {
     threads: usize,
     /// Heavy computations admitted and not yet finished (running or waiting).
     admitted: Arc<AtomicUsize>,
+    /// Keys admitted and not finished, each with a signal sent when it is done: identical
+    /// requests wait for that one computation instead of queueing their own.
+    pending: Arc<Mutex<HashMap<CacheKey, watch::Receiver<bool>>>>,
 }
 
 impl WorkPool {
@@ -69,6 +75,7 @@ impl WorkPool {
             heavy,
             threads,
             admitted: Arc::new(AtomicUsize::new(0)),
+            pending: Arc::new(Mutex::new(HashMap::new())),
         }
     }
 
@@ -112,22 +119,25 @@ impl WorkPool {
         if let Some(hit) = key.as_ref().and_then(|k| cache.peek::<T>(k)) {
             return Ok((*hit).clone());
         }
-        // Someone is computing this very result: wait for it off the heavy pool.
-        if key.as_ref().is_some_and(|k| cache.is_computing(k)) {
-            let cache = Arc::clone(cache);
-            let waited = tokio::time::timeout(
-                PATIENCE,
-                tokio::task::spawn_blocking(move || through_cache(&cache, key.as_ref(), compute)),
-            )
-            .await;
-            return match waited {
-                Ok(joined) => joined
-                    .map_err(|e| WorkError::Lost(e.to_string()))?
-                    .map_err(WorkError::Failed),
-                Err(_) => Err(WorkError::StillComputing {
+        // The same result is already admitted: wait for it instead of queueing another.
+        let queued = key.as_ref().and_then(|k| {
+            self.pending
+                .lock()
+                .unwrap_or_else(std::sync::PoisonError::into_inner)
+                .get(k)
+                .cloned()
+        });
+        if let (Some(mut done), Some(k)) = (queued, key.as_ref()) {
+            let finished = tokio::time::timeout(PATIENCE, done.wait_for(|d| *d)).await;
+            if finished.is_err() {
+                return Err(WorkError::StillComputing {
                     retry_after_seconds: 3,
-                }),
-            };
+                });
+            }
+            if let Some(hit) = cache.peek::<T>(k) {
+                return Ok((*hit).clone());
+            }
+            // It failed or was abandoned: compute it here (admitted like any other).
         }
         let limit = self.threads + HEAVY_QUEUE;
         if self
@@ -142,12 +152,26 @@ impl WorkPool {
             });
         }
         let (sender, receiver) = tokio::sync::oneshot::channel();
+        let (done_sender, done_receiver) = watch::channel(false);
+        if let Some(k) = &key {
+            self.pending
+                .lock()
+                .unwrap_or_else(std::sync::PoisonError::into_inner)
+                .insert(k.clone(), done_receiver);
+        }
+        let pending = Arc::clone(&self.pending);
+        let pending_key = key.clone();
         let abandoned = Arc::new(AtomicBool::new(false));
         let admitted = Arc::clone(&self.admitted);
         let job_abandoned = Arc::clone(&abandoned);
         let cache = Arc::clone(cache);
         self.heavy.spawn(move || {
             let _release = Release(admitted);
+            let _signal = Finished {
+                pending,
+                key: pending_key,
+                done: done_sender,
+            };
             if job_abandoned.load(Ordering::SeqCst) {
                 return;
             }
@@ -207,6 +231,26 @@ struct Release(Arc<AtomicUsize>);
 impl Drop for Release {
     fn drop(&mut self) {
         self.0.fetch_sub(1, Ordering::SeqCst);
+    }
+}
+
+/// Tells the requests waiting for the same key that the computation is over (whatever
+/// its outcome), and forgets the key.
+struct Finished {
+    pending: Arc<Mutex<HashMap<CacheKey, watch::Receiver<bool>>>>,
+    key: Option<CacheKey>,
+    done: watch::Sender<bool>,
+}
+
+impl Drop for Finished {
+    fn drop(&mut self) {
+        if let Some(k) = &self.key {
+            self.pending
+                .lock()
+                .unwrap_or_else(std::sync::PoisonError::into_inner)
+                .remove(k);
+        }
+        let _ = self.done.send(true);
     }
 }
 
@@ -277,5 +321,35 @@ mod tests {
         tokio::time::sleep(Duration::from_millis(700)).await;
         assert_eq!(started.load(Ordering::SeqCst), pool.threads);
         assert_eq!(pool.heavy_in_flight(), 0);
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn identical_requests_share_one_admission() {
+        let pool = Arc::new(WorkPool::new());
+        let cache = Arc::new(ResultCache::default());
+        let runs = Arc::new(AtomicUsize::new(0));
+        let many = 3 * (pool.threads + HEAVY_QUEUE);
+        let handles: Vec<_> = (0..many)
+            .map(|_| {
+                let (pool, cache, runs) =
+                    (Arc::clone(&pool), Arc::clone(&cache), Arc::clone(&runs));
+                tokio::spawn(async move {
+                    pool.heavy(&cache, Some(CacheKey::new(1, "same", "")), move || {
+                        runs.fetch_add(1, Ordering::SeqCst);
+                        std::thread::sleep(Duration::from_millis(200));
+                        Ok::<_, ()>(5u8)
+                    })
+                    .await
+                })
+            })
+            .collect();
+        for h in handles {
+            assert!(matches!(h.await.expect("task"), Ok(5)));
+        }
+        assert!(
+            runs.load(Ordering::SeqCst) <= 2,
+            "{}",
+            runs.load(Ordering::SeqCst)
+        );
     }
 }
