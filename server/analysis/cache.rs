@@ -143,24 +143,15 @@ impl ResultCache {
             // two callers can never both start the computation.
             let waiting = {
                 let mut inner = lock(&self.inner);
-                inner.clock += 1;
-                let now = inner.clock;
-                let found = match inner.slots.get_mut(key) {
-                    Some(Slot::Ready {
-                        value, last_used, ..
-                    }) => {
-                        *last_used = now;
-                        // Same key with another type would be a programming error: compute.
-                        Arc::clone(value).downcast::<T>().ok().map(Ok)
-                    }
-                    Some(Slot::Computing(f)) => Some(Err(Arc::clone(f))),
-                    None => None,
+                let found = match ready::<T>(&mut inner, key) {
+                    Some(v) => Some(Ok(v)),
+                    None => match inner.slots.get(key) {
+                        Some(Slot::Computing(f)) => Some(Err(Arc::clone(f))),
+                        _ => None,
+                    },
                 };
                 match found {
-                    Some(Ok(v)) => {
-                        inner.hits += 1;
-                        return Ok(v);
-                    }
+                    Some(Ok(v)) => return Ok(v),
                     Some(Err(f)) => f,
                     None => {
                         inner.misses += 1;
@@ -241,22 +232,7 @@ impl ResultCache {
 
     /// The result for `key` if it is ready now (never waits, never computes).
     pub fn peek<T: Send + Sync + 'static>(&self, key: &CacheKey) -> Option<Arc<T>> {
-        let mut inner = lock(&self.inner);
-        inner.clock += 1;
-        let now = inner.clock;
-        let found = match inner.slots.get_mut(key) {
-            Some(Slot::Ready {
-                value, last_used, ..
-            }) => {
-                *last_used = now;
-                Arc::clone(value).downcast::<T>().ok()
-            }
-            _ => None,
-        };
-        if found.is_some() {
-            inner.hits += 1;
-        }
-        found
+        ready(&mut lock(&self.inner), key)
     }
 
     /// Whether a computation of `key` is under way.
@@ -293,6 +269,26 @@ impl ResultCache {
             misses: inner.misses,
         }
     }
+}
+
+/// The ready result for `key`, marked as just used and counted as a hit. A result of
+/// another type under the same key (a programming error) counts as absent.
+fn ready<T: Send + Sync + 'static>(inner: &mut Inner, key: &CacheKey) -> Option<Arc<T>> {
+    inner.clock += 1;
+    let now = inner.clock;
+    let found = match inner.slots.get_mut(key) {
+        Some(Slot::Ready {
+            value, last_used, ..
+        }) => {
+            *last_used = now;
+            Arc::clone(value).downcast::<T>().ok()
+        }
+        _ => None,
+    };
+    if found.is_some() {
+        inner.hits += 1;
+    }
+    found
 }
 
 /// The length of a value's JSON, counted without writing it.

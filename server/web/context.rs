@@ -7,6 +7,7 @@ use serde::Serialize;
 
 use super::error::{AppError, AppResult};
 use super::state::AppState;
+use super::work::Lane;
 use crate::analysis::cache::CacheKey;
 use crate::analysis::settings::{MissingRule, ModelKind, Settings, WeightingKind};
 use crate::project::{Project, WaveView};
@@ -223,12 +224,7 @@ pub async fn off_thread<T>(
 where
     T: Clone + Serialize + Send + Sync + 'static,
 {
-    let key = page_key::<T>(state, query);
-    let (job_state, query) = (Arc::clone(state), query.clone());
-    Ok(state
-        .work
-        .light(&state.cache, key, move || compute(&job_state, &query))
-        .await?)
+    run(Lane::Light, state, query, compute).await
 }
 
 /// Runs a heavy page computation (bootstrap replicates, the planner, the report) on the
@@ -241,10 +237,22 @@ pub async fn off_thread_heavy<T>(
 where
     T: Clone + Serialize + Send + Sync + 'static,
 {
+    run(Lane::Heavy, state, query, compute).await
+}
+
+async fn run<T>(
+    lane: Lane,
+    state: &Arc<AppState>,
+    query: &Query,
+    compute: fn(&AppState, &Query) -> AppResult<T>,
+) -> AppResult<T>
+where
+    T: Clone + Serialize + Send + Sync + 'static,
+{
     let key = page_key::<T>(state, query);
     let (job_state, query) = (Arc::clone(state), query.clone());
     Ok(state
         .work
-        .heavy(&state.cache, key, move || compute(&job_state, &query))
+        .run(lane, &state.cache, key, move || compute(&job_state, &query))
         .await?)
 }

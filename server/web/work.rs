@@ -31,6 +31,13 @@ pub const HEAVY_QUEUE: usize = 32;
 /// How long a request waits for heavy work before being told to come back.
 pub const PATIENCE: Duration = Duration::from_secs(20);
 
+/// Where a computation runs (see the module comment).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Lane {
+    Light,
+    Heavy,
+}
+
 /// Why a computation did not give a result.
 #[derive(Debug)]
 pub enum WorkError<E> {
@@ -84,9 +91,11 @@ impl WorkPool {
         self.admitted.load(Ordering::SeqCst)
     }
 
-    /// Runs `compute` on the blocking pool, through the cache.
-    pub async fn light<T, E>(
+    /// Runs `compute` through the cache: answered at once when the result is ready, else
+    /// on the blocking pool (light) or on the heavy pool with admission control (heavy).
+    pub async fn run<T, E>(
         &self,
+        lane: Lane,
         cache: &Arc<ResultCache>,
         key: Option<CacheKey>,
         compute: impl FnOnce() -> Result<T, E> + Send + 'static,
@@ -98,15 +107,19 @@ impl WorkPool {
         if let Some(hit) = key.as_ref().and_then(|k| cache.peek::<T>(k)) {
             return Ok((*hit).clone());
         }
-        let cache = Arc::clone(cache);
-        tokio::task::spawn_blocking(move || through_cache(&cache, key.as_ref(), compute))
-            .await
-            .map_err(|e| WorkError::Lost(e.to_string()))?
-            .map_err(WorkError::Failed)
+        match lane {
+            Lane::Light => {
+                let cache = Arc::clone(cache);
+                tokio::task::spawn_blocking(move || through_cache(&cache, key.as_ref(), compute))
+                    .await
+                    .map_err(|e| WorkError::Lost(e.to_string()))?
+                    .map_err(WorkError::Failed)
+            }
+            Lane::Heavy => self.heavy(cache, key, compute).await,
+        }
     }
 
-    /// Runs `compute` on the heavy pool, through the cache, with admission control.
-    pub async fn heavy<T, E>(
+    async fn heavy<T, E>(
         &self,
         cache: &Arc<ResultCache>,
         key: Option<CacheKey>,
@@ -116,9 +129,6 @@ impl WorkPool {
         T: Clone + serde::Serialize + Send + Sync + 'static,
         E: Send + 'static,
     {
-        if let Some(hit) = key.as_ref().and_then(|k| cache.peek::<T>(k)) {
-            return Ok((*hit).clone());
-        }
         // The same result is already admitted: wait for it instead of queueing another.
         let queued = key.as_ref().and_then(|k| {
             self.pending
@@ -334,11 +344,16 @@ mod tests {
                 let (pool, cache, runs) =
                     (Arc::clone(&pool), Arc::clone(&cache), Arc::clone(&runs));
                 tokio::spawn(async move {
-                    pool.heavy(&cache, Some(CacheKey::new(1, "same", "")), move || {
-                        runs.fetch_add(1, Ordering::SeqCst);
-                        std::thread::sleep(Duration::from_millis(200));
-                        Ok::<_, ()>(5u8)
-                    })
+                    pool.run(
+                        Lane::Heavy,
+                        &cache,
+                        Some(CacheKey::new(1, "same", "")),
+                        move || {
+                            runs.fetch_add(1, Ordering::SeqCst);
+                            std::thread::sleep(Duration::from_millis(200));
+                            Ok::<_, ()>(5u8)
+                        },
+                    )
                     .await
                 })
             })
