@@ -299,8 +299,28 @@ impl AnalysisArgs {
     }
 }
 
+/// Work settings above their limits (the same limits as the pages').
+fn over_limit(command: &Option<Command>) -> Option<String> {
+    use gapwise::analysis::limits::{self, check};
+    let result = match command {
+        Some(Command::Plan {
+            budget, replicates, ..
+        }) => check("--replicates", *replicates, limits::MAX_PLAN_REPLICATES)
+            .and_then(|_| check("--budget", budget.unwrap_or(0), limits::MAX_PLAN_BUDGET)),
+        Some(Command::Impact { bootstrap, .. }) => {
+            check("--bootstrap", *bootstrap, limits::MAX_BOOTSTRAP_REPLICATES)
+        }
+        _ => Ok(0),
+    };
+    result.err()
+}
+
 fn main() -> ExitCode {
     let args = Args::parse();
+    if let Some(message) = over_limit(&args.command) {
+        eprintln!("{message}");
+        return ExitCode::from(2);
+    }
     let code = match args.command {
         None => cli::serve(
             &gapwise::demo_dir(),

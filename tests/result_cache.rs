@@ -65,3 +65,43 @@ async fn no_page_recomputes_what_an_earlier_request_computed() {
     assert_eq!(get(&state, "/model").await, StatusCode::OK);
     assert_eq!(state.cache.stats().misses, second.misses + 2);
 }
+
+/// Work settings above their limits are refused with the limit, on pages and on the
+/// command line alike (common practice: bound every work knob).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn work_settings_are_capped_on_pages_and_command_line() {
+    let state = Arc::new(AppState::new(
+        Project::load(&gapwise::demo_dir()).expect("demo loads"),
+    ));
+    for uri in [
+        "/plan?replicates=2000",
+        "/api/plan?budget=500",
+        "/impact?bootstrap=99999",
+    ] {
+        assert_eq!(get(&state, uri).await, StatusCode::BAD_REQUEST, "{uri}");
+    }
+    let demo = gapwise::demo_dir();
+    let demo = demo.to_str().expect("path");
+    for args in [
+        vec!["plan", demo, "--replicates", "2000"],
+        vec!["plan", demo, "--budget", "500"],
+        vec![
+            "impact",
+            demo,
+            "--outcome",
+            "trust_parliament",
+            "--bootstrap",
+            "99999",
+        ],
+    ] {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
+            .args(&args)
+            .output()
+            .expect("run gapwise");
+        assert_eq!(out.status.code(), Some(2), "{args:?}");
+        assert!(
+            String::from_utf8_lossy(&out.stderr).contains("above the limit"),
+            "{args:?}"
+        );
+    }
+}

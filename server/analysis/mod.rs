@@ -7,6 +7,7 @@ pub mod cautions;
 pub mod coverage;
 pub mod design;
 pub mod impact;
+pub mod limits;
 pub mod microdata;
 pub mod multilevel;
 pub mod overview;

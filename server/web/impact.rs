@@ -15,6 +15,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
+use crate::analysis::limits;
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 use crate::project::Project;
@@ -159,10 +160,11 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
         Some(v) => v
             .parse::<usize>()
             .ok()
-            .filter(|r| *r <= 9999)
+            .filter(|r| *r <= limits::MAX_BOOTSTRAP_REPLICATES)
             .ok_or_else(|| {
                 AppError::BadRequest(format!(
-                    "bootstrap must be a whole number up to 9999, not '{v}'"
+                    "bootstrap must be a whole number up to {}, not '{v}'",
+                    limits::MAX_BOOTSTRAP_REPLICATES
                 ))
             })?,
     };

@@ -15,6 +15,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
+use crate::analysis::limits;
 use crate::analysis::planner::{plan, Feasibility, ObjectiveKind, Plan, PlanSettings};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
@@ -76,11 +77,16 @@ pub fn plan_settings(query: &PageQuery) -> AppResult<PlanSettings> {
         .transpose()?;
     let budget = get("budget")
         .map(|v| {
-            v.parse::<usize>().map_err(|_| {
-                AppError::BadRequest(format!(
-                    "budget must be a whole number of countries, not '{v}'"
-                ))
-            })
+            v.parse::<usize>()
+                .map_err(|_| {
+                    AppError::BadRequest(format!(
+                        "budget must be a whole number of countries, not '{v}'"
+                    ))
+                })
+                .and_then(|b| {
+                    limits::check("budget", b, limits::MAX_PLAN_BUDGET)
+                        .map_err(AppError::BadRequest)
+                })
         })
         .transpose()?;
     let objective = match get("objective") {
@@ -102,10 +108,11 @@ pub fn plan_settings(query: &PageQuery) -> AppResult<PlanSettings> {
             Some(v) => v
                 .parse::<usize>()
                 .ok()
-                .filter(|r| *r <= 2000)
+                .filter(|r| *r <= limits::MAX_PLAN_REPLICATES)
                 .ok_or_else(|| {
                     AppError::BadRequest(format!(
-                        "replicates must be a whole number up to 2000, not '{v}'"
+                        "replicates must be a whole number up to {}, not '{v}'",
+                        limits::MAX_PLAN_REPLICATES
                     ))
                 })?,
         },
