@@ -665,32 +665,31 @@ fn estimate(
                 .zip(&f.se)
                 .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
                 .collect();
-            let p_bootstrap = (imp.replicates > 0).then(|| {
-                (0..x.ncols())
+            let p_bootstrap = (imp.replicates > 0).then(|| match imp.kind {
+                // Every term from one pass over the respondents.
+                Kind::Linear => regression::wild_cluster_bootstrap_terms(
+                    xs.view(),
+                    &ys,
+                    Some(&ws),
+                    &cs,
+                    imp.replicates,
+                    seed,
+                )
+                .unwrap_or_else(|_| vec![f64::NAN; x.ncols()]),
+                Kind::Logistic => (0..x.ncols())
                     .map(|j| {
-                        let p = match imp.kind {
-                            Kind::Linear => regression::wild_cluster_bootstrap(
-                                xs.view(),
-                                &ys,
-                                Some(&ws),
-                                &cs,
-                                j,
-                                imp.replicates,
-                                seed,
-                            ),
-                            Kind::Logistic => regression::score_cluster_bootstrap(
-                                xs.view(),
-                                &ys,
-                                Some(&ws),
-                                &cs,
-                                j,
-                                imp.replicates,
-                                seed,
-                            ),
-                        };
-                        p.unwrap_or(f64::NAN)
+                        regression::score_cluster_bootstrap(
+                            xs.view(),
+                            &ys,
+                            Some(&ws),
+                            &cs,
+                            j,
+                            imp.replicates,
+                            seed,
+                        )
+                        .unwrap_or(f64::NAN)
                     })
-                    .collect()
+                    .collect(),
             });
             Variant {
                 key: key.to_string(),

@@ -490,55 +490,127 @@ pub fn wild_cluster_bootstrap(
     replicates: usize,
     seed: u64,
 ) -> Result<f64, RegressionError> {
-    let (n, k) = x.dim();
-    let full = fit(x, y, w, cluster, Kind::Linear)?;
-    let t_observed = full.coef[j] / full.se[j];
-    let keep: Vec<usize> = (0..k).filter(|&c| c != j).collect();
-    let restricted_x = x.select(ndarray::Axis(1), &keep);
-    let (restricted, _) = weighted_least_squares(restricted_x.view(), y, w)?;
-    let fitted = restricted_x.dot(&restricted);
-    let resid: Vec<f64> = (0..n).map(|i| y[i] - fitted[i]).collect();
-    let groups = cluster.iter().max().map_or(0, |m| m + 1);
-    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
-    // Per cluster: X_g'W y~_g, X_g'W u~_g, X_g'W X_g.
-    let mut c = vec![Array1::<f64>::zeros(k); groups];
-    let mut d = vec![Array1::<f64>::zeros(k); groups];
-    let mut m = vec![Array2::<f64>::zeros((k, k)); groups];
-    for i in 0..n {
-        let g = cluster[i];
-        let wi = weight(i);
-        add_outer(&mut m[g], &mut c[g], x.row(i), wi, wi * fitted[i]);
-        d[g].scaled_add(wi * resid[i], &x.row(i));
+    let sums = ClusterSums::new(x, y, w, cluster)?;
+    sums.wild_p(j, replicates, seed)
+}
+
+/// [`wild_cluster_bootstrap`] for every term at once: the respondents are read once into
+/// per-cluster sums, then each term costs O(G k^2) per replicate. Each term uses the same
+/// seed, so its p-value equals the one-term function's.
+pub fn wild_cluster_bootstrap_terms(
+    x: ArrayView2<f64>,
+    y: &[f64],
+    w: Option<&[f64]>,
+    cluster: &[usize],
+    replicates: usize,
+    seed: u64,
+) -> Result<Vec<f64>, RegressionError> {
+    let sums = ClusterSums::new(x, y, w, cluster)?;
+    (0..x.ncols())
+        .map(|j| sums.wild_p(j, replicates, seed))
+        .collect()
+}
+
+/// A linear model's data as per-cluster sums (M_g = X_g'W X_g, b_g = X_g'W y_g), with the
+/// full fit by QR for the observed statistic.
+struct ClusterSums {
+    full: RegressionFit,
+    m: Vec<Array2<f64>>,
+    b: Vec<Array1<f64>>,
+    present: Vec<usize>,
+    n: usize,
+    k: usize,
+}
+
+impl ClusterSums {
+    fn new(
+        x: ArrayView2<f64>,
+        y: &[f64],
+        w: Option<&[f64]>,
+        cluster: &[usize],
+    ) -> Result<ClusterSums, RegressionError> {
+        let (n, k) = x.dim();
+        let full = fit(x, y, w, cluster, Kind::Linear)?;
+        let groups = cluster.iter().max().map_or(0, |m| m + 1);
+        let mut m = vec![Array2::<f64>::zeros((k, k)); groups];
+        let mut b = vec![Array1::<f64>::zeros(k); groups];
+        for i in 0..n {
+            let g = cluster[i];
+            let wi = w.map_or(1.0, |w| w[i]);
+            add_outer(&mut m[g], &mut b[g], x.row(i), wi, wi * y[i]);
+        }
+        m.iter_mut().for_each(symmetrise);
+        let present = (0..groups)
+            .filter(|&g| m[g][[0, 0]] != 0.0 || b[g].iter().any(|v| *v != 0.0))
+            .collect();
+        Ok(ClusterSums {
+            full,
+            m,
+            b,
+            present,
+            n,
+            k,
+        })
     }
-    m.iter_mut().for_each(symmetrise);
-    let present: Vec<usize> = (0..groups)
-        .filter(|&g| m[g][[0, 0]] != 0.0 || c[g].iter().any(|v| *v != 0.0))
-        .collect();
-    let sum_c = present
-        .iter()
-        .fold(Array1::<f64>::zeros(k), |a, &g| a + &c[g]);
-    let bread = &full.bread;
-    let mut rng = crate::stats::random::Rng::new(seed);
-    let mut exceed = 0usize;
-    for _ in 0..replicates {
-        let v = cluster_multipliers(&mut rng, present.len());
-        let rhs = present
+
+    /// The wild cluster bootstrap p-value of term j (see [`wild_cluster_bootstrap`]).
+    fn wild_p(&self, j: usize, replicates: usize, seed: u64) -> Result<f64, RegressionError> {
+        let (k, full) = (self.k, &self.full);
+        let t_observed = full.coef[j] / full.se[j];
+        // The model without x_j from the same sums: (sum M)[keep, keep] b~ = (sum b)[keep].
+        let keep: Vec<usize> = (0..k).filter(|&c| c != j).collect();
+        let total_m = self
+            .present
             .iter()
-            .zip(&v)
-            .fold(sum_c.clone(), |a, (&g, &vg)| a + &(&d[g] * vg));
-        let beta = bread.dot(&rhs);
-        let mut scores = Array2::<f64>::zeros((present.len(), k));
-        for (r, (&g, &vg)) in present.iter().zip(&v).enumerate() {
-            let u = &c[g] + &(&d[g] * vg) - m[g].dot(&beta);
-            scores.row_mut(r).assign(&u);
+            .fold(Array2::<f64>::zeros((k, k)), |a, &g| a + &self.m[g]);
+        let total_b = self
+            .present
+            .iter()
+            .fold(Array1::<f64>::zeros(k), |a, &g| a + &self.b[g]);
+        let sub_m = total_m
+            .select(ndarray::Axis(0), &keep)
+            .select(ndarray::Axis(1), &keep);
+        let sub_b = total_b.select(ndarray::Axis(0), &keep);
+        let restricted = if keep.is_empty() {
+            Array1::zeros(0)
+        } else {
+            linalg::solve_spd(sub_m.view(), sub_b.view()).map_err(|_| RegressionError::Singular)?
+        };
+        let mut restricted_full = Array1::<f64>::zeros(k);
+        for (r, &c) in keep.iter().enumerate() {
+            restricted_full[c] = restricted[r];
         }
-        let cov = cluster_covariance(bread, &scores, n);
-        let t = beta[j] / cov[[j, j]].max(0.0).sqrt();
-        if t.abs() >= t_observed.abs() - 1e-12 {
-            exceed += 1;
+        // Per cluster: X_g'W y~_g and X_g'W u~_g.
+        let c: Vec<Array1<f64>> = self.m.iter().map(|m| m.dot(&restricted_full)).collect();
+        let d: Vec<Array1<f64>> = self.b.iter().zip(&c).map(|(b, c)| b - c).collect();
+        let sum_c = self
+            .present
+            .iter()
+            .fold(Array1::<f64>::zeros(k), |a, &g| a + &c[g]);
+        let bread = &full.bread;
+        let mut rng = crate::stats::random::Rng::new(seed);
+        let mut exceed = 0usize;
+        for _ in 0..replicates {
+            let v = cluster_multipliers(&mut rng, self.present.len());
+            let rhs = self
+                .present
+                .iter()
+                .zip(&v)
+                .fold(sum_c.clone(), |a, (&g, &vg)| a + &(&d[g] * vg));
+            let beta = bread.dot(&rhs);
+            let mut scores = Array2::<f64>::zeros((self.present.len(), k));
+            for (r, (&g, &vg)) in self.present.iter().zip(&v).enumerate() {
+                let u = &c[g] + &(&d[g] * vg) - self.m[g].dot(&beta);
+                scores.row_mut(r).assign(&u);
+            }
+            let cov = cluster_covariance(bread, &scores, self.n);
+            let t = beta[j] / cov[[j, j]].max(0.0).sqrt();
+            if t.abs() >= t_observed.abs() - 1e-12 {
+                exceed += 1;
+            }
         }
+        Ok(bootstrap_p(exceed, replicates))
     }
-    Ok(bootstrap_p(exceed, replicates))
 }
 
 /// Bootstrap p-value (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley 1997, eq. 4.11):
@@ -897,6 +969,32 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
 #[cfg(test)]
 mod tests {
     use super::student;
+
+    /// All terms from one pass give each term's one-term p-value exactly (the same sums,
+    /// the same seed).
+    #[test]
+    fn all_terms_at_once_equal_one_term_at_a_time() {
+        let mut rng = crate::stats::random::Rng::new(11);
+        let n = 400;
+        let x = ndarray::Array2::from_shape_fn(
+            (n, 3),
+            |(_, c)| if c == 0 { 1.0 } else { rng.normal() },
+        );
+        let cluster: Vec<usize> = (0..n).map(|i| i % 9).collect();
+        let y: Vec<f64> = (0..n)
+            .map(|i| 0.5 * x[[i, 1]] + rng.normal() + (cluster[i] as f64) * 0.1)
+            .collect();
+        let w: Vec<f64> = (0..n).map(|i| 0.5 + (i % 3) as f64).collect();
+        let all =
+            super::wild_cluster_bootstrap_terms(x.view(), &y, Some(&w), &cluster, 199, 5).unwrap();
+        assert_eq!(all.len(), 3);
+        for (j, p) in all.iter().enumerate() {
+            let one =
+                super::wild_cluster_bootstrap(x.view(), &y, Some(&w), &cluster, j, 199, 5).unwrap();
+            assert_eq!(*p, one);
+            assert!(*p > 0.0 && *p <= 1.0);
+        }
+    }
 
     #[test]
     fn t_quantiles_match_printed_tables() {
