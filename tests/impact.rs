@@ -217,3 +217,30 @@ fn population_entropy_balances_to_the_population_weighted_universe() {
         .fold(0.0, f64::max);
     assert!(worst > 0.01, "{worst}");
 }
+
+/// A weighting that leaves the largest |SMD| worse than no weighting is flagged in the
+/// impact result (inverse probability on the demo's latest wave: about 1.12 against 0.49
+/// unweighted, as the balance page reports too); the others are not.
+#[test]
+fn weighting_worse_than_none_is_flagged_on_the_impact_view() {
+    let demo = demo_dir();
+    let out = gapwise(&[
+        "impact",
+        demo.to_str().expect("path"),
+        "--outcome",
+        "trust_parliament",
+        "--bootstrap",
+        "0",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let r: Value = serde_json::from_str(&out.stdout).expect("json");
+    let before = variant(&r, "unweighted")["max_abs_smd"]
+        .as_f64()
+        .expect("unweighted |SMD|");
+    let ipw = variant(&r, "inverse-probability");
+    assert!(ipw["max_abs_smd"].as_f64().expect("ipw |SMD|") > before);
+    assert_eq!(ipw["worse_than_none"], true);
+    assert_eq!(variant(&r, "entropy")["worse_than_none"], false);
+    assert_eq!(variant(&r, "unweighted")["worse_than_none"], false);
+}

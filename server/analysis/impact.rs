@@ -69,6 +69,10 @@ pub struct Variant {
     pub smd: Vec<Option<f64>>,
     /// The largest |SMD| of `smd`; null where not computed.
     pub max_abs_smd: Option<f64>,
+    /// The weighting leaves the largest |SMD| worse than the first (unweighted) variant:
+    /// its estimates correct nothing they can be trusted to correct.
+    #[serde(default)]
+    pub worse_than_none: bool,
     /// What the variant's standard errors are.
     pub se_kind: String,
 }
@@ -373,6 +377,7 @@ pub fn impact(
     );
 
     flag_changes(&mut variants, k);
+    flag_worse_than_none(&mut variants);
     let mut notes = vec![
         "Unweighted: design weights rescaled so that every participating country counts the same. Weighted: so that each country counts by its country weight.".to_string(),
         format!("Confidence intervals and p-values use standard errors clustered by country (CR1) with t on {df} degrees of freedom (countries - 1); with few countries the wild cluster bootstrap p-values are the safer guide."),
@@ -604,6 +609,7 @@ fn mills_variant(
         p_bootstrap: None,
         smd: vec![None; design.balance.len()],
         max_abs_smd: None,
+        worse_than_none: false,
         se_kind: "Murphy-Topel, clustered by country: includes the estimated country probit"
             .to_string(),
     })
@@ -623,6 +629,7 @@ fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
         verdict_changed: vec![false; k],
         smd: Vec::new(),
         max_abs_smd: None,
+        worse_than_none: false,
         se_kind: String::new(),
     }
 }
@@ -704,6 +711,7 @@ fn estimate(
                 p_bootstrap,
                 smd: Vec::new(),
                 max_abs_smd: None,
+                worse_than_none: false,
                 se_kind: String::new(),
             }
         }
@@ -712,6 +720,16 @@ fn estimate(
 
 /// Marks, per term, a sign or a 5%-significance verdict that differs from the unweighted
 /// model (bootstrap p-values where available).
+/// Marks the variants whose largest |SMD| exceeds the unweighted variant's (the first).
+fn flag_worse_than_none(variants: &mut [Variant]) {
+    let Some(before) = variants.first().and_then(|v| v.max_abs_smd) else {
+        return;
+    };
+    for v in variants.iter_mut().skip(1) {
+        v.worse_than_none = v.max_abs_smd.is_some_and(|after| after > before + 1e-9);
+    }
+}
+
 fn flag_changes(variants: &mut [Variant], k: usize) {
     let Some(base) = variants.first().cloned() else {
         return;
