@@ -1,6 +1,7 @@
 //! A meeting's load on the real server: `gapwise serve` on the demo as its own process,
 //! 50 concurrent clients each making 40 requests over every page, twin and download linked
-//! from the overview (each client starts at another route, so cold and cached requests
+//! from the overview (`common/routes.rs`, shared with the page benchmark; each client
+//! starts at another route, so cold and cached requests
 //! mix). Reports errors, latency percentiles, the server's peak memory and its memory
 //! after the load. Targets: no error, 99th percentile under 1 s, memory bounded.
 //!
@@ -15,43 +16,9 @@ use std::time::{Duration, Instant};
 const CLIENTS: usize = 50;
 const REQUESTS_PER_CLIENT: usize = 40;
 
-/// Every route linked from the overview (pages, their JSON twins, their downloads), and a
-/// few other settings as a meeting would try them.
-const ROUTES: &[&str] = &[
-    "/",
-    "/api/overview",
-    "/charts/coverage.svg",
-    "/coverage",
-    "/api/coverage",
-    "/coverage/map.svg",
-    "/coverage/points.csv",
-    "/model",
-    "/api/model",
-    "/model/propensity.svg",
-    "/model/coefficients.csv",
-    "/model/weights.csv",
-    "/balance",
-    "/api/balance",
-    "/balance/smd.svg",
-    "/balance/table.csv",
-    "/plan",
-    "/api/plan",
-    "/plan/paths.svg",
-    "/plan/plan.csv",
-    "/impact",
-    "/api/impact",
-    "/impact/pooled.svg",
-    "/impact/table.csv",
-    "/sensitivity",
-    "/api/sensitivity",
-    "/sensitivity/table.csv",
-    "/report",
-    "/model?wave=2&model=firth&weighting=raking",
-    "/balance?wave=3&weighting=covariate-balancing-gmm",
-    "/plan?wave=3",
-    "/impact?wave=3",
-    "/sensitivity?wave=2",
-];
+#[path = "common/routes.rs"]
+mod routes;
+use routes::ROUTES;
 
 /// Memory of a process in MB from /proc (Linux): (current resident, peak resident).
 fn memory_mb(pid: u32) -> Option<(f64, f64)> {

@@ -15,49 +15,9 @@ use gapwise::project::Project;
 use gapwise::web::{self, AppState};
 use tower::ServiceExt;
 
-/// Every route the overview links to, directly or through a page, with two other settings.
-const ROUTES: &[&str] = &[
-    "/",
-    "/api/overview",
-    "/charts/coverage.svg",
-    "/coverage",
-    "/api/coverage",
-    "/coverage/map.svg",
-    "/coverage/spreads.svg",
-    "/coverage/points.csv",
-    "/coverage/loadings.csv",
-    "/coverage/rates.csv",
-    "/model",
-    "/api/model",
-    "/model/propensity.svg",
-    "/model/overlap.svg",
-    "/model/coefficients.csv",
-    "/model/weights.csv",
-    "/balance",
-    "/api/balance",
-    "/balance/smd.svg",
-    "/balance/table.csv",
-    "/plan",
-    "/api/plan",
-    "/plan/paths.svg",
-    "/plan/map.svg",
-    "/plan/plan.csv",
-    "/plan/candidates.csv",
-    "/impact",
-    "/api/impact",
-    "/impact/pooled.svg",
-    "/impact/coefficients.svg",
-    "/impact/table.csv",
-    "/sensitivity",
-    "/api/sensitivity",
-    "/sensitivity/trimming.svg",
-    "/sensitivity/table.csv",
-    "/report",
-    "/model?wave=2&model=firth&weighting=raking",
-    "/balance?wave=1&model=probit&weighting=covariate-balancing-gmm",
-    "/plan?wave=2&model=firth&weighting=raking",
-    "/impact?wave=1&model=probit&weighting=covariate-balancing-gmm",
-];
+#[path = "common/routes.rs"]
+mod routes;
+use routes::ROUTES;
 
 fn fresh_state() -> Arc<AppState> {
     Arc::new(AppState::new(

@@ -843,7 +843,7 @@ pub fn export_weights(dir: &Path, settings: &Settings, out: &Path) -> i32 {
         "model": settings.model.as_str(),
         "settings": settings,
         "waves": waves,
-        "inputs": crate::analysis::report::input_checksums(&project),
+        "inputs": &project.inputs,
         "columns": {"wave": "wave", "code": "country code", "name": "country name", "took_part": "1 took part, 0 did not", "propensity": "estimated probability of taking part", "weight": "participants' weights sum to the wave's number of eligible countries; 0 for non-participants"},
     });
     let sidecar_path = std::path::PathBuf::from(format!("{}.json", out.display()));

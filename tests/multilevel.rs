@@ -285,48 +285,34 @@ fn cbpp_adaptive_quadrature_matches_lme4() {
     );
 }
 
-#[test]
-fn bad_requests_get_a_message_not_a_panic() {
+/// `gapwise multilevel` on the sleepstudy file with days as predictor and subject as
+/// country, the given outcome and extra options.
+fn sleepstudy_multilevel(outcome: &str, extra: &[&str]) -> Output {
     let file = fixtures().join("sleepstudy.csv");
     let path = file.to_str().unwrap();
-    let out = gapwise(&[
+    let mut args = vec![
         "multilevel",
         path,
         "--outcome",
-        "reaction",
+        outcome,
         "--predictors",
         "days",
         "--country",
         "subject",
-        "--kind",
-        "probit",
-    ]);
+    ];
+    args.extend_from_slice(extra);
+    gapwise(&args)
+}
+
+#[test]
+fn bad_requests_get_a_message_not_a_panic() {
+    let out = sleepstudy_multilevel("reaction", &["--kind", "probit"]);
     assert_eq!(out.code, 2);
     assert!(out.stderr.contains("--kind"), "{}", out.stderr);
-    let out = gapwise(&[
-        "multilevel",
-        path,
-        "--outcome",
-        "reaction",
-        "--predictors",
-        "days",
-        "--country",
-        "subject",
-        "--kind",
-        "logistic",
-    ]);
+    let out = sleepstudy_multilevel("reaction", &["--kind", "logistic"]);
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("0 or 1"), "{}", out.stderr);
-    let out = gapwise(&[
-        "multilevel",
-        path,
-        "--outcome",
-        "nothing",
-        "--predictors",
-        "days",
-        "--country",
-        "subject",
-    ]);
+    let out = sleepstudy_multilevel("nothing", &[]);
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("nothing"), "{}", out.stderr);
 }

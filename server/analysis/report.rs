@@ -27,12 +27,6 @@ pub struct Report {
     pub inputs: Vec<LoadedFile>,
 }
 
-/// SHA-256 of every file the project read (FIPS 180-4): of exactly the bytes that were
-/// validated when the project was loaded, not of the files as they are now.
-pub fn input_checksums(project: &Project) -> Vec<LoadedFile> {
-    project.inputs.clone()
-}
-
 /// Builds the report for one wave (the latest when the settings name none).
 pub fn report(project: &Project, settings: &Settings) -> Result<Report, String> {
     let (wave, view) = project.resolve_wave(settings.wave)?;
@@ -85,7 +79,8 @@ pub fn report(project: &Project, settings: &Settings) -> Result<Report, String> 
         )
         .map_err(|e| e.to_string()),
         impact,
-        inputs: input_checksums(project),
+        // Checksums of exactly the bytes validated at load (FIPS 180-4 SHA-256).
+        inputs: project.inputs.clone(),
         settings,
     })
 }
