@@ -37,17 +37,11 @@ fn projection_settings(
     project: &Project,
     query: &super::context::Query,
 ) -> AppResult<ProjectionSettings> {
-    let variables = project
-        .manifest
-        .microdata
-        .as_ref()
-        .map(|m| m.variables.clone())
-        .unwrap_or_default();
     let outcome = query
         .iter()
         .find(|(k, _)| k == "outcome")
         .map(|(_, v)| v.clone())
-        .or_else(|| variables.last().cloned())
+        .or_else(|| project.manifest.default_outcome().map(str::to_string))
         .ok_or_else(|| AppError::BadRequest("the project has no survey variables".into()))?;
     let predictors = query
         .iter()
