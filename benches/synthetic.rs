@@ -64,5 +64,6 @@ pub fn synthetic_universe(n: usize, numeric: usize, seed: u64) -> WaveView {
         cost_column: None,
         feasibility: None,
         feasibility_column: None,
+        support: None,
     }
 }

@@ -197,10 +197,7 @@ pub struct UniverseSource {
 /// completed with the defaults that apply.
 pub fn load_universe(source: &UniverseSource, settings: &mut Settings) -> Result<WaveView, String> {
     if source.path.is_dir() {
-        let project = Project::load(&source.path).map_err(|p| problems_text(&p, &source.path))?;
-        let (wave, view) = project.resolve_wave(source.wave)?;
-        settings.wave = Some(wave);
-        Ok(view)
+        load_project_wave(source, settings).map(|(_, view)| view)
     } else {
         let id = source
             .id
@@ -221,6 +218,17 @@ pub fn load_universe(source: &UniverseSource, settings: &mut Settings) -> Result
         WaveView::from_file(&source.path, id, flag, &covariates, &factors, &source.extra)
             .map_err(|p| problems_text(&p, &source.path))
     }
+}
+
+/// A project folder and its wave (the settings' wave set to it).
+fn load_project_wave(
+    source: &UniverseSource,
+    settings: &mut Settings,
+) -> Result<(Project, WaveView), String> {
+    let project = Project::load(&source.path).map_err(|p| problems_text(&p, &source.path))?;
+    let (wave, view) = project.resolve_wave(source.wave)?;
+    settings.wave = Some(wave);
+    Ok((project, view))
 }
 
 fn problems_text(problems: &[crate::project::Problem], path: &Path) -> String {
@@ -349,14 +357,28 @@ pub fn plan(
     plan_settings: &crate::analysis::planner::PlanSettings,
     json: bool,
 ) -> i32 {
-    let view = match load_universe(source, &mut settings) {
-        Ok(v) => v,
-        Err(message) => {
-            eprintln!("{message}");
-            return 1;
-        }
+    // A project folder is loaded once here, so that chances from its history can read
+    // the earlier waves.
+    let result = if source.path.is_dir() {
+        let (project, view) = match load_project_wave(source, &mut settings) {
+            Ok(loaded) => loaded,
+            Err(message) => {
+                eprintln!("{message}");
+                return 1;
+            }
+        };
+        crate::analysis::planner::plan_for(&project, &view, &settings, plan_settings)
+    } else {
+        let view = match load_universe(source, &mut settings) {
+            Ok(v) => v,
+            Err(message) => {
+                eprintln!("{message}");
+                return 1;
+            }
+        };
+        crate::analysis::planner::plan(&view, &settings, plan_settings)
     };
-    match crate::analysis::planner::plan(&view, &settings, plan_settings) {
+    match result {
         Ok(mut p) => {
             if !source.path.is_dir() {
                 p.wave = None;
@@ -418,7 +440,7 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
     for (j, s) in p.steps.iter().enumerate() {
         let _ = writeln!(
             out,
-            "{:<4} {:<8} {:>8.2} {:>12} {:>9.2} {:>10.3} {:>11.1} {:>9}{}",
+            "{:<4} {:<8} {:>8.2} {:>12} {:>9.2} {:>10.3} {:>11.1} {:>9}{}{}",
             j + 1,
             s.id,
             s.probability,
@@ -430,6 +452,7 @@ pub fn plan_text(p: &crate::analysis::planner::Plan) -> String {
             s.expected_max_abs_smd,
             s.effective_n_if_all_join,
             opt(s.stability, 2),
+            if s.supported { "  (with support)" } else { "" },
             if s.exchanged { "  (by exchange)" } else { "" }
         );
     }

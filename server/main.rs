@@ -87,6 +87,17 @@ enum Command {
         /// What to maximise over who joins: effective-n, largest-smd (made small) or feasibility.
         #[arg(long, default_value = "effective-n")]
         objective: String,
+        /// Column with the cost of supporting a country (default: the project's
+        /// [recruitment] support_cost); support is planned under a cost budget.
+        #[arg(long, requires = "support_chance")]
+        support_cost: Option<String>,
+        /// Column with each country's chance of joining when supported (default: the
+        /// project's [recruitment] support_chance).
+        #[arg(long, requires = "support_cost")]
+        support_chance: Option<String>,
+        /// Plan invitations only, even where the project offers support.
+        #[arg(long)]
+        without_support: bool,
         /// Bootstrap replicates for the stability of each pick (0 to skip).
         #[arg(long, default_value_t = 200)]
         replicates: usize,
@@ -487,6 +498,9 @@ fn main() -> ExitCode {
             cost_budget,
             feasibility,
             objective,
+            support_cost,
+            support_chance,
+            without_support,
             replicates,
             seed,
             json,
@@ -513,6 +527,7 @@ fn main() -> ExitCode {
                         gapwise::analysis::planner::Feasibility::Column(c) => Some(c.clone()),
                         _ => None,
                     },
+                    support: support_cost.clone().zip(support_chance.clone()),
                 };
                 let plan_settings = gapwise::analysis::planner::PlanSettings {
                     budget,
@@ -520,6 +535,7 @@ fn main() -> ExitCode {
                     cost_column,
                     feasibility,
                     objective,
+                    support: !without_support,
                     replicates,
                     ..Default::default()
                 };

@@ -555,3 +555,284 @@ fn chances_and_costs_default_to_the_manifest() {
     ]);
     assert_ne!(out.code, 0);
 }
+
+/// The demo's frame as (code, wave) -> row of named cells.
+fn demo_rows(
+) -> std::collections::HashMap<(String, String), std::collections::HashMap<String, String>> {
+    let text = std::fs::read_to_string(demo_dir().join("frame.csv")).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<String> = lines.next().unwrap().split(',').map(String::from).collect();
+    lines
+        .map(|l| {
+            let cells: std::collections::HashMap<String, String> = header
+                .iter()
+                .cloned()
+                .zip(l.split(',').map(String::from))
+                .collect();
+            ((cells["code"].clone(), cells["wave"].clone()), cells)
+        })
+        .collect()
+}
+
+#[test]
+fn support_choices_respect_the_budget() {
+    // The demo prices support: [recruitment] support_cost and support_chance.
+    let demo = demo_dir();
+    let rows = demo_rows();
+    for budget in ["150", "300", "600"] {
+        let out = gapwise(&[
+            "plan",
+            demo.to_str().unwrap(),
+            "--cost-budget",
+            budget,
+            "--replicates",
+            "0",
+            "--json",
+        ]);
+        assert_eq!(out.code, 0, "{}", out.stderr);
+        let p: Value = serde_json::from_str(&out.stdout).unwrap();
+        let wave = p["wave"].to_string();
+        let steps = p["steps"].as_array().unwrap();
+        assert!(!steps.is_empty());
+        let mut total = 0.0;
+        let mut seen = std::collections::HashSet::new();
+        for s in steps {
+            let id = s["id"].as_str().unwrap();
+            assert!(seen.insert(id.to_string()), "{id} invited twice");
+            let row = &rows[&(id.to_string(), wave.clone())];
+            let base: f64 = row["recruitment_cost"].parse().unwrap();
+            let cost = s["cost"].as_f64().unwrap();
+            if s["supported"].as_bool().unwrap() {
+                let extra: f64 = row["support_cost"].parse().unwrap();
+                assert!((cost - base - extra).abs() < 1e-9, "{id}: {cost}");
+                assert_eq!(s["support_cost"].as_f64(), Some(extra));
+                let chance: f64 = row["chance_with_support"].parse().unwrap();
+                assert!((s["probability"].as_f64().unwrap() - chance).abs() < 1e-12);
+            } else {
+                assert!((cost - base).abs() < 1e-9, "{id}: {cost}");
+                assert!(s["support_cost"].is_null());
+            }
+            // Support is on offer for every candidate of the demo.
+            assert!(s["support_gain_per_cost"].is_f64(), "{id}");
+            total += cost;
+        }
+        let limit: f64 = budget.parse().unwrap();
+        assert!(total <= limit + 1e-9, "{total} > {budget}");
+        assert!((steps.last().unwrap()["cumulative_cost"].as_f64().unwrap() - total).abs() < 1e-9);
+        if budget == "300" {
+            // Countries without a study team cannot join plain (chance 0) but can with
+            // support: with 300 to spend the plan buys some support.
+            assert!(
+                steps.iter().any(|s| s["supported"] == true),
+                "{}",
+                out.stdout
+            );
+        }
+    }
+    // Invitations only when asked.
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--cost-budget",
+        "300",
+        "--without-support",
+        "--replicates",
+        "0",
+        "--json",
+    ]);
+    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert!(p["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|s| s["supported"] == false));
+    // A count budget never buys support (it costs money, not a place) and says so.
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--replicates",
+        "0",
+        "--json",
+    ]);
+    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert!(p["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|s| s["supported"] == false));
+    assert!(p["notes"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|n| n.as_str().unwrap().contains("only under a cost budget")));
+    // Costs show with a count budget too (the manifest's cost column).
+    assert_eq!(p["plan"]["cost_column"], "recruitment_cost");
+    assert!(p["steps"][0]["cost"].is_f64());
+}
+
+#[test]
+fn support_from_a_bare_frame_goes_where_it_buys_most() {
+    // Cluster B (far from the participants) cannot join plain but joins with support for
+    // a small extra cost; A's candidates join plain. A budget of 30 buys at most two plain
+    // invitations (cost 10-12) or one supported B (cost 10-12 + 5) and one plain A:
+    // supported B recruits add far more balance (constructed so; common practice).
+    let dir = TempDir::new("support");
+    let mut csv = String::from("id,x,y,took_part,chance,cost,support_cost,chance_supported\n");
+    for line in clustered_frame().lines().skip(1) {
+        // id, x, y, took_part, chance, cost
+        let mut cells: Vec<&str> = line.split(',').collect();
+        let b = cells[0].starts_with('B');
+        if b {
+            cells[4] = "0";
+        }
+        csv.push_str(&cells.join(","));
+        csv.push_str(if b { ",5,0.9\n" } else { ",5,1\n" });
+    }
+    dir.write("frame.csv", csv);
+    let p = plan_json(
+        &dir,
+        "frame.csv",
+        &[
+            "--cost-column",
+            "cost",
+            "--cost-budget",
+            "30",
+            "--support-cost",
+            "support_cost",
+            "--support-chance",
+            "chance_supported",
+        ],
+    );
+    let steps = p["steps"].as_array().unwrap();
+    assert!(
+        steps
+            .iter()
+            .any(|s| s["supported"] == true && s["id"].as_str().unwrap().starts_with('B')),
+        "{steps:?}"
+    );
+    let total: f64 = steps.iter().map(|s| s["cost"].as_f64().unwrap()).sum();
+    assert!(total <= 30.0 + 1e-9, "{total}");
+}
+
+#[test]
+fn history_chances_match_statsmodels() {
+    use gapwise::analysis::design;
+    use gapwise::analysis::planner::history::history_chances;
+    use gapwise::analysis::settings::Settings;
+    use gapwise::project::Project;
+    // Reference: statsmodels Logit on the stacked earlier waves of the real-indicator
+    // frame (tests/fixtures/make_history_fixture.py, history_reference.json).
+    let reference: Value = serde_json::from_str(&fixture("history_reference.json")).unwrap();
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/real_frame");
+    let project = Project::load(&dir).unwrap();
+    let settings = Settings {
+        wave: Some(2007),
+        factors: Some(Vec::new()),
+        ..Settings::default()
+    };
+    let view = gapwise::project::WaveView::new(&project, 2007).unwrap();
+    let d = design::build(&view, &settings).unwrap();
+    let h = history_chances(&project, &d, 2007, &settings).unwrap();
+    assert_eq!(h.trained_on, vec![1997, 2002]);
+    assert_eq!(
+        h.n_training as u64,
+        reference["n_training"].as_u64().unwrap()
+    );
+    let expected = reference["coef"].as_array().unwrap();
+    assert_eq!(h.coef.len(), expected.len(), "{:?}", h.terms);
+    for (c, e) in h.coef.iter().zip(expected) {
+        assert!(
+            (c.unwrap() - e.as_f64().unwrap()).abs() < 1e-6,
+            "{c:?} vs {e}"
+        );
+    }
+    let forecast = reference["forecast"].as_object().unwrap();
+    let mut compared = 0;
+    for (i, id) in d.ids.iter().enumerate() {
+        if let Some(p) = forecast.get(id) {
+            assert!(
+                (h.probability[i] - p.as_f64().unwrap()).abs() < 1e-6,
+                "{id}"
+            );
+            compared += 1;
+        }
+    }
+    assert_eq!(compared, forecast.len());
+    let check = h.check.as_ref().unwrap();
+    assert_eq!(check.wave, 2002);
+    assert_eq!(check.trained_on, vec![1997]);
+    assert!((check.auc.unwrap() - reference["check_auc"].as_f64().unwrap()).abs() < 1e-9);
+    assert_eq!(check.calibration.len(), 5);
+    assert_eq!(
+        check.calibration.iter().map(|b| b.n).sum::<usize>(),
+        check.n
+    );
+}
+
+#[test]
+fn history_chances_on_the_page_and_their_limits() {
+    let demo = demo_dir();
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--feasibility",
+        "history",
+        "--replicates",
+        "5",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert_eq!(p["chances"]["source"], "history");
+    assert_eq!(
+        p["chances"]["history"]["trained_on"],
+        serde_json::json!([2, 3])
+    );
+    assert_eq!(p["chances"]["history"]["check"]["wave"], 3);
+    // Wave 2 has only wave 1 before it, which has no wave before it: nothing to learn from.
+    let out = gapwise(&[
+        "plan",
+        demo.to_str().unwrap(),
+        "--wave",
+        "2",
+        "--feasibility",
+        "history",
+    ]);
+    assert_ne!(out.code, 0);
+    assert!(
+        out.stderr.contains("at least two waves before wave 2"),
+        "{}",
+        out.stderr
+    );
+    // A bare frame has no history.
+    let dir = TempDir::new("nohistory");
+    dir.write("frame.csv", clustered_frame());
+    let path = dir.path().join("frame.csv");
+    let out = gapwise(&[
+        "plan",
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        "took_part",
+        "--covariates",
+        "x,y",
+        "--feasibility",
+        "history",
+    ]);
+    assert_ne!(out.code, 0);
+    assert!(out.stderr.contains("project folder"), "{}", out.stderr);
+    // The page shows the check's calibration table.
+    let addr = start_server(&demo);
+    let page = http(
+        addr,
+        "GET",
+        "/plan?wave=4&feasibility=history&replicates=0",
+        &[],
+    );
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert!(page.body.contains("Can the history forecast be believed?"));
+    let table = page.body.split("Share that took part").nth(1).unwrap();
+    let table = table.split("</table>").next().unwrap();
+    assert_eq!(table.matches("<tr>").count(), 5, "one row per fifth");
+}

@@ -309,6 +309,8 @@ at_least = 13.0
 [recruitment]
 cost = "recruitment_cost"
 feasibility = "has_study_team"
+support_cost = "support_cost"
+support_chance = "chance_with_support"
 
 [microdata]
 country = "code"
@@ -324,7 +326,7 @@ scale = "log"
 
 fn frame_csv(s: &Scenario) -> String {
     let mut out = String::from(
-        "code,country,wave,took_part,region,electoral_system,log_gdp_pc,years_since_transition,democracy_index,log_population,literacy,internet_use,urban_share,recruitment_cost,has_study_team\n",
+        "code,country,wave,took_part,region,electoral_system,log_gdp_pc,years_since_transition,democracy_index,log_population,literacy,internet_use,urban_share,recruitment_cost,has_study_team,support_cost,chance_with_support\n",
     );
     // A few missing values, at fixed places, so that pages and checks show them.
     let missing = |c: usize, w: usize, column: usize| {
@@ -358,9 +360,19 @@ fn frame_csv(s: &Scenario) -> String {
             let cost =
                 (40.0 + 12.0 * (r.log_population - 14.0).max(0.0) + if team { 0.0 } else { 60.0 })
                     .round();
+            // Support: funding a team where there is none (dearer, and even then not
+            // every country joins), or the fieldwork where a team exists.
+            let (support_cost, chance_with_support) = if team {
+                (15.0, 0.95)
+            } else {
+                (
+                    (20.0 + 4.0 * (r.log_population - 14.0).max(0.0)).round(),
+                    0.45,
+                )
+            };
             let _ = writeln!(
                 out,
-                "{},{},{},{},{},{},{},{},{}",
+                "{},{},{},{},{},{},{},{},{},{},{}",
                 country.code,
                 country.name,
                 WAVES[w],
@@ -369,7 +381,9 @@ fn frame_csv(s: &Scenario) -> String {
                 ELECTORAL_SYSTEMS[country.electoral_system],
                 cells.join(","),
                 cost,
-                u8::from(team)
+                u8::from(team),
+                support_cost,
+                chance_with_support
             );
         }
     }

@@ -134,6 +134,12 @@ pub struct Recruitment {
     /// A probability or 0/1 judgement that the country could take part.
     #[serde(default)]
     pub feasibility: Option<String>,
+    /// What it costs to support a country's team or fieldwork (on top of `cost`).
+    #[serde(default)]
+    pub support_cost: Option<String>,
+    /// The country's chance of joining when supported (a probability).
+    #[serde(default)]
+    pub support_chance: Option<String>,
 }
 
 /// Which microdata columns carry the country code, wave and design weight.

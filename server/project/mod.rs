@@ -429,6 +429,20 @@ fn frame_specs(m: &Manifest) -> Vec<ColumnSpec> {
             "recruitment.feasibility",
         ));
     }
+    if let Some(c) = &m.recruitment.support_cost {
+        specs.push(ColumnSpec::new(
+            c,
+            ColumnKind::Number,
+            "recruitment.support_cost",
+        ));
+    }
+    if let Some(c) = &m.recruitment.support_chance {
+        specs.push(ColumnSpec::new(
+            c,
+            ColumnKind::Number,
+            "recruitment.support_chance",
+        ));
+    }
     specs
 }
 

@@ -39,6 +39,17 @@ pub struct WaveView {
     pub cost_column: Option<String>,
     pub feasibility: Option<Vec<Option<f64>>>,
     pub feasibility_column: Option<String>,
+    /// Support on offer: its cost and the chance of joining with it (both columns or none).
+    pub support: Option<SupportColumns>,
+}
+
+/// What supporting a country costs and what it does to its chance of joining.
+#[derive(Debug, Clone, Serialize)]
+pub struct SupportColumns {
+    pub cost_column: String,
+    pub chance_column: String,
+    pub cost: Vec<Option<f64>>,
+    pub chance: Vec<Option<f64>>,
 }
 
 impl WaveView {
@@ -112,6 +123,15 @@ impl WaveView {
                 .feasibility
                 .as_ref()
                 .map(|c| pick(project.frame.numbers(c))),
+            support: match (&m.recruitment.support_cost, &m.recruitment.support_chance) {
+                (Some(cost), Some(chance)) => Some(SupportColumns {
+                    cost_column: cost.clone(),
+                    chance_column: chance.clone(),
+                    cost: pick(project.frame.numbers(cost)),
+                    chance: pick(project.frame.numbers(chance)),
+                }),
+                _ => None,
+            },
             rows,
         })
     }
@@ -179,6 +199,14 @@ impl WaveView {
         if let Some(c) = &extra.feasibility {
             specs.push(ColumnSpec::new(c, ColumnKind::Number, "--feasibility"));
         }
+        if let Some((cost, chance)) = &extra.support {
+            specs.push(ColumnSpec::new(cost, ColumnKind::Number, "--support-cost"));
+            specs.push(ColumnSpec::new(
+                chance,
+                ColumnKind::Number,
+                "--support-chance",
+            ));
+        }
         let table = load_table(path, &label, &specs)?;
         let codes: Vec<String> = table
             .texts(id)
@@ -244,6 +272,12 @@ impl WaveView {
             cost_column: extra.cost.clone(),
             feasibility: extra.feasibility.as_ref().map(|c| table.numbers(c)),
             feasibility_column: extra.feasibility.clone(),
+            support: extra.support.as_ref().map(|(cost, chance)| SupportColumns {
+                cost_column: cost.clone(),
+                chance_column: chance.clone(),
+                cost: table.numbers(cost),
+                chance: table.numbers(chance),
+            }),
         })
     }
 }
@@ -253,4 +287,6 @@ impl WaveView {
 pub struct ExtraColumns {
     pub cost: Option<String>,
     pub feasibility: Option<String>,
+    /// Support's cost column and chance-of-joining-with-support column.
+    pub support: Option<(String, String)>,
 }

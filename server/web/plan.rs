@@ -16,7 +16,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
 use crate::analysis::limits;
-use crate::analysis::planner::{plan, Feasibility, ObjectiveKind, Plan, PlanSettings};
+use crate::analysis::planner::{plan_for, Feasibility, ObjectiveKind, Plan, PlanSettings};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 
@@ -41,6 +41,8 @@ struct PlanPage<'a> {
     path_chart: String,
     map_chart: String,
     plan_query: String,
+    project_offers_support: bool,
+    plan_has_support: bool,
     cautions: &'a [Caution],
 }
 
@@ -121,6 +123,15 @@ pub fn plan_settings(query: &PageQuery) -> AppResult<PlanSettings> {
             .filter(|(k, v)| k == "joiner" && !v.trim().is_empty())
             .map(|(_, v)| v.trim().to_string())
             .collect(),
+        support: match get("support").as_deref() {
+            None | Some("offer") => true,
+            Some("none") => false,
+            Some(v) => {
+                return Err(AppError::BadRequest(format!(
+                    "support must be 'offer' or 'none', not '{v}'"
+                )))
+            }
+        },
         ..PlanSettings::default()
     })
 }
@@ -145,6 +156,9 @@ pub fn plan_query(ps: &PlanSettings) -> String {
         q.append_pair("objective", ps.objective.as_str());
     }
     q.append_pair("replicates", &ps.replicates.to_string());
+    if !ps.support {
+        q.append_pair("support", "none");
+    }
     for j in &ps.joiners {
         q.append_pair("joiner", j);
     }
@@ -155,7 +169,8 @@ fn compute(state: &AppState, query: &PageQuery) -> AppResult<(SettingsForm, Plan
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/plan", &project, &settings);
     let ps = plan_settings(query)?;
-    let p = plan(&view, &settings, &ps).map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let p = plan_for(&project, &view, &settings, &ps)
+        .map_err(|e| AppError::BadRequest(e.to_string()))?;
     Ok((form, p, coverage(&view)))
 }
 
@@ -182,6 +197,10 @@ pub async fn page(
             "model".to_string(),
             "the participation model (leave-one-out)".to_string(),
         ),
+        (
+            "history".to_string(),
+            "the programme's history (earlier waves, past participation)".to_string(),
+        ),
     ];
     if let Some(col) = &project.manifest.recruitment.feasibility {
         feasibility_choices.push((col.clone(), format!("column {col}")));
@@ -203,6 +222,10 @@ pub async fn page(
             ("largest-smd", "a small expected largest |SMD|"),
             ("feasibility", "the chance that balance is feasible"),
         ],
+        project_offers_support: project.manifest.recruitment.support_cost.is_some()
+            && project.manifest.recruitment.support_chance.is_some(),
+        plan_has_support: p.candidates.iter().any(|r| r.support_cost.is_some())
+            && p.plan.cost_budget.is_some(),
         path_chart: charts::plan::paths(&p),
         map_chart: map(&p, &c),
         plan_query: plan_query(&p.plan),
@@ -244,6 +267,8 @@ pub async fn artifact(
                     "supported",
                     "probability",
                     "cost",
+                    "support_cost",
+                    "support_gain_per_cost",
                     "cumulative_cost",
                     "expected_effective_n",
                     "expected_effective_n_mc_error",
@@ -266,6 +291,8 @@ pub async fn artifact(
                         u8::from(s.supported).to_string(),
                         cell(Some(s.probability)),
                         cell(s.cost),
+                        cell(s.support_cost),
+                        cell(s.support_gain_per_cost),
                         cell(s.cumulative_cost),
                         cell(Some(s.expected_effective_n)),
                         cell(s.expected_effective_n_mc_error),

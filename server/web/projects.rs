@@ -375,6 +375,8 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
         recruitment: Recruitment {
             cost: one("cost"),
             feasibility: one("feasibility"),
+            support_cost: one("support_cost"),
+            support_chance: one("support_chance"),
         },
         microdata,
     })

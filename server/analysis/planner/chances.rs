@@ -8,28 +8,41 @@
 
 use serde::Serialize;
 
+use super::history::{history_chances, HistoryForecast};
 use super::{Feasibility, PlanError, PlanSettings};
 use crate::analysis::design::Design;
 use crate::analysis::participation::{self, AnalysisError};
 use crate::analysis::settings::Settings;
-use crate::project::WaveView;
+use crate::project::{Project, WaveView};
 use crate::stats::binary;
 
 /// The chances of joining used by a plan, and where they came from.
 #[derive(Debug, Clone, Serialize)]
 pub struct Chances {
-    /// "column" or "model-leave-one-out".
+    /// "column", "model-leave-one-out" or "history".
     pub source: String,
     /// The column read (for "column").
     pub column: Option<String>,
     /// Units whose leave-one-out refit failed and kept the in-sample chance.
     pub in_sample_fallbacks: usize,
+    /// The history model and its check (for "history").
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub history: Option<HistoryForecast>,
     #[serde(skip)]
     pub probability: Vec<f64>,
 }
 
+impl Chances {
+    /// The chances stay with their country when the eligible universe is resampled (they
+    /// do not come from this wave's participation model).
+    pub fn fixed(&self) -> bool {
+        self.source != "model-leave-one-out"
+    }
+}
+
 /// Chance of joining for each unit of the design.
 pub fn chances(
+    project: Option<&Project>,
     design: &Design,
     view: &WaveView,
     settings: &Settings,
@@ -38,6 +51,22 @@ pub fn chances(
     let column = match &plan.feasibility {
         Feasibility::Auto => view.feasibility_column.clone(),
         Feasibility::Model => None,
+        Feasibility::History => {
+            let project = project.ok_or_else(|| {
+                PlanError::Request(
+                    "chances from the programme's history need a project folder with several waves"
+                        .to_string(),
+                )
+            })?;
+            let forecast = history_chances(project, design, view.wave, settings)?;
+            return Ok(Chances {
+                source: "history".to_string(),
+                column: None,
+                in_sample_fallbacks: 0,
+                probability: forecast.probability.clone(),
+                history: Some(forecast),
+            });
+        }
         Feasibility::Column(c) => Some(c.clone()),
     };
     match column {
@@ -47,6 +76,7 @@ pub fn chances(
             source: "column".to_string(),
             column: Some(name),
             in_sample_fallbacks: 0,
+            history: None,
         }),
     }
 }
@@ -73,6 +103,7 @@ fn model_chances(design: &Design, settings: &Settings) -> Result<Chances, PlanEr
         source: "model-leave-one-out".to_string(),
         column: None,
         in_sample_fallbacks: fallbacks,
+        history: None,
         probability,
     })
 }
@@ -115,11 +146,12 @@ fn named_column<'a>(
     })
 }
 
-/// The cost column in use: the one named, else (for a cost budget) the project's.
+/// The cost column in use: the one named, else the project's (costs show with a count
+/// budget too).
 pub fn cost_column(view: &WaveView, plan: &PlanSettings) -> Option<String> {
     plan.cost_column
         .clone()
-        .or_else(|| plan.cost_budget.and(view.cost_column.clone()))
+        .or_else(|| view.cost_column.clone())
 }
 
 /// Each unit's cost (None when missing or not positive).
@@ -145,4 +177,38 @@ pub fn costs(
             .map(|&i| values.get(i).copied().flatten().filter(|c| *c > 0.0))
             .collect(),
     ))
+}
+
+/// Support on offer for each unit: (chance of joining with support, support's cost), or
+/// None where the project offers none or a value is missing. `None` overall when the
+/// project has no support columns or the plan asks for none.
+pub fn support(
+    design: &Design,
+    view: &WaveView,
+    plan: &PlanSettings,
+) -> Result<Option<Vec<Option<(f64, f64)>>>, PlanError> {
+    let Some(columns) = view.support.as_ref().filter(|_| plan.support) else {
+        return Ok(None);
+    };
+    design
+        .units
+        .iter()
+        .map(|&i| {
+            let cost = columns.cost.get(i).copied().flatten();
+            let chance = columns.chance.get(i).copied().flatten();
+            match (chance, cost) {
+                (Some(p), _) if !(0.0..=1.0).contains(&p) => Err(PlanError::Request(format!(
+                    "the support chance column '{}' holds {p} for {}; it must hold probabilities between 0 and 1",
+                    columns.chance_column, view.codes[i]
+                ))),
+                (Some(_), Some(c)) if c < 0.0 => Err(PlanError::Request(format!(
+                    "the support cost column '{}' holds {c} for {}; costs cannot be negative",
+                    columns.cost_column, view.codes[i]
+                ))),
+                (Some(p), Some(c)) => Ok(Some((p, c))),
+                _ => Ok(None),
+            }
+        })
+        .collect::<Result<Vec<_>, _>>()
+        .map(Some)
 }

@@ -10,6 +10,7 @@
 pub mod baselines;
 pub mod chances;
 pub mod evaluate;
+pub mod history;
 pub mod objective;
 pub mod search;
 pub mod stability;
@@ -17,7 +18,7 @@ pub mod stability;
 use serde::{Deserialize, Serialize};
 
 use self::baselines::{baselines, prefix_path, Baselines};
-use self::chances::{chances, cost_column, costs, Chances};
+use self::chances::{chances, cost_column, costs, support, Chances};
 use self::evaluate::Evaluator;
 pub use self::evaluate::SetMetrics;
 pub use self::objective::ObjectiveKind;
@@ -28,7 +29,7 @@ use self::search::{exact_optimum, exchange, greedy, Budget, Swap, EXCHANGE_POOL}
 use super::design::{self, Design};
 use super::participation::AnalysisError;
 use super::settings::Settings;
-use crate::project::WaveView;
+use crate::project::{Project, WaveView};
 
 /// Countries to recruit when neither a count nor a cost budget is given (page and CLI).
 pub const DEFAULT_PLAN_SIZE: usize = 5;
@@ -48,6 +49,9 @@ pub enum Feasibility {
     Auto,
     /// The participation model's leave-one-out probability.
     Model,
+    /// A model of taking part fitted on the earlier waves, with past participation as a
+    /// predictor (see [`history`]).
+    History,
     /// A column of probabilities (or 0/1 judgements) in the frame.
     Column(String),
 }
@@ -58,6 +62,7 @@ impl Feasibility {
         match s {
             "auto" | "" => Feasibility::Auto,
             "model" => Feasibility::Model,
+            "history" => Feasibility::History,
             c => Feasibility::Column(c.to_string()),
         }
     }
@@ -66,6 +71,7 @@ impl Feasibility {
         match self {
             Feasibility::Auto => "auto",
             Feasibility::Model => "model",
+            Feasibility::History => "history",
             Feasibility::Column(c) => c,
         }
     }
@@ -87,6 +93,9 @@ pub struct PlanSettings {
     pub random_draws: usize,
     /// Hypothetical joiners for the what-if view.
     pub joiners: Vec<String>,
+    /// Offer support where the project's `[recruitment] support_cost` and
+    /// `support_chance` columns give it (planned under a cost budget only).
+    pub support: bool,
 }
 
 impl Default for PlanSettings {
@@ -100,6 +109,7 @@ impl Default for PlanSettings {
             replicates: DEFAULT_REPLICATES,
             random_draws: DEFAULT_RANDOM_DRAWS,
             joiners: Vec::new(),
+            support: true,
         }
     }
 }
@@ -111,6 +121,10 @@ pub struct CandidateRow {
     pub group: Option<String>,
     pub probability: f64,
     pub cost: Option<f64>,
+    /// Chance of joining with support and what the support costs (on top of `cost`),
+    /// where the project offers support.
+    pub support_probability: Option<f64>,
+    pub support_cost: Option<f64>,
     /// The set's balance if this candidate alone joined.
     pub if_joined: SetMetrics,
     /// Rise in the effective number if it joins.
@@ -134,8 +148,17 @@ pub struct Step {
     pub name: String,
     /// Invited with support (a higher chance of joining at a cost).
     pub supported: bool,
+    /// The chance of joining as invited (with support when `supported`).
     pub probability: f64,
+    /// The invitation's cost, support included.
     pub cost: Option<f64>,
+    /// The support's part of `cost` (when supported).
+    pub support_cost: Option<f64>,
+    /// What support buys at the margin, the rest of the plan as it is: the rise in the
+    /// expected objective from supporting this country rather than inviting it plain,
+    /// per unit of support cost (negative when support would be dropped; None where no
+    /// support is on offer).
+    pub support_gain_per_cost: Option<f64>,
     pub cumulative_cost: Option<f64>,
     /// Expected effective number after entropy balancing over who joins (0 for outcomes
     /// where balance is infeasible).
@@ -229,6 +252,8 @@ struct Inputs {
     design: Design,
     chances: Chances,
     cost: Option<Vec<Option<f64>>>,
+    /// Per unit: chance of joining with support and support's cost.
+    support: Option<Vec<Option<(f64, f64)>>>,
     members: Vec<usize>,
     candidates: Vec<usize>,
     budget: Budget,
@@ -237,6 +262,7 @@ struct Inputs {
 
 impl Inputs {
     fn gather(
+        project: Option<&Project>,
         view: &WaveView,
         settings: &Settings,
         ps: &PlanSettings,
@@ -254,8 +280,9 @@ impl Inputs {
             ));
         }
         let budget = resolve_budget(ps, candidates.len())?;
-        let chances = chances(&design, view, settings, ps)?;
+        let chances = chances(project, &design, view, settings, ps)?;
         let cost = costs(&design, view, ps)?;
+        let support = support(&design, view, ps)?;
         let mut applied = ps.clone();
         applied.cost_column = cost_column(view, ps);
         if let Budget::Count(k) = budget {
@@ -265,6 +292,7 @@ impl Inputs {
             design,
             chances,
             cost,
+            support,
             members,
             candidates,
             budget,
@@ -272,8 +300,8 @@ impl Inputs {
         })
     }
 
-    /// Every invitation on offer (one per candidate).
-    fn menu(&self) -> Vec<Offer> {
+    /// Every plain invitation on offer (one per candidate).
+    fn plain_menu(&self) -> Vec<Offer> {
         self.candidates
             .iter()
             .map(|&c| Offer {
@@ -283,6 +311,40 @@ impl Inputs {
                 cost: self.cost.as_ref().and_then(|k| k[c]),
             })
             .collect()
+    }
+
+    /// The supported invitation of unit `c`, where support is on offer and priced.
+    fn supported_offer(&self, c: usize) -> Option<Offer> {
+        let (chance, extra) = self.support.as_ref()?[c]?;
+        let base = self.cost.as_ref()?[c]?;
+        Some(Offer {
+            unit: c,
+            supported: true,
+            probability: chance,
+            cost: Some(base + extra),
+        })
+    }
+
+    /// Every invitation on offer: the plain ones and, under a cost budget, the supported
+    /// ones (the search takes at most one offer per country).
+    fn menu(&self) -> Vec<Offer> {
+        let mut menu = self.plain_menu();
+        if matches!(self.budget, Budget::Cost(_)) {
+            menu.extend(
+                self.candidates
+                    .iter()
+                    .filter_map(|&c| self.supported_offer(c)),
+            );
+        }
+        menu
+    }
+
+    /// The support's part of an offer's cost.
+    fn support_cost(&self, offer: &Offer) -> Option<f64> {
+        offer
+            .supported
+            .then(|| self.support.as_ref()?[offer.unit].map(|(_, c)| c))
+            .flatten()
     }
 }
 
@@ -308,18 +370,47 @@ fn natural(kind: ObjectiveKind, score: f64) -> f64 {
     }
 }
 
+/// A rise in the score in the objective's natural direction (largest |SMD| falls).
+fn natural_gain(kind: ObjectiveKind, rise: f64) -> f64 {
+    match kind {
+        ObjectiveKind::LargestSmd => -rise,
+        _ => rise,
+    }
+}
+
 /// The reported expectation of a plan.
 fn report_expected(memo: &mut Memo, draws: &Draws, plan: &[Offer]) -> Expected {
     memo.expected(&outcomes(plan, draws, REPORT_EXACT_OUTCOMES, REPORT_DRAWS))
 }
 
-/// Builds the plan for one wave.
+/// Builds the plan for one wave of a bare frame (no history: `feasibility` "history" is
+/// refused).
 pub fn plan(
     view: &WaveView,
     settings: &Settings,
     plan_settings: &PlanSettings,
 ) -> Result<Plan, PlanError> {
-    let inputs = Inputs::gather(view, settings, plan_settings)?;
+    plan_with(None, view, settings, plan_settings)
+}
+
+/// Builds the plan for one wave of a project (whose earlier waves the "history" chances
+/// learn from).
+pub fn plan_for(
+    project: &Project,
+    view: &WaveView,
+    settings: &Settings,
+    plan_settings: &PlanSettings,
+) -> Result<Plan, PlanError> {
+    plan_with(Some(project), view, settings, plan_settings)
+}
+
+fn plan_with(
+    project: Option<&Project>,
+    view: &WaveView,
+    settings: &Settings,
+    plan_settings: &PlanSettings,
+) -> Result<Plan, PlanError> {
+    let inputs = Inputs::gather(project, view, settings, plan_settings)?;
     let design = &inputs.design;
     let kind = plan_settings.objective;
     let seed = settings.seed;
@@ -328,6 +419,7 @@ pub fn plan(
     let draws = Draws::new(seed, REPORT_DRAWS, design.n());
     let current = memo.get(&[]);
     let menu = inputs.menu();
+    let plain = inputs.plain_menu();
 
     // Search: greedy, then exchange.
     let found = greedy(
@@ -345,11 +437,18 @@ pub fn plan(
         .take(EXCHANGE_POOL)
         .map(|t| t.offer)
         .collect();
+    // The plan's own offers and their other variant (with or without support), so that
+    // the exchange can toggle support.
     for o in &chosen {
-        if let Some(i) = menu.iter().position(|m| m == o) {
-            pool.push(i);
-        }
+        pool.extend(
+            menu.iter()
+                .enumerate()
+                .filter(|(_, m)| m.unit == o.unit)
+                .map(|(i, _)| i),
+        );
     }
+    pool.sort_unstable();
+    pool.dedup();
     let swaps = exchange(&mut memo, &draws, &menu, &pool, inputs.budget, &mut chosen);
 
     let mut steps = report_steps(&mut memo, &draws, &inputs, &chosen, &greedy_plan);
@@ -357,7 +456,7 @@ pub fn plan(
     let baselines = baselines(
         &mut memo,
         &draws,
-        &menu,
+        &plain,
         inputs.budget,
         &design.ids,
         plan_settings.random_draws,
@@ -375,11 +474,16 @@ pub fn plan(
     );
 
     if plan_settings.replicates > 0 {
+        // Chances that do not come from this wave's model stay with their country.
+        let fixed = inputs
+            .chances
+            .fixed()
+            .then_some(inputs.chances.probability.as_slice());
         let counts = stability::bootstrap(
             design,
-            view,
+            fixed,
+            inputs.cost.as_deref(),
             settings,
-            plan_settings,
             kind,
             inputs.budget,
             plan_settings.replicates,
@@ -432,6 +536,31 @@ fn report_steps(
 ) -> Vec<Step> {
     let design = &inputs.design;
     let path = prefix_path(memo, draws, chosen);
+    let plan_score = report_expected(memo, draws, chosen).score;
+    // What support buys at each step, the rest of the plan as it is.
+    let support_margins: Vec<Option<f64>> = (0..chosen.len())
+        .map(|j| {
+            let o = chosen[j];
+            let (supported, plain) = if o.supported {
+                (
+                    o,
+                    inputs.plain_menu().into_iter().find(|p| p.unit == o.unit)?,
+                )
+            } else {
+                (inputs.supported_offer(o.unit)?, o)
+            };
+            let support_cost = inputs.support_cost(&supported)?;
+            let mut other = chosen.to_vec();
+            other[j] = if o.supported { plain } else { supported };
+            let other_score = report_expected(memo, draws, &other).score;
+            let (with, without) = if o.supported {
+                (plan_score, other_score)
+            } else {
+                (other_score, plan_score)
+            };
+            (support_cost > 0.0).then(|| natural_gain(memo.kind, with - without) / support_cost)
+        })
+        .collect();
     let current = memo.get(&[]);
     let mut previous = current.effective_n;
     let mut cumulative = 0.0;
@@ -439,7 +568,8 @@ fn report_steps(
     chosen
         .iter()
         .zip(path)
-        .map(|(o, e)| {
+        .zip(support_margins)
+        .map(|((o, e), support_gain_per_cost)| {
             cumulative += o.cost.unwrap_or(0.0);
             all.push(o.unit);
             all.sort_unstable();
@@ -452,6 +582,8 @@ fn report_steps(
                 supported: o.supported,
                 probability: o.probability,
                 cost: o.cost,
+                support_cost: inputs.support_cost(o),
+                support_gain_per_cost,
                 cumulative_cost: inputs.cost.as_ref().map(|_| cumulative),
                 expected_effective_n: e.effective_n,
                 expected_effective_n_mc_error: e.effective_n_mc_error,
@@ -505,6 +637,12 @@ fn candidate_rows(
                 }),
                 probability: p,
                 cost: unit_cost,
+                support_probability: inputs
+                    .support
+                    .as_ref()
+                    .and_then(|s| s[c])
+                    .map(|(chance, _)| chance),
+                support_cost: inputs.support.as_ref().and_then(|s| s[c]).map(|(_, k)| k),
                 if_joined: m,
                 gain,
                 expected_gain: p * gain,
@@ -651,7 +789,23 @@ fn notes(inputs: &Inputs, current: &SetMetrics, steps: &[Step], swaps: &[Swap]) 
     if inputs.applied.replicates > 0 {
         notes.push(format!(
             "Stability: each bootstrap resample is replanned greedily on one draw of who joins (each trial country's own join integrated exactly), without the exchange step{}.",
-            if inputs.chances.column.is_none() { ", with the refitted model's in-sample chances (a leave-one-out refit per country per resample would cost too much)" } else { "" }
+            if !inputs.chances.fixed() { ", with the refitted model's in-sample chances (a leave-one-out refit per country per resample would cost too much)" } else { "" }
+        ));
+    }
+    if let Some(h) = &inputs.chances.history {
+        let check = h.check.as_ref().map_or_else(
+            || " There are too few waves to check such a forecast on a past wave.".to_string(),
+            |c| format!(
+                " Checked on the past: the same model fitted on wave(s) {} forecast wave {} with an area under the ROC curve of {} (its calibration table is on the page and in the JSON).",
+                c.trained_on.iter().map(i64::to_string).collect::<Vec<_>>().join(", "),
+                c.wave,
+                c.auc.map_or_else(|| "not estimable".to_string(), |a| format!("{a:.2}"))
+            ),
+        );
+        notes.push(format!(
+            "Chances of joining come from the programme's history: a model of taking part fitted on wave(s) {} ({} country-waves), with taking part in the wave before as a predictor.{check}",
+            h.trained_on.iter().map(i64::to_string).collect::<Vec<_>>().join(", "),
+            h.n_training
         ));
     }
     if inputs.chances.in_sample_fallbacks > 0 {
@@ -666,6 +820,19 @@ fn notes(inputs: &Inputs, current: &SetMetrics, steps: &[Step], swaps: &[Swap]) 
         notes.push(
             "Candidates without a (positive) cost are left out of a cost-budget plan.".to_string(),
         );
+    }
+    if let Some(support) = &inputs.support {
+        let offered = inputs
+            .candidates
+            .iter()
+            .filter(|&&c| support[c].is_some())
+            .count();
+        if matches!(inputs.budget, Budget::Cost(_)) {
+            let chosen = steps.iter().filter(|s| s.supported).count();
+            notes.push(format!("Support is on offer for {offered} candidates: the plan chooses within the one budget whom to invite and whom to invite with support ({chosen} supported). The random and other baselines invite without support."));
+        } else {
+            notes.push(format!("The project offers support for {offered} candidates, but support is planned only under a cost budget (it costs money, not a place): give a cost budget to weigh it."));
+        }
     }
     notes.push("Expectations assume the invited countries decide independently, with the chances of joining shown, and that their indicators stay as in the frame; both are estimates.".to_string());
     notes

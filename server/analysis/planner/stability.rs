@@ -5,14 +5,13 @@ use std::collections::{BTreeMap, BTreeSet};
 
 use rayon::prelude::*;
 
-use super::chances::{chances, costs, in_sample_chances};
+use super::chances::in_sample_chances;
 use super::evaluate::Evaluator;
 use super::objective::{Draws, Memo, ObjectiveKind, Offer};
 use super::search::{greedy, Budget};
-use super::{Feasibility, PlanError, PlanSettings};
+use super::PlanError;
 use crate::analysis::design::Design;
 use crate::analysis::settings::Settings;
-use crate::project::WaveView;
 use crate::stats::random::Rng;
 
 /// Join outcomes each replicate's greedy rounds are judged on (one draw, with each trial
@@ -23,23 +22,20 @@ pub const REPLICATE_OUTCOMES: usize = 1;
 /// How many of `replicates` bootstrap plans pick each country (by code). Replicate r uses
 /// stream r of the seed, so the counts do not depend on the number of threads.
 #[allow(clippy::too_many_arguments)]
+/// `fixed_probability`: chances that stay with their country (a column, the history
+/// model); None to refit this wave's participation model on each resample.
 pub fn bootstrap(
     design: &Design,
-    view: &WaveView,
+    fixed_probability: Option<&[f64]>,
+    cost: Option<&[Option<f64>]>,
     settings: &Settings,
-    plan_settings: &PlanSettings,
     kind: ObjectiveKind,
     budget: Budget,
     replicates: usize,
     seed: u64,
 ) -> Result<BTreeMap<String, f64>, PlanError> {
     let n = design.n();
-    let column_probability = match &plan_settings.feasibility {
-        Feasibility::Model => None,
-        Feasibility::Auto if view.feasibility_column.is_none() => None,
-        _ => Some(chances(design, view, settings, plan_settings)?.probability),
-    };
-    let cost = costs(design, view, plan_settings)?;
+    let column_probability = fixed_probability;
     let one = |r: usize| -> Vec<String> {
         let mut rng = Rng::stream(seed ^ 0xB007_57A9, r as u64);
         let draw: Vec<usize> = (0..n).map(|_| rng.below(n)).collect();
@@ -75,7 +71,7 @@ pub fn bootstrap(
                 unit: c,
                 supported: false,
                 probability: probability[c],
-                cost: cost.as_ref().and_then(|k| k[draw[c]]),
+                cost: cost.and_then(|k| k[draw[c]]),
             })
             .collect();
         let mut memo = Memo::new(&eval, &members, kind).with_copies(copies);
