@@ -179,6 +179,9 @@ pub fn costs(
     ))
 }
 
+/// Per unit: (chance of joining with support, support's cost), None where not on offer.
+pub type SupportOffers = Vec<Option<(f64, f64)>>;
+
 /// Support on offer for each unit: (chance of joining with support, support's cost), or
 /// None where the project offers none or a value is missing. `None` overall when the
 /// project has no support columns or the plan asks for none.
@@ -186,7 +189,7 @@ pub fn support(
     design: &Design,
     view: &WaveView,
     plan: &PlanSettings,
-) -> Result<Option<Vec<Option<(f64, f64)>>>, PlanError> {
+) -> Result<Option<SupportOffers>, PlanError> {
     let Some(columns) = view.support.as_ref().filter(|_| plan.support) else {
         return Ok(None);
     };

@@ -253,7 +253,7 @@ struct Inputs {
     chances: Chances,
     cost: Option<Vec<Option<f64>>>,
     /// Per unit: chance of joining with support and support's cost.
-    support: Option<Vec<Option<(f64, f64)>>>,
+    support: Option<chances::SupportOffers>,
     members: Vec<usize>,
     candidates: Vec<usize>,
     budget: Budget,
