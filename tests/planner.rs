@@ -476,12 +476,19 @@ fn the_exact_optimum_equals_brute_force() {
 }
 
 #[test]
-fn the_demo_plan_beats_95_percent_of_random_plans() {
+fn the_plan_beats_95_percent_of_random_plans_on_the_demo_and_real_indicators() {
     let demo = demo_dir();
-    for source in ["auto", "model"] {
+    // Real indicators (Gapminder, tests/fixtures/real_frame) with invented participation.
+    let real = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/real_frame");
+    for (dir, source) in [
+        (&demo, "auto"),
+        (&demo, "model"),
+        (&real, "auto"),
+        (&real, "model"),
+    ] {
         let out = gapwise(&[
             "plan",
-            demo.to_str().unwrap(),
+            dir.to_str().unwrap(),
             "--feasibility",
             source,
             "--replicates",

@@ -43,6 +43,7 @@ struct PlanPage<'a> {
     plan_query: String,
     project_offers_support: bool,
     plan_has_support: bool,
+    random_plan_draws: usize,
     cautions: &'a [Caution],
 }
 
@@ -226,6 +227,7 @@ pub async fn page(
             && project.manifest.recruitment.support_chance.is_some(),
         plan_has_support: p.candidates.iter().any(|r| r.support_cost.is_some())
             && p.plan.cost_budget.is_some(),
+        random_plan_draws: crate::analysis::planner::baselines::OUTCOMES_PER_RANDOM_PLAN,
         path_chart: charts::plan::paths(&p),
         map_chart: map(&p, &c),
         plan_query: plan_query(&p.plan),

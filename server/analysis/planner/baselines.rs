@@ -14,7 +14,7 @@ use crate::stats::random::Rng;
 /// Join outcomes drawn per random plan (common random numbers shared with every plan): the
 /// plan's expected score is the mean over them; its path after each recruit (the chart)
 /// uses the first, and its final effective number all of them.
-pub const OUTCOMES_PER_RANDOM_PLAN: usize = 4;
+pub const OUTCOMES_PER_RANDOM_PLAN: usize = 16;
 
 /// A rule's expected balance after each number of recruits (index 0: one recruit).
 #[derive(Debug, Clone, Serialize)]
