@@ -85,3 +85,32 @@ fn reload_swaps_project_and_keeps_old_on_error() {
         serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
     assert_eq!(kept["title"], "Renamed programme");
 }
+
+#[test]
+fn page_errors_show_in_the_layout_while_twins_and_downloads_stay_plain_text() {
+    // Common practice: people get a page with a way back; programs get a status and text.
+    let addr = start_server(&demo_dir());
+    let page = http(addr, "GET", "/balance?wave=99", &[]);
+    assert_eq!(page.status, 404, "no such wave: {}", page.body);
+    assert!(page
+        .header("content-type")
+        .unwrap_or("")
+        .starts_with("text/html"));
+    assert!(page.body.contains("<nav"), "inside the layout");
+    assert!(
+        page.body.contains("wave 99") || page.body.contains("99"),
+        "{}",
+        page.body
+    );
+    for path in ["/api/balance?wave=99", "/balance/balance.csv?wave=99"] {
+        let r = http(addr, "GET", path, &[]);
+        assert_eq!(r.status, 404, "{path}: {}", r.body);
+        let kind = r.header("content-type").unwrap_or("");
+        assert!(kind.starts_with("text/plain"), "{path}: {kind}");
+        assert!(!r.body.contains("<html"), "{path}");
+        assert!(r.body.contains("99"), "{path}: {}", r.body);
+    }
+    // A page that does not exist: 404 in the layout too.
+    let missing = http(addr, "GET", "/no-such-page", &[]);
+    assert_eq!(missing.status, 404);
+}

@@ -216,4 +216,80 @@ mod tests {
         );
         assert_eq!(e.eligible, vec![true, false]);
     }
+
+    #[test]
+    fn at_most_and_highest_participant_cuts_and_rules_per_wave() {
+        // Common practice: a ceiling rule (e.g. a population cap) and the highest
+        // participant's value as the data-driven ceiling; a rule limited to some waves.
+        let waves = [1, 1, 1, 1, 2, 2, 2];
+        let took_part = [true, false, true, false, true, false, false];
+        let values = [
+            Some(3.0),
+            Some(2.0),
+            Some(5.0),
+            Some(5.5),
+            Some(9.0),
+            Some(9.5),
+            Some(1.0),
+        ];
+        let ceiling = EligibilityRule {
+            indicator: "size".into(),
+            at_least: None,
+            at_most: Some(Threshold::FromParticipants(
+                ParticipantCut::HighestParticipant,
+            )),
+            waves: Some(vec![1]),
+        };
+        let e = evaluate(
+            &waves,
+            &took_part,
+            &[RuleValues {
+                rule: &ceiling,
+                values: &values,
+            }],
+        );
+        // Wave 1's highest participant has 5.0: row 3 (5.5) fails; wave 2 has no rule.
+        assert_eq!(e.eligible, vec![true, true, true, false, true, true, true]);
+        assert_eq!(
+            e.status[3],
+            RowStatus::Fails {
+                indicator: "size".into(),
+                value: 5.5,
+                cut: "at most 5".into()
+            }
+        );
+        assert_eq!(e.cuts.len(), 1);
+        assert_eq!(e.cuts[0].direction, "at most");
+        assert_eq!(e.cuts[0].value, Some(5.0));
+        assert!(e.cuts[0].from_participants);
+
+        // A band: at least 2.5 and at most 9.2, in every wave.
+        let band = EligibilityRule {
+            indicator: "size".into(),
+            at_least: Some(Threshold::Value(2.5)),
+            at_most: Some(Threshold::Value(9.2)),
+            waves: None,
+        };
+        let e = evaluate(
+            &waves,
+            &took_part,
+            &[RuleValues {
+                rule: &band,
+                values: &values,
+            }],
+        );
+        assert_eq!(
+            e.eligible,
+            vec![true, false, true, true, true, false, false]
+        );
+        assert_eq!(e.cuts.len(), 4, "two bounds in each of two waves");
+        assert_eq!(
+            e.status[5],
+            RowStatus::Fails {
+                indicator: "size".into(),
+                value: 9.5,
+                cut: "at most 9.2".into()
+            }
+        );
+    }
 }
