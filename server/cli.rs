@@ -367,7 +367,9 @@ pub fn plan(
                 return 1;
             }
         };
-        crate::analysis::planner::plan_for(&project, &view, &settings, plan_settings)
+        crate::progress::during("planning", json, || {
+            crate::analysis::planner::plan_for(&project, &view, &settings, plan_settings)
+        })
     } else {
         let view = match load_universe(source, &mut settings) {
             Ok(v) => v,
@@ -376,7 +378,9 @@ pub fn plan(
                 return 1;
             }
         };
-        crate::analysis::planner::plan(&view, &settings, plan_settings)
+        crate::progress::during("planning", json, || {
+            crate::analysis::planner::plan(&view, &settings, plan_settings)
+        })
     };
     match result {
         Ok(mut p) => {
@@ -500,14 +504,16 @@ pub fn pooled(
         eprintln!("--kind must be linear or logistic, not '{kind}'");
         return 2;
     };
-    match crate::analysis::microdata::pooled_file(
-        path,
-        outcome,
-        predictors,
-        country,
-        design_weight,
-        kind,
-    ) {
+    match crate::progress::during("reading the respondents and fitting", json, || {
+        crate::analysis::microdata::pooled_file(
+            path,
+            outcome,
+            predictors,
+            country,
+            design_weight,
+            kind,
+        )
+    }) {
         Ok(r) => {
             if json {
                 emit_json(&r);
@@ -559,7 +565,9 @@ pub fn two_step(
     columns: &crate::analysis::microdata::TwoStepColumns,
     json: bool,
 ) -> i32 {
-    match crate::analysis::microdata::two_step_file(path, columns) {
+    match crate::progress::during("reading the respondents and fitting", json, || {
+        crate::analysis::microdata::two_step_file(path, columns)
+    }) {
         Ok(r) => {
             if json {
                 emit_json(&r);
@@ -653,7 +661,9 @@ pub fn impact(
             return 1;
         }
     };
-    match crate::analysis::impact::impact(&project, &view, &settings, imp) {
+    match crate::progress::during("estimating every correction", json, || {
+        crate::analysis::impact::impact(&project, &view, &settings, imp)
+    }) {
         Ok(r) => {
             if json {
                 emit_json(&r);
@@ -734,7 +744,9 @@ pub fn multilevel(path: &Path, a: &MultilevelArgs, json: bool) -> i32 {
         ml: a.ml,
         nodes: a.nodes,
     };
-    match multilevel_file(path, &request) {
+    match crate::progress::during("reading the respondents and fitting", json, || {
+        multilevel_file(path, &request)
+    }) {
         Ok(r) => {
             if json {
                 emit_json(&r);

@@ -10,6 +10,7 @@ pub mod charts;
 pub mod cli;
 pub mod csv_out;
 pub mod demo;
+pub mod progress;
 pub mod project;
 pub mod stats;
 pub mod web;

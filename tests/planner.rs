@@ -843,3 +843,11 @@ fn history_chances_on_the_page_and_their_limits() {
     let table = table.split("</table>").next().unwrap();
     assert_eq!(table.matches("<tr>").count(), 5, "one row per fifth");
 }
+
+#[test]
+fn progress_stays_off_standard_error_when_piped() {
+    // Common practice: progress is for people at a terminal; scripts get clean streams.
+    let out = gapwise(&["plan", demo_dir().to_str().unwrap(), "--replicates", "5"]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    assert!(out.stderr.is_empty(), "{:?}", out.stderr);
+}
