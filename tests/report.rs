@@ -726,3 +726,44 @@ fn the_reload_button_reloads_and_returns_to_the_page() {
     );
     assert_eq!(away.header("location"), Some("/"));
 }
+
+/// The report takes the plan, the impact view and the projection that pages already
+/// computed for the same settings from the result cache: asking for it computes only the
+/// report itself.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_report_reuses_what_the_pages_computed() {
+    use axum::body::Body;
+    use axum::http::{Request, StatusCode};
+    use std::sync::Arc;
+    use tower::ServiceExt;
+    let project = gapwise::project::Project::load(&demo_dir()).expect("demo loads");
+    let state = Arc::new(gapwise::web::AppState::new(project));
+    let get = |uri: &'static str| {
+        let state = Arc::clone(&state);
+        async move {
+            let response = gapwise::web::router(state)
+                .oneshot(Request::get(uri).body(Body::empty()).unwrap())
+                .await
+                .unwrap();
+            let status = response.status();
+            let body = axum::body::to_bytes(response.into_body(), usize::MAX)
+                .await
+                .unwrap();
+            (status, String::from_utf8_lossy(&body).to_string())
+        }
+    };
+    for page in [
+        "/plan?wave=3&replicates=3",
+        "/impact?wave=3&outcome=left_right&bootstrap=0",
+        "/projection?wave=3&outcome=left_right",
+    ] {
+        assert_eq!(get(page).await.0, StatusCode::OK, "{page}");
+    }
+    let before = state.cache.stats();
+    let (status, html) = get("/report?wave=3&replicates=3&outcome=left_right&bootstrap=0").await;
+    assert_eq!(status, StatusCode::OK);
+    assert!(html.contains("id=\"projection-3\""));
+    let after = state.cache.stats();
+    assert_eq!(after.misses, before.misses + 1, "{before:?} then {after:?}");
+    assert!(after.hits >= before.hits + 3, "{before:?} then {after:?}");
+}
