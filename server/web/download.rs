@@ -276,9 +276,8 @@ pub async fn label(State(state): State<Arc<AppState>>, request: Request, next: N
     {
         return response;
     }
-    let state_for_work = Arc::clone(&state);
     let all_waves = ALL_WAVES.contains(&path.as_str());
-    let Some(described) = describe(&state_for_work, &path, &query) else {
+    let Some(described) = describe(&state, &path, &query) else {
         return response;
     };
     let wave = (!all_waves).then_some(described.settings.wave).flatten();
@@ -300,8 +299,13 @@ pub async fn label(State(state): State<Arc<AppState>>, request: Request, next: N
     }
     if is_csv {
         let item = path.rsplit('/').next().unwrap_or("");
+        let query_part = if raw_query.is_empty() {
+            String::new()
+        } else {
+            format!("?{raw_query}")
+        };
         if let Ok(v) = HeaderValue::from_str(&format!(
-            "<{item}.json?{raw_query}>; rel=\"describedby\"; type=\"application/json\""
+            "<{item}.json{query_part}>; rel=\"describedby\"; type=\"application/json\""
         )) {
             parts.headers.insert(header::LINK, v);
         }
