@@ -36,6 +36,16 @@ pub fn check(dir: &Path, json: bool) -> i32 {
             }
             0
         }
+        Err(problems) if json => {
+            // The same problems, as data: `valid` false, each problem with its file, row
+            // (null: not tied to a row), column and message.
+            emit_json(&serde_json::json!({
+                "valid": false,
+                "directory": dir.display().to_string(),
+                "problems": problems,
+            }));
+            1
+        }
         Err(problems) => {
             for p in &problems {
                 eprintln!("{p}");
@@ -293,7 +303,7 @@ pub fn fit_text(r: &FitReport) -> String {
     let _ = writeln!(
         out,
         "\n{} model (log-likelihood {:.4}, {}converged; AUC {}, leave-one-out AUC {})",
-        m.kind,
+        crate::analysis::settings::model_label_of(m.kind),
         m.log_likelihood,
         if m.converged { "" } else { "NOT " },
         opt(m.auc, 3),
@@ -784,8 +794,9 @@ pub fn multilevel(path: &Path, a: &MultilevelArgs, json: bool) -> i32 {
     }
 }
 
-/// `gapwise report`: renders the meeting report and writes it atomically.
-pub fn report(dir: &Path, settings: &Settings, out: &Path) -> i32 {
+/// `gapwise report`: renders the meeting report and writes it atomically. `query` holds
+/// the settings under the pages' query keys, read by the report button's own parser.
+pub fn report(dir: &Path, query: &[(String, String)], out: &Path) -> i32 {
     let project = match Project::load(dir) {
         Ok(p) => p,
         Err(problems) => {
@@ -793,7 +804,14 @@ pub fn report(dir: &Path, settings: &Settings, out: &Path) -> i32 {
             return 1;
         }
     };
-    let html = match crate::web::report::render(&project, settings) {
+    let request = match crate::web::report::report_settings(&project, &query.to_vec()) {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("{e}");
+            return 2;
+        }
+    };
+    let html = match crate::web::report::render(&project, &request) {
         Ok(h) => h,
         Err(e) => {
             eprintln!("{e}");
@@ -830,10 +848,16 @@ pub fn write_atomically(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     result
 }
 
-/// `gapwise weights`: every wave's country weights in one CSV (columns `wave, code, name,
-/// took_part, propensity, weight`), and a sidecar JSON with the method, the settings, the
-/// tool version and the input checksums. Both written atomically.
-pub fn export_weights(dir: &Path, settings: &Settings, out: &Path) -> i32 {
+/// `gapwise weights`: every wave's country weights in one CSV, one row per eligible
+/// country of every wave (columns `wave, code, name, took_part, propensity, weight,
+/// reason`: countries left out of the analysis keep their row with empty propensity and
+/// weight and the reason), or with `respondents` one row per respondent (`country, wave,
+/// respondent, design_weight, country_weight, combined_weight, reason`); and a sidecar
+/// JSON with the method, the settings, the tool version and the input checksums. Both
+/// written atomically.
+pub fn export_weights(dir: &Path, settings: &Settings, out: &Path, respondents: bool) -> i32 {
+    use crate::analysis::exports::{country_weights, respondent_weights};
+    use crate::csv_out::cell;
     let project = match Project::load(dir) {
         Ok(p) => p,
         Err(problems) => {
@@ -841,45 +865,82 @@ pub fn export_weights(dir: &Path, settings: &Settings, out: &Path) -> i32 {
             return 1;
         }
     };
-    let mut rows = Vec::new();
-    let mut waves = Vec::new();
-    for &wave in &project.waves {
-        let Some(view) = project.wave(wave) else {
-            continue;
-        };
-        let s = Settings {
-            wave: Some(wave),
-            ..settings.clone()
-        };
-        match participation::fit(&view, &s) {
-            Ok(r) => {
-                waves.push(serde_json::json!({"wave": wave, "n_eligible": r.n_eligible, "n_participants": r.n_participants, "effective_n": r.weighting.effective_n, "dropped": r.dropped, "warnings": r.weighting.warnings}));
-                for u in r.units {
-                    rows.push(vec![
-                        wave.to_string(),
-                        u.id,
-                        u.name,
-                        u8::from(u.participated).to_string(),
-                        u.propensity.to_string(),
-                        u.weight.to_string(),
-                    ]);
-                }
+    let countries = country_weights(&project, settings);
+    let (csv, columns) = if respondents {
+        let rows = match respondent_weights(&project, &countries) {
+            Ok(r) => r,
+            Err(e) => {
+                eprintln!("{e}");
+                return 1;
             }
-            Err(e) => waves.push(serde_json::json!({"wave": wave, "error": e.to_string()})),
-        }
-    }
-    let csv = crate::csv_out::csv_text(
-        &["wave", "code", "name", "took_part", "propensity", "weight"],
-        rows,
-    );
+        };
+        let csv = crate::csv_out::csv_text(
+            &[
+                "country",
+                "wave",
+                "respondent",
+                "design_weight",
+                "country_weight",
+                "combined_weight",
+                "reason",
+            ],
+            rows.into_iter().map(|r| {
+                vec![
+                    r.country.unwrap_or_default(),
+                    r.wave.map(|w| w.to_string()).unwrap_or_default(),
+                    r.respondent.unwrap_or_default(),
+                    cell(r.design_weight),
+                    cell(r.country_weight),
+                    cell(r.combined_weight),
+                    r.reason.unwrap_or_default(),
+                ]
+            }),
+        );
+        let columns = serde_json::json!({
+            "country": "country code (the microdata's country column)",
+            "wave": "wave",
+            "respondent": project.manifest.microdata.as_ref().and_then(|m| m.respondent.clone()).map_or("empty: project.toml names no [microdata] respondent column".to_string(), |c| format!("the microdata's column {c}")),
+            "design_weight": "the microdata's design weight",
+            "country_weight": "the country's weight in its wave (participants' weights sum to the wave's number of countries analysed); empty when the country has none",
+            "combined_weight": "country_weight x design_weight / the sum of the design weights of the country's respondents in the wave, so each country's respondents sum to its country weight; empty when either is missing",
+            "reason": "why a weight is empty; empty when there are weights",
+        });
+        (csv, columns)
+    } else {
+        let csv = crate::csv_out::csv_text(
+            &[
+                "wave",
+                "code",
+                "name",
+                "took_part",
+                "propensity",
+                "weight",
+                "reason",
+            ],
+            countries.rows.iter().map(|r| {
+                vec![
+                    r.wave.to_string(),
+                    r.code.clone(),
+                    r.name.clone(),
+                    u8::from(r.took_part).to_string(),
+                    cell(r.propensity),
+                    cell(r.weight),
+                    r.reason.clone().unwrap_or_default(),
+                ]
+            }),
+        );
+        let columns = serde_json::json!({"wave": "wave", "code": "country code", "name": "country name", "took_part": "1 took part, 0 did not", "propensity": "estimated probability of taking part; empty when left out", "weight": "participants' weights sum to the wave's number of countries analysed; 0 for non-participants; empty when left out", "reason": "why propensity and weight are empty (e.g. a missing indicator value); empty when they are not"});
+        (csv, columns)
+    };
     let sidecar = serde_json::json!({
         "tool": format!("gapwise {}", crate::VERSION),
+        "rows": if respondents { "one per respondent" } else { "one per eligible country and wave" },
         "method": settings.weighting.as_str(),
         "model": settings.model.as_str(),
         "settings": settings,
-        "waves": waves,
+        "waves": countries.waves,
         "inputs": &project.inputs,
-        "columns": {"wave": "wave", "code": "country code", "name": "country name", "took_part": "1 took part, 0 did not", "propensity": "estimated probability of taking part", "weight": "participants' weights sum to the wave's number of eligible countries; 0 for non-participants"},
+        "columns": columns,
     });
     let sidecar_path = std::path::PathBuf::from(format!("{}.json", out.display()));
     let written = write_atomically(out, csv.as_bytes()).and_then(|()| {

@@ -217,15 +217,14 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
-    /// Write a self-contained HTML report of one wave for a meeting.
+    /// Write a self-contained HTML report for a meeting (the settings are the pages').
     Report {
         /// Project folder.
         dir: PathBuf,
         #[command(flatten)]
         analysis: AnalysisArgs,
-        /// The wave (default: the latest).
-        #[arg(long)]
-        wave: Option<i64>,
+        #[command(flatten)]
+        report: ReportArgs,
         /// Where to write the report.
         #[arg(long, default_value = "report.html")]
         out: PathBuf,
@@ -240,6 +239,10 @@ enum Command {
         /// The CSV file to write.
         #[arg(long, default_value = "weights.csv")]
         out: PathBuf,
+        /// One row per respondent (country, wave, respondent id, design, country and
+        /// combined weight) instead of one per country.
+        #[arg(long)]
+        respondents: bool,
     },
     /// Write the invented demo project into a folder.
     MakeDemo {
@@ -285,6 +288,123 @@ struct AnalysisArgs {
     /// Entropy balancing also matches the universe's variances.
     #[arg(long)]
     variances: bool,
+}
+
+/// The report's own options: the same settings as the pages' query keys.
+#[derive(clap::Args)]
+struct ReportArgs {
+    /// The wave (default: the latest).
+    #[arg(long, conflicts_with = "waves")]
+    wave: Option<i64>,
+    /// Several waves, comma-separated (3,4), or all.
+    #[arg(long)]
+    waves: Option<String>,
+    /// Seed of every random draw.
+    #[arg(long)]
+    seed: Option<u64>,
+    /// Countries to invite (default 5); the alternative to --cost-budget.
+    #[arg(long, conflicts_with = "cost_budget")]
+    budget: Option<usize>,
+    /// Total recruitment cost allowed; the alternative to --budget.
+    #[arg(long)]
+    cost_budget: Option<f64>,
+    /// Column with each country's recruitment cost (default: the project's [recruitment] cost).
+    #[arg(long)]
+    cost_column: Option<String>,
+    /// Chance of joining: auto, model or a column of probabilities.
+    #[arg(long)]
+    feasibility: Option<String>,
+    /// What the plan maximises: effective-n, largest-smd or feasibility.
+    #[arg(long)]
+    objective: Option<String>,
+    /// Bootstrap replicates of the plan's stability (default 100, as on the page).
+    #[arg(long)]
+    replicates: Option<usize>,
+    /// What-if joiners: country codes, comma-separated.
+    #[arg(long, value_delimiter = ',')]
+    joiners: Vec<String>,
+    /// The survey variable of the impact and projection sections.
+    #[arg(long)]
+    outcome: Option<String>,
+    /// Respondent variables or country indicators, comma-separated (without --outcome and
+    /// --predictors: the first three other survey variables).
+    #[arg(long, value_delimiter = ',')]
+    predictors: Vec<String>,
+    /// linear or logistic respondent-level model.
+    #[arg(long)]
+    kind: Option<String>,
+    /// Country indicators in the two-step outcome equation, comma-separated.
+    #[arg(long, value_delimiter = ',')]
+    country_indicators: Vec<String>,
+    /// Country shares proportional to this population column.
+    #[arg(long)]
+    population: Option<String>,
+    /// Wild cluster bootstrap replicates of the impact section (0 to skip).
+    #[arg(long)]
+    bootstrap: Option<usize>,
+}
+
+impl ReportArgs {
+    /// The options as the pages' query pairs (one parser for both).
+    fn query(&self, settings: &gapwise::analysis::Settings) -> Vec<(String, String)> {
+        let mut q: Vec<(String, String)> = settings
+            .to_pairs()
+            .into_iter()
+            .filter(|(k, _)| *k != "seed" || self.seed.is_none())
+            .map(|(k, v)| (k.to_string(), v))
+            .collect();
+        let mut put = |k: &str, v: String| q.push((k.to_string(), v));
+        if let Some(w) = self.wave {
+            put("wave", w.to_string());
+        }
+        if let Some(w) = &self.waves {
+            put("waves", w.clone());
+        }
+        if let Some(s) = self.seed {
+            put("seed", s.to_string());
+        }
+        if let Some(b) = self.budget {
+            put("budget", b.to_string());
+        }
+        if let Some(b) = self.cost_budget {
+            put("cost_budget", b.to_string());
+        }
+        if let Some(c) = &self.cost_column {
+            put("cost_column", c.clone());
+        }
+        if let Some(f) = &self.feasibility {
+            put("feasibility", f.clone());
+        }
+        if let Some(o) = &self.objective {
+            put("objective", o.clone());
+        }
+        if let Some(r) = self.replicates {
+            put("replicates", r.to_string());
+        }
+        for j in &self.joiners {
+            put("joiner", j.clone());
+        }
+        if let Some(o) = &self.outcome {
+            put("outcome", o.clone());
+        }
+        for p in &self.predictors {
+            put("predictor", p.clone());
+        }
+        if let Some(k) = &self.kind {
+            put("family", k.clone());
+        }
+        for c in &self.country_indicators {
+            put("country_indicator", c.clone());
+        }
+        if let Some(p) = &self.population {
+            put("shares", "population".to_string());
+            put("population", p.clone());
+        }
+        if let Some(b) = self.bootstrap {
+            put("bootstrap", b.to_string());
+        }
+        q
+    }
 }
 
 impl AnalysisArgs {
@@ -369,8 +489,13 @@ fn main() -> ExitCode {
         }
         Some(Command::Check { dir, json }) => cli::check(&dir, json),
         Some(Command::MakeDemo { dir, seed }) => cli::make_demo(&dir, seed),
-        Some(Command::Weights { dir, analysis, out }) => match analysis.settings() {
-            Ok(settings) => cli::export_weights(&dir, &settings, &out),
+        Some(Command::Weights {
+            dir,
+            analysis,
+            out,
+            respondents,
+        }) => match analysis.settings() {
+            Ok(settings) => cli::export_weights(&dir, &settings, &out, respondents),
             Err(message) => {
                 eprintln!("{message}");
                 2
@@ -379,13 +504,10 @@ fn main() -> ExitCode {
         Some(Command::Report {
             dir,
             analysis,
-            wave,
+            report,
             out,
         }) => match analysis.settings() {
-            Ok(mut settings) => {
-                settings.wave = wave;
-                cli::report(&dir, &settings, &out)
-            }
+            Ok(settings) => cli::report(&dir, &report.query(&settings), &out),
             Err(message) => {
                 eprintln!("{message}");
                 2

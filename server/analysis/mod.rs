@@ -6,6 +6,7 @@ pub mod cache;
 pub mod cautions;
 pub mod coverage;
 pub mod design;
+pub mod exports;
 pub mod impact;
 pub mod limits;
 pub mod microdata;

@@ -93,6 +93,9 @@ pub struct WaveTrend {
     pub joined: Vec<String>,
     /// Took part the previous wave but not this one.
     pub left: Vec<String>,
+    /// Set when leaving out incomplete countries (default settings) dropped participants
+    /// or non-participants of the wave.
+    pub incomplete: Option<super::participation::IncompleteCountries>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -310,9 +313,11 @@ fn trends(project: &Project, countries: &[CountryWaves]) -> Vec<WaveTrend> {
                 ..Settings::default()
             };
             let (mut max_abs_smd, mut effective_n, mut note) = (None, None, None);
+            let mut incomplete = None;
             if let Some(view) = project.wave(wave) {
                 match super::design::build(&view, &settings) {
                     Ok(design) => {
+                        incomplete = super::participation::incomplete_countries(&design);
                         let unweighted: Vec<f64> = design
                             .participated
                             .iter()
@@ -358,6 +363,7 @@ fn trends(project: &Project, countries: &[CountryWaves]) -> Vec<WaveTrend> {
                 note,
                 joined,
                 left,
+                incomplete,
             }
         })
         .collect()

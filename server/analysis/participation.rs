@@ -882,6 +882,15 @@ pub fn incomplete_countries(design: &Design) -> Option<IncompleteCountries> {
     })
 }
 
+/// [`incomplete_countries`] of a wave under `settings` (for pages whose own result does
+/// not carry it: coverage, plan, impact); `None` also when the design cannot be built
+/// (the page's own analysis then says why).
+pub fn incomplete_for(view: &WaveView, settings: &Settings) -> Option<IncompleteCountries> {
+    design::build(view, settings)
+        .ok()
+        .and_then(|d| incomplete_countries(&d))
+}
+
 /// The caveat of balancing missingness indicators.
 pub fn missing_caveat(settings: &Settings) -> Option<String> {
     (settings.missing == super::settings::MissingRule::FillAndBalance).then(|| {

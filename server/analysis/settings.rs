@@ -5,6 +5,25 @@ use serde::{Deserialize, Serialize};
 
 pub use crate::stats::binary::ModelKind;
 
+/// How a participation model is named on every page, chart, report and export note (the
+/// one place, so that pages never write the same model two ways).
+pub fn model_label(kind: ModelKind) -> &'static str {
+    match kind {
+        ModelKind::Logit => "Logit",
+        ModelKind::Firth => "Logit, Firth-penalised",
+        ModelKind::Probit => "Probit",
+    }
+}
+
+/// [`model_label`] for a model named as in settings and results (`logit`, `firth`,
+/// `probit`); other names are returned as they are.
+pub fn model_label_of(name: &str) -> &str {
+    match ModelKind::parse(name) {
+        Some(kind) => model_label(kind),
+        None => name,
+    }
+}
+
 /// How participants are weighted to stand for the eligible universe.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]

@@ -156,6 +156,10 @@ pub struct MicrodataRoles {
     /// of `variables`).
     #[serde(default)]
     pub outcome: Option<String>,
+    /// A column identifying each respondent, carried into respondent-level exports
+    /// (`gapwise weights --respondents`) so they can be merged back.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub respondent: Option<String>,
 }
 
 impl Manifest {

@@ -467,6 +467,9 @@ fn microdata_specs(roles: &manifest::MicrodataRoles) -> Vec<ColumnSpec> {
             "microdata.variables",
         ));
     }
+    if let Some(r) = &roles.respondent {
+        specs.push(ColumnSpec::new(r, ColumnKind::Text, "microdata.respondent"));
+    }
     specs
 }
 

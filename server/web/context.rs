@@ -9,14 +9,14 @@ use super::error::{AppError, AppResult};
 use super::state::AppState;
 use super::work::Lane;
 use crate::analysis::cache::CacheKey;
-use crate::analysis::settings::{MissingRule, ModelKind, Settings, WeightingKind};
+use crate::analysis::settings::{model_label, MissingRule, ModelKind, Settings, WeightingKind};
 use crate::project::{Project, WaveView};
 
 /// The query string as ordered pairs (repeated keys allowed, as checkboxes send them).
 pub type Query = Vec<(String, String)>;
 
 /// Query keys that belong to the recruitment planner, not to the analysis settings.
-pub const PLAN_KEYS: [&str; 7] = [
+pub const PLAN_KEYS: [&str; 8] = [
     "budget",
     "cost_budget",
     "cost_column",
@@ -24,6 +24,7 @@ pub const PLAN_KEYS: [&str; 7] = [
     "replicates",
     "joiner",
     "objective",
+    "support",
 ];
 
 /// Query keys that belong to the impact view.
@@ -36,6 +37,14 @@ pub const IMPACT_KEYS: [&str; 7] = [
     "bootstrap",
     "country_indicator",
 ];
+
+/// Query keys that belong to the meeting report (the waves it covers).
+pub const REPORT_KEYS: [&str; 1] = ["waves"];
+
+/// Whether `key` belongs to a page's own settings rather than to the analysis settings.
+pub fn own_key(key: &str) -> bool {
+    PLAN_KEYS.contains(&key) || IMPACT_KEYS.contains(&key) || REPORT_KEYS.contains(&key)
+}
 
 /// Folds the form's repeated `covariate` / `factor` checkboxes into the settings' lists.
 /// A submitted form (`form=1`) with nothing ticked means an empty list, not "all".
@@ -51,11 +60,7 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
     };
     let mut pairs: Vec<(&str, String)> = query
         .iter()
-        .filter(|(k, _)| {
-            !matches!(k.as_str(), "form" | "covariate" | "factor")
-                && !PLAN_KEYS.contains(&k.as_str())
-                && !IMPACT_KEYS.contains(&k.as_str())
-        })
+        .filter(|(k, _)| !matches!(k.as_str(), "form" | "covariate" | "factor") && !own_key(k))
         .map(|(k, v)| (k.as_str(), v.clone()))
         .collect();
     if submitted {
@@ -116,18 +121,14 @@ impl SettingsForm {
                     selected: settings.wave == Some(*w),
                 })
                 .collect(),
-            models: [
-                (ModelKind::Logit, "Logit"),
-                (ModelKind::Firth, "Logit, Firth-penalised"),
-                (ModelKind::Probit, "Probit"),
-            ]
-            .into_iter()
-            .map(|(k, label)| Choice {
-                value: k.as_str().into(),
-                label: label.into(),
-                selected: settings.model == k,
-            })
-            .collect(),
+            models: [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit]
+                .into_iter()
+                .map(|k| Choice {
+                    value: k.as_str().into(),
+                    label: model_label(k).into(),
+                    selected: settings.model == k,
+                })
+                .collect(),
             weightings: WeightingKind::ALL
                 .into_iter()
                 .map(|k| Choice {
@@ -200,7 +201,7 @@ fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
     }
     let mut own: Vec<(&str, &str)> = query
         .iter()
-        .filter(|(k, _)| PLAN_KEYS.contains(&k.as_str()) || IMPACT_KEYS.contains(&k.as_str()))
+        .filter(|(k, _)| own_key(k))
         .map(|(k, v)| (k.as_str(), v.as_str()))
         .collect();
     // Stable: repeated keys (predictors, joiners) keep their order, which the result shows.
@@ -212,6 +213,22 @@ fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
         std::any::type_name::<T>(),
         canonical.finish(),
     ))
+}
+
+/// A page's result from the result cache, computed here (on the caller's thread) when
+/// absent: how the report takes the parts that pages have already shown.
+pub fn cached<T>(
+    state: &AppState,
+    query: &Query,
+    compute: fn(&AppState, &Query) -> AppResult<T>,
+) -> AppResult<Arc<T>>
+where
+    T: Serialize + Send + Sync + 'static,
+{
+    match page_key::<T>(state, query) {
+        Some(key) => state.cache.get_or_compute(&key, || compute(state, query)),
+        None => compute(state, query).map(Arc::new),
+    }
 }
 
 /// Runs a light page computation (a model fit, a table) on the blocking pool, through the

@@ -14,6 +14,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
+use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 
@@ -25,6 +26,7 @@ struct CoveragePage<'a> {
     form: SettingsForm,
     f: Fmt,
     c: &'a CoverageReport,
+    incomplete: Option<IncompleteCountries>,
     map_chart: String,
     spread_chart: String,
     cautions: &'a [Caution],
@@ -33,11 +35,12 @@ struct CoveragePage<'a> {
 fn compute(
     state: &AppState,
     query: &super::context::Query,
-) -> AppResult<(SettingsForm, CoverageReport)> {
+) -> AppResult<(SettingsForm, CoverageReport, Option<IncompleteCountries>)> {
     let (project, settings, view) = resolve(state, query)?;
     Ok((
         SettingsForm::new("/coverage", &project, &settings),
         coverage(&view),
+        incomplete_for(&view, &settings),
     ))
 }
 
@@ -45,7 +48,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, c) = off_thread(&state, &query, compute).await?;
+    let (form, c, incomplete) = off_thread(&state, &query, compute).await?;
     let html = CoveragePage {
         page: "coverage",
         nav_query: form.query.clone(),
@@ -54,6 +57,7 @@ pub async fn page(
         map_chart: charts::map::component_map(&c),
         spread_chart: charts::map::spreads(&c),
         c: &c,
+        incomplete,
         cautions: &STANDING,
     }
     .render()?;
@@ -72,7 +76,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, c) = off_thread(&state, &query, compute).await?;
+    let (_, c, _) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "map.svg" => Ok(svg_response(
             "component-map.svg",

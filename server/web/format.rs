@@ -21,6 +21,10 @@ fn fixed(x: f64, decimals: usize) -> String {
 }
 
 impl Fmt {
+    /// A participation model's name as every page writes it (`logit` -> "Logit").
+    pub fn model<'a>(&self, name: &'a str) -> &'a str {
+        crate::analysis::settings::model_label_of(name)
+    }
     pub fn n1(&self, x: &f64) -> String {
         fixed(*x, 1)
     }

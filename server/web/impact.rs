@@ -16,6 +16,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
 use crate::analysis::limits;
+use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 use crate::project::Project;
@@ -37,11 +38,22 @@ struct ImpactPage<'a> {
     /// Country shares: equal, or proportional to a population column.
     shares: Vec<Choice>,
     impact_query: String,
+    incomplete: Option<IncompleteCountries>,
     pooled_chart: String,
     coefficient_chart: String,
     cautions: &'a [Caution],
     /// Per term, one cell per variant.
     table: Vec<(String, Vec<Cell>)>,
+}
+
+impl ImpactPage<'_> {
+    /// Every analysis setting of the first form (wave, model, weighting, trimming, missing
+    /// values, indicators, seed) as hidden fields, so that the model form keeps them.
+    fn settings_hidden(&self) -> Vec<(String, String)> {
+        form_urlencoded::parse(self.form.query.as_bytes())
+            .into_owned()
+            .collect()
+    }
 }
 
 /// One cell of the side-by-side table.
@@ -116,9 +128,11 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
         .unwrap_or_default()
         .to_string();
     let outcome = get("outcome").unwrap_or(default_outcome);
+    // The outcome is never its own predictor (a form may still carry it ticked from the
+    // previous outcome).
     let ticked: Vec<String> = query
         .iter()
-        .filter(|(k, _)| k == "predictor")
+        .filter(|(k, v)| k == "predictor" && *v != outcome)
         .map(|(_, v)| v.clone())
         .collect();
     let predictors = if ticked.is_empty() && !query.iter().any(|(k, _)| k == "outcome") {
@@ -184,13 +198,17 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     })
 }
 
-fn compute(state: &AppState, query: &PageQuery) -> AppResult<(SettingsForm, ImpactReport)> {
+/// What the impact page shows: the form, the result, and the warning when leaving out
+/// incomplete countries changed who is analysed.
+pub(crate) type ImpactResult = (SettingsForm, ImpactReport, Option<IncompleteCountries>);
+
+pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactResult> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/impact", &project, &settings);
     let imp = impact_settings(&project, query)?;
     let r = impact(&project, &view, &settings, &imp)
         .map_err(|e| AppError::BadRequest(e.to_string()))?;
-    Ok((form, r))
+    Ok((form, r, incomplete_for(&view, &settings)))
 }
 
 /// The impact keys of a query that reproduces `imp` (percent-encoded, so that names with
@@ -217,7 +235,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, r) = off_thread_heavy(&state, &query, compute).await?;
+    let (form, r, incomplete) = off_thread_heavy(&state, &query, compute).await?;
     let project = state.project();
     let variables = project
         .manifest
@@ -239,6 +257,7 @@ pub async fn page(
             .collect(),
         predictors: variables
             .iter()
+            .filter(|v| **v != r.impact.outcome)
             .map(|v| Choice {
                 value: v.clone(),
                 label: v.clone(),
@@ -294,6 +313,7 @@ pub async fn page(
         })
         .collect(),
         impact_query: impact_query(&r.impact),
+        incomplete,
         table: side_by_side(&r),
         pooled_chart: charts::impact::pooled(&r),
         coefficient_chart: charts::impact::coefficients(&r),
@@ -318,7 +338,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, r) = off_thread_heavy(&state, &query, compute).await?;
+    let (_, r, _) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "pooled.svg" => Ok(svg_response(
             "pooled-estimates.svg",

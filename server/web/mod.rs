@@ -3,6 +3,7 @@
 pub mod balance;
 pub mod context;
 pub mod coverage;
+pub mod download;
 pub mod error;
 pub mod format;
 pub mod guard;
@@ -95,6 +96,7 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/sensitivity/{item}", get(sensitivity::artifact))
         // Projects
         .route("/api/reload", post(reload))
+        .route("/reload", post(reload_from_page))
         .route("/projects", get(projects::list))
         .route("/projects/open", post(projects::open))
         .route("/projects/upload", post(projects::upload))
@@ -106,6 +108,10 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/static/gapwise.css", get(stylesheet))
         .route("/static/favicon.svg", get(icon))
         .fallback(not_found)
+        .layer(axum::middleware::from_fn_with_state(
+            Arc::clone(&state),
+            download::label,
+        ))
         .with_state(state)
 }
 
@@ -152,6 +158,40 @@ async fn reload(
         warnings: fresh.warnings.len(),
         changes: fresh.changes.clone(),
     }))
+}
+
+#[derive(serde::Deserialize)]
+struct ReloadForm {
+    #[serde(default)]
+    back: String,
+}
+
+/// The pages' "Reload project" button: reloads as `POST /api/reload` does (keeping the
+/// loaded project when the files have problems or hold less), then returns to the page it
+/// was pressed on, with its settings.
+async fn reload_from_page(
+    State(state): State<Arc<AppState>>,
+    axum::Form(form): axum::Form<ReloadForm>,
+) -> AppResult<Response> {
+    let _reloaded = reload(
+        State(state),
+        axum::extract::Query(ReloadQuery { confirm: None }),
+    )
+    .await?;
+    Ok(axum::response::Redirect::to(&local_path(&form.back)).into_response())
+}
+
+/// `back` when it is a path of this server (one leading `/`, no scheme or host), else `/`.
+fn local_path(back: &str) -> String {
+    let local = back.starts_with('/')
+        && !back.starts_with("//")
+        && !back.contains('\\')
+        && !back.chars().any(char::is_control);
+    if local {
+        back.to_string()
+    } else {
+        "/".to_string()
+    }
 }
 
 /// The router behind the guard (host check, access key, same origin or key header for

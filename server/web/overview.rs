@@ -20,6 +20,8 @@ use crate::charts;
 struct OverviewPage<'a> {
     page: &'static str,
     nav_query: String,
+    /// Per wave, the warning when leaving out incomplete countries changed who is analysed.
+    incomplete: Vec<(i64, String)>,
     o: &'a Overview,
     coverage_chart: String,
     cautions: &'a [Caution],
@@ -73,6 +75,11 @@ pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResp
     let html = OverviewPage {
         page: "overview",
         nav_query: String::new(),
+        incomplete: o
+            .trends
+            .iter()
+            .filter_map(|t| t.incomplete.as_ref().map(|i| (t.wave, i.warning.clone())))
+            .collect(),
         coverage_chart: charts::coverage::coverage_by_group(&o),
         f: super::format::Fmt,
         cautions: &o.cautions,

@@ -16,6 +16,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
 use crate::analysis::limits;
+use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::analysis::planner::{plan_for, Feasibility, ObjectiveKind, Plan, PlanSettings};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
@@ -44,6 +45,7 @@ struct PlanPage<'a> {
     project_offers_support: bool,
     plan_has_support: bool,
     random_plan_draws: usize,
+    incomplete: Option<IncompleteCountries>,
     cautions: &'a [Caution],
 }
 
@@ -166,13 +168,22 @@ pub fn plan_query(ps: &PlanSettings) -> String {
     q.finish()
 }
 
-fn compute(state: &AppState, query: &PageQuery) -> AppResult<(SettingsForm, Plan, CoverageReport)> {
+/// What the plan page shows: the form, the plan, the coverage map's positions, and the
+/// warning when leaving out incomplete countries changed who is analysed.
+pub(crate) type PlanResult = (
+    SettingsForm,
+    Plan,
+    CoverageReport,
+    Option<IncompleteCountries>,
+);
+
+pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResult> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/plan", &project, &settings);
     let ps = plan_settings(query)?;
     let p = plan_for(&project, &view, &settings, &ps)
         .map_err(|e| AppError::BadRequest(e.to_string()))?;
-    Ok((form, p, coverage(&view)))
+    Ok((form, p, coverage(&view), incomplete_for(&view, &settings)))
 }
 
 fn map(p: &Plan, c: &CoverageReport) -> String {
@@ -184,7 +195,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, p, c) = off_thread_heavy(&state, &query, compute).await?;
+    let (form, p, c, incomplete) = off_thread_heavy(&state, &query, compute).await?;
     let project = state.project();
     let mut feasibility_choices = vec![
         (
@@ -231,6 +242,7 @@ pub async fn page(
         path_chart: charts::plan::paths(&p),
         map_chart: map(&p, &c),
         plan_query: plan_query(&p.plan),
+        incomplete,
         form,
         f: Fmt,
         p: &p,
@@ -252,7 +264,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, p, c) = off_thread_heavy(&state, &query, compute).await?;
+    let (_, p, c, _) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "paths.svg" => Ok(svg_response(
             "recruitment-paths.svg",

@@ -33,7 +33,7 @@ struct ProjectionPage<'a> {
 
 /// The outcome and respondent predictors from the query (`outcome`, repeated `predictor`);
 /// without an outcome, the project's last survey variable.
-fn projection_settings(
+pub(crate) fn projection_settings(
     project: &Project,
     query: &super::context::Query,
 ) -> AppResult<ProjectionSettings> {
@@ -54,7 +54,7 @@ fn projection_settings(
     })
 }
 
-fn compute(
+pub(crate) fn compute(
     state: &AppState,
     query: &super::context::Query,
 ) -> AppResult<(SettingsForm, ProjectionReport, Vec<String>)> {
@@ -72,10 +72,15 @@ fn compute(
     Ok((form, r, variables))
 }
 
-fn own_query(r: &ProjectionReport) -> String {
-    let mut parts = vec![format!("outcome={}", r.outcome)];
-    parts.extend(r.predictors.iter().map(|p| format!("predictor={p}")));
-    parts.join("&")
+/// The projection's own keys as a query string, percent-encoded (read back by
+/// [`projection_settings`] it gives the same settings).
+pub(crate) fn own_query(ps: &ProjectionSettings) -> String {
+    let mut q = form_urlencoded::Serializer::new(String::new());
+    q.append_pair("outcome", &ps.outcome);
+    for p in &ps.predictors {
+        q.append_pair("predictor", p);
+    }
+    q.finish()
 }
 
 pub async fn page(
@@ -86,7 +91,10 @@ pub async fn page(
     let html = ProjectionPage {
         page: "projection",
         nav_query: form.query.clone(),
-        own_query: own_query(&r),
+        own_query: own_query(&ProjectionSettings {
+            outcome: r.outcome.clone(),
+            predictors: r.predictors.clone(),
+        }),
         form,
         f: Fmt,
         r: &r,

@@ -346,6 +346,7 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
             design_weight: need("micro_weight", "the design weights")?,
             variables: many("micro_variable"),
             outcome: one("micro_outcome"),
+            respondent: None,
         }),
     };
     Ok(Manifest {

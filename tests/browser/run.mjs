@@ -74,15 +74,19 @@ for (const [where, selector, starts] of [['/coverage', 'a[href^="/coverage/map.s
   await download.saveAs(file);
   const text = fs.readFileSync(file, 'utf8');
   check(text.startsWith(starts), `${where} download ${download.suggestedFilename()} starts with ${JSON.stringify(text.slice(0, 20))}`);
+  check(/-wave4\.(svg|csv)$/.test(download.suggestedFilename()), `${where} download is named ${download.suggestedFilename()}, without its wave`);
 }
 
 // The meeting report from the button.
-await page.goto(base + '/balance?wave=2');
+// It carries the page's settings and says so; its name says the wave.
+await page.goto(base + '/balance?wave=2&weighting=raking');
 const [report] = await Promise.all([page.waitForEvent('download'), page.click('a.report-button')]);
+check(report.suggestedFilename() === 'gapwise-report-wave2.html', `the report is saved as ${report.suggestedFilename()}`);
 const reportFile = path.join(out, report.suggestedFilename());
 await report.saveAs(reportFile);
 const reportText = fs.readFileSync(reportFile, 'utf8');
 check(reportText.includes('id="reproducibility"') && reportText.includes('Wave 2.'), 'the report download is incomplete');
+check(reportText.includes('Raking to category shares') && reportText.includes('weighting=raking'), 'the report does not carry the page\'s weighting');
 await page.goto('file://' + reportFile);
 await page.screenshot({ path: path.join(out, 'report.png'), fullPage: false });
 

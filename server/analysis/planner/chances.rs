@@ -3,8 +3,8 @@
 //! By default the chance of joining is the project's `[recruitment] feasibility` column when
 //! the project names one, else the participation model's leave-one-out probability: the
 //! chance the model gives a country when fitted without it (one refit per country), so a
-//! country's own participation does not raise its own forecast. Cost budgets read the
-//! project's `[recruitment] cost` column unless another column is named.
+//! country's own participation does not raise its own forecast. Costs come from the
+//! project's `[recruitment] cost` column unless another column is named, with either budget.
 
 use serde::Serialize;
 
@@ -146,8 +146,8 @@ fn named_column<'a>(
     })
 }
 
-/// The cost column in use: the one named, else the project's (costs show with a count
-/// budget too).
+/// The cost column in use: the one named, else the project's `[recruitment] cost` (so
+/// that costs show with a count budget too, not only when a cost budget is asked for).
 pub fn cost_column(view: &WaveView, plan: &PlanSettings) -> Option<String> {
     plan.cost_column
         .clone()
