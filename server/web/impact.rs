@@ -218,6 +218,7 @@ pub async fn page(
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
     let (form, r) = off_thread_heavy(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let project = state.project();
     let variables = project
         .manifest

@@ -97,6 +97,7 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/api/reload", post(reload))
         .route("/projects", get(projects::list))
         .route("/projects/open", post(projects::open))
+        .route("/projects/restore", post(projects::restore))
         .route("/projects/upload", post(projects::upload))
         .route(
             "/projects/map",

@@ -169,6 +169,7 @@ pub async fn page(
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
     let (form, p, c) = off_thread_heavy(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let project = state.project();
     let mut feasibility_choices = vec![
         (
