@@ -1005,3 +1005,28 @@ fn separators_decimal_commas_and_code_case_get_hints() {
     );
     assert!(saved.body.contains("xaa"), "{}", saved.body);
 }
+
+/// A browser posts our forms with `Origin: null` (our pages send no referrer); its
+/// `Sec-Fetch-Site: same-origin`, which no page can set, lets the post through. Without it
+/// a null origin is refused, and a cross-site fetch stays refused.
+#[test]
+fn a_form_post_from_our_own_page_with_a_null_origin_is_accepted() {
+    let projects = TempDir::new("nullorigin");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let (ct, body) = multipart(
+        &[("name", "n1")],
+        &[("frame", "frame.csv", FRAME.as_bytes())],
+    );
+    let post = |headers: &[(&str, &str)]| {
+        http_body(addr, "POST", "/projects/upload", headers, &ct, &body).status
+    };
+    assert_eq!(
+        post(&[("Origin", "null"), ("Sec-Fetch-Site", "same-origin")]),
+        303
+    );
+    assert_eq!(post(&[("Origin", "null")]), 403);
+    assert_eq!(
+        post(&[("Origin", "null"), ("Sec-Fetch-Site", "cross-site")]),
+        401
+    );
+}

@@ -48,7 +48,7 @@ fn draw(overview: &Overview, root: &Area<'_>) -> DrawResult {
         .margin_right(28)
         .x_label_area_size(60)
         .y_label_area_size(76)
-        .build_cartesian_2d((first - pad)..(last + pad), 0.0..100.0)?;
+        .build_cartesian_2d((first - pad)..(last + pad), -2.0..104.0)?;
     chart
         .configure_mesh()
         .light_line_style(WHITE.mix(0.0))

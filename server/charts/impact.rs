@@ -94,7 +94,11 @@ pub fn coefficients(r: &ImpactReport) -> String {
                     .max((v.coef[j] + 1.96 * v.se[j]).abs());
             }
         }
-        let labels: Vec<String> = terms.iter().map(|&j| r.terms[j].clone()).collect();
+        // Terms are column names: shown with the derived label, never raw.
+        let labels: Vec<String> = terms
+            .iter()
+            .map(|&j| crate::project::manifest::readable_label(&r.terms[j]))
+            .collect();
         let keys: Vec<Key> = r
             .variants
             .iter()

@@ -122,12 +122,14 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
             .iter()
             .map(|p| chart.backend_coord(&(p.pc1, p.pc2)))
             .collect();
-        let mut wanted: Vec<(usize, String)> = Vec::new();
+        let mut wanted: Vec<(usize, String, i32)> = Vec::new();
         for pass in 0..2 {
             for (i, p) in c.points.iter().enumerate() {
                 let marked = planned.contains(&p.id) || joiners.contains(&p.id);
-                if (pass == 0 && marked) || (pass == 1 && !marked && p.outlier) {
-                    wanted.push((i, p.id.clone()));
+                if pass == 0 && marked {
+                    wanted.push((i, p.id.clone(), 15));
+                } else if pass == 1 && !marked && p.outlier {
+                    wanted.push((i, p.id.clone(), 9));
                 }
             }
         }
@@ -135,7 +137,7 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
         let bounds = (x_px.start, y_px.start, x_px.end, y_px.end);
         let spots = place_labels(&pixels, &wanted, MAP_LABEL_FONT, bounds);
         let style = TextStyle::from(font(MAP_LABEL_FONT)).pos(Pos::new(HPos::Left, VPos::Top));
-        for ((_, text), spot) in wanted.iter().zip(spots) {
+        for ((_, text, _), spot) in wanted.iter().zip(spots) {
             if let Some(at) = spot {
                 root.draw(&Text::new(text.clone(), at, style.clone()))?;
             }

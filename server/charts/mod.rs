@@ -364,21 +364,22 @@ pub fn overlaps(a: PixelBox, b: PixelBox) -> bool {
 /// Places point labels so that no two collide and none leaves `bounds`: each label tries
 /// eight spots around its point (right, left, above, below, then the corners), takes the
 /// first free one that covers the fewest other points, and is dropped when none is free.
-/// `points` are pixel positions; `wanted` lists (point index, text) in order of
-/// priority. Returns the top-left corner of each placed label, by the order of `wanted`.
+/// `points` are pixel positions; `wanted` lists (point index, text, gap between the
+/// point and its label: larger for larger marks) in order of priority. Returns the
+/// top-left corner of each placed label, by the order of `wanted`.
 pub fn place_labels(
     points: &[(i32, i32)],
-    wanted: &[(usize, String)],
+    wanted: &[(usize, String, i32)],
     size: u32,
     bounds: PixelBox,
 ) -> Vec<Option<(i32, i32)>> {
     let h = text_height(size);
-    let gap = 9;
     let mut placed: Vec<PixelBox> = Vec::new();
     wanted
         .iter()
-        .map(|(i, text)| {
+        .map(|(i, text, gap)| {
             let (x, y) = *points.get(*i)?;
+            let gap = *gap;
             let w = text_width(text, size);
             let spots = [
                 (x + gap, y - h / 2),
@@ -400,7 +401,7 @@ pub fn place_labels(
                 .min_by_key(|b| {
                     points
                         .iter()
-                        .filter(|&&(px, py)| overlaps(*b, (px - 5, py - 5, px + 5, py + 5)))
+                        .filter(|&&(px, py)| overlaps(*b, (px - 7, py - 7, px + 7, py + 7)))
                         .count()
                 })?;
             placed.push(best);

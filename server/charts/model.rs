@@ -63,13 +63,13 @@ pub fn propensity_vs_weight(r: &FitReport) -> String {
                 chart.backend_coord(&(u.propensity, if u.participated { u.weight } else { 0.0 }))
             })
             .collect();
-        let wanted: Vec<(usize, String)> = labelled
+        let wanted: Vec<(usize, String, i32)> = labelled
             .iter()
             .filter_map(|id| {
                 r.units
                     .iter()
                     .position(|u| u.id == *id)
-                    .map(|i| (i, id.to_string()))
+                    .map(|i| (i, id.to_string(), 9))
             })
             .collect();
         let (x_px, y_px) = chart.plotting_area().get_pixel_range();
@@ -80,7 +80,7 @@ pub fn propensity_vs_weight(r: &FitReport) -> String {
             (x_px.start, y_px.start, x_px.end, y_px.end),
         );
         let style = TextStyle::from(font(16)).pos(Pos::new(HPos::Left, VPos::Top));
-        for ((_, text), spot) in wanted.iter().zip(spots) {
+        for ((_, text, _), spot) in wanted.iter().zip(spots) {
             if let Some(at) = spot {
                 root.draw(&Text::new(text.clone(), at, style.clone()))?;
             }

@@ -18,6 +18,7 @@ const page = await context.newPage();
 const consoleErrors = [];
 page.on('console', (m) => { if (m.type() === 'error') consoleErrors.push(m.text()); });
 page.on('requestfailed', (r) => consoleErrors.push(`request failed: ${r.url()}`));
+page.on('response', (r) => { if (r.status() === 404) consoleErrors.push(`404: ${r.url()}`); });
 
 // Without the key nothing is shown; the start-up URL hands it over and leaves the address bar.
 const refused = await page.goto(base + '/');
@@ -114,14 +115,15 @@ await Promise.all([page.waitForNavigation(), page.click('main a[href="/"]')]);
 check(page.url() === base + '/' && (await page.locator('h1').count()) > 0 && !(await page.content()).includes('Cannot show'), `the error page's overview link: ${page.url()}`);
 
 // The project form keeps every entry after an error, and an earlier version comes back.
-if (process.env.PROJECTS_FORM !== '0') {
+if (process.env.PROJECTS_FORM !== '0') try {
   const frame = 'iso,name,wave,took_part,gdp,democracy,region\nXAA,Aland,1,1,9.5,8.0,North\nXAB,Bland,1,0,8.1,6.5,South\nXAC,Cland,1,1,8.7,7.0,South\nXAD,Dland,1,0,7.0,3.0,North\nXAA,Aland,2,1,9.6,8.1,North\nXAB,Bland,2,1,8.2,6.6,South\nXAC,Cland,2,0,8.8,7.1,South\nXAD,Dland,2,0,7.1,3.2,North\n';
   const upload = async (content) => {
     await page.goto(base + '/projects');
-    await page.fill('input[name="name"]', 'browser-p');
+    await page.fill('section#new input[name="name"]', 'browser-p');
     await page.fill('section#new input[name="title"]', 'Browser title');
     await page.setInputFiles('input[name="frame"]', { name: 'frame.csv', mimeType: 'text/csv', buffer: Buffer.from(content) });
-    await Promise.all([page.waitForURL(/\/projects\/map/), page.click('section#new button[type="submit"]')]);
+    await Promise.all([page.waitForNavigation(), page.click('section#new button[type="submit"]')]);
+    check(page.url().includes('/projects/map'), `the upload went to ${page.url()}: ${(await page.content()).slice(0, 400)}`);
   };
   await upload(frame);
   await page.check('input[name="numeric"][value="gdp"]');
@@ -146,9 +148,11 @@ if (process.env.PROJECTS_FORM !== '0') {
   await page.screenshot({ path: path.join(out, 'page-projects.png'), fullPage: true });
   await Promise.all([page.waitForNavigation(), page.click('details.versions button:has-text("Restore")')]);
   check(new URL(page.url()).pathname === '/', `restoring did not open the project: ${page.url()}`);
+} catch (e) {
+  failures.push(`the project form: ${e.message.split('\n')[0]} at ${page.url()}: ${(await page.content()).slice(0, 600)}`);
 }
 
-consoleErrors.splice(expectedErrors, consoleErrors.length - expectedErrors, ...consoleErrors.slice(expectedErrors).filter((e) => !/status of (400|422)/.test(e)));
+consoleErrors.splice(expectedErrors, consoleErrors.length - expectedErrors, ...consoleErrors.slice(expectedErrors).filter((e) => !/status of (400|404|422)|^404: /.test(e)));
 check(consoleErrors.length === 0, `browser errors: ${consoleErrors.join('; ')}`);
 await browser.close();
 if (failures.length) {

@@ -20,6 +20,12 @@ for (const [w, h] of [[1024, 768], [1920, 1080]]) {
     await page.goto(base + p, { timeout: 120000 });
     const name = (p === '/' ? 'overview' : p.slice(1)).replace(/[^a-z0-9=-]+/gi, '_');
     await page.screenshot({ path: path.join(out, `${tag}-${w}-${name}.png`), fullPage: process.env.FULL === '1' });
+    if (process.env.CHARTS === '1' && w === 1920) {
+      const charts = page.locator('figure svg');
+      for (let i = 0; i < await charts.count(); i++) {
+        await charts.nth(i).screenshot({ path: path.join(out, `${tag}-chart-${name}-${i}.png`) });
+      }
+    }
   }
   await context.close();
 }
