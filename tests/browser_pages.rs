@@ -23,7 +23,8 @@ fn pages_work_in_a_real_browser() {
         eprintln!("skipped: install Debian's chromium and run `npm ci` in tests/browser to run the browser test");
         return;
     }
-    let (addr, key) = start_server_with_token(&demo_dir());
+    let projects = TempDir::new("browser-projects");
+    let (addr, key) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
     let artefacts = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/browser-artefacts");
     let out = Command::new("node")
         .arg(browser_dir.join("run.mjs"))

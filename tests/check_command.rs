@@ -315,3 +315,35 @@ fn parquet_frame_is_read() {
         out.stdout
     );
 }
+
+/// Issue 19's crash: the name column also listed as a numeric indicator (the browser
+/// form once saved this) made `gapwise check` panic at wave.rs:55 with exit 101. Now it is
+/// one precise problem, exit 1; so is a rule on a text column and a cost that is the code.
+#[test]
+fn a_column_in_roles_that_read_it_differently_is_a_problem_not_a_panic() {
+    for (tag, manifest, words) in [
+        (
+            "name-numeric",
+            MANIFEST.replace(
+                "numeric = [\"gdp\", \"democracy\"]",
+                "numeric = [\"gdp\", \"democracy\", \"name\"]",
+            ),
+            "'name' is listed both in columns.name and in indicators.numeric",
+        ),
+        (
+            "rule-on-text",
+            MANIFEST.replace("indicator = \"democracy\"", "indicator = \"region\""),
+            "is used as indicators.categorical (read as text) and as eligibility rule 1 (read as a number)",
+        ),
+        (
+            "cost-is-code",
+            format!("{MANIFEST}\n[recruitment]\ncost = \"iso\"\n"),
+            "recruitment.cost (read as a number)",
+        ),
+    ] {
+        let dir = valid_project(tag);
+        dir.write("project.toml", manifest);
+        let lines = problems(&dir);
+        assert_has(&lines, "project.toml:", words);
+    }
+}

@@ -31,7 +31,7 @@ fn upload(addr: std::net::SocketAddr, origin: &str, name: &str, frame: &[u8]) ->
 fn upload_id(r: &Response) -> String {
     r.header("location")
         .and_then(|l| l.split_once("&upload="))
-        .map(|(_, id)| id.to_string())
+        .map(|(_, id)| id.split('&').next().unwrap_or_default().to_string())
         .unwrap_or_default()
 }
 
@@ -83,7 +83,12 @@ fn upload_map_save_and_keep_previous_version() {
         &[],
     );
     assert_eq!(form.status, 200);
-    assert!(form.body.contains("<option>took_part</option>"));
+    assert!(
+        form.body
+            .contains("<option value=\"took_part\" selected>took_part (0/1 flag)</option>"),
+        "{}",
+        form.body
+    );
     assert!(form
         .body
         .contains(&format!("name=\"upload\" value=\"{id}\"")));
@@ -457,4 +462,571 @@ fn a_parquet_bomb_is_refused_from_its_metadata() {
     assert!(started.elapsed().as_secs() < 5, "{:?}", started.elapsed());
     // Nothing was staged.
     assert_eq!(std::fs::read_dir(projects.path()).unwrap().count(), 0);
+}
+
+/// Uploads a frame and, when given, microdata; `extra` adds form fields.
+fn upload_with(
+    addr: std::net::SocketAddr,
+    origin: &str,
+    name: &str,
+    frame: &[u8],
+    microdata: Option<&[u8]>,
+    extra: &[(&str, &str)],
+) -> Response {
+    let mut fields = vec![("name", name), ("title", "Browser programme")];
+    fields.extend_from_slice(extra);
+    let mut files: Vec<(&str, &str, &[u8])> = vec![("frame", "frame.csv", frame)];
+    if let Some(m) = microdata {
+        files.push(("microdata", "microdata.csv", m));
+    }
+    let (ct, body) = multipart(&fields, &files);
+    http_body(
+        addr,
+        "POST",
+        "/projects/upload",
+        &[("Origin", origin)],
+        &ct,
+        &body,
+    )
+}
+
+/// The crash of issue 19: the country-name column also ticked as a numeric indicator was
+/// saved and then panicked every page and `gapwise check`. Now the save refuses it with
+/// the same message `gapwise check` prints, and neither panics.
+#[test]
+fn a_name_column_ticked_as_an_indicator_is_refused_by_the_form_and_by_check() {
+    let projects = TempDir::new("namecrash");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    for (tag, mapping, expected) in [
+        (
+            "numeric",
+            MAPPING.replace("numeric=gdp", "numeric=gdp&numeric=name"),
+            "listed both in columns.name",
+        ),
+        (
+            "categorical",
+            MAPPING.replace("categorical=region", "categorical=region&categorical=name"),
+            "listed both in columns.name",
+        ),
+        (
+            "rule",
+            MAPPING.replace("rule_indicator=democracy", "rule_indicator=region"),
+            "one column cannot be both",
+        ),
+        (
+            "cost",
+            format!("{MAPPING}&cost=region"),
+            "one column cannot be both",
+        ),
+        (
+            "wave-rule",
+            MAPPING.replace("rule_indicator=democracy", "rule_indicator=wave"),
+            "one column cannot be both",
+        ),
+    ] {
+        let name = format!("crash-{tag}");
+        let r = upload(addr, &origin, &name, FRAME.as_bytes());
+        assert_eq!(r.status, 303, "{tag}: {}", r.body);
+        let mapping = mapping.replace("name=p1", &format!("name={name}"));
+        let saved = save_mapping(addr, &origin, &mapping, &upload_id(&r));
+        assert_eq!(saved.status, 422, "{tag}: {}", saved.body);
+        assert!(saved.body.contains(expected), "{tag}: {}", saved.body);
+        assert!(!projects.path().join(&name).exists(), "{tag} was saved");
+        // `gapwise check` on the same manifest: exit 1, the same message, no panic.
+        let form: Vec<(String, String)> = form_urlencoded::parse(mapping.as_bytes())
+            .map(|(k, v)| (k.to_string(), v.to_string()))
+            .collect();
+        let manifest = gapwise::web::projects::manifest_from_form(&form).expect("a manifest");
+        let dir = TempDir::new(&format!("check-{tag}"));
+        dir.write("project.toml", toml::to_string(&manifest).unwrap());
+        dir.write("frame.csv", FRAME);
+        dir.write("microdata.csv", MICRODATA);
+        let out = gapwise(&["check", dir.path().to_str().unwrap()]);
+        assert_eq!(out.code, 1, "{tag}: {} {}", out.stdout, out.stderr);
+        assert!(!out.stderr.contains("panicked"), "{tag}: {}", out.stderr);
+        assert!(out.stderr.contains(expected), "{tag}: {}", out.stderr);
+    }
+    // Pages still answer (the open project is untouched).
+    assert_eq!(http(addr, "GET", "/", &[]).status, 200);
+}
+
+/// A small seeded generator for the property test (xorshift64*, Vigna 2016).
+struct Draws(u64);
+
+impl Draws {
+    fn next(&mut self) -> u64 {
+        self.0 ^= self.0 >> 12;
+        self.0 ^= self.0 << 25;
+        self.0 ^= self.0 >> 27;
+        self.0.wrapping_mul(0x2545_F491_4F6C_DD1D)
+    }
+    fn below(&mut self, n: usize) -> usize {
+        (self.next() % n as u64) as usize
+    }
+    fn chance(&mut self, percent: u64) -> bool {
+        self.next() % 100 < percent
+    }
+}
+
+/// Every manifest the mapping form can produce either saves and loads (and then every
+/// page's analysis runs without a panic) or is refused with a message: forms drawn at
+/// random over the form's own choices (any column or none in every select, any subset of
+/// ticks, rules with any direction, cut-off and waves).
+#[test]
+fn every_form_either_saves_and_loads_or_is_refused_with_a_message() {
+    let frame_columns = [
+        "iso",
+        "name",
+        "wave",
+        "took_part",
+        "gdp",
+        "democracy",
+        "region",
+    ];
+    let micro_columns = ["iso", "wave", "dweight", "trust"];
+    let cuts = [
+        "",
+        "lowest-participant",
+        "highest-participant",
+        "7",
+        "-1e3",
+        "abc",
+        "1,5",
+        "NaN",
+    ];
+    let mut draws = Draws(0x9E37_79B9_7F4A_7C15);
+    let (mut saved, mut refused) = (0, 0);
+    let mut reasons: Vec<String> = Vec::new();
+    for case in 0..400 {
+        let mut form: Vec<(String, String)> = Vec::new();
+        let pick = |draws: &mut Draws,
+                    form: &mut Vec<(String, String)>,
+                    key: &str,
+                    list: &[&str],
+                    none: bool| {
+            let i = draws.below(list.len() + usize::from(none));
+            let v = list.get(i).copied().unwrap_or("");
+            form.push((key.to_string(), v.to_string()));
+        };
+        form.push(("title".into(), format!("case {case}")));
+        // Mostly the right roles, so that many forms get as far as the data checks.
+        let right = draws.chance(80);
+        for (key, good) in [
+            ("code", "iso"),
+            ("wave", "wave"),
+            ("participation", "took_part"),
+        ] {
+            if right && draws.chance(95) {
+                form.push((key.into(), good.into()));
+            } else {
+                pick(&mut draws, &mut form, key, &frame_columns, false);
+            }
+        }
+        // As the form offers them (indicators other than the roles) or anything at all.
+        let offered = draws.chance(70);
+        if offered {
+            form.push(("country_name".into(), ["name", ""][draws.below(2)].into()));
+            form.push(("group".into(), ["region", ""][draws.below(2)].into()));
+        } else {
+            pick(&mut draws, &mut form, "country_name", &frame_columns, true);
+            pick(&mut draws, &mut form, "group", &frame_columns, true);
+        }
+        for c in frame_columns {
+            let numeric_ok = !offered || ["gdp", "democracy"].contains(&c);
+            let categorical_ok = !offered || c == "region";
+            if numeric_ok && draws.chance(if offered { 70 } else { 30 }) {
+                form.push(("numeric".into(), c.into()));
+            }
+            if categorical_ok && draws.chance(if offered { 80 } else { 15 }) {
+                form.push(("categorical".into(), c.into()));
+            }
+            if draws.chance(20) {
+                form.push((format!("label.{c}"), format!("Label of {c}")));
+            }
+            if draws.chance(10) {
+                form.push((
+                    format!("reference.{c}"),
+                    ["North", "South", "XAA", "nope"][draws.below(4)].into(),
+                ));
+            }
+        }
+        for row in 0..4 {
+            let empty = draws.chance(if row == 0 { 50 } else { 90 });
+            if empty {
+                form.push(("rule_indicator".into(), String::new()));
+            } else if offered {
+                form.push((
+                    "rule_indicator".into(),
+                    ["gdp", "democracy"][draws.below(2)].into(),
+                ));
+            } else {
+                pick(
+                    &mut draws,
+                    &mut form,
+                    "rule_indicator",
+                    &frame_columns,
+                    true,
+                );
+            }
+            let direction = if draws.chance(50) {
+                "at_least"
+            } else {
+                "at_most"
+            };
+            form.push(("rule_direction".into(), direction.into()));
+            let cut = if (empty && draws.chance(95)) || draws.chance(5) {
+                ""
+            } else if draws.chance(75) {
+                cuts[1 + draws.below(4)]
+            } else {
+                cuts[draws.below(cuts.len())]
+            };
+            form.push(("rule_cut".into(), cut.into()));
+            let waves = ["", "1", "2", "1, 2", "3", "x"];
+            let n = if offered { 4 } else { waves.len() };
+            form.push(("rule_waves".into(), waves[draws.below(n)].into()));
+        }
+        for key in ["cost", "feasibility", "population"] {
+            if offered && draws.chance(50) {
+                form.push((key.into(), ["gdp", "democracy", ""][draws.below(3)].into()));
+            } else if draws.chance(30) {
+                pick(&mut draws, &mut form, key, &frame_columns, true);
+            }
+        }
+        if draws.chance(50) {
+            form.extend([
+                ("micro_country".to_string(), "iso".to_string()),
+                ("micro_wave".to_string(), "wave".to_string()),
+                ("micro_weight".to_string(), "dweight".to_string()),
+            ]);
+        } else if draws.chance(50) {
+            pick(&mut draws, &mut form, "micro_country", &micro_columns, true);
+            pick(&mut draws, &mut form, "micro_wave", &micro_columns, false);
+            pick(&mut draws, &mut form, "micro_weight", &micro_columns, false);
+        }
+        if draws.chance(80) {
+            for c in micro_columns {
+                if (!offered || c == "trust") && draws.chance(if offered { 80 } else { 40 }) {
+                    form.push(("micro_variable".into(), c.into()));
+                }
+            }
+            if offered {
+                form.push(("micro_outcome".into(), String::new()));
+            } else {
+                pick(&mut draws, &mut form, "micro_outcome", &micro_columns, true);
+            }
+        }
+        let manifest = match gapwise::web::projects::manifest_from_form(&form) {
+            Err(message) => {
+                assert!(
+                    message.len() > 10,
+                    "case {case}: a bare refusal {message:?}"
+                );
+                reasons.push(message);
+                refused += 1;
+                continue;
+            }
+            Ok(m) => m,
+        };
+        let dir = TempDir::new(&format!("prop-{case}"));
+        dir.write("project.toml", toml::to_string(&manifest).unwrap());
+        dir.write("frame.csv", FRAME);
+        dir.write("microdata.csv", MICRODATA);
+        let outcome = std::panic::catch_unwind(|| match Project::load(dir.path()) {
+            Err(problems) => {
+                assert!(!problems.is_empty());
+                for p in &problems {
+                    assert!(p.message.len() > 10, "a bare problem {p:?}");
+                }
+                false
+            }
+            Ok(project) => {
+                // What `gapwise check` and the pages run on a loaded project.
+                let _ = gapwise::analysis::overview::overview(&project);
+                let _ =
+                    gapwise::cli::summary_text(&gapwise::analysis::overview::overview(&project));
+                for &w in &project.waves {
+                    let view = project.wave(w).expect("a wave of the project");
+                    let _ = gapwise::analysis::coverage::coverage(&view);
+                    let _ = gapwise::analysis::balance::compare(
+                        &view,
+                        &gapwise::analysis::settings::Settings::default(),
+                    );
+                }
+                true
+            }
+        });
+        match outcome {
+            Ok(true) => saved += 1,
+            Ok(false) => refused += 1,
+            Err(_) => panic!("case {case} panicked; the form was {form:?}"),
+        }
+        // The inverse: a saved manifest comes back into the form as it was.
+        let again = gapwise::web::projects::manifest_from_form(
+            &gapwise::web::projects::manifest_to_form(&manifest),
+        )
+        .expect("a manifest read back into the form saves again");
+        assert_eq!(
+            toml::to_string(&again).unwrap(),
+            toml::to_string(&manifest).unwrap(),
+            "case {case}"
+        );
+    }
+    // Both branches are exercised.
+    eprintln!("{saved} forms saved and loaded, {refused} refused");
+    reasons.sort();
+    reasons.dedup();
+    assert!(
+        saved >= 30 && refused >= 30,
+        "saved {saved}, refused {refused}: {}",
+        reasons
+            .iter()
+            .take(30)
+            .cloned()
+            .collect::<Vec<_>>()
+            .join("\n")
+    );
+}
+
+/// After an error every entry stays as typed; the form covers labels, references,
+/// `at_most` rules and rules per wave.
+#[test]
+fn after_an_error_the_form_keeps_every_entry() {
+    let projects = TempDir::new("kept");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    let r = upload(addr, &origin, "k1", FRAME.as_bytes());
+    let id = upload_id(&r);
+    let typed = "name=k1&title=Typed+title&code=iso&country_name=name&wave=wave&participation=took_part&group=region&numeric=gdp&numeric=democracy&label.gdp=GDP+per+head+%28log%29&categorical=region&reference.region=South&rule_indicator=democracy&rule_direction=at_most&rule_cut=abc&rule_waves=2&micro_country=iso&micro_wave=wave&micro_weight=dweight&micro_variable=trust";
+    let failed = save_mapping(addr, &origin, typed, &id);
+    assert_eq!(failed.status, 422, "{}", failed.body);
+    let body = &failed.body;
+    assert!(
+        body.contains("the cut-off &#39;abc&#39;")
+            || body.contains("the cut-off &#x27;abc&#x27;")
+            || body.contains("cut-off 'abc'"),
+        "{body}"
+    );
+    for kept in [
+        r#"name="title" value="Typed title""#,
+        r#"value="gdp" checked"#,
+        r#"value="democracy" checked"#,
+        r#"name="label.gdp" value="GDP per head (log)""#,
+        r#"value="South" selected"#,
+        r#"value="at_most" selected"#,
+        r#"name="rule_cut" value="abc""#,
+        r#"name="rule_waves" value="2""#,
+        r#"value="trust" checked"#,
+    ] {
+        assert!(body.contains(kept), "lost {kept}: {body}");
+    }
+    // The code, wave and flag columns are never offered as indicators.
+    for role in ["iso", "wave", "took_part"] {
+        assert!(
+            !body.contains(&format!(r#"name="numeric" value="{role}""#)),
+            "{role} offered"
+        );
+    }
+    // Fixed, the same entries save: labels, reference, an at_most rule for wave 2.
+    let fixed = typed.replace("rule_cut=abc", "rule_cut=7.05");
+    let saved = save_mapping(addr, &origin, &fixed, &id);
+    assert_eq!(saved.status, 303, "{}", saved.body);
+    let text =
+        std::fs::read_to_string(store::resolve(&projects.path().join("k1")).join("project.toml"))
+            .unwrap();
+    let m = gapwise::project::Manifest::parse(&text).unwrap();
+    assert_eq!(m.title, "Typed title");
+    assert_eq!(
+        m.indicators.labels.get("gdp").map(String::as_str),
+        Some("GDP per head (log)")
+    );
+    assert_eq!(
+        m.indicators.reference.get("region").map(String::as_str),
+        Some("South")
+    );
+    assert_eq!(m.eligibility.len(), 1);
+    assert_eq!(m.eligibility[0].waves, Some(vec![2]));
+    assert!(m.eligibility[0].at_least.is_none() && m.eligibility[0].at_most.is_some());
+    // No stray files in a saved project.
+    let mut files: Vec<String> = std::fs::read_dir(store::resolve(&projects.path().join("k1")))
+        .unwrap()
+        .filter_map(Result::ok)
+        .map(|e| e.file_name().to_string_lossy().to_string())
+        .collect();
+    files.sort();
+    assert_eq!(files, ["frame.csv", "microdata.csv", "project.toml"]);
+}
+
+/// A re-upload starts from the previous mapping and title, keeps the microdata when none
+/// is uploaded (unless asked), and earlier versions can be restored.
+#[test]
+fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
+    let projects = TempDir::new("versions");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    let r = upload(addr, &origin, "p1", FRAME.as_bytes());
+    let mapping = format!("{MAPPING}&label.gdp=GDP+per+head");
+    assert_eq!(
+        save_mapping(addr, &origin, &mapping, &upload_id(&r)).status,
+        303
+    );
+
+    let frame2 = FRAME.replace("9.5", "9.7");
+    let r = upload_with(addr, &origin, "p1", frame2.as_bytes(), None, &[]);
+    assert_eq!(r.status, 303, "{}", r.body);
+    let location = r.header("location").unwrap_or_default().to_string();
+    assert!(location.contains("kept=1"), "{location}");
+    let form = http(addr, "GET", &location, &[]);
+    assert_eq!(form.status, 200, "{}", form.body);
+    for prefilled in [
+        r#"id="from-previous""#,
+        r#"id="kept-microdata""#,
+        r#"name="title" value="Browser programme""#,
+        r#"value="gdp" checked"#,
+        r#"name="label.gdp" value="GDP per head""#,
+        r#"name="rule_cut" value="lowest-participant""#,
+    ] {
+        assert!(
+            form.body.contains(prefilled),
+            "missing {prefilled}: {}",
+            form.body
+        );
+    }
+    let id = upload_id(&r);
+    let saved = save_mapping(addr, &origin, &format!("{mapping}&kept=1"), &id);
+    assert_eq!(saved.status, 303, "{}", saved.body);
+    let current = store::resolve(&projects.path().join("p1"));
+    assert!(
+        current.join("microdata.csv").is_file(),
+        "the microdata was not kept"
+    );
+    assert!(!current.join("title.txt").exists());
+
+    // Removal asked for: the new version has no microdata (and says so as a warning).
+    let r = upload_with(
+        addr,
+        &origin,
+        "p1",
+        frame2.as_bytes(),
+        None,
+        &[("remove_microdata", "1")],
+    );
+    assert!(!r.header("location").unwrap_or_default().contains("kept=1"));
+    let no_micro = MAPPING.split("&micro_").next().unwrap().to_string();
+    assert_eq!(
+        save_mapping(addr, &origin, &no_micro, &upload_id(&r)).status,
+        303
+    );
+    assert!(!store::resolve(&projects.path().join("p1"))
+        .join("microdata.csv")
+        .exists());
+
+    // The projects page lists the versions; restoring the first makes it current again.
+    let list = store::versions(projects.path(), "p1");
+    assert_eq!(list.len(), 3, "{list:?}");
+    assert!(list[0].current && !list[2].current);
+    let page = http(addr, "GET", "/projects", &[]);
+    assert!(
+        page.body
+            .contains(&format!(r#"name="version" value="{}""#, list[2].id)),
+        "{}",
+        page.body
+    );
+    let restored = http_body(
+        addr,
+        "POST",
+        "/projects/restore",
+        &[("Origin", origin.as_str())],
+        "application/x-www-form-urlencoded",
+        format!("name=p1&version={}", list[2].id).as_bytes(),
+    );
+    assert_eq!(restored.status, 303, "{}", restored.body);
+    let current = store::resolve(&projects.path().join("p1"));
+    assert!(std::fs::read_to_string(current.join("frame.csv"))
+        .unwrap()
+        .contains("9.5"));
+    assert!(current.join("microdata.csv").is_file());
+    assert_eq!(store::versions(projects.path(), "p1").len(), 4);
+    // An unknown version is refused with a message.
+    let bad = http_body(
+        addr,
+        "POST",
+        "/projects/restore",
+        &[("Origin", origin.as_str())],
+        "application/x-www-form-urlencoded",
+        b"name=p1&version=0000000000000-00000000",
+    );
+    assert_eq!(bad.status, 400);
+    assert!(bad.body.contains("has no version"), "{}", bad.body);
+}
+
+/// Files with semicolons and decimal commas, and codes that differ only in case, get a
+/// precise hint on the mapping page.
+#[test]
+fn separators_decimal_commas_and_code_case_get_hints() {
+    let projects = TempDir::new("hints");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    let semicolons = "iso;name;wave;took_part;gdp\nXAA;Aland;1;1;9,5\nXAB;Bland;1;0;8,1\n";
+    let r = upload_with(addr, &origin, "semi", semicolons.as_bytes(), None, &[]);
+    let form = http(addr, "GET", r.header("location").unwrap_or_default(), &[]);
+    assert!(
+        form.body
+            .contains("seems to use &#39;;&#39; between fields")
+            || form
+                .body
+                .contains("seems to use &#x27;;&#x27; between fields"),
+        "{}",
+        form.body
+    );
+    assert!(form.body.contains("decimal comma"), "{}", form.body);
+
+    let lower = MICRODATA.replace("XAA,", "xaa,");
+    let r = upload_with(
+        addr,
+        &origin,
+        "case",
+        FRAME.as_bytes(),
+        Some(lower.as_bytes()),
+        &[],
+    );
+    let saved = save_mapping(
+        addr,
+        &origin,
+        &MAPPING.replace("name=p1", "name=case"),
+        &upload_id(&r),
+    );
+    assert_eq!(saved.status, 422, "{}", saved.body);
+    assert!(
+        saved.body.contains("only when case is ignored"),
+        "{}",
+        saved.body
+    );
+    assert!(saved.body.contains("xaa"), "{}", saved.body);
+}
+
+/// A browser posts our forms with `Origin: null` (our pages send no referrer); its
+/// `Sec-Fetch-Site: same-origin`, which no page can set, lets the post through. Without it
+/// a null origin is refused, and a cross-site fetch stays refused.
+#[test]
+fn a_form_post_from_our_own_page_with_a_null_origin_is_accepted() {
+    let projects = TempDir::new("nullorigin");
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let (ct, body) = multipart(
+        &[("name", "n1")],
+        &[("frame", "frame.csv", FRAME.as_bytes())],
+    );
+    let post = |headers: &[(&str, &str)]| {
+        http_body(addr, "POST", "/projects/upload", headers, &ct, &body).status
+    };
+    assert_eq!(
+        post(&[("Origin", "null"), ("Sec-Fetch-Site", "same-origin")]),
+        303
+    );
+    assert_eq!(post(&[("Origin", "null")]), 403);
+    assert_eq!(
+        post(&[("Origin", "null"), ("Sec-Fetch-Site", "cross-site")]),
+        401
+    );
 }

@@ -2,8 +2,14 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, legend, render, row_label, Area, DrawResult, GREY, SLIDE};
+use super::{
+    colour, draw_row_labels, failed_chart, font, headed, label_area, render, Area, DrawResult,
+    Glyph, Key, GREY, SLIDE,
+};
 use crate::analysis::balance::BalanceComparison;
+
+/// Nominal size of axis and row labels (drawn at about 14.5 px).
+const LABEL_FONT: u32 = 18;
 
 const TITLE: &str = "Standardised mean differences, before and after weighting";
 
@@ -16,7 +22,7 @@ pub fn smd_dots(b: &BalanceComparison) -> String {
     }
     render(
         TITLE,
-        (SLIDE.0, (110 + 30 * b.rows.len() as u32).max(SLIDE.1)),
+        (SLIDE.0, (150 + 34 * b.rows.len() as u32).max(SLIDE.1)),
         |root| draw(b, root),
     )
 }
@@ -31,26 +37,31 @@ fn draw(b: &BalanceComparison, root: &Area<'_>) -> DrawResult {
         .fold(0.3f64, |m, v| m.max(v.abs() * 1.1));
     let method = b.methods.get(b.chosen).map_or("", |m| m.label);
     let labels: Vec<String> = b.rows.iter().map(|r| r.label.clone()).collect();
+    let after = colour(0);
+    let keys = [
+        Key::new("Before weighting", Glyph::Ring(GREY)),
+        Key::new(format!("After: {method}"), Glyph::Diamond(after)),
+    ];
+    let body = headed(root, TITLE, &keys)?;
     {
-        let mut chart = ChartBuilder::on(root)
-            .caption(TITLE, font(24))
+        let mut chart = ChartBuilder::on(&body)
             .margin(16)
-            .x_label_area_size(50)
-            .y_label_area_size(300)
-            .build_cartesian_2d(-extent..extent, -0.5..(n as f64 + 0.8))?;
+            .margin_top(4)
+            .margin_right(28)
+            .x_label_area_size(56)
+            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+            .build_cartesian_2d(-extent..extent, -0.6..(n as f64 - 0.4))?;
         chart
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
-            .y_labels(n)
-            .y_label_formatter(&|y| row_label(&labels, *y))
+            .y_labels(0)
             .x_label_formatter(&|x| super::tick(*x, 1))
-            .x_desc(
-                "Standardised mean difference (participants − eligible universe, in universe SDs)",
-            )
-            .label_style(font(15))
-            .axis_desc_style(font(16))
+            .x_desc("SMD: participants − eligible universe, in the universe's SDs")
+            .label_style(font(LABEL_FONT))
+            .axis_desc_style(font(LABEL_FONT))
             .draw()?;
+        draw_row_labels(root, &chart, &labels, LABEL_FONT)?;
         for (threshold, shade) in [(0.1, 0.35), (0.25, 0.7)] {
             for sign in [-1.0, 1.0] {
                 let x = sign * threshold;
@@ -77,29 +88,16 @@ fn draw(b: &BalanceComparison, root: &Area<'_>) -> DrawResult {
                 GREY.mix(0.5).stroke_width(2),
             ))
         }))?;
-        chart
-            .draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
-                r.smd_before
-                    .map(|v| Circle::new((v, y_of(i)), 7, GREY.stroke_width(3)))
-            }))?
-            .label("Before weighting")
-            .legend(|(x, y)| Circle::new((x, y), 7, GREY.stroke_width(3)));
-        let after = colour(0);
-        chart
-            .draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
-                r.smd_after.map(|v| {
-                    EmptyElement::at((v, y_of(i)))
-                        + Polygon::new(vec![(0, -8), (8, 0), (0, 8), (-8, 0)], after.filled())
-                })
-            }))?
-            .label(format!("After: {method}"))
-            .legend(move |(x, y)| {
-                Polygon::new(
-                    vec![(x, y - 8), (x + 8, y), (x, y + 8), (x - 8, y)],
-                    after.filled(),
-                )
-            });
-        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
+        chart.draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
+            r.smd_before
+                .map(|v| Circle::new((v, y_of(i)), 7, GREY.stroke_width(3)))
+        }))?;
+        chart.draw_series(b.rows.iter().enumerate().filter_map(|(i, r)| {
+            r.smd_after.map(|v| {
+                EmptyElement::at((v, y_of(i)))
+                    + Polygon::new(vec![(0, -8), (8, 0), (0, 8), (-8, 0)], after.filled())
+            })
+        }))?;
     }
     Ok(())
 }

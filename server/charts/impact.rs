@@ -3,7 +3,13 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, legend, render, row_label, tick, SLIDE};
+use super::{
+    colour, draw_row_labels, failed_chart, font, headed, label_area, render, tick, Glyph, Key,
+    SLIDE,
+};
+
+/// Nominal size of axis and row labels.
+const LABEL_FONT: u32 = 18;
 use crate::analysis::impact::ImpactReport;
 
 /// One row per variant (top: unweighted), a dot at the pooled estimate and a 95% interval.
@@ -30,26 +36,28 @@ pub fn pooled(r: &ImpactReport) -> String {
             });
         let pad = 0.1 * (hi - lo).max(1e-9);
         let labels: Vec<String> = rows.iter().map(|r| r.0.to_string()).collect();
-        let mut chart = ChartBuilder::on(root)
-            .caption(&title, font(24))
+        let body = headed(root, &title, &[])?;
+        let mut chart = ChartBuilder::on(&body)
             .margin(16)
-            .x_label_area_size(50)
-            .y_label_area_size(340)
+            .margin_top(4)
+            .margin_right(40)
+            .x_label_area_size(56)
+            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
             .build_cartesian_2d((lo - pad)..(hi + pad), -0.5..(n as f64 - 0.5))?;
         chart
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
-            .y_labels(n)
-            .y_label_formatter(&|y| row_label(&labels, *y))
+            .y_labels(0)
             .x_label_formatter(&|x| tick(*x, 2))
             .x_desc(format!(
-                "Mean of {} (95% interval, errors clustered by country)",
+                "Mean of {}, 95% interval (clustered by country)",
                 r.impact.outcome
             ))
-            .label_style(font(15))
-            .axis_desc_style(font(16))
+            .label_style(font(LABEL_FONT))
+            .axis_desc_style(font(LABEL_FONT))
             .draw()?;
+        draw_row_labels(root, &chart, &labels, LABEL_FONT)?;
         for (i, (_, est, low, high)) in rows.iter().enumerate() {
             let y = (n - 1 - i) as f64;
             let c = colour(i);
@@ -69,12 +77,12 @@ pub fn pooled(r: &ImpactReport) -> String {
 /// by colour and marker.
 pub fn coefficients(r: &ImpactReport) -> String {
     const TITLE: &str = "Coefficients by correction (95% intervals)";
-    let k = r.terms.len() - 1; // substantive terms without the Mills ratio
+    let k = r.terms.len().saturating_sub(1); // substantive terms without the Mills ratio
     let terms: Vec<usize> = (1..k).collect();
     if terms.is_empty() {
         return failed_chart(TITLE, "The model has no predictors.");
     }
-    let height = (120 + 90 * terms.len() as u32).max(SLIDE.1);
+    let height = (200 + 90 * terms.len() as u32).max(SLIDE.1);
     render(TITLE, (SLIDE.0, height), |root| {
         let nt = terms.len();
         let nv = r.variants.len();
@@ -86,25 +94,37 @@ pub fn coefficients(r: &ImpactReport) -> String {
                     .max((v.coef[j] + 1.96 * v.se[j]).abs());
             }
         }
-        let labels: Vec<String> = terms.iter().map(|&j| r.terms[j].clone()).collect();
-        let mut chart = ChartBuilder::on(root)
-            .caption(TITLE, font(24))
+        // Terms are column names: shown with the derived label, never raw.
+        let labels: Vec<String> = terms
+            .iter()
+            .map(|&j| crate::project::manifest::readable_label(&r.terms[j]))
+            .collect();
+        let keys: Vec<Key> = r
+            .variants
+            .iter()
+            .enumerate()
+            .filter(|(_, v)| v.error.is_none())
+            .map(|(vi, v)| Key::new(v.label.clone(), Glyph::Marker(vi, colour(vi))))
+            .collect();
+        let body = headed(root, TITLE, &keys)?;
+        let mut chart = ChartBuilder::on(&body)
             .margin(16)
-            .x_label_area_size(50)
-            .y_label_area_size(200)
-            .right_y_label_area_size(10)
-            .build_cartesian_2d(-extent * 1.1..extent * 1.1, -0.5..(nt as f64 - 0.5 + 0.9))?;
+            .margin_top(4)
+            .margin_right(40)
+            .x_label_area_size(56)
+            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+            .build_cartesian_2d(-extent * 1.1..extent * 1.1, -0.5..(nt as f64 - 0.5))?;
         chart
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
-            .y_labels(nt)
-            .y_label_formatter(&|y| row_label(&labels, *y))
+            .y_labels(0)
             .x_label_formatter(&|x| tick(*x, 3))
             .x_desc("Coefficient")
-            .label_style(font(15))
-            .axis_desc_style(font(16))
+            .label_style(font(LABEL_FONT))
+            .axis_desc_style(font(LABEL_FONT))
             .draw()?;
+        draw_row_labels(root, &chart, &labels, LABEL_FONT)?;
         chart.draw_series(LineSeries::new(
             vec![(0.0, -0.5), (0.0, nt as f64 - 0.5)],
             BLACK.stroke_width(1),
@@ -117,24 +137,20 @@ pub fn coefficients(r: &ImpactReport) -> String {
             let offset = |row: usize| {
                 (nt - 1 - row) as f64 + 0.35 - 0.7 * vi as f64 / (nv.max(2) - 1) as f64
             };
-            chart
-                .draw_series(terms.iter().enumerate().map(|(row, &j)| {
-                    let y = offset(row);
-                    PathElement::new(
-                        vec![
-                            (v.coef[j] - 1.96 * v.se[j], y),
-                            (v.coef[j] + 1.96 * v.se[j], y),
-                        ],
-                        c.stroke_width(2),
-                    )
-                }))?
-                .label(v.label.clone())
-                .legend(move |(x, y)| EmptyElement::at((x, y)) + super::marker(vi, c));
+            chart.draw_series(terms.iter().enumerate().map(|(row, &j)| {
+                let y = offset(row);
+                PathElement::new(
+                    vec![
+                        (v.coef[j] - 1.96 * v.se[j], y),
+                        (v.coef[j] + 1.96 * v.se[j], y),
+                    ],
+                    c.stroke_width(2),
+                )
+            }))?;
             chart.draw_series(terms.iter().enumerate().map(|(row, &j)| {
                 EmptyElement::at((v.coef[j], offset(row))) + super::marker(vi, c)
             }))?;
         }
-        legend(&mut chart, SeriesLabelPosition::UpperRight, 13)?;
         Ok(())
     })
 }

@@ -3,7 +3,18 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, legend, render, row_label, GREY, SLIDE};
+use plotters::style::text_anchor::{HPos, Pos, VPos};
+
+use super::{
+    colour, draw_row_labels, failed_chart, font, headed, label_area, place_labels, render,
+    with_hover_titles, Glyph, Key, GREY, SLIDE,
+};
+use crate::analysis::coverage::MapPoint;
+
+/// Nominal size of axis and row labels.
+const LABEL_FONT: u32 = 18;
+/// Nominal size of the country codes on the map.
+pub const MAP_LABEL_FONT: u32 = 17;
 use crate::analysis::coverage::CoverageReport;
 
 /// Countries on the first two components: participants as filled teal circles, absent
@@ -21,8 +32,9 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
     if let Some(e) = &c.map_error {
         return failed_chart(TITLE, e);
     }
-    render(TITLE, SLIDE, |root| {
-        let span = |f: &dyn Fn(&crate::analysis::coverage::MapPoint) -> f64| {
+    let mut hover: Vec<((i32, i32), String)> = Vec::new();
+    let svg = render(TITLE, SLIDE, |root| {
+        let span = |f: &dyn Fn(&MapPoint) -> f64| {
             let (lo, hi) = c
                 .points
                 .iter()
@@ -33,17 +45,32 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
             let pad = 0.08 * (hi - lo).max(1e-9);
             (lo - pad)..(hi + pad)
         };
-        // Room above the points for the legend.
-        let with_headroom = |r: std::ops::Range<f64>| {
-            let h = r.end - r.start;
-            r.start..(r.end + 0.22 * h)
-        };
-        let mut chart = ChartBuilder::on(root)
-            .caption("Eligible countries on the first two components", font(24))
+        let (took, absent, plum) = (colour(0), colour(1), colour(2));
+        let mut keys = vec![
+            Key::new("Took part", Glyph::Marker(0, took)),
+            Key::new("Eligible, did not take part", Glyph::HollowTriangle(absent)),
+        ];
+        if !planned.is_empty() {
+            keys.push(Key::new(
+                "In the recruitment plan",
+                Glyph::RingDiamond(plum),
+            ));
+        }
+        if !joiners.is_empty() {
+            keys.push(Key::new("What if it joined", Glyph::Square(plum)));
+        }
+        let body = headed(
+            root,
+            "Eligible countries on the first two components",
+            &keys,
+        )?;
+        let mut chart = ChartBuilder::on(&body)
             .margin(16)
-            .x_label_area_size(50)
-            .y_label_area_size(70)
-            .build_cartesian_2d(span(&|p| p.pc1), with_headroom(span(&|p| p.pc2)))?;
+            .margin_top(4)
+            .margin_right(24)
+            .x_label_area_size(56)
+            .y_label_area_size(76)
+            .build_cartesian_2d(span(&|p| p.pc1), span(&|p| p.pc2))?;
         let share = |k: usize| c.components.get(k).map_or(0.0, |x| 100.0 * x.explained);
         chart
             .configure_mesh()
@@ -52,76 +79,89 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
             .y_desc(format!("Component 2 ({:.0}% of variance)", share(1)))
             .x_label_formatter(&|x| super::tick(*x, 1))
             .y_label_formatter(&|y| super::tick(*y, 1))
-            .label_style(font(15))
-            .axis_desc_style(font(16))
+            .label_style(font(LABEL_FONT))
+            .axis_desc_style(font(LABEL_FONT))
             .draw()?;
-        let (took, absent) = (colour(0), colour(1));
-        chart
-            .draw_series(
-                c.points
-                    .iter()
-                    .filter(|p| !p.participated)
-                    .map(|p| TriangleMarker::new((p.pc1, p.pc2), 8, absent.stroke_width(2))),
-            )?
-            .label("Eligible, did not take part")
-            .legend(move |(x, y)| TriangleMarker::new((x, y), 8, absent.stroke_width(2)));
-        chart
-            .draw_series(
-                c.points
-                    .iter()
-                    .filter(|p| p.participated)
-                    .map(|p| Circle::new((p.pc1, p.pc2), 6, took.filled())),
-            )?
-            .label("Took part")
-            .legend(move |(x, y)| Circle::new((x, y), 6, took.filled()));
-        let plum = colour(2);
-        if !planned.is_empty() {
-            chart
-                .draw_series(
-                    c.points
-                        .iter()
-                        .filter(|p| planned.contains(&p.id))
-                        .map(|p| {
-                            EmptyElement::at((p.pc1, p.pc2))
-                                + PathElement::new(
-                                    vec![(0, -13), (13, 0), (0, 13), (-13, 0), (0, -13)],
-                                    plum.stroke_width(3),
-                                )
-                        }),
-                )?
-                .label("In the recruitment plan")
-                .legend(move |(x, y)| {
-                    PathElement::new(
-                        vec![(x, y - 8), (x + 8, y), (x, y + 8), (x - 8, y), (x, y - 8)],
-                        plum.stroke_width(3),
-                    )
-                });
+        chart.draw_series(
+            c.points
+                .iter()
+                .filter(|p| !p.participated)
+                .map(|p| TriangleMarker::new((p.pc1, p.pc2), 8, absent.stroke_width(2))),
+        )?;
+        chart.draw_series(
+            c.points
+                .iter()
+                .filter(|p| p.participated)
+                .map(|p| Circle::new((p.pc1, p.pc2), 6, took.filled())),
+        )?;
+        chart.draw_series(
+            c.points
+                .iter()
+                .filter(|p| planned.contains(&p.id))
+                .map(|p| {
+                    EmptyElement::at((p.pc1, p.pc2))
+                        + PathElement::new(
+                            vec![(0, -13), (13, 0), (0, 13), (-13, 0), (0, -13)],
+                            plum.stroke_width(3),
+                        )
+                }),
+        )?;
+        chart.draw_series(
+            c.points
+                .iter()
+                .filter(|p| joiners.contains(&p.id))
+                .map(|p| {
+                    EmptyElement::at((p.pc1, p.pc2))
+                        + Rectangle::new([(-7, -7), (7, 7)], plum.filled())
+                }),
+        )?;
+        // Labels: the plan's countries first, then the countries farthest from the centre,
+        // each where it collides with no other label; the rest name themselves on hover.
+        let pixels: Vec<(i32, i32)> = c
+            .points
+            .iter()
+            .map(|p| chart.backend_coord(&(p.pc1, p.pc2)))
+            .collect();
+        let mut wanted: Vec<(usize, String, i32)> = Vec::new();
+        for pass in 0..2 {
+            for (i, p) in c.points.iter().enumerate() {
+                let marked = planned.contains(&p.id) || joiners.contains(&p.id);
+                if pass == 0 && marked {
+                    wanted.push((i, p.id.clone(), 15));
+                } else if pass == 1 && !marked && p.outlier {
+                    wanted.push((i, p.id.clone(), 9));
+                }
+            }
         }
-        if !joiners.is_empty() {
-            chart
-                .draw_series(
-                    c.points
-                        .iter()
-                        .filter(|p| joiners.contains(&p.id))
-                        .map(|p| {
-                            EmptyElement::at((p.pc1, p.pc2))
-                                + Rectangle::new([(-7, -7), (7, 7)], plum.filled())
-                        }),
-                )?
-                .label("What if it joined")
-                .legend(move |(x, y)| {
-                    Rectangle::new([(x - 6, y - 6), (x + 6, y + 6)], plum.filled())
-                });
+        let (x_px, y_px) = chart.plotting_area().get_pixel_range();
+        let bounds = (x_px.start, y_px.start, x_px.end, y_px.end);
+        let spots = place_labels(&pixels, &wanted, MAP_LABEL_FONT, bounds);
+        let style = TextStyle::from(font(MAP_LABEL_FONT)).pos(Pos::new(HPos::Left, VPos::Top));
+        for ((_, text, _), spot) in wanted.iter().zip(spots) {
+            if let Some(at) = spot {
+                root.draw(&Text::new(text.clone(), at, style.clone()))?;
+            }
         }
-        let labelled = |p: &&crate::analysis::coverage::MapPoint| {
-            p.outlier || planned.contains(&p.id) || joiners.contains(&p.id)
-        };
-        chart.draw_series(c.points.iter().filter(labelled).map(|p| {
-            EmptyElement::at((p.pc1, p.pc2)) + Text::new(p.id.clone(), (9, -18), font(14))
-        }))?;
-        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
+        hover = c
+            .points
+            .iter()
+            .zip(&pixels)
+            .map(|(p, &px)| {
+                let status = if joiners.contains(&p.id) {
+                    "what if it joined"
+                } else if planned.contains(&p.id) {
+                    "in the recruitment plan"
+                } else if p.participated {
+                    "took part"
+                } else {
+                    "eligible, did not take part"
+                };
+                (px, format!("{} ({}): {status}", p.name, p.id))
+            })
+            .collect();
         Ok(())
-    })
+    });
+    with_hover_titles(svg, &hover)
 }
 
 /// Per indicator, on the universe's standardised scale: the universe's interquartile range
@@ -131,7 +171,7 @@ pub fn spreads(c: &CoverageReport) -> String {
     if c.distributions.is_empty() {
         return failed_chart(TITLE, "No numeric indicators.");
     }
-    let height = (110 + 60 * c.distributions.len() as u32).max(SLIDE.1);
+    let height = (170 + 64 * c.distributions.len() as u32).max(SLIDE.1);
     render(TITLE, (SLIDE.0, height), |root| {
         let n = c.distributions.len();
         let z = |d: &crate::analysis::coverage::Distribution, v: f64| {
@@ -147,23 +187,29 @@ pub fn spreads(c: &CoverageReport) -> String {
             .flat_map(|d| [z(d, d.universe.min), z(d, d.universe.max)])
             .fold(2.0f64, |m, v| m.max(v.abs() * 1.05));
         let labels: Vec<String> = c.distributions.iter().map(|d| d.label.clone()).collect();
-        let mut chart = ChartBuilder::on(root)
-            .caption(TITLE, font(24))
+        let (u_colour, p_colour) = (GREY, colour(0));
+        let keys = [
+            Key::new("Eligible universe (upper bar)", Glyph::Bar(u_colour)),
+            Key::new("Participants (lower bar)", Glyph::Bar(p_colour)),
+        ];
+        let body = headed(root, TITLE, &keys)?;
+        let mut chart = ChartBuilder::on(&body)
             .margin(16)
-            .x_label_area_size(50)
-            .y_label_area_size(290)
-            .build_cartesian_2d(-extent..extent, -0.5..(n as f64 + 0.6))?;
+            .margin_top(4)
+            .margin_right(28)
+            .x_label_area_size(56)
+            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+            .build_cartesian_2d(-extent..extent, -0.5..(n as f64 - 0.5))?;
         chart
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))
             .disable_y_mesh()
-            .y_labels(n)
-            .y_label_formatter(&|y| row_label(&labels, *y))
+            .y_labels(0)
             .x_desc("Standard deviations from the eligible universe's mean")
-            .label_style(font(15))
-            .axis_desc_style(font(16))
+            .label_style(font(LABEL_FONT))
+            .axis_desc_style(font(LABEL_FONT))
             .draw()?;
-        let (u_colour, p_colour) = (GREY, colour(0));
+        draw_row_labels(root, &chart, &labels, LABEL_FONT)?;
         for (i, d) in c.distributions.iter().enumerate() {
             let y = (n - 1 - i) as f64;
             for (offset, s, col) in [
@@ -185,19 +231,6 @@ pub fn spreads(c: &CoverageReport) -> String {
                 )))?;
             }
         }
-        chart
-            .draw_series(std::iter::empty::<Circle<(f64, f64), i32>>())?
-            .label("Eligible universe (upper bar)")
-            .legend(move |(x, y)| {
-                Rectangle::new([(x - 8, y - 5), (x + 8, y + 5)], u_colour.filled())
-            });
-        chart
-            .draw_series(std::iter::empty::<Circle<(f64, f64), i32>>())?
-            .label("Participants (lower bar)")
-            .legend(move |(x, y)| {
-                Rectangle::new([(x - 8, y - 5), (x + 8, y + 5)], p_colour.filled())
-            });
-        legend(&mut chart, SeriesLabelPosition::UpperRight, 15)?;
         Ok(())
     })
 }

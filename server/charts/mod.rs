@@ -142,3 +142,290 @@ pub fn marker<DB: DrawingBackend>(i: usize, c: RGBColor) -> DynElement<'static, 
         _ => TriangleMarker::new((0, 0), 9, stroke).into_dyn(),
     }
 }
+
+/// The pixel size an SVG viewer draws text of nominal `size` at: plotters writes
+/// `font-size` as the nominal size divided by 1.24.
+pub fn drawn_size(size: u32) -> f64 {
+    f64::from(size) / 1.24
+}
+
+/// Estimated width in pixels of `text` at nominal `size`: 0.62 em per character, a
+/// little above the average advance of the common sans-serif faces (DejaVu Sans, Liberation
+/// Sans, Arial: about 0.55 em for mixed text), so that estimates err on the wide side.
+pub fn text_width(text: &str, size: u32) -> i32 {
+    (text.chars().count() as f64 * 0.62 * drawn_size(size)).ceil() as i32
+}
+
+/// Estimated height in pixels of one line of text at nominal `size` (1.2 em).
+pub fn text_height(size: u32) -> i32 {
+    (1.2 * drawn_size(size)).ceil() as i32
+}
+
+/// Room for row labels left of a plot: the widest label plus a gap, at least `min`.
+pub fn label_area(labels: &[String], size: u32, min: u32) -> u32 {
+    let widest = labels
+        .iter()
+        .map(|l| text_width(l, size))
+        .max()
+        .unwrap_or(0);
+    (widest.max(0) as u32 + 24).max(min)
+}
+
+/// Labels every row of a chart whose rows are drawn top-down from `labels` (row `i` at
+/// y = n − 1 − i): right-aligned just left of the plotting area, centred on the row.
+/// Plotters' own y labels pick "nice" tick positions and can skip rows; this never does.
+pub fn draw_row_labels(
+    root: &Area<'_>,
+    chart: &Chart<'_, '_>,
+    labels: &[String],
+    size: u32,
+) -> DrawResult {
+    use plotters::style::text_anchor::{HPos, Pos, VPos};
+    let n = labels.len();
+    let x0 = chart.x_range().start;
+    let style = TextStyle::from(font(size)).pos(Pos::new(HPos::Right, VPos::Center));
+    for (i, label) in labels.iter().enumerate() {
+        let (px, py) = chart.backend_coord(&(x0, (n - 1 - i) as f64));
+        root.draw(&Text::new(label.clone(), (px - 10, py), style.clone()))?;
+    }
+    Ok(())
+}
+
+/// Labels the x axis at the given values only (waves that are years get ticks at the
+/// waves, not at plotters' round numbers), centred under each.
+pub fn draw_x_labels(
+    root: &Area<'_>,
+    chart: &Chart<'_, '_>,
+    ticks: &[(f64, String)],
+    size: u32,
+) -> DrawResult {
+    use plotters::style::text_anchor::{HPos, Pos, VPos};
+    let y0 = chart.y_range().start;
+    let style = TextStyle::from(font(size)).pos(Pos::new(HPos::Center, VPos::Top));
+    for (x, label) in ticks {
+        let (px, py) = chart.backend_coord(&(*x, y0));
+        root.draw(&PathElement::new(
+            vec![(px, py), (px, py + 6)],
+            BLACK.stroke_width(1),
+        ))?;
+        root.draw(&Text::new(label.clone(), (px, py + 9), style.clone()))?;
+    }
+    Ok(())
+}
+
+/// How a legend entry's key is drawn.
+#[derive(Debug, Clone, Copy)]
+pub enum Glyph {
+    /// Marker shape `i` of [`marker`] in a colour.
+    Marker(usize, RGBColor),
+    /// A line with marker `i` on it (series joined across waves).
+    LineMarker(usize, RGBColor),
+    /// A hollow circle (the "before" marks).
+    Ring(RGBColor),
+    /// A filled diamond.
+    Diamond(RGBColor),
+    /// A hollow diamond (countries in a plan).
+    RingDiamond(RGBColor),
+    /// A hollow triangle.
+    HollowTriangle(RGBColor),
+    /// A filled bar.
+    Bar(RGBColor),
+    /// A filled square.
+    Square(RGBColor),
+    /// A plain line.
+    Line(RGBColor),
+    /// A cross (countries without weight).
+    Cross(RGBColor),
+    /// An outlined square (outlined bars).
+    OutlinedSquare(RGBColor),
+}
+
+/// One legend entry.
+#[derive(Debug, Clone)]
+pub struct Key {
+    pub label: String,
+    pub glyph: Glyph,
+}
+
+impl Key {
+    pub fn new(label: impl Into<String>, glyph: Glyph) -> Key {
+        Key {
+            label: label.into(),
+            glyph,
+        }
+    }
+}
+
+fn draw_glyph(area: &Area<'_>, glyph: Glyph, (x, y): (i32, i32)) -> DrawResult {
+    match glyph {
+        Glyph::Marker(i, c) => area.draw(&(EmptyElement::at((x, y)) + marker(i, c)))?,
+        Glyph::LineMarker(i, c) => {
+            area.draw(&PathElement::new(
+                vec![(x - 12, y), (x + 12, y)],
+                c.stroke_width(3),
+            ))?;
+            area.draw(&(EmptyElement::at((x, y)) + marker(i, c)))?;
+        }
+        Glyph::Ring(c) => area.draw(&Circle::new((x, y), 7, c.stroke_width(3)))?,
+        Glyph::Diamond(c) => area.draw(&Polygon::new(
+            vec![(x, y - 8), (x + 8, y), (x, y + 8), (x - 8, y)],
+            c.filled(),
+        ))?,
+        Glyph::RingDiamond(c) => area.draw(&PathElement::new(
+            vec![(x, y - 8), (x + 8, y), (x, y + 8), (x - 8, y), (x, y - 8)],
+            c.stroke_width(3),
+        ))?,
+        Glyph::HollowTriangle(c) => {
+            area.draw(&TriangleMarker::new((x, y), 8, c.stroke_width(2)))?
+        }
+        Glyph::Bar(c) => area.draw(&Rectangle::new(
+            [(x - 10, y - 6), (x + 10, y + 6)],
+            c.filled(),
+        ))?,
+        Glyph::Square(c) => area.draw(&Rectangle::new(
+            [(x - 6, y - 6), (x + 6, y + 6)],
+            c.filled(),
+        ))?,
+        Glyph::Line(c) => area.draw(&PathElement::new(
+            vec![(x - 12, y), (x + 12, y)],
+            c.stroke_width(3),
+        ))?,
+        Glyph::Cross(c) => area.draw(&Cross::new((x, y), 5, c.stroke_width(2)))?,
+        Glyph::OutlinedSquare(c) => area.draw(&Rectangle::new(
+            [(x - 6, y - 6), (x + 6, y + 6)],
+            ShapeStyle::from(c).stroke_width(3),
+        ))?,
+    }
+    Ok(())
+}
+
+/// Nominal size of legend text.
+pub const LEGEND_FONT: u32 = 17;
+const LEGEND_ROW: i32 = 28;
+const KEY_ROOM: i32 = 34;
+const KEY_GAP: i32 = 28;
+
+/// The legend's entries laid out left to right in rows no wider than `width`:
+/// (row, x of the key's centre) per entry.
+fn legend_layout(keys: &[Key], width: i32) -> Vec<(i32, i32)> {
+    let mut placed = Vec::with_capacity(keys.len());
+    let (mut row, mut x) = (0, 16);
+    for k in keys {
+        let w = KEY_ROOM + text_width(&k.label, LEGEND_FONT);
+        if x > 16 && x + w > width - 16 {
+            row += 1;
+            x = 16;
+        }
+        placed.push((row, x + 12));
+        x += w + KEY_GAP;
+    }
+    placed
+}
+
+/// Nominal size of chart titles.
+pub const TITLE_FONT: u32 = 26;
+
+/// Draws the title and, under it, the legend (never over the data), and returns the area
+/// left for the chart. Use with a chart built without a caption.
+pub fn headed<'b>(
+    root: &Area<'b>,
+    title: &str,
+    keys: &[Key],
+) -> Result<Area<'b>, Box<dyn std::error::Error>> {
+    use plotters::style::text_anchor::{HPos, Pos, VPos};
+    let width = root.dim_in_pixel().0 as i32;
+    let layout = legend_layout(keys, width);
+    let rows = layout.last().map_or(0, |l| l.0 + 1);
+    let title_h = text_height(TITLE_FONT) + 16;
+    let head = title_h + rows * LEGEND_ROW + if rows > 0 { 8 } else { 0 };
+    let (top, body) = root.split_vertically(head.max(0) as u32);
+    top.draw(&Text::new(
+        title.to_string(),
+        (width / 2, 10),
+        TextStyle::from(font(TITLE_FONT)).pos(Pos::new(HPos::Center, VPos::Top)),
+    ))?;
+    let text = TextStyle::from(font(LEGEND_FONT)).pos(Pos::new(HPos::Left, VPos::Center));
+    for (k, (row, x)) in keys.iter().zip(layout) {
+        let y = title_h + row * LEGEND_ROW + LEGEND_ROW / 2;
+        draw_glyph(&top, k.glyph, (x, y))?;
+        top.draw(&Text::new(k.label.clone(), (x + 20, y), text.clone()))?;
+    }
+    Ok(body)
+}
+
+/// A box in pixels: left, top, right, bottom.
+pub type PixelBox = (i32, i32, i32, i32);
+
+/// Whether two boxes overlap (touching edges do not).
+pub fn overlaps(a: PixelBox, b: PixelBox) -> bool {
+    a.0 < b.2 && b.0 < a.2 && a.1 < b.3 && b.1 < a.3
+}
+
+/// Places point labels so that no two collide and none leaves `bounds`: each label tries
+/// eight spots around its point (right, left, above, below, then the corners), takes the
+/// first free one that covers the fewest other points, and is dropped when none is free.
+/// `points` are pixel positions; `wanted` lists (point index, text, gap between the
+/// point and its label: larger for larger marks) in order of priority. Returns the
+/// top-left corner of each placed label, by the order of `wanted`.
+pub fn place_labels(
+    points: &[(i32, i32)],
+    wanted: &[(usize, String, i32)],
+    size: u32,
+    bounds: PixelBox,
+) -> Vec<Option<(i32, i32)>> {
+    let h = text_height(size);
+    let mut placed: Vec<PixelBox> = Vec::new();
+    wanted
+        .iter()
+        .map(|(i, text, gap)| {
+            let (x, y) = *points.get(*i)?;
+            let gap = *gap;
+            let w = text_width(text, size);
+            let spots = [
+                (x + gap, y - h / 2),
+                (x - gap - w, y - h / 2),
+                (x - w / 2, y - gap - h),
+                (x - w / 2, y + gap),
+                (x + gap - 2, y - gap - h + 2),
+                (x + gap - 2, y + gap - 2),
+                (x - gap - w + 2, y - gap - h + 2),
+                (x - gap - w + 2, y + gap - 2),
+            ];
+            let best = spots
+                .iter()
+                .map(|&(l, t)| (l, t, l + w, t + h))
+                .filter(|b| {
+                    b.0 >= bounds.0 && b.1 >= bounds.1 && b.2 <= bounds.2 && b.3 <= bounds.3
+                })
+                .filter(|b| !placed.iter().any(|p| overlaps(*p, *b)))
+                .min_by_key(|b| {
+                    points
+                        .iter()
+                        .filter(|&&(px, py)| overlaps(*b, (px - 7, py - 7, px + 7, py + 7)))
+                        .count()
+                })?;
+            placed.push(best);
+            Some((best.0, best.1))
+        })
+        .collect()
+}
+
+/// Adds a hover title (`<title>`, no script) to each point: an invisible circle of
+/// radius 9 per point, appended to the SVG so that it lies on top of the marks.
+pub fn with_hover_titles(svg: String, points: &[((i32, i32), String)]) -> String {
+    let Some(end) = svg.rfind("</svg>") else {
+        return svg;
+    };
+    let mut out = String::with_capacity(svg.len() + points.len() * 80);
+    out.push_str(&svg[..end]);
+    out.push_str(r#"<g class="hover" fill="transparent">"#);
+    for ((x, y), title) in points {
+        out.push_str(&format!(
+            r#"<circle cx="{x}" cy="{y}" r="9"><title>{}</title></circle>"#,
+            escape(title)
+        ));
+    }
+    out.push_str("</g>");
+    out.push_str(&svg[end..]);
+    out
+}

@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, legend, render, tick, GREY, SLIDE};
+use super::{colour, failed_chart, font, headed, render, tick, Glyph, Key, GREY, SLIDE};
 use crate::analysis::planner::Plan;
 
 /// Expected effective number of countries (left) and expected mean |SMD| (right) after 0,
@@ -51,8 +51,21 @@ pub fn paths(p: &Plan) -> String {
         ]
     };
     render(TITLE, SLIDE, |root| {
-        let root = &root.titled(TITLE, font(24))?;
-        let (left, right) = root.split_horizontally(SLIDE.0 / 2);
+        let keys: Vec<Key> = [
+            "Plan",
+            "Likeliest to join",
+            "Most different",
+            "At random (mean)",
+        ]
+        .iter()
+        .enumerate()
+        .map(|(i, name)| {
+            let c = if i == 3 { GREY } else { colour(i) };
+            Key::new(*name, Glyph::LineMarker(i, c))
+        })
+        .collect();
+        let body = headed(root, TITLE, &keys)?;
+        let (left, right) = body.split_horizontally(SLIDE.0 / 2);
         for (field, area, desc) in [
             (0, &left, "Expected effective number of countries"),
             (1, &right, "Expected mean |SMD| (unweighted)"),
@@ -69,7 +82,7 @@ pub fn paths(p: &Plan) -> String {
                 .margin(14)
                 .x_label_area_size(50)
                 .y_label_area_size(60)
-                .build_cartesian_2d(-0.2..k as f64 + 0.2, (lo - pad).max(0.0)..hi + 3.0 * pad)?;
+                .build_cartesian_2d(-0.2..k as f64 + 0.2, (lo - pad).max(0.0)..hi + pad)?;
             chart
                 .configure_mesh()
                 .light_line_style(WHITE.mix(0.0))
@@ -78,25 +91,19 @@ pub fn paths(p: &Plan) -> String {
                 .y_label_formatter(&|y| tick(*y, if field == 0 { 0 } else { 3 }))
                 .x_desc("Countries recruited")
                 .y_desc(desc)
-                .label_style(font(15))
-                .axis_desc_style(font(16))
+                .label_style(font(17))
+                .axis_desc_style(font(17))
                 .draw()?;
-            for (i, (name, points)) in all.into_iter().enumerate() {
+            for (i, (_, points)) in all.into_iter().enumerate() {
                 let c = if i == 3 { GREY } else { colour(i) };
                 let style = c.stroke_width(3);
-                chart
-                    .draw_series(LineSeries::new(points.clone(), style))?
-                    .label(name)
-                    .legend(move |(x, y)| {
-                        PathElement::new(vec![(x - 10, y), (x + 10, y)], c.stroke_width(3))
-                    });
+                chart.draw_series(LineSeries::new(points.clone(), style))?;
                 chart.draw_series(
                     points
                         .iter()
                         .map(move |&pt| EmptyElement::at(pt) + super::marker(i, c)),
                 )?;
             }
-            legend(&mut chart, SeriesLabelPosition::UpperLeft, 14)?;
         }
         Ok(())
     })

@@ -2,7 +2,7 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, render, SLIDE};
+use super::{colour, draw_x_labels, failed_chart, font, headed, render, SLIDE};
 use crate::analysis::sensitivity::Sensitivity;
 
 pub fn trimming(s: &Sensitivity) -> String {
@@ -28,17 +28,14 @@ pub fn trimming(s: &Sensitivity) -> String {
         })
         .collect();
     render(TITLE, SLIDE, |root| {
-        let root = &root.titled(TITLE, font(24))?;
-        let (left, right) = root.split_horizontally(SLIDE.0 / 2);
+        let body = headed(root, TITLE, &[])?;
+        let (left, right) = body.split_horizontally(SLIDE.0 / 2);
         let last = (labels.len() - 1) as f64;
-        let x_formatter = |x: &f64| {
-            let i = x.round();
-            if (x - i).abs() < 1e-6 && i >= 0.0 && (i as usize) < labels.len() {
-                labels[i as usize].clone()
-            } else {
-                String::new()
-            }
-        };
+        let ticks: Vec<(f64, String)> = labels
+            .iter()
+            .enumerate()
+            .map(|(i, l)| (i as f64, l.clone()))
+            .collect();
         let panels: [(
             &DrawingArea<SVGBackend, plotters::coord::Shift>,
             &str,
@@ -66,20 +63,20 @@ pub fn trimming(s: &Sensitivity) -> String {
         for (area, desc, field, top) in panels {
             let mut chart = ChartBuilder::on(area)
                 .margin(14)
-                .x_label_area_size(50)
-                .y_label_area_size(60)
+                .x_label_area_size(58)
+                .y_label_area_size(64)
                 .build_cartesian_2d(-0.3..last + 0.3, 0.0..top)?;
             chart
                 .configure_mesh()
                 .light_line_style(WHITE.mix(0.0))
-                .x_labels(labels.len())
-                .x_label_formatter(&x_formatter)
+                .x_labels(0)
                 .x_desc("Weights capped at percentile")
                 .y_label_formatter(&|y| super::tick(*y, if field == 1 { 0 } else { 2 }))
                 .y_desc(desc)
-                .label_style(font(15))
-                .axis_desc_style(font(16))
+                .label_style(font(17))
+                .axis_desc_style(font(17))
                 .draw()?;
+            draw_x_labels(root, &chart, &ticks, 17)?;
             let c = colour(field - 1);
             let series: Vec<(f64, f64)> = points
                 .iter()

@@ -203,6 +203,12 @@ impl Manifest {
             }
         }
         let mut seen: BTreeMap<&str, &str> = BTreeMap::new();
+        let name = self
+            .columns
+            .name
+            .iter()
+            .filter(|n| **n != self.columns.code)
+            .map(|n| (n.as_str(), "columns.name"));
         let roles = [
             (self.columns.code.as_str(), "columns.code"),
             (self.columns.wave.as_str(), "columns.wave"),
@@ -219,7 +225,7 @@ impl Manifest {
                     .iter()
                     .map(|c| (c.as_str(), "indicators.categorical")),
             );
-        for (column, role) in roles.into_iter().chain(indicators) {
+        for (column, role) in roles.into_iter().chain(name).chain(indicators) {
             if let Some(previous) = seen.insert(column, role) {
                 problems.push(Problem::at(
                     MANIFEST_FILE,
@@ -280,13 +286,65 @@ impl Manifest {
             .or(self.indicators.categorical.first().map(String::as_str))
     }
 
-    /// The readable label of an indicator, or its column name.
-    pub fn label<'a>(&'a self, column: &'a str) -> &'a str {
-        self.indicators
-            .labels
-            .get(column)
-            .map_or(column, String::as_str)
+    /// The readable label of a column: the manifest's `[indicators.labels]` entry, else one
+    /// derived from the column name by [`readable_label`], so that a raw column name never
+    /// reaches a page.
+    pub fn label<'a>(&'a self, column: &'a str) -> std::borrow::Cow<'a, str> {
+        match self.indicators.labels.get(column) {
+            Some(l) if !l.trim().is_empty() => std::borrow::Cow::Borrowed(l.as_str()),
+            _ => std::borrow::Cow::Owned(readable_label(column)),
+        }
     }
+}
+
+/// Abbreviations written in capitals when a label is derived from a column name.
+const ACRONYMS: [&str; 14] = [
+    "gdp", "gni", "hdi", "ppp", "usd", "eu", "un", "oecd", "co2", "ict", "id", "iso", "ses",
+    "isced",
+];
+
+/// A readable label derived from a column name, for columns the manifest gives no label:
+/// underscores, hyphens and dots become spaces; a leading `log`, `ln` or `log10` word
+/// becomes a suffix " (log)" / " (log10)"; common abbreviations (GDP, GNI, HDI, PPP, ...)
+/// are written in capitals; the first letter is capitalised; everything else is kept as
+/// written. `log_gdp_pc` → "GDP pc (log)", `years_since_transition` → "Years since
+/// transition", `female` → "Female". A name that is only separators stays as it is.
+pub fn readable_label(column: &str) -> String {
+    let mut words: Vec<&str> = column
+        .split(['_', '-', '.', ' '])
+        .filter(|w| !w.is_empty())
+        .collect();
+    if words.is_empty() {
+        return column.to_string();
+    }
+    let mut suffix = "";
+    if words.len() > 1 {
+        match words[0].to_ascii_lowercase().as_str() {
+            "log" | "ln" => suffix = " (log)",
+            "log10" => suffix = " (log10)",
+            _ => {}
+        }
+        if !suffix.is_empty() {
+            words.remove(0);
+        }
+    }
+    let words: Vec<String> = words
+        .iter()
+        .map(|w| {
+            if ACRONYMS.contains(&w.to_ascii_lowercase().as_str()) {
+                w.to_ascii_uppercase()
+            } else {
+                (*w).to_string()
+            }
+        })
+        .collect();
+    let mut text = words.join(" ");
+    if let Some(first) = text.chars().next() {
+        if first.is_lowercase() {
+            text = first.to_uppercase().chain(text.chars().skip(1)).collect();
+        }
+    }
+    text + suffix
 }
 
 impl EligibilityRule {
@@ -373,6 +431,45 @@ waves = [2]
         let problems = Manifest::parse(&text).unwrap_err();
         assert_eq!(problems[0].row, Some(6));
         assert!(problems[0].to_string().starts_with("project.toml:6:"));
+    }
+
+    /// Labels derived from column names (our own rule, documented on `readable_label`).
+    #[test]
+    fn labels_are_derived_when_none_is_given() {
+        assert_eq!(readable_label("log_gdp_pc"), "GDP pc (log)");
+        assert_eq!(
+            readable_label("years_since_transition"),
+            "Years since transition"
+        );
+        assert_eq!(readable_label("log_population"), "Population (log)");
+        assert_eq!(readable_label("log10_pop"), "Pop (log10)");
+        assert_eq!(readable_label("female"), "Female");
+        assert_eq!(readable_label("log"), "Log");
+        assert_eq!(readable_label("___"), "___");
+        assert_eq!(readable_label("élite_share"), "Élite share");
+        let mut m = Manifest::parse(MINIMAL).expect("valid manifest");
+        assert_eq!(m.label("gdp"), "GDP");
+        m.indicators
+            .labels
+            .insert("gdp".into(), "GDP per head (USD)".into());
+        assert_eq!(m.label("gdp"), "GDP per head (USD)");
+        m.indicators.labels.insert("gdp".into(), " ".into());
+        assert_eq!(m.label("gdp"), "GDP");
+    }
+
+    #[test]
+    fn name_column_listed_as_an_indicator_is_reported() {
+        let text = MINIMAL.replace(
+            "participation = \"took_part\"",
+            "participation = \"took_part\"\nname = \"gdp\"",
+        );
+        let problems = Manifest::parse(&text).unwrap_err();
+        assert!(
+            problems[0]
+                .message
+                .contains("'gdp' is listed both in columns.name"),
+            "{problems:?}"
+        );
     }
 
     #[test]

@@ -143,6 +143,13 @@ impl Project {
             )]
         })?;
         let manifest = Manifest::parse(&text)?;
+        let mut conflicts = conflicting_roles(MANIFEST_FILE, &frame_specs(&manifest));
+        if let Some(roles) = &manifest.microdata {
+            conflicts.extend(conflicting_roles(MANIFEST_FILE, &microdata_specs(roles)));
+        }
+        if !conflicts.is_empty() {
+            return Err(conflicts);
+        }
 
         let frame_path = match table::find_data_file(dir, FRAME_STEM) {
             Ok(Some(p)) => p,
@@ -323,12 +330,11 @@ impl Project {
             .name
             .as_deref()
             .unwrap_or(&self.manifest.columns.code);
-        let codes = self.codes();
-        self.frame
-            .texts(column)
+        let names = self.frame.texts(column);
+        self.codes()
             .into_iter()
-            .zip(codes)
-            .map(|(n, c)| n.unwrap_or(c))
+            .enumerate()
+            .map(|(i, c)| names.get(i).cloned().flatten().unwrap_or(c))
             .collect()
     }
 
@@ -443,7 +449,59 @@ fn frame_specs(m: &Manifest) -> Vec<ColumnSpec> {
             "recruitment.support_chance",
         ));
     }
+    if let Some(p) = &m.population {
+        specs.push(ColumnSpec::new(
+            &p.column,
+            ColumnKind::Number,
+            "population.column",
+        ));
+    }
     specs
+}
+
+/// What a column is read as: text, whole numbers (waves, flags) or numbers.
+fn storage(kind: ColumnKind) -> &'static str {
+    match kind {
+        ColumnKind::Text | ColumnKind::RequiredText => "text",
+        ColumnKind::Integer | ColumnKind::Flag => "a whole number",
+        ColumnKind::Number | ColumnKind::RequiredNumber => "a number",
+    }
+}
+
+/// A column that two roles need read differently (the country name also listed as a
+/// numeric indicator, a rule on a categorical indicator, the wave as a cost): one column
+/// is stored one way, so the other role would find nothing. Refused before any data is
+/// read, naming both roles; the same check runs for `gapwise check` and for a save from
+/// the browser, because both load through [`Project::load`].
+fn conflicting_roles(file: &str, specs: &[ColumnSpec]) -> Vec<Problem> {
+    let mut problems = Vec::new();
+    let mut first: HashMap<&str, &ColumnSpec> = HashMap::new();
+    let mut reported: std::collections::HashSet<&str> = std::collections::HashSet::new();
+    for spec in specs {
+        match first.get(spec.name.as_str()) {
+            None => {
+                first.insert(&spec.name, spec);
+            }
+            Some(earlier) => {
+                if storage(earlier.kind) != storage(spec.kind) && reported.insert(&spec.name) {
+                    problems.push(Problem::at(
+                        file,
+                        None,
+                        Some(spec.role.as_str()),
+                        format!(
+                            "column '{}' is used as {} (read as {}) and as {} (read as {}); one column cannot be both: choose another column for one of them",
+                            spec.name,
+                            earlier.role,
+                            storage(earlier.kind),
+                            spec.role,
+                            storage(spec.kind)
+                        ),
+                    ));
+                }
+            }
+        }
+    }
+    problems
 }
 
 fn microdata_specs(roles: &manifest::MicrodataRoles) -> Vec<ColumnSpec> {

@@ -365,6 +365,149 @@ fn versions_of(dir: &Path) -> Vec<String> {
     names
 }
 
+/// One saved version of a project, for the list of versions on the projects page.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+pub struct VersionInfo {
+    /// The version's folder name (its id).
+    pub id: String,
+    /// When it was saved, as "YYYY-MM-DD HH:MM UTC" (from the id).
+    pub saved: String,
+    /// The manifest's title, if it reads.
+    pub title: Option<String>,
+    /// The data files it holds.
+    pub files: Vec<String>,
+    pub current: bool,
+}
+
+/// A version's save time from its id (milliseconds since 1970, UTC).
+fn saved_at(id: &str) -> String {
+    let Some(millis) = id.split('-').next().and_then(|m| m.parse::<i64>().ok()) else {
+        return "unknown time".to_string();
+    };
+    let secs = millis.div_euclid(1000);
+    let (days, rest) = (secs.div_euclid(86_400), secs.rem_euclid(86_400));
+    // Civil date from days since 1970-01-01 (Howard Hinnant's days_from_civil, inverted).
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z.rem_euclid(146_097);
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let day = doy - (153 * mp + 2) / 5 + 1;
+    let month = if mp < 10 { mp + 3 } else { mp - 9 };
+    let year = yoe + era * 400 + i64::from(month <= 2);
+    format!(
+        "{year:04}-{month:02}-{day:02} {:02}:{:02} UTC",
+        rest / 3600,
+        rest % 3600 / 60
+    )
+}
+
+/// The saved versions of project `name`, newest first.
+pub fn versions(projects: &Path, name: &str) -> Vec<VersionInfo> {
+    if valid_name(name).is_err() {
+        return Vec::new();
+    }
+    let dir = projects.join(name);
+    if is_symlink(&dir) {
+        return Vec::new();
+    }
+    let current = current_version(&dir);
+    let mut out: Vec<VersionInfo> = versions_of(&dir)
+        .into_iter()
+        .map(|id| {
+            let folder = dir.join(VERSIONS_DIR).join(&id);
+            let title = std::fs::read_to_string(folder.join(MANIFEST_FILE))
+                .ok()
+                .and_then(|t| toml::from_str::<toml::Table>(&t).ok())
+                .and_then(|t| t.get("title").and_then(|v| v.as_str()).map(str::to_string));
+            let mut files: Vec<String> = std::fs::read_dir(&folder)
+                .map(|e| {
+                    e.filter_map(Result::ok)
+                        .map(|e| e.file_name().to_string_lossy().to_string())
+                        .filter(|n| n != MANIFEST_FILE)
+                        .collect()
+                })
+                .unwrap_or_default();
+            files.sort();
+            VersionInfo {
+                saved: saved_at(&id),
+                current: current.as_deref() == Some(id.as_str()),
+                id,
+                title,
+                files,
+            }
+        })
+        .collect();
+    out.reverse();
+    out
+}
+
+/// Makes an earlier version current again by saving a copy of it as the newest version
+/// (through [`save`], so the switch is as atomic and as checked as any save, and no
+/// version is lost: the one current before stays in the list).
+pub fn restore(
+    projects: &Path,
+    name: &str,
+    version: &str,
+    keep: usize,
+) -> Result<Project, Vec<Problem>> {
+    let fail = |m: String| vec![Problem::file("project", m)];
+    valid_name(name).map_err(fail)?;
+    if !valid_version(version)
+        || !versions_of(&projects.join(name))
+            .iter()
+            .any(|v| v == version)
+    {
+        return Err(fail(format!(
+            "'{name}' has no version '{version}'; choose one from the list on /projects"
+        )));
+    }
+    let from = projects.join(name).join(VERSIONS_DIR).join(version);
+    let (upload, staging) = new_staging(projects, name)
+        .map_err(|e| fail(format!("cannot prepare the restore: {e}")))?;
+    copy_files(&from, &staging).map_err(|e| fail(format!("cannot copy version {version}: {e}")))?;
+    save(projects, name, &upload, keep)
+}
+
+/// Copies the plain files of one folder into another (no sub-folders, no links).
+fn copy_files(from: &Path, to: &Path) -> std::io::Result<()> {
+    for entry in std::fs::read_dir(from)? {
+        let entry = entry?;
+        let path = entry.path();
+        if entry.file_type()?.is_file() && !is_symlink(&path) {
+            std::fs::copy(&path, to.join(entry.file_name()))?;
+        }
+    }
+    Ok(())
+}
+
+/// The microdata file of the current version of project `name`, if it has one: a new
+/// version uploaded without microdata keeps it unless its removal is asked for.
+pub fn current_microdata(projects: &Path, name: &str) -> Option<PathBuf> {
+    valid_name(name).ok()?;
+    let dir = projects.join(name);
+    if is_symlink(&dir) || !dir.is_dir() {
+        return None;
+    }
+    super::table::find_data_file(&resolve(&dir), super::MICRODATA_STEM)
+        .ok()
+        .flatten()
+        .filter(|p| !is_symlink(p))
+}
+
+/// The manifest of the current version of project `name`, if it has one and it parses:
+/// a re-upload starts from its mapping.
+pub fn current_manifest(projects: &Path, name: &str) -> Option<super::Manifest> {
+    valid_name(name).ok()?;
+    let dir = projects.join(name);
+    if is_symlink(&dir) || !dir.is_dir() {
+        return None;
+    }
+    let text = std::fs::read_to_string(resolve(&dir).join(MANIFEST_FILE)).ok()?;
+    super::Manifest::parse(&text).ok()
+}
+
 /// Deletes the oldest versions beyond `keep` (never the current one).
 fn prune(dir: &Path, current: &str, keep: usize) {
     let versions = versions_of(dir);
@@ -523,5 +666,16 @@ mod tests {
         for good in ["p1", "survey_2024", "con-1", "null"] {
             assert!(valid_name(good).is_ok(), "{good:?}");
         }
+    }
+
+    /// Dates checked against `date -u -d @SECONDS` (GNU coreutils).
+    #[test]
+    fn version_times_read_as_utc_dates() {
+        assert_eq!(saved_at("0000000000000-abcd"), "1970-01-01 00:00 UTC");
+        // date -u -d @1764633600 -> Tue Dec  2 00:00:00 UTC 2025
+        assert_eq!(saved_at("1764633600000-0a1b2c3d"), "2025-12-02 00:00 UTC");
+        // date -u -d @951826200 -> Tue Feb 29 12:10:00 UTC 2000
+        assert_eq!(saved_at("0951826200000-00000000"), "2000-02-29 12:10 UTC");
+        assert_eq!(saved_at("x"), "unknown time");
     }
 }

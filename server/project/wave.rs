@@ -61,9 +61,24 @@ impl WaveView {
         let m = &project.manifest;
         let row_waves = project.row_waves();
         let rows: Vec<usize> = (0..row_waves.len())
-            .filter(|&i| row_waves[i] == wave && project.eligibility.eligible[i])
+            .filter(|&i| {
+                row_waves[i] == wave
+                    && project
+                        .eligibility
+                        .eligible
+                        .get(i)
+                        .copied()
+                        .unwrap_or(false)
+            })
             .collect();
-        let pick = |all: Vec<Option<f64>>| rows.iter().map(|&i| all[i]).collect::<Vec<_>>();
+        // `get`, not indexing: a column the load did not type comes back empty, and a wave
+        // view must then show missing values rather than panic (the load refuses such
+        // manifests; this keeps every page alive should one slip through).
+        let pick = |all: Vec<Option<f64>>| {
+            rows.iter()
+                .map(|&i| all.get(i).copied().flatten())
+                .collect::<Vec<_>>()
+        };
         let codes = project.codes();
         let names = project.names();
         let participated = project.participated();
@@ -87,8 +102,8 @@ impl WaveView {
                 let values = rows
                     .iter()
                     .map(|&i| {
-                        all[i]
-                            .as_ref()
+                        all.get(i)
+                            .and_then(Option::as_ref)
                             .and_then(|v| levels.iter().position(|l| l == v))
                     })
                     .collect();
@@ -105,9 +120,18 @@ impl WaveView {
             .and_then(|g| categorical.iter().position(|c| c.column == g));
         Some(WaveView {
             wave,
-            codes: rows.iter().map(|&i| codes[i].clone()).collect(),
-            names: rows.iter().map(|&i| names[i].clone()).collect(),
-            participated: rows.iter().map(|&i| participated[i]).collect(),
+            codes: rows
+                .iter()
+                .map(|&i| codes.get(i).cloned().unwrap_or_default())
+                .collect(),
+            names: rows
+                .iter()
+                .map(|&i| names.get(i).cloned().unwrap_or_default())
+                .collect(),
+            participated: rows
+                .iter()
+                .map(|&i| participated.get(i).copied().unwrap_or(false))
+                .collect(),
             numeric,
             categorical,
             group,

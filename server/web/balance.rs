@@ -49,6 +49,7 @@ pub async fn page(
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
     let (form, b) = off_thread(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let cells = (0..b.rows.len())
         .map(|i| {
             b.methods

@@ -60,7 +60,9 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
     };
     let mut pairs: Vec<(&str, String)> = query
         .iter()
-        .filter(|(k, _)| !matches!(k.as_str(), "form" | "covariate" | "factor") && !own_key(k))
+        .filter(|(k, _)| {
+            !matches!(k.as_str(), "form" | "covariate" | "factor" | "view") && !own_key(k)
+        })
         .map(|(k, v)| (k.as_str(), v.clone()))
         .collect();
     if submitted {
@@ -102,6 +104,17 @@ pub struct SettingsForm {
     pub factors: Vec<Choice>,
     /// The current settings as a query string, for links between pages.
     pub query: String,
+    /// Whether the page is shown for projecting (`view=present`: larger type, no forms).
+    pub present: bool,
+}
+
+/// The query key and value of the presentation view (larger type, no forms), which
+/// changes how a page looks, never what it shows.
+pub const PRESENT: (&str, &str) = ("view", "present");
+
+/// Whether the query asks for the presentation view.
+pub fn presenting(query: &Query) -> bool {
+    query.iter().any(|(k, v)| k == PRESENT.0 && v == PRESENT.1)
 }
 
 impl SettingsForm {
@@ -186,7 +199,49 @@ impl SettingsForm {
                 })
                 .collect(),
             query: settings.to_query(),
+            present: false,
         }
+    }
+
+    /// The same form for a page asked for in the presentation view (the links between
+    /// pages then keep it).
+    pub fn presenting(mut self, query: &Query) -> Self {
+        if presenting(query) {
+            self.present = true;
+            let mut q = form_urlencoded::Serializer::new(std::mem::take(&mut self.query));
+            q.append_pair(PRESENT.0, PRESENT.1);
+            self.query = q.finish();
+        }
+        self
+    }
+
+    /// One line saying what the settings are now, for the collapsed form.
+    pub fn summary(&self) -> String {
+        let picked = |list: &[Choice]| list.iter().find(|c| c.selected).map(|c| c.label.clone());
+        let wave = picked(&self.waves).unwrap_or_else(|| {
+            self.waves.last().map_or_else(
+                || "no wave".to_string(),
+                |c| format!("{} (latest)", c.label),
+            )
+        });
+        let ticked = self
+            .covariates
+            .iter()
+            .chain(&self.factors)
+            .filter(|c| c.selected)
+            .count();
+        let all = self.covariates.len() + self.factors.len();
+        let mut parts = vec![wave];
+        parts.extend(picked(&self.models));
+        parts.extend(picked(&self.weightings));
+        parts.extend(picked(&self.trims));
+        parts.extend(picked(&self.missing));
+        parts.push(if ticked == all {
+            format!("all {all} indicators")
+        } else {
+            format!("{ticked} of {all} indicators")
+        });
+        parts.join(" · ")
     }
 }
 

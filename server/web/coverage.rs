@@ -49,6 +49,7 @@ pub async fn page(
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
     let (form, c, incomplete) = off_thread(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let html = CoveragePage {
         page: "coverage",
         nav_query: form.query.clone(),

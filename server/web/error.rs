@@ -117,6 +117,10 @@ pub async fn html_errors(
     next: axum::middleware::Next,
 ) -> Response {
     let path = request.uri().path().to_string();
+    // "This page with default settings" makes sense only for a page read with settings:
+    // not for a page that does not exist, nor for a form's post (a GET of it fails).
+    let has_settings = request.method() == axum::http::Method::GET
+        && request.uri().query().is_some_and(|q| !q.is_empty());
     let path_and_query = request
         .uri()
         .path_and_query()
@@ -160,7 +164,7 @@ pub async fn html_errors(
         message: String::from_utf8_lossy(&body).to_string(),
         retry: if busy {
             path_and_query
-        } else if path == "/" {
+        } else if path == "/" || !has_settings {
             String::new()
         } else {
             path

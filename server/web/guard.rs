@@ -243,7 +243,15 @@ pub async fn check(State(guard): State<Arc<Guard>>, request: Request, next: Next
     // key at all, the Origin check is the only defence, as before keys.
     if !reads {
         let origin = headers.get(header::ORIGIN).and_then(|v| v.to_str().ok());
+        // Under `Referrer-Policy: no-referrer` a browser sends `Origin: null` with a form
+        // post, even from our own page; its `Sec-Fetch-Site: same-origin` (which a page
+        // cannot set) then says where the post came from.
+        let fetched_here = headers
+            .get("sec-fetch-site")
+            .and_then(|v| v.to_str().ok())
+            .is_some_and(|v| v == "same-origin");
         let same_origin = match (origin, host) {
+            (Some("null"), Some(_)) => fetched_here,
             (Some(o), Some(h)) => o
                 .strip_prefix("http://")
                 .is_some_and(|rest| rest.eq_ignore_ascii_case(h)),

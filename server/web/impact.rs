@@ -236,6 +236,7 @@ pub async fn page(
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
     let (form, r, incomplete) = off_thread_heavy(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let project = state.project();
     let variables = project
         .manifest

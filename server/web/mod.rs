@@ -99,6 +99,7 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/reload", post(reload_from_page))
         .route("/projects", get(projects::list))
         .route("/projects/open", post(projects::open))
+        .route("/projects/restore", post(projects::restore))
         .route("/projects/upload", post(projects::upload))
         .route(
             "/projects/map",

@@ -71,6 +71,7 @@ pub async fn page(
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
     let (form, r) = off_thread(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let html = ModelPage {
         page: "model",
         nav_query: form.query.clone(),

@@ -196,6 +196,7 @@ pub async fn page(
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
     let (form, p, c, incomplete) = off_thread_heavy(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let project = state.project();
     let mut feasibility_choices = vec![
         (

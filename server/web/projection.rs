@@ -88,6 +88,7 @@ pub async fn page(
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
     let (form, r, variables) = off_thread(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let html = ProjectionPage {
         page: "projection",
         nav_query: form.query.clone(),

@@ -33,11 +33,81 @@ struct ProjectsPage<'a> {
     page: &'static str,
     nav_query: String,
     current: String,
-    projects: Vec<String>,
+    /// Each project with its saved versions, newest first.
+    projects: Vec<(String, Vec<store::VersionInfo>)>,
     folder: Option<String>,
     message: Option<String>,
     cautions: &'a [Caution],
 }
+
+/// What the mapping form knows of a frame column: its name, what its values look like,
+/// and a few of them.
+#[derive(Debug, Clone)]
+pub struct ColumnInfo {
+    pub name: String,
+    pub kind: ColumnGuess,
+    /// Up to three distinct values, for the form's hints.
+    pub examples: String,
+    /// Distinct non-missing values (up to 50 are kept; categorical levels for references).
+    pub levels: Vec<String>,
+}
+
+/// What a column's values look like (a guess from the file, never binding).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ColumnGuess {
+    /// Only 0 and 1.
+    Flag,
+    /// Whole numbers (waves and years look like this).
+    Whole,
+    /// Numbers.
+    Number,
+    /// Short upper-case codes (ISO 3166 and the like).
+    Code,
+    /// Text with few distinct values.
+    Category,
+    /// Other text (names).
+    Text,
+    /// Not read (a Parquet file, or an empty column).
+    Unknown,
+}
+
+impl ColumnGuess {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ColumnGuess::Flag => "0/1 flag",
+            ColumnGuess::Whole => "whole numbers",
+            ColumnGuess::Number => "numbers",
+            ColumnGuess::Code => "codes",
+            ColumnGuess::Category => "categories",
+            ColumnGuess::Text => "text",
+            ColumnGuess::Unknown => "not read",
+        }
+    }
+    fn numeric(self) -> bool {
+        matches!(
+            self,
+            ColumnGuess::Flag | ColumnGuess::Whole | ColumnGuess::Number | ColumnGuess::Unknown
+        )
+    }
+    fn textual(self) -> bool {
+        matches!(
+            self,
+            ColumnGuess::Code | ColumnGuess::Category | ColumnGuess::Text | ColumnGuess::Unknown
+        )
+    }
+}
+
+/// One eligibility rule row of the form, as entered.
+#[derive(Debug, Clone, Default)]
+pub struct RuleEntry {
+    pub indicator: String,
+    pub direction: String,
+    pub cut: String,
+    pub waves: String,
+}
+
+/// Rule rows the form offers.
+const RULE_ROWS: usize = 4;
 
 #[derive(Template)]
 #[template(path = "project_map.html")]
@@ -47,13 +117,70 @@ struct MapPage<'a> {
     name: String,
     /// The upload's id: its staging folder, carried by the form.
     upload: String,
-    title: String,
-    frame_columns: Vec<String>,
+    columns: Vec<ColumnInfo>,
     micro_columns: Vec<String>,
-    /// Best guesses for each role, preselected in the form.
-    guess: Guesses,
+    /// The form's entries: as typed after an error, else the previous version's mapping,
+    /// else guesses from the columns.
+    entries: Vec<(String, String)>,
+    rules: Vec<RuleEntry>,
+    /// Hints about the files (separators, decimal commas, codes differing in case).
+    hints: Vec<String>,
+    /// The microdata kept from the current version, when no new one was uploaded.
+    kept_microdata: Option<String>,
+    /// Whether the mapping was filled from the previous version.
+    from_previous: bool,
     problems: Vec<String>,
     cautions: &'a [Caution],
+}
+
+impl MapPage<'_> {
+    /// The entry of a single-valued field ("" when absent).
+    fn one(&self, key: &str) -> &str {
+        self.entries
+            .iter()
+            .find(|(k, _)| k == key)
+            .map_or("", |(_, v)| v.as_str())
+    }
+    /// Whether `value` is among a repeated field's entries (ticked checkboxes).
+    fn has(&self, key: &str, value: &str) -> bool {
+        self.entries.iter().any(|(k, v)| k == key && v == value)
+    }
+    /// Whether `column` is chosen for `role` (a select).
+    fn picked(&self, role: &str, column: &str) -> bool {
+        self.one(role) == column
+    }
+    fn label_entry(&self, column: &str) -> &str {
+        self.one(&format!("label.{column}"))
+    }
+    fn reference_entry(&self, column: &str) -> &str {
+        self.one(&format!("reference.{column}"))
+    }
+    /// The label a column gets when its label field is left empty.
+    fn derived_label(&self, column: &str) -> String {
+        crate::project::manifest::readable_label(column)
+    }
+    /// Columns the form offers as numeric indicators: numeric-looking columns that are
+    /// not the code, wave or participation flag chosen above.
+    fn numeric_choices(&self) -> Vec<&ColumnInfo> {
+        let taken = [
+            self.one("code"),
+            self.one("wave"),
+            self.one("participation"),
+        ];
+        self.columns
+            .iter()
+            .filter(|c| c.kind.numeric() && !taken.contains(&c.name.as_str()))
+            .collect()
+    }
+    /// Columns offered as categorical indicators: text-looking columns other than the
+    /// code and name.
+    fn categorical_choices(&self) -> Vec<&ColumnInfo> {
+        let taken = [self.one("code"), self.one("country_name")];
+        self.columns
+            .iter()
+            .filter(|c| c.kind.textual() && !taken.contains(&c.name.as_str()))
+            .collect()
+    }
 }
 
 fn folder(state: &AppState) -> AppResult<std::path::PathBuf> {
@@ -66,21 +193,64 @@ pub async fn list(State(state): State<Arc<AppState>>) -> AppResult<Html<String>>
 
 fn render_list(state: &AppState, message: Option<String>) -> AppResult<Html<String>> {
     let project = state.project();
+    let projects = state
+        .projects
+        .as_deref()
+        .map(|dir| {
+            store::list(dir)
+                .into_iter()
+                .map(|n| {
+                    let versions = store::versions(dir, &n);
+                    (n, versions)
+                })
+                .collect()
+        })
+        .unwrap_or_default();
     let html = ProjectsPage {
         page: "projects",
         nav_query: String::new(),
         current: project.manifest.title.clone(),
-        projects: state
-            .projects
-            .as_deref()
-            .map(store::list)
-            .unwrap_or_default(),
+        projects,
         folder: state.projects.as_ref().map(|p| p.display().to_string()),
         message,
         cautions: &STANDING,
     }
     .render()?;
     Ok(Html(html))
+}
+
+#[derive(serde::Deserialize)]
+pub struct RestoreForm {
+    name: String,
+    version: String,
+}
+
+/// Makes an earlier version current again (saved as the newest version, so nothing is
+/// lost) and opens it.
+pub async fn restore(
+    State(state): State<Arc<AppState>>,
+    Form(form): Form<RestoreForm>,
+) -> AppResult<Response> {
+    let dir = folder(&state)?;
+    let (dir2, keep) = (dir.clone(), state.keep_versions);
+    let name = form.name.clone();
+    let restored =
+        tokio::task::spawn_blocking(move || store::restore(&dir2, &form.name, &form.version, keep))
+            .await
+            .map_err(|e| AppError::Internal(e.to_string()))?;
+    match restored {
+        Ok(project) => {
+            state.install(dir.join(&name), Arc::new(project));
+            Ok(Redirect::to("/").into_response())
+        }
+        Err(problems) => Err(AppError::BadRequest(
+            problems
+                .iter()
+                .map(Problem::to_string)
+                .collect::<Vec<_>>()
+                .join("\n"),
+        )),
+    }
 }
 
 #[derive(serde::Deserialize)]
@@ -203,12 +373,37 @@ pub async fn upload(
     }
     let (upload, staging) =
         store::new_staging(&dir, &name).map_err(|e| AppError::Internal(e.to_string()))?;
+    let new_microdata = accepted.iter().any(|(f, _)| f.starts_with("microdata."));
     for (file, bytes) in accepted {
         std::fs::write(staging.join(file), bytes).map_err(|e| AppError::Internal(e.to_string()))?;
     }
-    std::fs::write(staging.join("title.txt"), title)
-        .map_err(|e| AppError::Internal(e.to_string()))?;
-    Ok(Redirect::to(&format!("/projects/map?name={name}&upload={upload}")).into_response())
+    // A new version without microdata keeps the current version's, unless asked not to.
+    let remove = fields
+        .get("remove_microdata")
+        .is_some_and(|v| !v.is_empty());
+    let mut kept = false;
+    if !new_microdata && !remove {
+        if let Some(old) = store::current_microdata(&dir, &name) {
+            if let Some(file) = old.file_name() {
+                std::fs::copy(&old, staging.join(file))
+                    .map_err(|e| AppError::Internal(e.to_string()))?;
+                kept = true;
+            }
+        }
+    }
+    // The title travels in the address, not in a file: a saved project holds only its
+    // manifest and data.
+    let mut target = form_urlencoded::Serializer::new(String::from("/projects/map?"));
+    target
+        .append_pair("name", &name)
+        .append_pair("upload", &upload);
+    if fields.get("title").is_some_and(|t| !t.trim().is_empty()) {
+        target.append_pair("title", &title);
+    }
+    if kept {
+        target.append_pair("kept", "1");
+    }
+    Ok(Redirect::to(&target.finish()).into_response())
 }
 
 #[derive(serde::Deserialize)]
@@ -216,6 +411,10 @@ pub struct MapQuery {
     name: String,
     #[serde(default)]
     upload: String,
+    #[serde(default)]
+    title: Option<String>,
+    #[serde(default)]
+    kept: Option<String>,
 }
 
 /// Column names of a staged data file (CSV header, or the Parquet schema).
@@ -225,6 +424,370 @@ fn columns_of(dir: &std::path::Path, stem: &str) -> Vec<String> {
     };
     let names = crate::project::table::column_names(&path);
     names.unwrap_or_default()
+}
+
+/// Rows read to guess column types (enough for any frame's flags and codes).
+const PROFILE_ROWS: usize = 20_000;
+
+/// What each column of a staged CSV looks like, from its first rows (a Parquet file's
+/// columns are listed as not read).
+pub fn profile_columns(path: &std::path::Path) -> Vec<ColumnInfo> {
+    let names = crate::project::table::column_names(path).unwrap_or_default();
+    let unread = |names: Vec<String>| {
+        names
+            .into_iter()
+            .map(|name| ColumnInfo {
+                name,
+                kind: ColumnGuess::Unknown,
+                examples: String::new(),
+                levels: Vec::new(),
+            })
+            .collect::<Vec<_>>()
+    };
+    let is_csv = path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("csv"));
+    let Ok(mut reader) = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .from_path(path)
+    else {
+        return unread(names);
+    };
+    if !is_csv {
+        return unread(names);
+    }
+    let mut values: Vec<Vec<String>> = vec![Vec::new(); names.len()];
+    for record in reader.records().take(PROFILE_ROWS).filter_map(Result::ok) {
+        for (j, cell) in record.iter().enumerate().take(names.len()) {
+            let cell = cell.trim();
+            if !cell.is_empty() && !crate::project::table::MISSING_TOKENS.contains(&cell) {
+                values[j].push(cell.to_string());
+            }
+        }
+    }
+    names
+        .into_iter()
+        .zip(values)
+        .map(|(name, cells)| {
+            let mut levels: Vec<String> = cells.clone();
+            levels.sort();
+            levels.dedup();
+            let kind = guess_kind(&cells, levels.len());
+            let examples = levels
+                .iter()
+                .take(3)
+                .cloned()
+                .collect::<Vec<_>>()
+                .join(", ");
+            levels.truncate(50);
+            ColumnInfo {
+                name,
+                kind,
+                examples,
+                levels,
+            }
+        })
+        .collect()
+}
+
+/// The guess for one column from its non-missing cells and number of distinct values.
+fn guess_kind(cells: &[String], distinct: usize) -> ColumnGuess {
+    if cells.is_empty() {
+        return ColumnGuess::Unknown;
+    }
+    let numbers: Vec<f64> = cells
+        .iter()
+        .filter_map(|c| c.parse::<f64>().ok().filter(|v| v.is_finite()))
+        .collect();
+    if numbers.len() == cells.len() {
+        if numbers.iter().all(|&v| v == 0.0 || v == 1.0) {
+            return ColumnGuess::Flag;
+        }
+        if numbers.iter().all(|v| v.fract() == 0.0) {
+            return ColumnGuess::Whole;
+        }
+        return ColumnGuess::Number;
+    }
+    let code_like = cells.iter().all(|c| {
+        (2..=3).contains(&c.chars().count()) && c.chars().all(|ch| ch.is_ascii_alphabetic())
+    });
+    if code_like {
+        return ColumnGuess::Code;
+    }
+    if distinct <= 12.max(cells.len() / 10) {
+        return ColumnGuess::Category;
+    }
+    ColumnGuess::Text
+}
+
+/// The first column whose lower-case name contains one of the hints and whose values
+/// fit `fits`; else the first column that fits.
+fn guess(columns: &[ColumnInfo], hints: &[&str], fits: impl Fn(ColumnGuess) -> bool) -> String {
+    hints
+        .iter()
+        .find_map(|h| {
+            columns
+                .iter()
+                .find(|c| c.name.to_lowercase().contains(h) && fits(c.kind))
+        })
+        .or_else(|| columns.iter().find(|c| fits(c.kind)))
+        .map(|c| c.name.clone())
+        .unwrap_or_default()
+}
+
+fn guess_micro(columns: &[String], hints: &[&str]) -> String {
+    hints
+        .iter()
+        .find_map(|h| columns.iter().find(|c| c.to_lowercase().contains(h)))
+        .cloned()
+        .unwrap_or_default()
+}
+
+/// The form's first entries from the columns alone.
+fn guessed_entries(columns: &[ColumnInfo], micro: &[String], title: &str) -> Vec<(String, String)> {
+    let pairs = [
+        ("title", title.to_string()),
+        (
+            "code",
+            guess(columns, &["iso", "code"], |k| {
+                matches!(k, ColumnGuess::Code | ColumnGuess::Unknown)
+            }),
+        ),
+        (
+            "country_name",
+            guess(columns, &["country", "name"], |k| {
+                matches!(k, ColumnGuess::Text | ColumnGuess::Unknown)
+            }),
+        ),
+        (
+            "wave",
+            guess(columns, &["wave", "round", "year"], |k| {
+                matches!(k, ColumnGuess::Whole | ColumnGuess::Unknown)
+            }),
+        ),
+        (
+            "participation",
+            guess(columns, &["took_part", "particip", "flag", "member"], |k| {
+                matches!(k, ColumnGuess::Flag | ColumnGuess::Unknown)
+            }),
+        ),
+        (
+            "micro_country",
+            guess_micro(micro, &["iso", "code", "country"]),
+        ),
+        ("micro_wave", guess_micro(micro, &["wave", "round", "year"])),
+        (
+            "micro_weight",
+            guess_micro(micro, &["weight", "dweight", "wt"]),
+        ),
+    ];
+    pairs.into_iter().map(|(k, v)| (k.to_string(), v)).collect()
+}
+
+/// The form's entries that reproduce a manifest (the inverse of [`manifest_from_form`]):
+/// a re-upload starts from the previous version's mapping.
+pub fn manifest_to_form(m: &Manifest) -> Vec<(String, String)> {
+    let mut f: Vec<(String, String)> = Vec::new();
+    let mut put = |k: &str, v: &str| f.push((k.to_string(), v.to_string()));
+    put("title", &m.title);
+    if let Some(d) = &m.description {
+        put("description", d);
+    }
+    put("code", &m.columns.code);
+    put("country_name", m.columns.name.as_deref().unwrap_or(""));
+    put("wave", &m.columns.wave);
+    put("participation", &m.columns.participation);
+    put("group", m.columns.group.as_deref().unwrap_or(""));
+    for c in &m.indicators.numeric {
+        put("numeric", c);
+    }
+    for c in &m.indicators.categorical {
+        put("categorical", c);
+    }
+    for (c, l) in &m.indicators.labels {
+        put(&format!("label.{c}"), l);
+    }
+    for (c, r) in &m.indicators.reference {
+        put(&format!("reference.{c}"), r);
+    }
+    let cut = |t: &Threshold| match t {
+        Threshold::Value(v) => v.to_string(),
+        Threshold::FromParticipants(ParticipantCut::LowestParticipant) => {
+            "lowest-participant".to_string()
+        }
+        Threshold::FromParticipants(ParticipantCut::HighestParticipant) => {
+            "highest-participant".to_string()
+        }
+    };
+    for r in &m.eligibility {
+        let waves = r.waves.as_ref().map_or(String::new(), |w| {
+            w.iter().map(i64::to_string).collect::<Vec<_>>().join(", ")
+        });
+        for (direction, threshold) in [("at_least", &r.at_least), ("at_most", &r.at_most)] {
+            if let Some(t) = threshold {
+                put("rule_indicator", &r.indicator);
+                put("rule_direction", direction);
+                put("rule_cut", &cut(t));
+                put("rule_waves", &waves);
+            }
+        }
+    }
+    put("cost", m.recruitment.cost.as_deref().unwrap_or(""));
+    put(
+        "feasibility",
+        m.recruitment.feasibility.as_deref().unwrap_or(""),
+    );
+    if let Some(p) = &m.population {
+        put("population", &p.column);
+        put(
+            "population_scale",
+            match p.scale {
+                PopulationScale::Count => "count",
+                PopulationScale::Log => "log",
+                PopulationScale::Log10 => "log10",
+            },
+        );
+    }
+    if let Some(md) = &m.microdata {
+        put("micro_country", &md.country);
+        put("micro_wave", &md.wave);
+        put("micro_weight", &md.design_weight);
+        for v in &md.variables {
+            put("micro_variable", v);
+        }
+        put("micro_outcome", md.outcome.as_deref().unwrap_or(""));
+    }
+    f
+}
+
+/// The rule rows of the form from its entries, padded to [`RULE_ROWS`] (at least one
+/// empty row to add a rule).
+fn rule_rows(entries: &[(String, String)]) -> Vec<RuleEntry> {
+    let many = |key: &str| {
+        entries
+            .iter()
+            .filter(|(k, _)| k == key)
+            .map(|(_, v)| v.clone())
+            .collect::<Vec<_>>()
+    };
+    let (ind, dir, cut, waves) = (
+        many("rule_indicator"),
+        many("rule_direction"),
+        many("rule_cut"),
+        many("rule_waves"),
+    );
+    let legacy = many("rule_at_least");
+    let mut rows: Vec<RuleEntry> = ind
+        .iter()
+        .enumerate()
+        .map(|(i, indicator)| RuleEntry {
+            indicator: indicator.clone(),
+            direction: dir.get(i).cloned().unwrap_or_else(|| "at_least".into()),
+            cut: cut.get(i).or(legacy.get(i)).cloned().unwrap_or_default(),
+            waves: waves.get(i).cloned().unwrap_or_default(),
+        })
+        .filter(|r| !(r.indicator.is_empty() && r.cut.trim().is_empty()))
+        .collect();
+    while rows.len() < RULE_ROWS || rows.last().is_some_and(|r| !r.indicator.is_empty()) {
+        rows.push(RuleEntry {
+            direction: "at_least".into(),
+            ..RuleEntry::default()
+        });
+    }
+    rows
+}
+
+/// The separator a CSV's header seems to use when it is not a comma, and whether its
+/// cells write decimals with a comma; `None` for a comma-separated file.
+fn separator_hint(path: &std::path::Path, file: &str) -> Option<String> {
+    if !path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("csv"))
+    {
+        return None;
+    }
+    let bytes = std::fs::read(path).ok()?;
+    let text = String::from_utf8_lossy(&bytes[..bytes.len().min(1 << 16)]).to_string();
+    let mut lines = text.lines();
+    let header = lines.next()?;
+    if header.contains(',') {
+        return None;
+    }
+    let (sep, shown) = [(';', "';'"), ('\t', "a tab"), ('|', "'|'")]
+        .into_iter()
+        .find(|(c, _)| header.contains(*c))?;
+    let decimal_commas = lines.take(200).any(|l| {
+        l.split(sep).any(|cell| {
+            let cell = cell.trim().trim_matches('"');
+            cell.split_once(',').is_some_and(|(a, b)| {
+                !a.is_empty()
+                    && !b.is_empty()
+                    && a.trim_start_matches('-')
+                        .chars()
+                        .all(|c| c.is_ascii_digit())
+                    && b.chars().all(|c| c.is_ascii_digit())
+            })
+        })
+    });
+    Some(format!(
+        "{file}: this file seems to use {shown} between fields (its header has no comma){}; save it as comma-separated CSV (UTF-8){}, then upload it again",
+        if decimal_commas { " and a decimal comma (1,5)" } else { "" },
+        if decimal_commas { " with '.' as the decimal point" } else { "" }
+    ))
+}
+
+/// Codes in the microdata that match a frame code only when case is ignored: a hint
+/// that names a few, since codes must match exactly.
+fn code_case_hint(staging: &std::path::Path, entries: &[(String, String)]) -> Option<String> {
+    let one = |key: &str| {
+        entries
+            .iter()
+            .find(|(k, _)| k == key)
+            .map(|(_, v)| v.clone())
+            .filter(|v| !v.is_empty())
+    };
+    let (code, micro_code) = (one("code")?, one("micro_country")?);
+    let read = |stem: &str, column: &str| -> Option<std::collections::BTreeSet<String>> {
+        let path = crate::project::table::find_data_file(staging, stem).ok()??;
+        let mut reader = csv::ReaderBuilder::new()
+            .flexible(true)
+            .from_path(&path)
+            .ok()?;
+        let j = reader.headers().ok()?.iter().position(|h| h == column)?;
+        Some(
+            reader
+                .records()
+                .filter_map(Result::ok)
+                .filter_map(|r| r.get(j).map(|c| c.trim().to_string()))
+                .filter(|c| !c.is_empty())
+                .collect(),
+        )
+    };
+    let frame = read("frame", &code)?;
+    let micro = read("microdata", &micro_code)?;
+    let folded: std::collections::HashMap<String, &String> =
+        frame.iter().map(|c| (c.to_lowercase(), c)).collect();
+    let pairs: Vec<String> = micro
+        .iter()
+        .filter(|c| !frame.contains(*c))
+        .filter_map(|c| {
+            folded
+                .get(&c.to_lowercase())
+                .map(|f| format!("'{c}' / '{f}'"))
+        })
+        .collect();
+    if pairs.is_empty() {
+        return None;
+    }
+    Some(format!(
+        "{} microdata code{} match{} a frame code only when case is ignored ({}{}); codes must match exactly: write them in the same case in both files",
+        pairs.len(),
+        if pairs.len() == 1 { "" } else { "s" },
+        if pairs.len() == 1 { "es" } else { "" },
+        pairs.iter().take(5).cloned().collect::<Vec<_>>().join(", "),
+        if pairs.len() > 5 { ", ..." } else { "" }
+    ))
 }
 
 pub async fn map_form(
@@ -239,64 +802,95 @@ pub async fn map_form(
             q.name
         )));
     }
-    render_map(&q.name, &q.upload, &staging, Vec::new()).map(Html)
+    // A new version of an existing project starts from its current mapping.
+    let previous = store::current_manifest(&dir, &q.name);
+    let (entries, from_previous) = match &previous {
+        Some(m) => {
+            let mut e = manifest_to_form(m);
+            if let Some(t) = q.title.as_ref().filter(|t| !t.trim().is_empty()) {
+                e.retain(|(k, _)| k != "title");
+                e.insert(0, ("title".to_string(), t.clone()));
+            }
+            (e, true)
+        }
+        None => {
+            let columns = frame_columns(&staging);
+            let micro = columns_of(&staging, "microdata");
+            let title = q.title.clone().unwrap_or_else(|| q.name.clone());
+            (guessed_entries(&columns, &micro, &title), false)
+        }
+    };
+    let kept = q.kept.is_some();
+    render_map(
+        &q.name,
+        &q.upload,
+        &staging,
+        entries,
+        from_previous,
+        kept,
+        Vec::new(),
+    )
+    .map(Html)
 }
 
-/// Preselected columns: the first whose lower-case name contains one of the hints.
-#[derive(Default)]
-struct Guesses {
-    code: String,
-    name: String,
-    wave: String,
-    participation: String,
-    micro_country: String,
-    micro_wave: String,
-    micro_weight: String,
-}
-
-fn guess(columns: &[String], hints: &[&str]) -> String {
-    hints
-        .iter()
-        .find_map(|h| columns.iter().find(|c| c.to_lowercase().contains(h)))
-        .cloned()
-        .unwrap_or_default()
+fn frame_columns(staging: &std::path::Path) -> Vec<ColumnInfo> {
+    match crate::project::table::find_data_file(staging, "frame") {
+        Ok(Some(path)) => profile_columns(&path),
+        _ => Vec::new(),
+    }
 }
 
 fn render_map(
     name: &str,
     upload: &str,
     staging: &std::path::Path,
+    entries: Vec<(String, String)>,
+    from_previous: bool,
+    kept: bool,
     problems: Vec<String>,
 ) -> AppResult<String> {
-    let frame_columns = columns_of(staging, "frame");
+    let columns = frame_columns(staging);
     let micro_columns = columns_of(staging, "microdata");
-    let guesses = Guesses {
-        code: guess(&frame_columns, &["iso", "code"]),
-        name: guess(&frame_columns, &["country", "name"]),
-        wave: guess(&frame_columns, &["wave", "round", "year"]),
-        participation: guess(&frame_columns, &["took_part", "particip", "flag", "member"]),
-        micro_country: guess(&micro_columns, &["iso", "code", "country"]),
-        micro_wave: guess(&micro_columns, &["wave", "round", "year"]),
-        micro_weight: guess(&micro_columns, &["weight", "dweight", "wt"]),
+    let mut hints = Vec::new();
+    for stem in ["frame", "microdata"] {
+        if let Ok(Some(path)) = crate::project::table::find_data_file(staging, stem) {
+            let label = path
+                .file_name()
+                .map_or_else(String::new, |n| n.to_string_lossy().to_string());
+            hints.extend(separator_hint(&path, &label));
+        }
+    }
+    hints.extend(code_case_hint(staging, &entries));
+    let kept_microdata = if kept {
+        crate::project::table::find_data_file(staging, "microdata")
+            .ok()
+            .flatten()
+            .and_then(|p| p.file_name().map(|n| n.to_string_lossy().to_string()))
+    } else {
+        None
     };
     Ok(MapPage {
-        guess: guesses,
         page: "projects",
         nav_query: String::new(),
         name: name.to_string(),
         upload: upload.to_string(),
-        title: std::fs::read_to_string(staging.join("title.txt"))
-            .unwrap_or_else(|_| name.to_string()),
-        frame_columns,
+        rules: rule_rows(&entries),
+        columns,
         micro_columns,
+        entries,
+        hints,
+        kept_microdata,
+        from_previous,
         problems,
         cautions: &STANDING,
     }
     .render()?)
 }
 
-/// Builds the manifest from the mapping form (repeated keys for the ticked indicators).
-fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
+/// Builds the manifest from the mapping form (repeated keys for the ticked indicators,
+/// `label.COLUMN` and `reference.COLUMN` fields, rule rows as parallel lists). Every
+/// manifest it returns is then checked exactly as `gapwise check` checks a folder.
+pub fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
     let one = |key: &str| {
         form.iter()
             .find(|(k, _)| k == key)
@@ -304,38 +898,69 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
             .filter(|v| !v.is_empty())
     };
     let many = |key: &str| {
-        form.iter()
-            .filter(|(k, _)| k == key)
-            .map(|(_, v)| v.clone())
-            .collect::<Vec<_>>()
+        let mut seen = Vec::new();
+        for (k, v) in form {
+            let v = v.trim().to_string();
+            if k == key && !v.is_empty() && !seen.contains(&v) {
+                seen.push(v);
+            }
+        }
+        seen
     };
     let need =
         |key: &str, what: &str| one(key).ok_or_else(|| format!("choose the column with {what}"));
-    // Rules come as pairs of fields (indicator, cut-off); an empty indicator means no rule.
-    let mut eligibility = Vec::new();
-    for (indicator, cut) in many("rule_indicator")
-        .into_iter()
-        .zip(many("rule_at_least"))
-    {
-        let (indicator, cut) = (indicator.trim().to_string(), cut.trim().to_string());
+    // Rules come as rows of fields (indicator, direction, cut-off, waves); a row without
+    // an indicator is no rule.
+    let mut eligibility: Vec<EligibilityRule> = Vec::new();
+    for row in rule_rows(form) {
+        let indicator = row.indicator.trim().to_string();
+        let cut = row.cut.trim().to_string();
         if indicator.is_empty() {
+            if !cut.is_empty() {
+                return Err(format!(
+                    "the eligibility rule with cut-off '{cut}' has no indicator; choose one or clear the cut-off"
+                ));
+            }
             continue;
         }
         if cut.is_empty() {
-            return Err(format!("give the eligibility rule on '{indicator}' a cut-off: a number or lowest-participant"));
+            return Err(format!("give the eligibility rule on '{indicator}' a cut-off: a number, lowest-participant or highest-participant"));
         }
-        let threshold = if cut == "lowest-participant" {
-            Threshold::FromParticipants(ParticipantCut::LowestParticipant)
+        let threshold = match cut.as_str() {
+            "lowest-participant" => Threshold::FromParticipants(ParticipantCut::LowestParticipant),
+            "highest-participant" => {
+                Threshold::FromParticipants(ParticipantCut::HighestParticipant)
+            }
+            _ => Threshold::Value(
+                cut.parse::<f64>()
+                    .ok()
+                    .filter(|v| v.is_finite())
+                    .ok_or_else(|| {
+                        format!("the cut-off '{cut}' of the rule on '{indicator}' is neither a number (with '.' as decimal point) nor lowest-participant / highest-participant")
+                    })?,
+            ),
+        };
+        let waves = if row.waves.trim().is_empty() {
+            None
         } else {
-            Threshold::Value(cut.parse().map_err(|_| {
-                format!("the cut-off '{cut}' is neither a number nor lowest-participant")
-            })?)
+            let mut list = Vec::new();
+            for w in row.waves.split([',', ' ', ';']).filter(|w| !w.is_empty()) {
+                list.push(w.parse::<i64>().map_err(|_| {
+                    format!("the waves of the rule on '{indicator}' must be whole numbers separated by commas, not '{w}'")
+                })?);
+            }
+            Some(list)
+        };
+        let (at_least, at_most) = if row.direction == "at_most" {
+            (None, Some(threshold))
+        } else {
+            (Some(threshold), None)
         };
         eligibility.push(EligibilityRule {
             indicator,
-            at_least: Some(threshold),
-            at_most: None,
-            waves: None,
+            at_least,
+            at_most,
+            waves,
         });
     }
     let microdata = match one("micro_country") {
@@ -349,9 +974,37 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
             respondent: None,
         }),
     };
+    let numeric = many("numeric");
+    let categorical = many("categorical");
+    let mut labels = BTreeMap::new();
+    let mut reference = BTreeMap::new();
+    let variables = microdata
+        .as_ref()
+        .map(|m| m.variables.clone())
+        .unwrap_or_default();
+    for (k, v) in form {
+        let v = v.trim();
+        if v.is_empty() {
+            continue;
+        }
+        if let Some(c) = k.strip_prefix("label.") {
+            if numeric
+                .iter()
+                .chain(&categorical)
+                .chain(&variables)
+                .any(|x| x == c)
+            {
+                labels.insert(c.to_string(), v.to_string());
+            }
+        } else if let Some(c) = k.strip_prefix("reference.") {
+            if categorical.iter().any(|x| x == c) {
+                reference.insert(c.to_string(), v.to_string());
+            }
+        }
+    }
     Ok(Manifest {
         title: one("title").unwrap_or_else(|| "Untitled project".to_string()),
-        description: None,
+        description: one("description"),
         population: one("population").map(|column| Population {
             column,
             scale: match one("population_scale").as_deref() {
@@ -368,9 +1021,10 @@ fn manifest_from_form(form: &[(String, String)]) -> Result<Manifest, String> {
             group: one("group"),
         },
         indicators: Indicators {
-            numeric: many("numeric"),
-            categorical: many("categorical"),
-            ..Indicators::default()
+            numeric,
+            categorical,
+            reference,
+            labels,
         },
         eligibility,
         recruitment: Recruitment {
@@ -404,6 +1058,7 @@ pub async fn map_save(
             "no upload for '{name}'; start from /projects"
         )));
     }
+    let kept = form.iter().any(|(k, v)| k == "kept" && !v.is_empty());
     let problems: Vec<String> = match manifest_from_form(&form) {
         Err(message) => vec![message],
         Ok(manifest) => {
@@ -425,6 +1080,11 @@ pub async fn map_save(
             }
         }
     };
-    let html = render_map(&name, &upload, &staging, problems)?;
+    // Everything stays as typed; the form's own fields are not mapping entries.
+    let entries: Vec<(String, String)> = form
+        .into_iter()
+        .filter(|(k, _)| !matches!(k.as_str(), "name" | "upload" | "kept"))
+        .collect();
+    let html = render_map(&name, &upload, &staging, entries, false, kept, problems)?;
     Ok((StatusCode::UNPROCESSABLE_ENTITY, Html(html)).into_response())
 }

@@ -44,6 +44,7 @@ pub async fn page(
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
     let (form, s) = off_thread_heavy(&state, &query, compute).await?;
+    let form = form.presenting(&query);
     let html = SensitivityPage {
         page: "sensitivity",
         nav_query: form.query.clone(),

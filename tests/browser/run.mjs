@@ -18,6 +18,7 @@ const page = await context.newPage();
 const consoleErrors = [];
 page.on('console', (m) => { if (m.type() === 'error') consoleErrors.push(m.text()); });
 page.on('requestfailed', (r) => consoleErrors.push(`request failed: ${r.url()}`));
+page.on('response', (r) => { if (r.status() === 404) consoleErrors.push(`404: ${r.url()}`); });
 
 // Without the key nothing is shown; the start-up URL hands it over and leaves the address bar.
 const refused = await page.goto(base + '/');
@@ -45,12 +46,17 @@ for (const p of pages) {
 // Change a setting through the form: the URL carries it and the chart changes.
 await page.goto(base + '/balance');
 const before = await page.locator('figure svg').first().innerHTML();
+// The settings are collapsed into a summary line; "change" opens them.
+check(!(await page.locator('select[name="weighting"]').isVisible()), 'the settings are not collapsed');
+check((await page.locator('details.settings-panel > summary').innerText()).includes('change'), 'no change control');
+await page.click('details.settings-panel > summary');
 await page.selectOption('select[name="weighting"]', 'raking');
 await Promise.all([page.waitForURL(/weighting=raking/), page.click('form.settings button[type="submit"]')]);
 const after = await page.locator('figure svg').first().innerHTML();
 check(before !== after, 'changing the weighting did not change the balance chart');
 check(page.url().includes('weighting=raking'), 'the URL does not carry the setting');
 // Untick an indicator: the link reproduces the view.
+await page.click('details.settings-panel > summary');
 await page.uncheck('input[name="covariate"][value="log_population"]');
 await Promise.all([page.waitForNavigation(), page.click('form.settings button[type="submit"]')]);
 check(!(await page.locator('#table').innerText()).includes('Population (log)'), 'unticked indicator still shown');
@@ -90,6 +96,67 @@ check(reportText.includes('Raking to category shares') && reportText.includes('w
 await page.goto('file://' + reportFile);
 await page.screenshot({ path: path.join(out, 'report.png'), fullPage: false });
 
+// The presentation view: no forms, the same chart, links that keep the view.
+await page.goto(base + '/balance?wave=2');
+const normalChart = await page.locator('figure svg').first().innerHTML();
+await page.click('a.view-toggle');
+check(page.url().includes('view=present'), `the presentation link: ${page.url()}`);
+check(await page.locator('form.settings').count() > 0 && !(await page.locator('form.settings').first().isVisible()), 'forms shown in the presentation view');
+check((await page.locator('figure svg').first().innerHTML()) === normalChart, 'the presentation view shows another chart');
+check((await page.locator('nav a[href^="/coverage"]').getAttribute('href')).includes('view=present'), 'navigation leaves the presentation view');
+// Navigation on one line at 1024 px.
+await page.setViewportSize({ width: 1024, height: 768 });
+await page.goto(base + '/balance');
+const navBox = await page.locator('header.topbar').boundingBox();
+check(navBox && navBox.height < 60, `the navigation wraps at 1024 px (${navBox && navBox.height} px high)`);
+await page.setViewportSize({ width: 1366, height: 768 });
+
+// The error page's link back to the overview works (its 400, and the form's 422 below,
+// are console errors of their own).
+const expectedErrors = consoleErrors.length;
+await page.goto(base + '/balance?wave=99');
+await Promise.all([page.waitForNavigation(), page.click('main a[href="/"]')]);
+check(page.url() === base + '/' && (await page.locator('h1').count()) > 0 && !(await page.content()).includes('Cannot show'), `the error page's overview link: ${page.url()}`);
+
+// The project form keeps every entry after an error, and an earlier version comes back.
+if (process.env.PROJECTS_FORM !== '0') try {
+  const frame = 'iso,name,wave,took_part,gdp,democracy,region\nXAA,Aland,1,1,9.5,8.0,North\nXAB,Bland,1,0,8.1,6.5,South\nXAC,Cland,1,1,8.7,7.0,South\nXAD,Dland,1,0,7.0,3.0,North\nXAA,Aland,2,1,9.6,8.1,North\nXAB,Bland,2,1,8.2,6.6,South\nXAC,Cland,2,0,8.8,7.1,South\nXAD,Dland,2,0,7.1,3.2,North\n';
+  const upload = async (content) => {
+    await page.goto(base + '/projects');
+    await page.fill('section#new input[name="name"]', 'browser-p');
+    await page.fill('section#new input[name="title"]', 'Browser title');
+    await page.setInputFiles('input[name="frame"]', { name: 'frame.csv', mimeType: 'text/csv', buffer: Buffer.from(content) });
+    await Promise.all([page.waitForNavigation(), page.click('section#new button[type="submit"]')]);
+    check(page.url().includes('/projects/map'), `the upload went to ${page.url()}: ${(await page.content()).slice(0, 400)}`);
+  };
+  await upload(frame);
+  await page.check('input[name="numeric"][value="gdp"]');
+  await page.fill('input[name="label.gdp"]', 'GDP per head');
+  await page.selectOption('select[name="rule_indicator"] >> nth=0', 'democracy');
+  await page.selectOption('select[name="rule_direction"] >> nth=0', 'at_most');
+  await page.fill('input[name="rule_cut"] >> nth=0', 'oops');
+  await Promise.all([page.waitForNavigation(), page.click('form.mapping button[type="submit"]')]);
+  check((await page.locator('#problems').count()) === 1, 'no problems shown for a bad cut-off');
+  check(await page.locator('input[name="numeric"][value="gdp"]').isChecked(), 'the ticked indicator was lost');
+  check((await page.inputValue('input[name="label.gdp"]')) === 'GDP per head', 'the label was lost');
+  check((await page.inputValue('input[name="rule_cut"] >> nth=0')) === 'oops', 'the cut-off was lost');
+  check((await page.inputValue('select[name="rule_direction"] >> nth=0')) === 'at_most', 'the direction was lost');
+  await page.fill('input[name="rule_cut"] >> nth=0', '9');
+  await Promise.all([page.waitForNavigation(), page.click('form.mapping button[type="submit"]')]);
+  check(new URL(page.url()).pathname === '/', `the fixed form did not save: ${page.url()}`);
+  await upload(frame.replace('9.5', '9.9'));
+  check(await page.locator('input[name="numeric"][value="gdp"]').isChecked(), 'a re-upload does not start from the previous mapping');
+  await Promise.all([page.waitForNavigation(), page.click('form.mapping button[type="submit"]')]);
+  await page.goto(base + '/projects');
+  await page.click('details.versions > summary');
+  await page.screenshot({ path: path.join(out, 'page-projects.png'), fullPage: true });
+  await Promise.all([page.waitForNavigation(), page.click('details.versions button:has-text("Restore")')]);
+  check(new URL(page.url()).pathname === '/', `restoring did not open the project: ${page.url()}`);
+} catch (e) {
+  failures.push(`the project form: ${e.message.split('\n')[0]} at ${page.url()}: ${(await page.content()).slice(0, 600)}`);
+}
+
+consoleErrors.splice(expectedErrors, consoleErrors.length - expectedErrors, ...consoleErrors.slice(expectedErrors).filter((e) => !/status of (400|404|422)|^404: /.test(e)));
 check(consoleErrors.length === 0, `browser errors: ${consoleErrors.join('; ')}`);
 await browser.close();
 if (failures.length) {
