@@ -37,6 +37,9 @@ pub const IMPACT_KEYS: [&str; 7] = [
     "country_indicator",
 ];
 
+/// Query keys of the impact page's sensitivity bounds (web::impact_bounds).
+pub const BOUNDS_KEYS: [&str; 2] = ["reference", "bounds_bootstrap"];
+
 /// Folds the form's repeated `covariate` / `factor` checkboxes into the settings' lists.
 /// A submitted form (`form=1`) with nothing ticked means an empty list, not "all".
 pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
@@ -55,6 +58,7 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
             !matches!(k.as_str(), "form" | "covariate" | "factor")
                 && !PLAN_KEYS.contains(&k.as_str())
                 && !IMPACT_KEYS.contains(&k.as_str())
+                && !BOUNDS_KEYS.contains(&k.as_str())
         })
         .map(|(k, v)| (k.as_str(), v.clone()))
         .collect();
@@ -200,7 +204,11 @@ fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
     }
     let mut own: Vec<(&str, &str)> = query
         .iter()
-        .filter(|(k, _)| PLAN_KEYS.contains(&k.as_str()) || IMPACT_KEYS.contains(&k.as_str()))
+        .filter(|(k, _)| {
+            PLAN_KEYS.contains(&k.as_str())
+                || IMPACT_KEYS.contains(&k.as_str())
+                || BOUNDS_KEYS.contains(&k.as_str())
+        })
         .map(|(k, v)| (k.as_str(), v.as_str()))
         .collect();
     // Stable: repeated keys (predictors, joiners) keep their order, which the result shows.

@@ -42,6 +42,8 @@ struct ImpactPage<'a> {
     cautions: &'a [Caution],
     /// Per term, one cell per variant.
     table: Vec<(String, Vec<Cell>)>,
+    /// Sensitivity to an unmeasured cause of taking part (web::impact_bounds).
+    bounds: super::impact_bounds::Section,
 }
 
 /// One cell of the side-by-side table.
@@ -218,6 +220,7 @@ pub async fn page(
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
     let (form, r) = off_thread_heavy(&state, &query, compute).await?;
+    let bounds = super::impact_bounds::section(&state, &query).await;
     let project = state.project();
     let variables = project
         .manifest
@@ -301,6 +304,7 @@ pub async fn page(
         f: Fmt,
         r: &r,
         cautions: &STANDING,
+        bounds,
     }
     .render()?;
     Ok(Html(html))
