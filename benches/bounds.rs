@@ -54,6 +54,13 @@ fn main() {
     let bounds = time(&|| {
         selection_bounds(Some(&project), &view, &settings, &bs).expect("bounds");
     });
+    let without = BoundsSettings {
+        replicates: 0,
+        ..bs.clone()
+    };
+    let point = time(&|| {
+        selection_bounds(Some(&project), &view, &settings, &without).expect("bounds");
+    });
     let draws = time(&|| {
         model_uncertainty(
             Some(&project),
@@ -67,6 +74,7 @@ fn main() {
     println!(
         "sensitivity bounds, {DEFAULT_REPLICATES} replicates: {bounds:.1} ms (target < 300 ms)"
     );
+    println!("sensitivity bounds without bootstrap: {point:.1} ms");
     println!("participation model draws, {MODEL_DRAWS} draws: {draws:.1} ms");
     assert!(bounds < 300.0, "the bounds take {bounds:.1} ms");
 }

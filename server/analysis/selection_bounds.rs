@@ -181,28 +181,35 @@ pub fn country_values(
             roles.variables.join(", ")
         ));
     }
-    let countries = micro.texts(&roles.country);
+    // Country codes as level indices: no copy of each respondent's code.
+    let (countries, levels) = micro.factorise(&roles.country);
     let waves = micro.integers(&roles.wave);
     let dw = micro.numbers(&roles.design_weight);
     let y = micro.numbers(outcome);
-    let mut sums: HashMap<&str, (f64, f64)> = HashMap::new();
+    let mut sums = vec![(0.0, 0.0); levels.len()];
     for i in 0..micro.height() {
         if waves[i] != Some(view.wave) {
             continue;
         }
-        if let (Some(c), Some(w), Some(v)) = (countries[i].as_deref(), dw[i], y[i]) {
-            let e = sums.entry(c).or_insert((0.0, 0.0));
-            e.0 += w * v;
-            e.1 += w;
+        if let (Some(c), Some(w), Some(v)) = (countries[i], dw[i], y[i]) {
+            sums[c].0 += w * v;
+            sums[c].1 += w;
         }
     }
+    let level_of: HashMap<&str, usize> = levels
+        .iter()
+        .enumerate()
+        .map(|(i, l)| (l.as_str(), i))
+        .collect();
     Ok((
         design
             .ids
             .iter()
             .zip(&design.participated)
             .map(|(id, &took)| {
-                sums.get(id.as_str())
+                level_of
+                    .get(id.as_str())
+                    .map(|&l| sums[l])
                     .filter(|s| took && s.1 > 0.0)
                     .map(|s| s.0 / s.1)
             })
@@ -279,14 +286,25 @@ fn participants(
 }
 
 /// The fitted propensities of the model on (a resample of) the standardised design.
+/// `start`: the full sample's estimate, from which a resample's Newton steps begin (the
+/// same maximum, reached in fewer steps).
 fn propensities(
     kind: ModelKind,
     z: &Array2<f64>,
     participated: &[bool],
-) -> Result<(Vec<f64>, bool), String> {
-    let fit = binary::fit(kind, z.view(), participated).map_err(|e| e.to_string())?;
+    start: Option<&ndarray::Array1<f64>>,
+) -> Result<(Vec<f64>, bool, ndarray::Array1<f64>), String> {
+    let fit = match start {
+        None => binary::fit(kind, z.view(), participated),
+        Some(s) => binary::refit(kind, z.view(), participated, s, binary::SCORE_TOLERANCE),
+    }
+    .map_err(|e| e.to_string())?;
     let converged = fit.converged && fit.weak_directions.is_empty();
-    Ok((binary::predict(kind, z.view(), &fit.coef), converged))
+    Ok((
+        binary::predict(kind, z.view(), &fit.coef),
+        converged,
+        fit.coef,
+    ))
 }
 
 fn bounds_at(
@@ -315,7 +333,7 @@ pub fn outcome_summary(
 ) -> Result<OutcomeSummary, String> {
     let p = prepare(project, view, settings, column, &Shares::Equal)?;
     let z = p.design.standardised();
-    let (e, _) = propensities(settings.model, &z, &p.design.participated)?;
+    let (e, _, _) = propensities(settings.model, &z, &p.design.participated, None)?;
     let (y, e, base) = participants(&p.value, &p.design.participated, &e, &p.base);
     let (point, _) = sb::msm_bounds(&y, &e, &base, 1.0).map_err(|e| e.to_string())?;
     let bounds = bounds_at(&y, &e, &base, lambdas).map_err(|e| e.to_string())?;
@@ -344,7 +362,8 @@ pub fn selection_bounds(
     let p = prepare(project, view, settings, &bs.outcome, &bs.shares)?;
     let design = &p.design;
     let z = design.standardised();
-    let (e_all, model_converged) = propensities(settings.model, &z, &design.participated)?;
+    let (e_all, model_converged, estimate) =
+        propensities(settings.model, &z, &design.participated, None)?;
     let (y, e, base) = participants(&p.value, &design.participated, &e_all, &p.base);
     let bounds = bounds_at(&y, &e, &base, &bs.lambdas).map_err(|e| e.to_string())?;
     let (weighted_mean, _) = sb::msm_bounds(&y, &e, &base, 1.0).map_err(|e| e.to_string())?;
@@ -377,7 +396,8 @@ pub fn selection_bounds(
                     if took.iter().all(|&t| t) || !took.iter().any(|&t| t) {
                         return None;
                     }
-                    let (er, converged) = propensities(settings.model, &zs, &took).ok()?;
+                    let (er, converged, _) =
+                        propensities(settings.model, &zs, &took, Some(&estimate)).ok()?;
                     if !converged {
                         return None;
                     }
