@@ -2,6 +2,11 @@
 //! the marginal sensitivity model's box for inverse-probability weights: how far a
 //! weighted mean can move if participation also depends on something unmeasured.
 //!
+//! Sources: Tan (2006), "A distributional approach for causal inference using propensity
+//! scores", JASA 101; Zhao, Small & Bhattacharya (2019), "Sensitivity analysis for inverse
+//! probability weighting estimators via the percentile bootstrap", JRSS B 81 (section
+//! numbers below from memory).
+//!
 //! The marginal sensitivity model (Tan 2006; Zhao, Small & Bhattacharya 2019, section 3):
 //! for Λ ≥ 1, the true odds of taking part may differ from the fitted odds by a factor
 //! between 1/Λ and Λ. With fitted propensity e, the true inverse probability 1/π then lies
@@ -40,7 +45,7 @@ pub enum BoundsError {
 /// linear programme, and they are attained at a vertex of the box split at a threshold in
 /// the order of y: the maximum puts w_i = b_i on the units above the threshold and
 /// w_i = a_i below it, the minimum the reverse (Zhao, Small & Bhattacharya 2019, section
-/// 4.2, Proposition 2). Sorting y once and scanning every threshold with prefix sums gives
+/// 4). Sorting y once and scanning every threshold with prefix sums gives
 /// both extremes exactly in O(n log n).
 pub fn weighted_mean_bounds(y: &[f64], a: &[f64], b: &[f64]) -> Result<(f64, f64), BoundsError> {
     let n = y.len();
@@ -96,7 +101,7 @@ pub fn weighted_mean_bounds(y: &[f64], a: &[f64], b: &[f64]) -> Result<(f64, f64
 }
 
 /// The marginal sensitivity model's box for one participant's inverse-probability weight
-/// (Zhao, Small & Bhattacharya 2019, eq. 4-5): with fitted propensity e and Λ ≥ 1,
+/// (Zhao, Small & Bhattacharya 2019, section 3): with fitted propensity e and Λ ≥ 1,
 ///
 ///   1 + (1/e − 1)/Λ  ≤  w  ≤  1 + (1/e − 1)·Λ.
 ///
@@ -162,9 +167,8 @@ pub const LAMBDA_SEARCH_LIMIT: f64 = 1e4;
 /// The breakdown Λ: the smallest Λ ≥ 1 at which the bounds of [`msm_bounds`] reach
 /// `reference` (lower ≤ reference ≤ upper). The bounds at Λ widen monotonically with Λ
 /// (the boxes are nested), so the set of such Λ is an interval [Λ*, ∞) and Λ* is found by
-/// doubling and then bisection on log Λ to a relative tolerance of 1e-10 (Zhao, Small &
-/// Bhattacharya 2019, section 5, use the same monotonicity to report the Λ at which a
-/// conclusion is overturned). `Ok(None)`: not reached by [`LAMBDA_SEARCH_LIMIT`] (the
+/// doubling and then bisection on log Λ to a relative tolerance of 1e-10. Zhao, Small &
+/// Bhattacharya (2019) report the Λ at which a conclusion is overturned the same way. `Ok(None)`: not reached by [`LAMBDA_SEARCH_LIMIT`] (the
 /// reference lies outside every country's value, or beyond what weights can reach).
 pub fn breakdown_lambda(
     y: &[f64],
@@ -219,7 +223,7 @@ pub struct BootstrapIntervals {
 }
 
 /// The percentile bootstrap of the sensitivity bounds (Zhao, Small & Bhattacharya 2019,
-/// section 4.3, Theorem 1): resample the n units with replacement B times, recompute the
+/// section 4): resample the n units with replacement B times, recompute the
 /// bounds [L*_b(Λ), U*_b(Λ)] on each resample (the caller refits the propensities), and
 /// report [Q_{α/2}(L*), Q_{1−α/2}(U*)], which covers the partially identified set of
 /// values at Λ with probability at least 1 − α asymptotically. Quantiles by Hyndman & Fan
