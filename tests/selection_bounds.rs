@@ -270,6 +270,17 @@ fn the_bootstrap_repeats_with_its_seed_and_agrees_with_numpy() {
         assert!(ours_low <= a.rows[j].lower && ours_high >= a.rows[j].upper);
         assert_eq!(a.rows[j].interval_low, boot.low[j]);
     }
+    // The grid's first Λ whose interval reaches the unweighted mean, and its sentence.
+    let first = (0..grid.len()).find(|&j| {
+        let r = a.reference_value;
+        boot.low[j].unwrap() <= r && r <= boot.high[j].unwrap()
+    });
+    assert_eq!(a.breakdown_with_sampling, first.map(|j| grid[j]));
+    assert!(
+        a.conclusion.contains("Allowing for sampling error"),
+        "{}",
+        a.conclusion
+    );
     // Another seed gives other replicates.
     let other = Settings {
         seed: s.seed + 1,

@@ -106,7 +106,10 @@ pub struct SelectionBounds {
     pub rows: Vec<BoundRow>,
     /// The smallest Λ at which the bounds reach the reference (null: not by Λ = 10000).
     pub breakdown: Option<f64>,
-    /// The breakdown in one sentence.
+    /// The smallest Λ of the grid whose bootstrap interval reaches the reference (null:
+    /// none does, or no bootstrap).
+    pub breakdown_with_sampling: Option<f64>,
+    /// The breakdown in one sentence (and one on sampling error with a bootstrap).
     pub conclusion: String,
     pub bootstrap: Option<BootstrapIntervals>,
     pub notes: Vec<String>,
@@ -425,13 +428,39 @@ pub fn selection_bounds(
             interval_high: bootstrap.as_ref().and_then(|b| b.high[j]),
         })
         .collect();
-    let conclusion = conclusion(
+    let breakdown_with_sampling = bootstrap.as_ref().and_then(|b| {
+        bs.lambdas
+            .iter()
+            .enumerate()
+            .filter(|(j, _)| {
+                matches!((b.low[*j], b.high[*j]), (Some(l), Some(h)) if l <= reference_value && reference_value <= h)
+            })
+            .map(|(_, &l)| l)
+            .reduce(f64::min)
+    });
+    let mut conclusion = conclusion(
         &bs.outcome,
         weighted_mean,
         reference_value,
         &reference_label,
         breakdown,
     );
+    if let Some(b) = &bootstrap {
+        let level = format!("{:.0}%", 100.0 * b.level);
+        conclusion.push(' ');
+        conclusion.push_str(&match breakdown_with_sampling {
+            Some(l) if l <= 1.0 => format!(
+                "Allowing for sampling error, though, the {level} bootstrap interval already includes the reference without any unmeasured factor (Λ = 1)."
+            ),
+            Some(l) => format!(
+                "Allowing for sampling error, the {level} bootstrap interval reaches the reference from Λ = {l} of the values shown."
+            ),
+            None => format!(
+                "Allowing for sampling error, no {level} bootstrap interval of the values shown (up to Λ = {}) reaches the reference.",
+                bs.lambdas.iter().copied().fold(f64::NAN, f64::max)
+            ),
+        });
+    }
     let mut notes = vec![
         "Λ is an odds ratio on taking part, not on the outcome: Λ = 2 lets a factor the indicators do not measure double or halve a country's odds of taking part, given its indicators. The bounds are the worst case over every way that factor could be tied to the outcome.".to_string(),
         format!(
@@ -476,6 +505,7 @@ pub fn selection_bounds(
         reference_label,
         rows,
         breakdown,
+        breakdown_with_sampling,
         conclusion,
         bootstrap,
         notes,
