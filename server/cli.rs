@@ -253,12 +253,42 @@ fn problems_text(problems: &[crate::project::Problem], path: &Path) -> String {
 }
 
 /// `gapwise fit`: the participation model, the weights and the balance they achieve.
-pub fn fit(source: &UniverseSource, mut settings: Settings, json: bool) -> i32 {
+/// `outcome`: a column and the Λ values of its sensitivity bounds (`--outcome`,
+/// `--sensitivity`).
+pub fn fit(
+    source: &UniverseSource,
+    mut settings: Settings,
+    outcome: Option<(&str, &[f64])>,
+    json: bool,
+) -> i32 {
     let view = match load_universe(source, &mut settings) {
         Ok(v) => v,
         Err(message) => {
             eprintln!("{message}");
             return 1;
+        }
+    };
+    let summary = match outcome {
+        None => None,
+        Some((column, lambdas)) => {
+            let project = if source.path.is_dir() {
+                Project::load(&source.path).ok()
+            } else {
+                None
+            };
+            match crate::analysis::selection_bounds::outcome_summary(
+                project.as_ref(),
+                &view,
+                &settings,
+                column,
+                lambdas,
+            ) {
+                Ok(s) => Some(s),
+                Err(message) => {
+                    eprintln!("--outcome {column}: {message}");
+                    return 1;
+                }
+            }
         }
     };
     match participation::fit(&view, &settings) {
@@ -267,9 +297,39 @@ pub fn fit(source: &UniverseSource, mut settings: Settings, json: bool) -> i32 {
                 report.wave = None;
             }
             if json {
-                emit_json(&report);
+                #[derive(serde::Serialize)]
+                struct WithOutcome<'a> {
+                    #[serde(flatten)]
+                    report: &'a FitReport,
+                    #[serde(skip_serializing_if = "Option::is_none")]
+                    outcome: Option<&'a crate::analysis::selection_bounds::OutcomeSummary>,
+                }
+                emit_json(&WithOutcome {
+                    report: &report,
+                    outcome: summary.as_ref(),
+                });
             } else {
-                emit(&fit_text(&report));
+                let mut text = fit_text(&report);
+                if let Some(s) = &summary {
+                    let _ = writeln!(
+                        text,
+                        "\n{}: inverse-probability mean {:.4} ({} model, untrimmed)",
+                        s.column,
+                        s.weighted_mean,
+                        settings.model.as_str()
+                    );
+                    for b in &s.bounds {
+                        let _ = writeln!(
+                            text,
+                            "  Λ = {:<6} bounds {:.4} to {:.4}",
+                            b.lambda, b.lower, b.upper
+                        );
+                    }
+                    if !s.bounds.is_empty() {
+                        let _ = writeln!(text, "  (Λ: an odds ratio on taking part, not on the outcome; the bounds hold for inverse-probability-type weights)");
+                    }
+                }
+                emit(&text);
             }
             0
         }

@@ -59,6 +59,13 @@ enum Command {
         universe: UniverseArgs,
         #[command(flatten)]
         analysis: AnalysisArgs,
+        /// A country indicator or survey variable whose inverse-probability mean to report.
+        #[arg(long)]
+        outcome: Option<String>,
+        /// Values of Λ (at least 1) for the outcome's bounds under an unmeasured cause of
+        /// taking part, comma-separated (needs --outcome).
+        #[arg(long, value_delimiter = ',', requires = "outcome")]
+        sensitivity: Vec<f64>,
         /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
@@ -679,6 +686,8 @@ fn main() -> ExitCode {
             source,
             universe,
             analysis,
+            outcome,
+            sensitivity,
             json,
         }) => match analysis.settings() {
             Ok(settings) => cli::fit(
@@ -690,6 +699,7 @@ fn main() -> ExitCode {
                     extra: Default::default(),
                 },
                 settings,
+                outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
                 json,
             ),
             Err(message) => {

@@ -16,6 +16,7 @@ pub mod participation;
 pub mod planner;
 pub mod projection;
 pub mod report;
+pub mod selection_bounds;
 pub mod sensitivity;
 pub mod settings;
 

@@ -74,6 +74,8 @@ pub struct Sensitivity {
     pub incomplete: Option<participation::IncompleteCountries>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub missing_caveat: Option<String>,
+    /// The participation model's own uncertainty (filled by [`with_model_uncertainty`]).
+    pub model_uncertainty: Option<ModelUncertainty>,
 }
 
 pub fn sensitivity(view: &WaveView, settings: &Settings) -> Result<Sensitivity, AnalysisError> {
@@ -161,5 +163,223 @@ pub fn sensitivity(view: &WaveView, settings: &Settings) -> Result<Sensitivity, 
         grid,
         incomplete: participation::incomplete_countries(&design),
         missing_caveat: participation::missing_caveat(settings),
+        model_uncertainty: None,
     })
+}
+
+/// The sensitivity comparison with the participation model's own uncertainty, the pooled
+/// mean taken of the project's default survey outcome.
+pub fn with_model_uncertainty(
+    project: &crate::project::Project,
+    view: &WaveView,
+    settings: &Settings,
+) -> Result<Sensitivity, AnalysisError> {
+    let mut s = sensitivity(view, settings)?;
+    s.model_uncertainty = Some(model_uncertainty(
+        Some(project),
+        view,
+        settings,
+        project.manifest.default_outcome(),
+        MODEL_DRAWS,
+    )?);
+    Ok(s)
+}
+
+/// Per coefficient draw: effective number, largest weight's share, pooled mean.
+type DrawSummary = (f64, f64, Option<f64>);
+
+/// Draws of the participation model's coefficients shown on the sensitivity page.
+pub const MODEL_DRAWS: usize = 500;
+
+/// The spread of one quantity across the coefficient draws.
+#[derive(Debug, Clone, Serialize)]
+pub struct Spread {
+    /// At the estimated coefficients.
+    pub at_estimate: f64,
+    pub mean: f64,
+    pub sd: f64,
+    /// 2.5%, 50% and 97.5% quantiles over the draws (Hyndman & Fan 1996, definition 7).
+    pub low: f64,
+    pub median: f64,
+    pub high: f64,
+}
+
+impl Spread {
+    fn of(at_estimate: f64, values: &[f64]) -> Option<Spread> {
+        let q = |p| crate::stats::describe::quantile(values, p);
+        let mean = crate::stats::describe::mean(values)?;
+        let sd = (values.iter().map(|v| (v - mean).powi(2)).sum::<f64>()
+            / (values.len().max(2) - 1) as f64)
+            .sqrt();
+        Some(Spread {
+            at_estimate,
+            mean,
+            sd,
+            low: q(0.025)?,
+            median: q(0.5)?,
+            high: q(0.975)?,
+        })
+    }
+}
+
+/// How far the weights and the pooled mean move across the participation model's
+/// sampling distribution.
+#[derive(Debug, Clone, Serialize)]
+pub struct ModelUncertainty {
+    pub model: &'static str,
+    /// The weights recomputed per draw: inverse-probability weights (with the settings'
+    /// trimming).
+    pub weighting: &'static str,
+    pub draws: usize,
+    pub seed: u64,
+    /// Draws whose weights could not be computed (left out).
+    pub failed: usize,
+    /// Why nothing was drawn (e.g. a covariance that cannot be estimated).
+    pub not_estimable: Option<String>,
+    pub effective_n: Option<Spread>,
+    pub max_weight_share: Option<Spread>,
+    /// The survey outcome whose pooled mean is shown (the project's default outcome).
+    pub outcome: Option<String>,
+    pub pooled_mean: Option<Spread>,
+    /// Why there is no pooled mean (no microdata, no respondents).
+    pub pooled_note: Option<String>,
+    pub notes: Vec<String>,
+}
+
+/// Draws the participation model's coefficients from their estimated sampling
+/// distribution, β* ~ N(β̂, V̂) with V̂ the inverse information at the estimate (the usual
+/// large-sample approximation; King, Tomz & Wittenberg 2000 simulate quantities of
+/// interest this way), by β* = β̂ + L u with V̂ = L L' (Cholesky) and u standard normal from
+/// `Rng::stream(seed, draw)`. Per draw: the propensities, the inverse-probability weights
+/// (trimmed as the settings say), the effective number of countries (Σw)²/Σw² (Kish 1965),
+/// the largest weight's share, and the pooled mean Σ w_c ȳ_c / Σ w_c of the countries'
+/// design-weighted means ȳ_c of `outcome`. Columns the fit left out as aliased stay at 0
+/// (they do not affect predictions); a fit with undetermined directions (separation) or a
+/// covariance that is not positive definite is not estimable and nothing is drawn.
+pub fn model_uncertainty(
+    project: Option<&crate::project::Project>,
+    view: &WaveView,
+    settings: &Settings,
+    outcome: Option<&str>,
+    draws: usize,
+) -> Result<ModelUncertainty, AnalysisError> {
+    use crate::stats::{balance, binary, linalg, random::Rng, weights};
+    let design = design::build(view, settings)?;
+    let z = design.standardised();
+    let y = &design.participated;
+    let fit = binary::fit(settings.model, z.view(), y)?;
+    let mut out = ModelUncertainty {
+        model: settings.model.as_str(),
+        weighting: WeightingKind::InverseProbability.as_str(),
+        draws,
+        seed: settings.seed,
+        failed: 0,
+        not_estimable: None,
+        effective_n: None,
+        max_weight_share: None,
+        outcome: outcome.map(str::to_string),
+        pooled_mean: None,
+        pooled_note: None,
+        notes: Vec::new(),
+    };
+    if settings.weighting != WeightingKind::InverseProbability {
+        out.notes.push(format!(
+            "The chosen weighting ({}) does not take the participation model's coefficients as given, so its weights do not move with them; shown are the inverse-probability weights of the {} model, which do.",
+            settings.weighting.label(),
+            settings.model.as_str()
+        ));
+    }
+    let values: Option<Vec<Option<f64>>> = match outcome {
+        None => {
+            out.pooled_note = Some("the project has no survey outcome (microdata)".to_string());
+            None
+        }
+        Some(o) => match super::selection_bounds::country_values(project, view, &design, o) {
+            Ok((v, _)) if v.iter().any(Option::is_some) => Some(v),
+            Ok(_) => {
+                out.pooled_note =
+                    Some(format!("no participating country has respondents with {o}"));
+                None
+            }
+            Err(e) => {
+                out.pooled_note = Some(e);
+                None
+            }
+        },
+    };
+    let summarise = |propensity: &[f64]| -> Option<DrawSummary> {
+        let mut w = weights::inverse_probability(propensity, y).ok()?;
+        if let Some(q) = settings.trim {
+            w = weights::trim(&w, y, q);
+        }
+        let pw: Vec<f64> = w
+            .iter()
+            .zip(y)
+            .filter(|(_, &t)| t)
+            .map(|(&v, _)| v)
+            .collect();
+        let pooled = values.as_ref().map(|v| {
+            let (mut num, mut den) = (0.0, 0.0);
+            for (wi, vi) in w.iter().zip(v) {
+                if let Some(vi) = vi {
+                    num += wi * vi;
+                    den += wi;
+                }
+            }
+            num / den
+        });
+        let ok = pw.iter().all(|v| v.is_finite()) && pooled.is_none_or(f64::is_finite);
+        ok.then(|| (balance::effective_n(&pw), balance::max_share(&pw), pooled))
+    };
+    let at = summarise(&binary::predict(settings.model, z.view(), &fit.coef));
+    let kept: Vec<usize> = (0..fit.coef.len())
+        .filter(|&j| fit.cov[[j, j]].is_finite())
+        .collect();
+    let cholesky = if !fit.weak_directions.is_empty() || !fit.converged {
+        Err("the participation model did not converge to a finite estimate (separation or directions the data do not determine), so its coefficients' covariance is not estimable".to_string())
+    } else {
+        let sub = fit.cov.select(ndarray::Axis(0), &kept);
+        let sub = sub.select(ndarray::Axis(1), &kept);
+        linalg::cholesky(sub.view()).map_err(|_| {
+            "the coefficients' covariance is not positive definite, so it is not estimable"
+                .to_string()
+        })
+    };
+    let (l, at) = match (cholesky, at) {
+        (Err(e), _) => {
+            out.not_estimable = Some(e);
+            return Ok(out);
+        }
+        (_, None) => {
+            out.not_estimable = Some("the weights at the estimate are not finite".to_string());
+            return Ok(out);
+        }
+        (Ok(l), Some(at)) => (l, at),
+    };
+    use rayon::prelude::*;
+    let results: Vec<Option<DrawSummary>> = (0..draws)
+        .into_par_iter()
+        .map(|d| {
+            let mut rng = Rng::stream(settings.seed, d as u64);
+            let u = ndarray::Array1::from_iter((0..kept.len()).map(|_| rng.normal()));
+            let shift = l.dot(&u);
+            let mut coef = fit.coef.clone();
+            for (k, &j) in kept.iter().enumerate() {
+                coef[j] += shift[k];
+            }
+            summarise(&binary::predict(settings.model, z.view(), &coef))
+        })
+        .collect();
+    let ok: Vec<DrawSummary> = results.iter().flatten().copied().collect();
+    out.failed = draws - ok.len();
+    let column =
+        |f: fn(&DrawSummary) -> Option<f64>| -> Vec<f64> { ok.iter().filter_map(f).collect() };
+    out.effective_n = Spread::of(at.0, &column(|r| Some(r.0)));
+    out.max_weight_share = Spread::of(at.1, &column(|r| Some(r.1)));
+    out.pooled_mean = at.2.and_then(|m| Spread::of(m, &column(|r| r.2)));
+    out.notes.push(format!(
+        "Coefficients drawn {draws} times (seed {}) from the normal distribution at the estimate with its estimated covariance; the spread shows how far the results move across the estimates the data allow, with the indicators and the model held fixed. It does not cover an unmeasured cause of taking part (see the impact page's sensitivity bounds).",
+        settings.seed
+    ));
+    Ok(out)
 }

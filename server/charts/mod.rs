@@ -7,6 +7,7 @@ pub mod impact;
 pub mod map;
 pub mod model;
 pub mod plan;
+pub mod selection_bounds;
 pub mod sensitivity;
 
 use plotters::coord::types::RangedCoordf64;

@@ -10,4 +10,5 @@ pub mod normal;
 pub mod pca;
 pub mod random;
 pub mod regression;
+pub mod selection_bounds;
 pub mod weights;

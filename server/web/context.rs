@@ -41,9 +41,15 @@ pub const IMPACT_KEYS: [&str; 7] = [
 /// Query keys that belong to the meeting report (the waves it covers).
 pub const REPORT_KEYS: [&str; 1] = ["waves"];
 
+/// Query keys of the impact page's sensitivity bounds (web::impact_bounds).
+pub const BOUNDS_KEYS: [&str; 2] = ["reference", "bounds_bootstrap"];
+
 /// Whether `key` belongs to a page's own settings rather than to the analysis settings.
 pub fn own_key(key: &str) -> bool {
-    PLAN_KEYS.contains(&key) || IMPACT_KEYS.contains(&key) || REPORT_KEYS.contains(&key)
+    PLAN_KEYS.contains(&key)
+        || IMPACT_KEYS.contains(&key)
+        || REPORT_KEYS.contains(&key)
+        || BOUNDS_KEYS.contains(&key)
 }
 
 /// Folds the form's repeated `covariate` / `factor` checkboxes into the settings' lists.

@@ -44,6 +44,8 @@ struct ImpactPage<'a> {
     cautions: &'a [Caution],
     /// Per term, one cell per variant.
     table: Vec<(String, Vec<Cell>)>,
+    /// Sensitivity to an unmeasured cause of taking part (web::impact_bounds).
+    bounds: super::impact_bounds::Section,
 }
 
 impl ImpactPage<'_> {
@@ -237,6 +239,7 @@ pub async fn page(
 ) -> AppResult<Html<String>> {
     let (form, r, incomplete) = off_thread_heavy(&state, &query, compute).await?;
     let form = form.presenting(&query);
+    let bounds = super::impact_bounds::section(&state, &query).await;
     let project = state.project();
     let variables = project
         .manifest
@@ -322,6 +325,7 @@ pub async fn page(
         f: Fmt,
         r: &r,
         cautions: &STANDING,
+        bounds,
     }
     .render()?;
     Ok(Html(html))

@@ -8,6 +8,7 @@ pub mod error;
 pub mod format;
 pub mod guard;
 pub mod impact;
+pub mod impact_bounds;
 pub mod model;
 pub mod overview;
 pub mod plan;
@@ -84,6 +85,8 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/impact", get(impact::page))
         .route("/api/impact", get(impact::json))
         .route("/impact/{item}", get(impact::artifact))
+        .route("/api/impact/bounds", get(impact_bounds::json))
+        .route("/impact/bounds/{item}", get(impact_bounds::artifact))
         // Projection to the whole eligible universe
         .route("/projection", get(projection::page))
         .route("/api/projection", get(projection::json))

@@ -13,7 +13,7 @@ use super::format::Fmt;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
-use crate::analysis::sensitivity::{sensitivity, Sensitivity};
+use crate::analysis::sensitivity::{with_model_uncertainty, Sensitivity};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 
@@ -26,6 +26,7 @@ struct SensitivityPage<'a> {
     f: Fmt,
     s: &'a Sensitivity,
     chart: String,
+    draws_chart: String,
     cautions: &'a [Caution],
 }
 
@@ -35,7 +36,8 @@ fn compute(
 ) -> AppResult<(SettingsForm, Sensitivity)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/sensitivity", &project, &settings);
-    let s = sensitivity(&view, &settings).map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let s = with_model_uncertainty(&project, &view, &settings)
+        .map_err(|e| AppError::BadRequest(e.to_string()))?;
     Ok((form, s))
 }
 
@@ -51,6 +53,7 @@ pub async fn page(
         form,
         f: Fmt,
         chart: charts::sensitivity::trimming(&s),
+        draws_chart: charts::sensitivity::model_draws(&s),
         s: &s,
         cautions: &STANDING,
     }
@@ -76,6 +79,59 @@ pub async fn artifact(
             "trimming.svg",
             charts::sensitivity::trimming(&s),
         )),
+        "model-draws.svg" => Ok(svg_response(
+            "model-draws.svg",
+            charts::sensitivity::model_draws(&s),
+        )),
+        "model-draws.csv" => {
+            let m = s.model_uncertainty.as_ref();
+            let rows = m
+                .map(|m| {
+                    [
+                        ("effective_n", &m.effective_n),
+                        ("max_weight_share", &m.max_weight_share),
+                        ("pooled_mean", &m.pooled_mean),
+                    ]
+                    .into_iter()
+                    .map(|(name, spread)| {
+                        let get = |f: fn(&crate::analysis::sensitivity::Spread) -> f64| {
+                            cell(spread.as_ref().map(f))
+                        };
+                        vec![
+                            name.to_string(),
+                            get(|x| x.at_estimate),
+                            get(|x| x.mean),
+                            get(|x| x.sd),
+                            get(|x| x.low),
+                            get(|x| x.median),
+                            get(|x| x.high),
+                            m.draws.to_string(),
+                            m.failed.to_string(),
+                            m.seed.to_string(),
+                        ]
+                    })
+                    .collect::<Vec<_>>()
+                })
+                .unwrap_or_default();
+            Ok(csv_response(
+                "model-draws.csv",
+                csv_text(
+                    &[
+                        "quantity",
+                        "at_estimate",
+                        "mean",
+                        "sd",
+                        "q025",
+                        "median",
+                        "q975",
+                        "draws",
+                        "failed_draws",
+                        "seed",
+                    ],
+                    rows,
+                ),
+            ))
+        }
         "table.csv" => {
             let trims = s.trims.iter().map(|t| {
                 vec![
@@ -122,7 +178,7 @@ pub async fn artifact(
             ))
         }
         _ => Err(AppError::NotFound(format!(
-            "no {item} here; try trimming.svg or table.csv"
+            "no {item} here; try trimming.svg, table.csv, model-draws.svg or model-draws.csv"
         ))),
     }
 }
