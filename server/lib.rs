@@ -7,6 +7,7 @@
 
 pub mod analysis;
 pub mod charts;
+pub mod civil_time;
 pub mod cli;
 pub mod csv_out;
 pub mod demo;

@@ -114,3 +114,31 @@ fn page_errors_show_in_the_layout_while_twins_and_downloads_stay_plain_text() {
     let missing = http(addr, "GET", "/no-such-page", &[]);
     assert_eq!(missing.status, 404);
 }
+
+#[test]
+fn every_page_title_is_plain_text() {
+    // Common practice: a <title> holds text only; markup there means a template's blocks
+    // were crossed (the browser tab would show raw HTML).
+    let addr = start_server(&demo_dir());
+    for page in [
+        "/",
+        "/coverage",
+        "/model",
+        "/balance",
+        "/plan?replicates=0",
+        "/impact?replicates=0",
+        "/projection",
+        "/sensitivity",
+    ] {
+        let r = http(addr, "GET", page, &[]);
+        assert_eq!(r.status, 200, "{page}");
+        let title = r
+            .body
+            .split("<title>")
+            .nth(1)
+            .and_then(|t| t.split("</title>").next())
+            .unwrap_or("");
+        assert!(!title.is_empty(), "{page} has a title");
+        assert!(!title.contains('<'), "{page}: {title}");
+    }
+}
