@@ -1030,3 +1030,53 @@ fn a_form_post_from_our_own_page_with_a_null_origin_is_accepted() {
         401
     );
 }
+
+/// A Parquet frame gets the same column guesses as the same frame in CSV (numbers, codes,
+/// flags, categories), read from its values; booleans count as flags and whole floats as
+/// whole numbers, as their CSV text would (our own rule).
+#[test]
+fn parquet_columns_get_the_same_guesses_as_csv() {
+    use gapwise::web::projects::{profile_columns, ColumnGuess};
+    use polars::prelude::*;
+    let dir = TempDir::new("parquet-guess");
+    dir.write("frame.csv", FRAME);
+    let csv = profile_columns(&dir.path().join("frame.csv"));
+    let mut df = CsvReadOptions::default()
+        .try_into_reader_with_file_path(Some(dir.path().join("frame.csv")))
+        .unwrap()
+        .finish()
+        .unwrap();
+    let n = df.height();
+    df.with_column(Column::new(
+        "member".into(),
+        (0..n).map(|i| i % 2 == 0).collect::<Vec<bool>>(),
+    ))
+    .unwrap();
+    df.with_column(Column::new(
+        "year".into(),
+        (0..n).map(|i| 2000.0 + i as f64).collect::<Vec<f64>>(),
+    ))
+    .unwrap();
+    let path = dir.path().join("frame.parquet");
+    ParquetWriter::new(std::fs::File::create(&path).unwrap())
+        .finish(&mut df)
+        .unwrap();
+    let parquet = profile_columns(&path);
+    assert_eq!(parquet.len(), csv.len() + 2);
+    for (c, p) in csv.iter().zip(&parquet) {
+        assert_eq!(c.name, p.name);
+        assert_eq!(c.kind, p.kind, "{}", c.name);
+        if matches!(c.kind, ColumnGuess::Code | ColumnGuess::Category) {
+            assert_eq!(c.levels, p.levels, "{}", c.name);
+        }
+    }
+    let kind = |name: &str| parquet.iter().find(|c| c.name == name).unwrap().kind;
+    assert_eq!(kind("iso"), ColumnGuess::Code);
+    assert_eq!(kind("took_part"), ColumnGuess::Flag);
+    assert_eq!(kind("wave"), ColumnGuess::Whole);
+    assert_eq!(kind("gdp"), ColumnGuess::Number);
+    assert_eq!(kind("region"), ColumnGuess::Category);
+    assert_eq!(kind("member"), ColumnGuess::Flag);
+    assert_eq!(kind("year"), ColumnGuess::Whole);
+    assert!(parquet.iter().all(|c| c.kind != ColumnGuess::Unknown));
+}

@@ -39,11 +39,11 @@ pub struct Design {
     pub names: Vec<String>,
     /// Index into the wave view of each analysed unit.
     pub units: Vec<usize>,
-    /// Countries left out for a missing value: "CODE (indicator)".
+    /// Countries left out for a missing value: "CODE (indicator labels)".
     pub dropped: Vec<String>,
     /// Whether each country in `dropped` took part.
     pub dropped_took_part: Vec<bool>,
-    /// Indicators filled with the median: (indicator, count, median).
+    /// Indicators filled with the median: (indicator's readable label, count, median).
     pub filled: Vec<(String, usize, f64)>,
     pub balance: Vec<BalanceColumn>,
     pub margins: Vec<Margin>,
@@ -113,12 +113,12 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
         let missing: Vec<&str> = covariates
             .iter()
             .filter(|&&c| view.numeric[c].values[i].is_none())
-            .map(|&c| view.numeric[c].column.as_str())
+            .map(|&c| view.numeric[c].label.as_str())
             .chain(
                 factors
                     .iter()
                     .filter(|&&f| view.categorical[f].values[i].is_none())
-                    .map(|&f| view.categorical[f].column.as_str()),
+                    .map(|&f| view.categorical[f].label.as_str()),
             )
             .collect();
         if missing.is_empty() || keep_incomplete {
@@ -144,9 +144,10 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
             let median = describe::median(&present).ok_or_else(|| {
                 DesignError(format!("'{}' has no values in this wave", ind.column))
             })?;
-            filled.push((ind.column.clone(), n_missing, median));
+            filled.push((ind.label.clone(), n_missing, median));
             missing_dummies.push((
                 format!("{} missing", ind.column),
+                format!("{} missing (share of countries)", ind.label),
                 raw.iter()
                     .map(|v| f64::from(u8::from(v.is_none())))
                     .collect::<Vec<_>>(),
@@ -202,11 +203,11 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
             codes: remap,
         });
     }
-    for (name, values) in missing_dummies {
+    for (name, label, values) in missing_dummies {
         if settings.missing == MissingRule::FillAndBalance {
             balance.push(BalanceColumn {
                 name: name.clone(),
-                label: format!("{name} (share of countries)"),
+                label,
                 values: values.clone(),
                 is_level: true,
             });

@@ -83,6 +83,11 @@ pub struct ImpactReport {
     pub settings: Settings,
     pub impact: ImpactSettings,
     pub terms: Vec<String>,
+    /// Per term, the readable label pages and charts show (the manifest's label, else one
+    /// derived from the column name; never the raw column name).
+    pub term_labels: Vec<String>,
+    /// The outcome's readable label.
+    pub outcome_label: String,
     pub n_respondents: usize,
     pub n_countries: usize,
     /// Degrees of freedom of the t reference for p-values and intervals: countries - 1.
@@ -391,11 +396,21 @@ pub fn impact(
     }
     let mut all_terms = terms.clone();
     all_terms.push("inverse Mills ratio".to_string());
+    let term_labels = std::iter::once("intercept".to_string())
+        .chain(
+            imp.predictors
+                .iter()
+                .map(|p| project.manifest.label(p).into_owned()),
+        )
+        .chain(std::iter::once("inverse Mills ratio".to_string()))
+        .collect();
     Ok(ImpactReport {
         wave: view.wave,
         settings: settings.clone(),
         impact: imp.clone(),
         terms: all_terms,
+        term_labels,
+        outcome_label: project.manifest.label(&imp.outcome).into_owned(),
         n_respondents: rows.len(),
         n_countries: cluster_ids.len(),
         df,

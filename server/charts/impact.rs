@@ -94,10 +94,14 @@ pub fn coefficients(r: &ImpactReport) -> String {
                     .max((v.coef[j] + 1.96 * v.se[j]).abs());
             }
         }
-        // Terms are column names: shown with the derived label, never raw.
+        // Terms are column names: shown with their readable label, never raw.
         let labels: Vec<String> = terms
             .iter()
-            .map(|&j| crate::project::manifest::readable_label(&r.terms[j]))
+            .map(|&j| {
+                r.term_labels.get(j).cloned().unwrap_or_else(|| {
+                    crate::project::manifest::readable_label(&r.terms[j])
+                })
+            })
             .collect();
         let keys: Vec<Key> = r
             .variants

@@ -191,6 +191,57 @@ pub fn column_names(path: &Path) -> Option<Vec<String>> {
     }
 }
 
+/// The first `rows` rows of a Parquet file, each column as the text of its non-missing
+/// values (numbers as Rust writes them, so that 1.0 reads "1"; booleans as 0 and 1), for
+/// guessing what a column holds; `None` when the file cannot be read.
+pub fn parquet_sample(path: &Path, rows: usize) -> Option<Vec<(String, Vec<String>)>> {
+    let file = std::fs::File::open(path).ok()?;
+    let frame = ParquetReader::new(file)
+        .with_slice(Some((0, rows)))
+        .finish()
+        .ok()?;
+    let cells = |c: &Column| -> Vec<String> {
+        let dtype = c.dtype();
+        if dtype.is_primitive_numeric() || dtype.is_bool() {
+            let Ok(cast) = c.cast(&DataType::Float64) else {
+                return Vec::new();
+            };
+            cast.f64().map_or_else(
+                |_| Vec::new(),
+                |ca| {
+                    ca.iter()
+                        .flatten()
+                        .filter(|v| v.is_finite())
+                        .map(|v| v.to_string())
+                        .collect()
+                },
+            )
+        } else {
+            let Ok(cast) = c.cast(&DataType::String) else {
+                return Vec::new();
+            };
+            cast.str().map_or_else(
+                |_| Vec::new(),
+                |ca| {
+                    ca.iter()
+                        .flatten()
+                        .map(str::trim)
+                        .filter(|v| !v.is_empty() && !MISSING_TOKENS.contains(v))
+                        .map(str::to_string)
+                        .collect()
+                },
+            )
+        }
+    };
+    Some(
+        frame
+            .columns()
+            .iter()
+            .map(|c| (c.name().to_string(), cells(c)))
+            .collect(),
+    )
+}
+
 /// Finds `stem.csv` or `stem.parquet` in `dir`. `Ok(None)` when neither exists.
 pub fn find_data_file(dir: &Path, stem: &str) -> Result<Option<std::path::PathBuf>, Problem> {
     let csv = dir.join(format!("{stem}.csv"));

@@ -69,7 +69,7 @@ pub(crate) struct Cell {
 /// flagged where the sign or the 5% verdict differs from the unweighted model.
 pub(crate) fn side_by_side(r: &ImpactReport) -> Vec<(String, Vec<Cell>)> {
     let f = Fmt;
-    r.terms
+    r.term_labels
         .iter()
         .enumerate()
         .map(|(j, t)| {
@@ -255,7 +255,7 @@ pub async fn page(
             .iter()
             .map(|v| Choice {
                 value: v.clone(),
-                label: v.clone(),
+                label: project.manifest.label(v).into_owned(),
                 selected: *v == r.impact.outcome,
             })
             .collect(),
@@ -264,7 +264,7 @@ pub async fn page(
             .filter(|v| **v != r.impact.outcome)
             .map(|v| Choice {
                 value: v.clone(),
-                label: v.clone(),
+                label: project.manifest.label(v).into_owned(),
                 selected: r.impact.predictors.contains(v),
             })
             .chain(indicators.iter().map(|c| Choice {

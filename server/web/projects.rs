@@ -67,7 +67,7 @@ pub enum ColumnGuess {
     Category,
     /// Other text (names).
     Text,
-    /// Not read (a Parquet file, or an empty column).
+    /// Not read (an unreadable file, or an empty column).
     Unknown,
 }
 
@@ -429,9 +429,20 @@ fn columns_of(dir: &std::path::Path, stem: &str) -> Vec<String> {
 /// Rows read to guess column types (enough for any frame's flags and codes).
 const PROFILE_ROWS: usize = 20_000;
 
-/// What each column of a staged CSV looks like, from its first rows (a Parquet file's
-/// columns are listed as not read).
+/// What each column of a staged CSV or Parquet file looks like, from its first rows
+/// (a Parquet file's values as text, so that both get the same guesses).
 pub fn profile_columns(path: &std::path::Path) -> Vec<ColumnInfo> {
+    let is_parquet = path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("parquet"));
+    if is_parquet {
+        if let Some(columns) = crate::project::table::parquet_sample(path, PROFILE_ROWS) {
+            return columns
+                .into_iter()
+                .map(|(name, cells)| column_info(name, cells))
+                .collect();
+        }
+    }
     let names = crate::project::table::column_names(path).unwrap_or_default();
     let unread = |names: Vec<String>| {
         names
@@ -469,26 +480,29 @@ pub fn profile_columns(path: &std::path::Path) -> Vec<ColumnInfo> {
     names
         .into_iter()
         .zip(values)
-        .map(|(name, cells)| {
-            let mut levels: Vec<String> = cells.clone();
-            levels.sort();
-            levels.dedup();
-            let kind = guess_kind(&cells, levels.len());
-            let examples = levels
-                .iter()
-                .take(3)
-                .cloned()
-                .collect::<Vec<_>>()
-                .join(", ");
-            levels.truncate(50);
-            ColumnInfo {
-                name,
-                kind,
-                examples,
-                levels,
-            }
-        })
+        .map(|(name, cells)| column_info(name, cells))
         .collect()
+}
+
+/// A column's guess, examples and levels from its non-missing cells.
+fn column_info(name: String, cells: Vec<String>) -> ColumnInfo {
+    let mut levels: Vec<String> = cells.clone();
+    levels.sort();
+    levels.dedup();
+    let kind = guess_kind(&cells, levels.len());
+    let examples = levels
+        .iter()
+        .take(3)
+        .cloned()
+        .collect::<Vec<_>>()
+        .join(", ");
+    levels.truncate(50);
+    ColumnInfo {
+        name,
+        kind,
+        examples,
+        levels,
+    }
 }
 
 /// The guess for one column from its non-missing cells and number of distinct values.
