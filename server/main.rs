@@ -398,7 +398,7 @@ impl ReportArgs {
             put("predictor", p.clone());
         }
         if let Some(k) = &self.kind {
-            put("family", k.clone());
+            put("kind", k.clone());
         }
         for c in &self.country_indicators {
             put("country_indicator", c.clone());

@@ -27,10 +27,12 @@ pub const PLAN_KEYS: [&str; 8] = [
     "support",
 ];
 
-/// Query keys that belong to the impact view.
-pub const IMPACT_KEYS: [&str; 7] = [
+/// Query keys that belong to the impact view (`kind` is the model: linear or logistic,
+/// as the command line's `--kind`; `family` is read as its older name).
+pub const IMPACT_KEYS: [&str; 8] = [
     "outcome",
     "predictor",
+    "kind",
     "family",
     "shares",
     "population",

@@ -148,10 +148,20 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     } else {
         ticked
     };
-    let kind = match get("family").as_deref() {
+    // `kind` (the command line's --kind); `family`, its older name, is still read. The
+    // last of either wins, as for every other key.
+    let kind_value = query
+        .iter()
+        .rev()
+        .find(|(k, _)| k == "kind" || k == "family")
+        .map(|(_, v)| v.trim().to_string())
+        .filter(|v| !v.is_empty());
+    let kind = match kind_value.as_deref() {
         None => Kind::Linear,
         Some(f) => Kind::parse(f).ok_or_else(|| {
-            AppError::BadRequest(format!("the model must be linear or logistic, not '{f}'"))
+            AppError::BadRequest(format!(
+                "kind (the model) must be linear or logistic, not '{f}'"
+            ))
         })?,
     };
     let shares = match (get("shares").as_deref(), get("population")) {
@@ -218,7 +228,7 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactRe
 pub fn impact_query(imp: &ImpactSettings) -> String {
     let mut q = form_urlencoded::Serializer::new(String::new());
     q.append_pair("outcome", &imp.outcome);
-    q.append_pair("family", imp.kind.as_str());
+    q.append_pair("kind", imp.kind.as_str());
     for p in &imp.predictors {
         q.append_pair("predictor", p);
     }
@@ -426,5 +436,24 @@ mod tests {
             .map(|(k, v)| (k.into_owned(), v.into_owned()))
             .collect();
         assert_eq!(impact_settings(&project, &query).expect("settings"), imp);
+        // The model's key is `kind`, as on the command line; `family` is still read.
+        let written = impact_query(&imp);
+        assert!(written.contains("kind=logistic"), "{written}");
+        assert!(!written.contains("family"), "{written}");
+        let parse = |q: &str| -> PageQuery { form_urlencoded::parse(q.as_bytes()).into_owned().collect() };
+        for q in ["family=logistic", "kind=logistic", "family=linear&kind=logistic"] {
+            assert_eq!(
+                impact_settings(&project, &parse(q)).expect(q).kind,
+                Kind::Logistic,
+                "{q}"
+            );
+        }
+        assert_eq!(
+            impact_settings(&project, &parse("kind=logistic&family=linear")).unwrap().kind,
+            Kind::Linear
+        );
+        let bad = impact_settings(&project, &parse("kind=poisson")).unwrap_err();
+        assert_eq!(bad.status().as_u16(), 400);
+        assert!(bad.to_string().contains("linear or logistic"), "{bad}");
     }
 }

@@ -517,12 +517,18 @@ mod tests {
         for q in [
             "",
             "wave=3&model=probit&weighting=raking&trim=0.9&outcome=left_right&predictor=age&predictor=log_gdp_pc&budget=3&feasibility=model&joiner=XAB&waves=3,4",
-            "missing=median-fill&variances=1&cost_budget=250&objective=largest-smd&waves=all&outcome=turnout&family=logistic&shares=population&population=log_population&bootstrap=0",
+            "missing=median-fill&variances=1&cost_budget=250&objective=largest-smd&waves=all&outcome=turnout&kind=logistic&shares=population&population=log_population&bootstrap=0",
+            // The model's older key is still read.
+            "outcome=turnout&family=logistic&bootstrap=0",
         ] {
             let first = report_settings(&project, &parse(q)).expect(q);
             let again = report_settings(&project, &parse(&report_query(&first))).expect(q);
             assert_eq!(first, again, "{q}");
         }
+        let older = report_settings(&project, &parse("outcome=turnout&family=logistic")).unwrap();
+        let kind = older.impact.as_ref().map(|i| i.kind);
+        assert_eq!(kind, Some(crate::stats::regression::Kind::Logistic));
+        assert!(report_query(&older).contains("kind=logistic"));
         let rs = report_settings(&project, &parse("waves=3,4&outcome=left_right")).unwrap();
         assert_eq!(rs.waves, Waves::These(vec![3, 4]));
         assert!(report_settings(&project, &parse("waves=three")).is_err());
