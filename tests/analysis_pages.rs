@@ -75,6 +75,15 @@ fn every_page_answers_with_tables_charts_and_downloads() {
     assert_eq!(bad.status, 400);
     assert!(bad.body.contains("weighting must be one of"));
     assert_eq!(http(addr, "GET", "/model?wave=17", &[]).status, 404);
+    assert_eq!(http(addr, "GET", "/api/balance?wave=17", &[]).status, 404);
+    // A submitted form with no indicator ticked: well-formed settings that the data cannot
+    // answer (no participation model without indicators) are 422 (RFC 9110), on the page,
+    // its twin and its downloads alike.
+    for route in ["/model", "/api/model", "/balance/table.csv", "/sensitivity"] {
+        let r = http(addr, "GET", &format!("{route}?form=1"), &[]);
+        assert_eq!(r.status, 422, "{route}: {}", r.body);
+        assert!(r.body.contains("choose at least one indicator"), "{route}");
+    }
 }
 
 #[test]

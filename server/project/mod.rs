@@ -364,22 +364,36 @@ impl Project {
     /// The wave asked for, or the latest when none is, with its view; a wave the project
     /// does not have gets a message that lists the waves it has. The one place where a
     /// missing wave setting is resolved (pages, command line and report alike).
-    pub fn resolve_wave(&self, wave: Option<i64>) -> Result<(i64, WaveView), String> {
+    pub fn resolve_wave(&self, wave: Option<i64>) -> Result<(i64, WaveView), UnknownWave> {
         let wave = match wave {
             Some(w) => w,
-            None => *self.waves.last().ok_or("the project has no waves")?,
+            None => *self
+                .waves
+                .last()
+                .ok_or_else(|| UnknownWave("the project has no waves".to_string()))?,
         };
         let view = self.wave(wave).ok_or_else(|| {
-            format!(
+            UnknownWave(format!(
                 "there is no wave {wave}; the project's waves are {}",
                 self.waves
                     .iter()
                     .map(i64::to_string)
                     .collect::<Vec<_>>()
                     .join(", ")
-            )
+            ))
         })?;
         Ok((wave, view))
+    }
+}
+
+/// A wave the project does not have (the message lists the waves it has).
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{0}")]
+pub struct UnknownWave(pub String);
+
+impl From<UnknownWave> for String {
+    fn from(e: UnknownWave) -> String {
+        e.0
     }
 }
 

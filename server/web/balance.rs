@@ -40,7 +40,7 @@ fn compute(
 ) -> AppResult<(SettingsForm, BalanceComparison)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/balance", &project, &settings);
-    let b = compare(&view, &settings).map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let b = compare(&view, &settings)?;
     Ok((form, b))
 }
 

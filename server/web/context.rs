@@ -77,17 +77,16 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
         pairs.push(("covariates", ticked("covariate")));
         pairs.push(("factors", ticked("factor")));
     }
-    Settings::from_pairs(pairs.iter().map(|(k, v)| (*k, v.as_str())))
-        .map_err(|e| AppError::BadRequest(e.to_string()))
+    Ok(Settings::from_pairs(
+        pairs.iter().map(|(k, v)| (*k, v.as_str())),
+    )?)
 }
 
 /// The project, the settings (wave filled in: the latest when not given) and the view.
 pub fn resolve(state: &AppState, query: &Query) -> AppResult<(Arc<Project>, Settings, WaveView)> {
     let project = state.project();
     let mut settings = settings_from_query(query)?;
-    let (wave, view) = project
-        .resolve_wave(settings.wave)
-        .map_err(AppError::NotFound)?;
+    let (wave, view) = project.resolve_wave(settings.wave)?;
     settings.wave = Some(wave);
     Ok((project, settings, view))
 }

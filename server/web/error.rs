@@ -8,10 +8,16 @@ use crate::project::Problem;
 
 #[derive(Debug, thiserror::Error)]
 pub enum AppError {
+    /// No such page, download, wave or project (404).
     #[error("{0}")]
     NotFound(String),
+    /// Settings that cannot be read or are not allowed (400).
     #[error("{0}")]
     BadRequest(String),
+    /// Well-formed settings that this project's data cannot answer: a design without
+    /// variation, a model that cannot be fitted, a weighting that fails (422).
+    #[error("{0}")]
+    Unprocessable(String),
     /// The request would lose data; it says how to confirm.
     #[error("{0}")]
     Conflict(String),
@@ -32,11 +38,60 @@ impl AppError {
         match self {
             AppError::NotFound(_) => StatusCode::NOT_FOUND,
             AppError::BadRequest(_) => StatusCode::BAD_REQUEST,
+            AppError::Unprocessable(_) => StatusCode::UNPROCESSABLE_ENTITY,
             AppError::Conflict(_) => StatusCode::CONFLICT,
             AppError::InvalidProject(_) => StatusCode::UNPROCESSABLE_ENTITY,
             AppError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
             AppError::Busy { .. } => StatusCode::SERVICE_UNAVAILABLE,
         }
+    }
+}
+
+// The analyses' errors, by what the reader can do about them: change a setting (400),
+// or accept that the data cannot answer this question (422); a missing wave is 404.
+
+impl From<crate::analysis::settings::SettingsError> for AppError {
+    fn from(e: crate::analysis::settings::SettingsError) -> Self {
+        AppError::BadRequest(e.to_string())
+    }
+}
+
+impl From<crate::project::UnknownWave> for AppError {
+    fn from(e: crate::project::UnknownWave) -> Self {
+        AppError::NotFound(e.to_string())
+    }
+}
+
+impl From<crate::analysis::participation::AnalysisError> for AppError {
+    fn from(e: crate::analysis::participation::AnalysisError) -> Self {
+        AppError::Unprocessable(e.to_string())
+    }
+}
+
+impl From<crate::analysis::impact::ImpactError> for AppError {
+    fn from(e: crate::analysis::impact::ImpactError) -> Self {
+        use crate::analysis::impact::ImpactError;
+        match e {
+            ImpactError::Analysis(a) => a.into(),
+            ImpactError::Request(m) => AppError::BadRequest(m),
+        }
+    }
+}
+
+impl From<crate::analysis::planner::PlanError> for AppError {
+    fn from(e: crate::analysis::planner::PlanError) -> Self {
+        use crate::analysis::planner::PlanError;
+        match e {
+            PlanError::Analysis(a) => a.into(),
+            PlanError::Request(m) => AppError::BadRequest(m),
+        }
+    }
+}
+
+impl From<crate::analysis::projection::ProjectionError> for AppError {
+    fn from(e: crate::analysis::projection::ProjectionError) -> Self {
+        // Every projection error is a request the settings can change.
+        AppError::BadRequest(e.to_string())
     }
 }
 
@@ -211,4 +266,46 @@ pub async fn explain_body_limit(
         ),
     )
         .into_response()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::analysis::design::DesignError;
+    use crate::analysis::impact::ImpactError;
+    use crate::analysis::participation::AnalysisError;
+    use crate::analysis::planner::PlanError;
+    use crate::analysis::settings::SettingsError;
+
+    #[test]
+    fn analysis_errors_answer_with_what_the_reader_can_do() {
+        // RFC 9110: 400 for a request the server will not process as sent (bad settings),
+        // 404 for a resource it does not have (a wave), 422 for well-formed content it
+        // cannot process (data that cannot answer).
+        let status = |e: AppError| e.status().as_u16();
+        assert_eq!(status(SettingsError("trim".into()).into()), 400);
+        assert_eq!(
+            status(crate::project::UnknownWave("no wave 9".into()).into()),
+            404
+        );
+        let design = || AnalysisError::Design(DesignError("constant".into()));
+        assert_eq!(status(design().into()), 422);
+        assert_eq!(
+            status(
+                AnalysisError::Weighting {
+                    method: "entropy",
+                    message: "infeasible".into()
+                }
+                .into()
+            ),
+            422
+        );
+        assert_eq!(status(ImpactError::Analysis(design()).into()), 422);
+        assert_eq!(status(ImpactError::Request("outcome".into()).into()), 400);
+        assert_eq!(status(PlanError::Analysis(design()).into()), 422);
+        assert_eq!(status(PlanError::Request("budget".into()).into()), 400);
+        // The message is kept as it was.
+        let e: AppError = PlanError::Request("budget must be positive".into()).into();
+        assert_eq!(e.to_string(), "budget must be positive");
+    }
 }

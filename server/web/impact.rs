@@ -218,8 +218,7 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactRe
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/impact", &project, &settings);
     let imp = impact_settings(&project, query)?;
-    let r = impact(&project, &view, &settings, &imp)
-        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let r = impact(&project, &view, &settings, &imp)?;
     Ok((form, r, incomplete_for(&view, &settings)))
 }
 

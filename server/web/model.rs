@@ -41,7 +41,7 @@ fn compute(
 ) -> AppResult<(SettingsForm, FitReport)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/model", &project, &settings);
-    let r = fit(&view, &settings).map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let r = fit(&view, &settings)?;
     Ok((form, r))
 }
 

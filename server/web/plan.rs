@@ -181,8 +181,7 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/plan", &project, &settings);
     let ps = plan_settings(query)?;
-    let p = plan_for(&project, &view, &settings, &ps)
-        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let p = plan_for(&project, &view, &settings, &ps)?;
     Ok((form, p, coverage(&view), incomplete_for(&view, &settings)))
 }
 

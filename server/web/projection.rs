@@ -61,8 +61,7 @@ pub(crate) fn compute(
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/projection", &project, &settings);
     let ps = projection_settings(&project, query)?;
-    let r = projection(&project, &view, &settings, &ps)
-        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let r = projection(&project, &view, &settings, &ps)?;
     let variables = project
         .manifest
         .microdata

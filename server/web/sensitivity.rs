@@ -36,8 +36,7 @@ fn compute(
 ) -> AppResult<(SettingsForm, Sensitivity)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/sensitivity", &project, &settings);
-    let s = with_model_uncertainty(&project, &view, &settings)
-        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let s = with_model_uncertainty(&project, &view, &settings)?;
     Ok((form, s))
 }
 
