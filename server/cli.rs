@@ -363,7 +363,7 @@ pub fn fit_text(r: &FitReport) -> String {
     let _ = writeln!(
         out,
         "\n{} model (log-likelihood {:.4}, {}converged; AUC {}, leave-one-out AUC {})",
-        crate::analysis::settings::model_label_of(m.kind),
+        crate::analysis::settings::model_label(m.kind),
         m.log_likelihood,
         if m.converged { "" } else { "NOT " },
         opt(m.auc, 3),
@@ -392,7 +392,7 @@ pub fn fit_text(r: &FitReport) -> String {
     let _ = writeln!(
         out,
         "\n{} weights: effective number of countries {:.1} of {}, largest weight {:.1}% of the total, CV {:.3}",
-        wr.kind,
+        wr.kind.as_str(),
         wr.effective_n,
         r.n_participants,
         100.0 * wr.max_weight_share,
@@ -567,13 +567,9 @@ pub fn pooled(
     predictors: &[String],
     country: &str,
     design_weight: Option<&str>,
-    kind: &str,
+    kind: crate::stats::regression::Kind,
     json: bool,
 ) -> i32 {
-    let Some(kind) = crate::stats::regression::Kind::parse(kind) else {
-        eprintln!("--kind must be linear or logistic, not '{kind}'");
-        return 2;
-    };
     match crate::progress::during("reading the respondents and fitting", json, || {
         crate::analysis::microdata::pooled_file(
             path,
@@ -602,7 +598,7 @@ pub fn pooled(
 fn pooled_text(r: &crate::analysis::microdata::PooledReport, outcome: &str) -> String {
     let mut out = format!(
         "{} model of {outcome}: {} respondents in {} countries ({} rows with missing values left out)\n",
-        r.kind, r.n, r.clusters, r.dropped
+        r.kind.as_str(), r.n, r.clusters, r.dropped
     );
     let _ = writeln!(
         out,
@@ -792,7 +788,7 @@ pub struct MultilevelArgs<'a> {
     pub outcome: &'a str,
     pub predictors: &'a [String],
     pub country: &'a str,
-    pub kind: &'a str,
+    pub kind: crate::analysis::multilevel::Kind,
     pub ml: bool,
     pub weight: Option<&'a str>,
     pub nodes: usize,
@@ -800,17 +796,13 @@ pub struct MultilevelArgs<'a> {
 
 /// `gapwise multilevel`: a random-intercept model with countries as the second level.
 pub fn multilevel(path: &Path, a: &MultilevelArgs, json: bool) -> i32 {
-    use crate::analysis::multilevel::{multilevel_file, Kind, Request};
-    let Some(kind) = Kind::parse(a.kind) else {
-        eprintln!("--kind must be linear or logistic, not '{}'", a.kind);
-        return 2;
-    };
+    use crate::analysis::multilevel::{multilevel_file, Request};
     let request = Request {
         outcome: a.outcome,
         predictors: a.predictors,
         country: a.country,
         weight: a.weight,
-        kind,
+        kind: a.kind,
         ml: a.ml,
         nodes: a.nodes,
     };

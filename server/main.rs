@@ -133,8 +133,8 @@ enum Command {
         #[arg(long)]
         design_weight: Option<String>,
         /// linear (least squares) or logistic (0/1 outcome).
-        #[arg(long, default_value = "linear")]
-        kind: String,
+        #[arg(long, default_value = "linear", value_parser = regression_kind)]
+        kind: gapwise::stats::regression::Kind,
         /// Print one JSON object instead of a table.
         #[arg(long)]
         json: bool,
@@ -183,8 +183,8 @@ enum Command {
         #[arg(long, value_delimiter = ',')]
         country_indicators: Vec<String>,
         /// linear (least squares) or logistic (0/1 outcome).
-        #[arg(long, default_value = "linear")]
-        kind: String,
+        #[arg(long, default_value = "linear", value_parser = regression_kind)]
+        kind: gapwise::stats::regression::Kind,
         /// Country shares proportional to this population column (logged when named log_...).
         #[arg(long)]
         population: Option<String>,
@@ -209,8 +209,8 @@ enum Command {
         #[arg(long)]
         country: String,
         /// linear or logistic.
-        #[arg(long, default_value = "linear")]
-        kind: String,
+        #[arg(long, default_value = "linear", value_parser = multilevel_kind)]
+        kind: gapwise::analysis::multilevel::Kind,
         /// Full maximum likelihood instead of REML (linear).
         #[arg(long)]
         ml: bool,
@@ -534,7 +534,7 @@ fn main() -> ExitCode {
             &predictors,
             &country,
             design_weight.as_deref(),
-            &kind,
+            kind,
             json,
         ),
         Some(Command::TwoStep {
@@ -567,11 +567,8 @@ fn main() -> ExitCode {
             population,
             bootstrap,
             json,
-        }) => match (
-            analysis.settings(),
-            gapwise::stats::regression::Kind::parse(&kind),
-        ) {
-            (Ok(mut settings), Some(kind)) => {
+        }) => match analysis.settings() {
+            Ok(mut settings) => {
                 settings.wave = wave;
                 let imp = gapwise::analysis::impact::ImpactSettings {
                     outcome,
@@ -586,12 +583,8 @@ fn main() -> ExitCode {
                 };
                 cli::impact(&dir, settings, &imp, json)
             }
-            (Err(message), _) => {
+            Err(message) => {
                 eprintln!("{message}");
-                2
-            }
-            (_, None) => {
-                eprintln!("--kind must be linear or logistic, not '{kind}'");
                 2
             }
         },
@@ -611,7 +604,7 @@ fn main() -> ExitCode {
                 outcome: &outcome,
                 predictors: &predictors,
                 country: &country,
-                kind: &kind,
+                kind,
                 ml,
                 weight: design_weight.as_deref(),
                 nodes,
@@ -709,6 +702,18 @@ fn main() -> ExitCode {
         },
     };
     ExitCode::from(code.clamp(0, 255) as u8)
+}
+
+/// `--kind` of `pooled` and `impact`: a linear or logistic respondent-level model.
+fn regression_kind(text: &str) -> Result<gapwise::stats::regression::Kind, String> {
+    gapwise::stats::regression::Kind::parse(text)
+        .ok_or_else(|| format!("--kind must be linear or logistic, not '{text}'"))
+}
+
+/// `--kind` of `multilevel`: a linear or logistic random-intercept model.
+fn multilevel_kind(text: &str) -> Result<gapwise::analysis::multilevel::Kind, String> {
+    gapwise::analysis::multilevel::Kind::parse(text)
+        .ok_or_else(|| format!("--kind must be linear or logistic, not '{text}'"))
 }
 
 fn default_addr() -> SocketAddr {

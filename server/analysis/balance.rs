@@ -12,7 +12,7 @@ use crate::stats::describe;
 /// One weighting method's outcome on the balance page.
 #[derive(Debug, Clone, Serialize)]
 pub struct MethodBalance {
-    pub kind: &'static str,
+    pub kind: WeightingKind,
     pub label: &'static str,
     /// Why the method could not weight, if it could not.
     pub error: Option<String>,
@@ -115,7 +115,7 @@ fn method_balance(
             let rows = participation::balance_table(design, &w.weights);
             let smd_after: Vec<Option<f64>> = rows.iter().map(|r| r.smd_after).collect();
             MethodBalance {
-                kind: kind.as_str(),
+                kind,
                 label: kind.label(),
                 error: None,
                 worse_than_none: w.report.worse_than_none,
@@ -135,7 +135,7 @@ fn method_balance(
             }
         }
         Err(e) => MethodBalance {
-            kind: kind.as_str(),
+            kind,
             label: kind.label(),
             error: Some(e.to_string()),
             effective_n: None,

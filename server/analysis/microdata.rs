@@ -14,7 +14,7 @@ use crate::stats::regression::{self, Kind, TwoStepInput};
 /// The result of `gapwise pooled`.
 #[derive(Debug, Clone, Serialize)]
 pub struct PooledReport {
-    pub kind: &'static str,
+    pub kind: Kind,
     /// Intercept first.
     pub terms: Vec<String>,
     pub coef: Vec<f64>,
@@ -238,7 +238,7 @@ pub fn pooled_file(
     let mut terms = vec!["intercept".to_string()];
     terms.extend(predictors.iter().cloned());
     Ok(PooledReport {
-        kind: kind.as_str(),
+        kind,
         terms,
         coef: fit.coef,
         se: fit.se,

@@ -32,7 +32,7 @@ pub struct Coefficient {
 
 #[derive(Debug, Clone, Serialize)]
 pub struct ModelReport {
-    pub kind: &'static str,
+    pub kind: ModelKind,
     /// Intercept first.
     pub terms: Vec<String>,
     /// On the indicators' original scale; `None` where not estimable.
@@ -62,7 +62,7 @@ pub struct ModelReport {
 
 #[derive(Debug, Clone, Serialize)]
 pub struct WeightingReport {
-    pub kind: &'static str,
+    pub kind: WeightingKind,
     pub effective_n: f64,
     pub max_weight_share: f64,
     pub cv: f64,
@@ -252,7 +252,7 @@ pub fn weigh(
     }
     Ok(Weighted {
         report: WeightingReport {
-            kind: settings.weighting.as_str(),
+            kind: settings.weighting,
             effective_n,
             max_weight_share,
             cv: balance::coefficient_of_variation(&participant_weights),
@@ -601,7 +601,7 @@ fn model_report(
         (None, 0, Vec::new())
     };
     ModelReport {
-        kind: kind.as_str(),
+        kind,
         terms: design.terms.clone(),
         coef: coefficients.iter().map(|c| c.coef).collect(),
         se: coefficients.iter().map(|c| c.se).collect(),

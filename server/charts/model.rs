@@ -39,7 +39,7 @@ pub fn propensity_vs_weight(r: &FitReport) -> String {
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))
             .x_desc("Estimated probability of taking part")
-            .y_desc(format!("Weight ({} weighting)", r.weighting.kind))
+            .y_desc(format!("Weight ({} weighting)", r.weighting.kind.as_str()))
             .label_style(font(LABEL_FONT))
             .axis_desc_style(font(LABEL_FONT))
             .draw()?;

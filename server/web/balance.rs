@@ -110,8 +110,8 @@ pub fn table_csv(b: &BalanceComparison) -> String {
         "variance_ratio_before".into(),
     ];
     for m in &b.methods {
-        header.push(format!("smd_after_{}", m.kind));
-        header.push(format!("variance_ratio_after_{}", m.kind));
+        header.push(format!("smd_after_{}", m.kind.as_str()));
+        header.push(format!("variance_ratio_after_{}", m.kind.as_str()));
     }
     let header_refs: Vec<&str> = header.iter().map(String::as_str).collect();
     let rows = b.rows.iter().enumerate().map(|(i, r)| {
