@@ -430,27 +430,23 @@ fn newton(
             Ok(step) => step,
             Err(_) => pseudo_solve(&hessian, &current.score),
         };
-        let mut t = 1.0;
-        let mut accepted = false;
-        for _ in 0..40 {
-            let candidate = &beta + &(&step * t);
-            if let Ok(next) = evaluate(kind, x, y, &candidate, firth) {
-                if next.objective.is_finite()
-                    && next.objective
-                        >= current.objective - 1e-12 * current.objective.abs().max(1.0)
-                {
-                    beta = candidate;
-                    current = next;
-                    accepted = true;
-                    break;
-                }
+        let floor = current.objective - 1e-12 * current.objective.abs().max(1.0);
+        let moved = super::newton::halving_step(&beta, &step, floor, |candidate| {
+            evaluate(kind, x, y, candidate, firth)
+                .ok()
+                .map(|next| {
+                    let objective = next.objective;
+                    (next, objective)
+                })
+        });
+        let accepted = moved.is_some();
+        last_step = match moved {
+            Some((candidate, next, t)) => {
+                beta = candidate;
+                current = next;
+                max_abs(step.view()) * t
             }
-            t *= 0.5;
-        }
-        last_step = if accepted {
-            max_abs(step.view()) * t
-        } else {
-            0.0
+            None => 0.0,
         };
         criterion_met = met(max_abs(current.score.view()), last_step);
         if !accepted || last_step < 1e-15 {

@@ -6,6 +6,7 @@ pub mod binary;
 pub mod describe;
 pub mod linalg;
 pub mod multilevel;
+pub mod newton;
 pub mod normal;
 pub mod pca;
 pub mod random;

@@ -362,21 +362,22 @@ fn logistic_newton(
         iterations += 1;
         let step =
             linalg::solve_spd(info.view(), g.view()).map_err(|_| RegressionError::Singular)?;
-        let mut t = 1.0;
-        let mut moved = false;
-        for _ in 0..40 {
-            let candidate = &beta + &(&step * t);
-            let (ic, gc, lc) = pass(&candidate);
-            if lc.is_finite() && lc >= ll - 1e-12 * ll.abs() {
+        let floor = ll - 1e-12 * ll.abs();
+        let step_taken = super::newton::halving_step(&beta, &step, floor, |candidate| {
+            let (ic, gc, lc) = pass(candidate);
+            Some(((ic, gc, lc), lc))
+        });
+        let moved = step_taken.is_some();
+        let t = match step_taken {
+            Some((candidate, (ic, gc, lc), t)) => {
                 beta = candidate;
                 info = ic;
                 g = gc;
                 ll = lc;
-                moved = true;
-                break;
+                t
             }
-            t *= 0.5;
-        }
+            None => super::newton::exhausted_factor(),
+        };
         if !moved || step.iter().all(|v| (v * t).abs() < 1e-12) {
             converged = step.iter().all(|v| (v * t).abs() < 1e-8);
             break;
