@@ -321,7 +321,7 @@ fn bad_requests_get_a_message_not_a_panic() {
 /// participation more likely for high z (logit 1.2 z), 60 respondents per participant with
 /// unit-variance noise. The target is the mean of the 80 true country means. Over 200
 /// universes (seeded) the projection's 95% interval should cover it at close to 95%
-/// (binomial SD 1.5 points; accepted 89-100%), and its mean absolute error should be below
+/// (binomial SD 1.5 points; accepted 90-99%, about three SDs), and its mean absolute error should be below
 /// that of the participants' unweighted mean (common practice for a simulation check).
 #[test]
 fn projection_recovers_a_known_universe() {
@@ -414,7 +414,7 @@ variables = ["y"]
         error_participants += (naive - truth).abs();
     }
     let rate = covered as f64 / replicates as f64;
-    assert!((0.89..=1.0).contains(&rate), "coverage {rate}");
+    assert!((0.90..=0.99).contains(&rate), "coverage {rate}");
     assert!(
         error_projection < 0.7 * error_participants,
         "mean abs error {} vs participants' {}",

@@ -17,7 +17,8 @@
 //! means and SDs. The universe estimate is the mean of the eligible countries' predictions,
 //! countries counted equally or by population. The 95% prediction interval comes from
 //! seeded simulation: fixed effects from N(b-hat, Cov), log tau from its approximate normal
-//! sampling distribution, participants' effects from N(mode, conditional variance), absent
+//! sampling distribution, participants' effects from N(mode, conditional variance) with the
+//! mode moved to first order with the drawn fixed effects (exact for the linear model), absent
 //! countries' effects from N(0, tau*^2). For the logistic model the draws summarise each
 //! composition by at most [`CELLS`] respondents at evenly spaced quantiles of the fitted
 //! linear predictor (exact when a composition has fewer distinct respondents).
@@ -443,16 +444,35 @@ pub fn projection_with(
     let mut ysum = vec![0.0; n_groups];
     // Participants' point predictions over their own respondents (exact).
     let mut own_point = vec![0.0; n_groups];
+    // How each conditional mode moves with the fixed effects, d u_j / d b (so that a
+    // simulation draw of b carries its participants' modes along instead of counting the
+    // same uncertainty twice): -Var(u_j | y) sum_i c_i x_i, with c_i = 1 / sigma^2 (linear;
+    // exact) or p_i (1 - p_i) (logistic; the Laplace mode's first-order change).
+    let mut sensitivity = vec![vec![0.0; k]; n_groups];
     for r in 0..rows.len() {
         let g = group[r];
         members[g].push(r);
         ysum[g] += y[r];
         let z_part: f64 = (0..kz).map(|j| x[[r, kr + j]] * fit.coef[kr + j]).sum();
         let lin = eta[r] + z_part + fit.modes[g];
-        own_point[g] += if binary { inv_logit(lin) } else { lin };
+        let c = if binary {
+            let p = inv_logit(lin);
+            own_point[g] += p;
+            p * (1.0 - p)
+        } else {
+            own_point[g] += lin;
+            1.0 / fit.residual_sd.map_or(f64::NAN, |s| s * s)
+        };
+        for (j, v) in sensitivity[g].iter_mut().enumerate() {
+            *v += c * x[[r, j]];
+        }
     }
     for g in 0..n_groups {
         own_point[g] /= members[g].len() as f64;
+        let scale = -fit.mode_variance[g];
+        sensitivity[g].iter_mut().for_each(|v| {
+            *v = if v.is_finite() { *v * scale } else { 0.0 };
+        });
     }
     let all_rows: Vec<usize> = (0..rows.len()).collect();
     let cells_of = |m: &[usize]| -> Cells {
@@ -767,7 +787,14 @@ pub fn projection_with(
                 .iter()
                 .map(|u| {
                     let effect = match u.group {
-                        Some(g) => fit.modes[g] + fit.mode_variance[g].sqrt() * rng.normal(),
+                        Some(g) => {
+                            let shift: f64 = sensitivity[g]
+                                .iter()
+                                .zip(coef.iter().zip(&fit.coef))
+                                .map(|(s, (b, b0))| s * (b - b0))
+                                .sum();
+                            fit.modes[g] + shift + fit.mode_variance[g].sqrt() * rng.normal()
+                        }
                         None => tau * rng.normal(),
                     };
                     over(&coef, u, &u.cells, effect)
