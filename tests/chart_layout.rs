@@ -301,3 +301,58 @@ fn impact_rows_are_all_labelled() {
     }
     assert_inside(&pooled, "pooled");
 }
+
+#[test]
+fn projection_map_labels_never_collide_and_every_country_has_a_hover_title() {
+    use gapwise::analysis::projection::{projection, ProjectionSettings};
+    let project = Project::load(&common::demo_dir()).expect("demo loads");
+    let ps = ProjectionSettings {
+        outcome: "trust_parliament".into(),
+        predictors: vec!["age".into()],
+    };
+    for &wave in &project.waves {
+        let view = project.wave(wave).unwrap();
+        let settings = Settings {
+            wave: Some(wave),
+            ..Settings::default()
+        };
+        let Ok(r) = projection(&project, &view, &settings, &ps) else {
+            continue;
+        };
+        let svg = charts::projection::component_map(&r);
+        let shown: Vec<&String> = r
+            .countries
+            .iter()
+            .filter(|c| c.pc1.is_some() && c.prediction.is_some())
+            .map(|c| &c.code)
+            .collect();
+        assert!(!shown.is_empty(), "wave {wave}: nothing on the map");
+        let placed: Vec<SvgText> = texts(&svg)
+            .into_iter()
+            .filter(|t| {
+                t.text
+                    .split(' ')
+                    .next()
+                    .is_some_and(|code| shown.contains(&&code.to_string()))
+            })
+            .collect();
+        assert!(!placed.is_empty(), "wave {wave}: no country labelled");
+        for (i, a) in placed.iter().enumerate() {
+            for b in &placed[i + 1..] {
+                assert!(
+                    !overlap(text_box(a), text_box(b)),
+                    "wave {wave}: '{}' and '{}' overlap",
+                    a.text,
+                    b.text
+                );
+            }
+        }
+        assert_eq!(
+            svg.matches("<title>").count(),
+            shown.len(),
+            "wave {wave}: one hover title per country"
+        );
+        assert!(svg.contains("Did not take part (projected)"));
+        assert_inside(&svg, "projection map");
+    }
+}

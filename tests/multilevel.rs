@@ -319,10 +319,10 @@ fn bad_requests_get_a_message_not_a_panic() {
 
 /// A known universe: 80 countries, true country means 5 + 0.8 z_j + u_j (u_j ~ N(0, 0.3^2)),
 /// participation more likely for high z (logit 1.2 z), 60 respondents per participant with
-/// unit-variance noise. The target is the mean of the 80 true country means. Over 100
-/// universes the projection's 95% interval should cover it at close to 95% (binomial SD
-/// 2.2 points; accepted 86-100%), and its mean absolute error should be below that of the
-/// participants' unweighted mean (common practice for a simulation check).
+/// unit-variance noise. The target is the mean of the 80 true country means. Over 200
+/// universes (seeded) the projection's 95% interval should cover it at close to 95%
+/// (binomial SD 1.5 points; accepted 90-99%, about three SDs), and its mean absolute error should be below
+/// that of the participants' unweighted mean (common practice for a simulation check).
 #[test]
 fn projection_recovers_a_known_universe() {
     use gapwise::analysis::projection::{projection, ProjectionSettings};
@@ -346,7 +346,7 @@ wave = "wave"
 design_weight = "dweight"
 variables = ["y"]
 "#;
-    let replicates = 100;
+    let replicates = 200;
     let mut covered = 0;
     let mut error_projection = 0.0;
     let mut error_participants = 0.0;
@@ -414,7 +414,7 @@ variables = ["y"]
         error_participants += (naive - truth).abs();
     }
     let rate = covered as f64 / replicates as f64;
-    assert!((0.86..=1.0).contains(&rate), "coverage {rate}");
+    assert!((0.90..=0.99).contains(&rate), "coverage {rate}");
     assert!(
         error_projection < 0.7 * error_participants,
         "mean abs error {} vs participants' {}",
@@ -451,10 +451,148 @@ fn projection_page_twin_and_download_agree() {
     assert_eq!(csv.status, 200);
     assert_eq!(csv.body.lines().count(), countries.len() + 1);
     assert!(!r["regions"].as_array().unwrap().is_empty());
+    // The map: on the page and as a download.
+    assert!(page.body.contains("Did not take part (projected)"));
+    assert!(page.body.contains("/projection/map.svg?"));
+    let map = http(addr, "GET", &format!("/projection/map.svg?{query}"), &[]);
+    assert_eq!(map.status, 200);
+    assert!(map.body.contains("<svg"), "{}", &map.body[..map.body.len().min(200)]);
+    // Counting countries by population (the demo declares log_population): a different
+    // universe estimate, said on the page.
+    let by_pop = http(
+        addr,
+        "GET",
+        &format!("/api/projection?{query}&shares=population"),
+        &[],
+    );
+    assert_eq!(by_pop.status, 200, "{}", by_pop.body);
+    let p: Value = serde_json::from_str(&by_pop.body).unwrap();
+    assert_eq!(p["shares"], "population");
+    assert!((f(&p["universe_estimate"]) - estimate).abs() > 1e-9);
+    let page_pop = http(addr, "GET", &format!("/projection?{query}&shares=population"), &[]);
+    assert!(page_pop.body.contains("Countries count by population"));
+    let bad = http(addr, "GET", &format!("/api/projection?{query}&shares=people"), &[]);
+    assert_eq!(bad.status, 400);
     // Countries with a missing indicator are not estimable: null, never 0.
     for c in countries {
         if c["prediction"].is_null() {
             assert!(c["low"].is_null() && c["high"].is_null());
         }
     }
+}
+
+/// The logistic projection against R (tests/fixtures/make_projection_logit.R, run offline:
+/// lme4 1.1-31 glmer by Laplace, and integrate() over the absent countries' effect
+/// u ~ N(0, tau^2)): fixed effects and country SD to 1e-4, standard errors to 1e-3
+/// relative, every country's projection and the universe means (equal and by population)
+/// to 1e-4; absent countries with cells in composition.csv use them.
+#[test]
+fn logistic_projection_matches_glmer_and_numerical_integration() {
+    use gapwise::analysis::projection::{
+        projection_with, CountryShares, ProjectionOptions, ProjectionSettings,
+    };
+    use gapwise::analysis::Settings;
+    use gapwise::project::{Project, WaveView};
+
+    let want = load("projection_logit.json");
+    let project =
+        Project::load(&fixtures().join("projection_logit")).unwrap_or_else(|p| panic!("{p:?}"));
+    assert!(project.composition.is_some());
+    let view = WaveView::new(&project, 1).unwrap();
+    let settings = Settings {
+        wave: Some(1),
+        ..Settings::default()
+    };
+    let ps = ProjectionSettings {
+        outcome: "y".into(),
+        predictors: vec!["x".into(), "female".into()],
+    };
+    let codes: Vec<String> = want["codes"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c.as_str().unwrap().to_string())
+        .collect();
+    let with_file: Vec<&str> = want["with_composition"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c.as_str().unwrap())
+        .collect();
+    let predictions = floats(&want["prediction"]);
+    assert_eq!(codes.len(), predictions.len());
+    for (shares, key) in [
+        (CountryShares::Equal, "universe_equal"),
+        (CountryShares::Population, "universe_population"),
+    ] {
+        let r = projection_with(&project, &view, &settings, &ps, &ProjectionOptions { shares })
+            .unwrap();
+        assert_eq!(r.kind, "logistic");
+        assert_eq!(r.method, "Laplace");
+        assert!(r.converged);
+        close_abs("coef", &r.coef, &floats(&want["coef"]), 1e-4);
+        close_rel("se", &r.se, &floats(&want["se"]), 1e-3);
+        assert!(
+            (r.country_sd - f(&want["country_sd"])).abs() < 1e-4,
+            "country SD {} vs {}",
+            r.country_sd,
+            want["country_sd"]
+        );
+        assert_eq!(r.countries.len(), codes.len());
+        for (code, p) in codes.iter().zip(&predictions) {
+            let c = r.countries.iter().find(|c| &c.code == code).unwrap();
+            let got = c.prediction.unwrap();
+            assert!((got - p).abs() < 1e-4, "{code}: {got} vs {p}");
+            let (lo, hi) = (c.low.unwrap(), c.high.unwrap());
+            assert!(lo < got && got < hi, "{code}: {lo} {got} {hi}");
+            if !c.participated {
+                let source = if with_file.contains(&code.as_str()) {
+                    "file"
+                } else {
+                    "pooled"
+                };
+                assert_eq!(c.composition, Some(source), "{code}");
+            }
+        }
+        let universe = f(&want[key]);
+        assert!(
+            (r.universe_estimate - universe).abs() < 1e-4,
+            "{key}: {} vs {universe}",
+            r.universe_estimate
+        );
+        assert!(r.universe_low < r.universe_estimate && r.universe_estimate < r.universe_high);
+        assert!(r.projection_method.contains("logistic"));
+        assert!(r.composition.contains("composition file"));
+    }
+}
+
+/// A composition file with a bad cell stops the load with the file, line and column
+/// (common practice).
+#[test]
+fn a_bad_composition_file_is_named_by_line_and_column() {
+    use gapwise::project::Project;
+    let dir = TempDir::new("bad-composition");
+    for name in ["project.toml", "frame.csv", "microdata.csv"] {
+        dir.write(
+            name,
+            std::fs::read(fixtures().join("projection_logit").join(name)).unwrap(),
+        );
+    }
+    dir.write(
+        "composition.csv",
+        "iso,wave,x,female,share\nXAF,1,0,0,0.5\nXAF,1,one,1,0.5\nXQQ,1,0,0,0.2\n",
+    );
+    let problems = Project::load(dir.path()).unwrap_err();
+    let text: Vec<String> = problems.iter().map(|p| p.to_string()).collect();
+    assert!(
+        text.iter().any(|t| t.starts_with("composition.csv:3:x:")),
+        "{text:?}"
+    );
+    assert!(
+        text.iter().any(|t| t.starts_with("composition.csv:4:iso:")),
+        "{text:?}"
+    );
+    std::fs::remove_file(dir.path().join("composition.csv")).unwrap();
+    let problems = Project::load(dir.path()).unwrap_err();
+    assert!(problems[0].to_string().contains("composition.csv"), "{problems:?}");
 }

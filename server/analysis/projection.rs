@@ -1,31 +1,52 @@
-//! What the whole eligible universe would say: a linear random-intercept model of a
-//! respondent outcome with the country indicators as country-level predictors, projected to
-//! every eligible country of the wave (multilevel regression and poststratification;
-//! Gelman & Little 1997, Survey Methodology 23, 127-135; Park, Gelman & Bafumi 2004,
-//! Political Analysis 12, 375-385).
+//! What the whole eligible universe would say: a random-intercept model of a respondent
+//! outcome with the country indicators as country-level predictors, projected to every
+//! eligible country of the wave (multilevel regression and poststratification; Gelman &
+//! Little 1997, Survey Methodology 23, 127-135; Park, Gelman & Bafumi 2004, Political
+//! Analysis 12, 375-385).
 //!
-//! Participants: the mean over their own respondents of x_i'b, plus z_j'g and their
-//! conditional mode u_j. Absent countries: the mean of x_i'b over the participants' pooled
-//! respondents (their own composition is not known), plus z_j'g, with u_j ~ N(0, tau^2).
-//! Indicators are standardised with the participants' means and SDs. The universe estimate
-//! counts eligible countries equally. The 95% prediction interval comes from seeded
-//! simulation: fixed effects from N(b-hat, Cov), log tau from its approximate normal
-//! sampling distribution, participants' effects from N(mode, conditional variance), absent
-//! countries' effects from N(0, tau*^2).
+//! The model is linear (REML) unless the outcome is binary (every value 0 or 1), when it is
+//! the logistic random-intercept model by the Laplace approximation and the projections
+//! are probabilities.
+//!
+//! Participants: the mean over their own respondents of the prediction at their
+//! conditional mode u_j (linear: x_i'b + z_j'g + u_j; logistic: the inverse logit of it).
+//! Absent countries: their indicators z_j, their composition from the project's
+//! composition file when it has their cells, else the participants' pooled respondents,
+//! and the country effect integrated over u ~ N(0, tau^2) (linear: u = 0; logistic: by
+//! 32-point Gauss-Hermite quadrature). Indicators are standardised with the participants'
+//! means and SDs. The universe estimate is the mean of the eligible countries' predictions,
+//! countries counted equally or by population. The 95% prediction interval comes from
+//! seeded simulation: fixed effects from N(b-hat, Cov), log tau from its approximate normal
+//! sampling distribution, participants' effects from N(mode, conditional variance) with the
+//! mode moved to first order with the drawn fixed effects (exact for the linear model), absent
+//! countries' effects from N(0, tau*^2). For the logistic model the draws summarise each
+//! composition by at most [`CELLS`] respondents at evenly spaced quantiles of the fitted
+//! linear predictor (exact when a composition has fewer distinct respondents).
+//!
+//! Support: an absent country is flagged when an indicator lies outside the participants'
+//! range, or when it lies outside the participants' convex hull on the first two principal
+//! components of the indicators (over the eligible countries; Jolliffe 2002).
 
 use std::collections::HashMap;
 
 use ndarray::Array2;
+use rayon::prelude::*;
 use serde::Serialize;
 
 use super::settings::Settings;
 use crate::project::{Project, WaveView};
-use crate::stats::linalg;
-use crate::stats::multilevel::{self, Criterion, Data};
+use crate::stats::multilevel::{self, Criterion, Data, MultilevelFit};
 use crate::stats::random::Rng;
+use crate::stats::{linalg, pca};
 
 /// Simulation draws of the prediction interval.
 pub const DRAWS: usize = 2000;
+
+/// Most cells a composition keeps in the logistic model's simulation draws.
+pub const CELLS: usize = 48;
+
+/// Gauss-Hermite nodes of the logistic projection of absent countries.
+const NODES: usize = 32;
 
 #[derive(Debug, Clone, Serialize)]
 pub struct ProjectedCountry {
@@ -40,6 +61,23 @@ pub struct ProjectedCountry {
     pub high: Option<f64>,
     /// Absent and outside the participants' range on these indicators.
     pub outside_range: Vec<String>,
+    /// Absent and outside the participants' convex hull on the first two components.
+    pub outside_hull: bool,
+    /// Position on the first two principal components (null without a map).
+    pub pc1: Option<f64>,
+    pub pc2: Option<f64>,
+    /// The country's weight in the universe estimate (1 with equal counting, its
+    /// population otherwise; null when not estimable).
+    pub weight: Option<f64>,
+    /// Where an absent country's composition came from ("file" or "pooled").
+    pub composition: Option<&'static str>,
+}
+
+impl ProjectedCountry {
+    /// Absent and outside the participants' support (range or hull).
+    pub fn flagged(&self) -> bool {
+        !self.participated && (!self.outside_range.is_empty() || self.outside_hull)
+    }
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -68,6 +106,8 @@ pub struct ProjectionReport {
     pub outcome: String,
     pub predictors: Vec<String>,
     pub indicators: Vec<String>,
+    /// "linear" or "logistic" (a binary outcome).
+    pub kind: &'static str,
     /// The model: intercept, respondent predictors, then standardised indicators.
     pub terms: Vec<String>,
     pub coef: Vec<f64>,
@@ -75,6 +115,8 @@ pub struct ProjectionReport {
     pub country_sd: f64,
     pub residual_sd: Option<f64>,
     pub method: &'static str,
+    /// How the countries' predictions and the interval are made, in words.
+    pub projection_method: String,
     pub converged: bool,
     pub n_respondents: usize,
     pub n_participants: usize,
@@ -85,11 +127,19 @@ pub struct ProjectionReport {
     pub universe_estimate: f64,
     pub universe_low: f64,
     pub universe_high: f64,
+    /// How countries count in the universe estimate: "equal" or "population".
+    pub shares: &'static str,
+    /// The population column when countries count by population.
+    pub population_column: Option<String>,
     pub seed: u64,
     pub draws: usize,
     pub flagged: usize,
     /// Share of the universe estimate's country weight on flagged countries.
     pub flagged_share: f64,
+    /// Variance shares of the map's two components (empty without a map).
+    pub map_explained: Vec<f64>,
+    /// Why there is no map (and no hull check), if there is none.
+    pub map_error: Option<String>,
     pub countries: Vec<ProjectedCountry>,
     pub regions: Vec<RegionRow>,
     pub largest_differences: Vec<Difference>,
@@ -115,12 +165,131 @@ pub struct ProjectionSettings {
     pub predictors: Vec<String>,
 }
 
-/// Computes the projection for one wave of a project with microdata.
+/// How countries count in the universe estimate.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum CountryShares {
+    /// Every eligible country the same.
+    #[default]
+    Equal,
+    /// By population (the manifest's `[population]` column).
+    Population,
+}
+
+/// Options beyond the request, with defaults (`projection` uses them).
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize)]
+pub struct ProjectionOptions {
+    pub shares: CountryShares,
+}
+
+/// Computes the projection for one wave of a project with microdata, countries counted
+/// equally.
 pub fn projection(
     project: &Project,
     view: &WaveView,
     settings: &Settings,
     ps: &ProjectionSettings,
+) -> Result<ProjectionReport, ProjectionError> {
+    projection_with(project, view, settings, ps, &ProjectionOptions::default())
+}
+
+/// A composition: cells of the respondent part of the design (intercept first) with
+/// shares summing to 1.
+#[derive(Debug, Clone)]
+struct Cells {
+    rows: Vec<Vec<f64>>,
+    share: Vec<f64>,
+}
+
+impl Cells {
+    fn mean(&self) -> Vec<f64> {
+        let k = self.rows.first().map_or(0, Vec::len);
+        let mut m = vec![0.0; k];
+        for (r, s) in self.rows.iter().zip(&self.share) {
+            for (a, v) in m.iter_mut().zip(r) {
+                *a += s * v;
+            }
+        }
+        m
+    }
+}
+
+/// At most `most` respondents standing for `members` (row indices into `x`): all of
+/// them when there are few, else those at evenly spaced quantiles of the fitted
+/// respondent part `eta`; equal shares.
+fn representatives(
+    members: &[usize],
+    eta: &[f64],
+    x: &Array2<f64>,
+    kr: usize,
+    most: usize,
+) -> Cells {
+    let mut order: Vec<usize> = members.to_vec();
+    let picked: Vec<usize> = if order.len() <= most {
+        order
+    } else {
+        order.sort_by(|&a, &b| eta[a].total_cmp(&eta[b]));
+        let n = order.len();
+        (0..most)
+            .map(|k| order[((2 * k + 1) * n / (2 * most)).min(n - 1)])
+            .collect()
+    };
+    let m = picked.len().max(1) as f64;
+    Cells {
+        rows: picked
+            .iter()
+            .map(|&r| (0..kr).map(|j| x[[r, j]]).collect())
+            .collect(),
+        share: vec![1.0 / m; picked.len()],
+    }
+}
+
+/// The distinct respondent parts among `members`, each with its share of them (exact);
+/// `None` when there are more than `most`.
+fn distinct_cells(members: &[usize], x: &Array2<f64>, kr: usize, most: usize) -> Option<Cells> {
+    let mut index: HashMap<Vec<u64>, usize> = HashMap::new();
+    let mut cells = Cells {
+        rows: Vec::new(),
+        share: Vec::new(),
+    };
+    for &r in members {
+        let key: Vec<u64> = (0..kr).map(|j| x[[r, j]].to_bits()).collect();
+        let next = cells.rows.len();
+        let at = *index.entry(key).or_insert(next);
+        if at == next {
+            if next == most {
+                return None;
+            }
+            cells.rows.push((0..kr).map(|j| x[[r, j]]).collect());
+            cells.share.push(0.0);
+        }
+        cells.share[at] += 1.0;
+    }
+    let n = members.len().max(1) as f64;
+    cells.share.iter_mut().for_each(|s| *s /= n);
+    Some(cells)
+}
+
+/// Most distinct cells of the pooled composition kept exactly in the logistic model's
+/// point projections (beyond it, respondents at this many quantiles).
+const POINT_CELLS: usize = 2000;
+
+fn inv_logit(v: f64) -> f64 {
+    if v >= 0.0 {
+        1.0 / (1.0 + (-v).exp())
+    } else {
+        let e = v.exp();
+        e / (1.0 + e)
+    }
+}
+
+/// Computes the projection for one wave of a project with microdata.
+pub fn projection_with(
+    project: &Project,
+    view: &WaveView,
+    settings: &Settings,
+    ps: &ProjectionSettings,
+    options: &ProjectionOptions,
 ) -> Result<ProjectionReport, ProjectionError> {
     let micro = project
         .microdata
@@ -250,36 +419,164 @@ pub fn projection(
         }
         y.push(outcome[i].unwrap_or(0.0));
     }
-    let fit = multilevel::fit_linear(
-        &Data {
-            x: x.view(),
-            y: &y,
-            group: &group,
-            n_groups,
-            weight: None,
-        },
-        Criterion::Reml,
-    )
-    .map_err(|e| req(format!("the multilevel model cannot be fitted: {e}")))?;
+    let binary = y.iter().all(|&v| v == 0.0 || v == 1.0)
+        && y.contains(&0.0)
+        && y.contains(&1.0);
+    let data = Data {
+        x: x.view(),
+        y: &y,
+        group: &group,
+        n_groups,
+        weight: None,
+    };
+    let fitted: Result<MultilevelFit, _> = if binary {
+        multilevel::fit_logistic(&data, 1)
+    } else {
+        multilevel::fit_linear(&data, Criterion::Reml)
+    };
+    let fit = fitted.map_err(|e| req(format!("the multilevel model cannot be fitted: {e}")))?;
 
-    // Respondent composition: per participant and pooled (means of the respondent part).
-    let mut comp = vec![vec![0.0; kr]; n_groups];
+    // The respondent part of each respondent's linear predictor at the estimates.
+    let eta: Vec<f64> = (0..rows.len())
+        .map(|r| (0..kr).map(|j| x[[r, j]] * fit.coef[j]).sum())
+        .collect();
+    let mut members: Vec<Vec<usize>> = vec![Vec::new(); n_groups];
     let mut ysum = vec![0.0; n_groups];
-    let mut count = vec![0usize; n_groups];
-    let mut pooled = vec![0.0; kr];
+    // Participants' point predictions over their own respondents (exact).
+    let mut own_point = vec![0.0; n_groups];
+    // How each conditional mode moves with the fixed effects, d u_j / d b (so that a
+    // simulation draw of b carries its participants' modes along instead of counting the
+    // same uncertainty twice): -Var(u_j | y) sum_i c_i x_i, with c_i = 1 / sigma^2 (linear;
+    // exact) or p_i (1 - p_i) (logistic; the Laplace mode's first-order change).
+    let mut sensitivity = vec![vec![0.0; k]; n_groups];
     for r in 0..rows.len() {
         let g = group[r];
-        count[g] += 1;
+        members[g].push(r);
         ysum[g] += y[r];
-        for j in 0..kr {
-            comp[g][j] += x[[r, j]];
-            pooled[j] += x[[r, j]];
+        let z_part: f64 = (0..kz).map(|j| x[[r, kr + j]] * fit.coef[kr + j]).sum();
+        let lin = eta[r] + z_part + fit.modes[g];
+        let c = if binary {
+            let p = inv_logit(lin);
+            own_point[g] += p;
+            p * (1.0 - p)
+        } else {
+            own_point[g] += lin;
+            1.0 / fit.residual_sd.map_or(f64::NAN, |s| s * s)
+        };
+        for (j, v) in sensitivity[g].iter_mut().enumerate() {
+            *v += c * x[[r, j]];
         }
     }
     for g in 0..n_groups {
-        comp[g].iter_mut().for_each(|v| *v /= count[g] as f64);
+        own_point[g] /= members[g].len() as f64;
+        let scale = -fit.mode_variance[g];
+        sensitivity[g].iter_mut().for_each(|v| {
+            *v = if v.is_finite() { *v * scale } else { 0.0 };
+        });
     }
-    pooled.iter_mut().for_each(|v| *v /= rows.len() as f64);
+    let all_rows: Vec<usize> = (0..rows.len()).collect();
+    let cells_of = |m: &[usize]| -> Cells {
+        if binary {
+            representatives(m, &eta, &x, kr, CELLS)
+        } else {
+            let mut mean = vec![0.0; kr];
+            for &r in m {
+                for (j, a) in mean.iter_mut().enumerate() {
+                    *a += x[[r, j]];
+                }
+            }
+            mean.iter_mut().for_each(|v| *v /= m.len().max(1) as f64);
+            Cells {
+                rows: vec![mean],
+                share: vec![1.0],
+            }
+        }
+    };
+    let own_cells: Vec<Cells> = members.iter().map(|m| cells_of(m)).collect();
+    let pooled = cells_of(&all_rows);
+    // The pooled composition of the logistic model's point projections: exact cells, or
+    // many quantiles when the respondents are too varied.
+    let pooled_point = if binary {
+        distinct_cells(&all_rows, &x, kr, POINT_CELLS)
+            .unwrap_or_else(|| representatives(&all_rows, &eta, &x, kr, POINT_CELLS))
+    } else {
+        pooled.clone()
+    };
+
+    // Absent countries' compositions from the composition file, where it covers the
+    // model's respondent predictors.
+    let mut notes = Vec::new();
+    let file_positions: Option<Vec<usize>> = project.composition.as_ref().and_then(|c| {
+        let pos: Option<Vec<usize>> = ps
+            .predictors
+            .iter()
+            .map(|p| c.variables.iter().position(|v| v == p))
+            .collect();
+        if pos.is_none() {
+            notes.push(format!(
+                "{} does not give every respondent predictor of the model ({}): absent countries use the participants' pooled composition",
+                c.file,
+                ps.predictors.join(", ")
+            ));
+        }
+        pos
+    });
+    let file_cells = |code: &str| -> Option<Cells> {
+        let comp = project.composition.as_ref()?;
+        let pos = file_positions.as_ref()?;
+        let cells: Vec<_> = comp.of(code, view.wave).collect();
+        let total: f64 = cells.iter().map(|c| c.share).sum();
+        if cells.is_empty() || total <= 0.0 {
+            return None;
+        }
+        let rows: Vec<Vec<f64>> = cells
+            .iter()
+            .map(|c| {
+                std::iter::once(1.0)
+                    .chain(pos.iter().map(|&p| c.values[p]))
+                    .collect()
+            })
+            .collect();
+        let share: Vec<f64> = cells.iter().map(|c| c.share / total).collect();
+        let cells = Cells { rows, share };
+        Some(if binary {
+            cells
+        } else {
+            Cells {
+                rows: vec![cells.mean()],
+                share: vec![1.0],
+            }
+        })
+    };
+
+    // Country weights in the universe estimate.
+    let population_column = match options.shares {
+        CountryShares::Equal => None,
+        CountryShares::Population => Some(
+            project
+                .manifest
+                .population
+                .as_ref()
+                .map(|p| p.column.clone())
+                .ok_or_else(|| {
+                    req("counting countries by population needs a [population] section in project.toml naming the population column")
+                })?,
+        ),
+    };
+    let population: Option<Vec<Option<f64>>> = population_column.as_ref().map(|col| {
+        let scale = project.manifest.population_scale(col);
+        let all = project.frame.numbers(col);
+        view.rows
+            .iter()
+            .map(|&r| {
+                all.get(r)
+                    .copied()
+                    .flatten()
+                    .map(|v| scale.people(v))
+                    .filter(|p| p.is_finite() && *p > 0.0)
+            })
+            .collect()
+    });
 
     // Eligible countries of the wave (the view is the eligible universe).
     let region_of = |i: usize| -> Option<String> {
@@ -290,15 +587,17 @@ pub fn projection(
     struct Unit {
         view: usize,
         group: Option<usize>,
-        /// Composition row (respondent part) and indicators.
-        a: Vec<f64>,
+        /// The composition of the point projection (absent countries) and of the draws.
+        point_cells: Cells,
+        cells: Cells,
         z: Vec<f64>,
+        weight: f64,
     }
     let mut units = Vec::new();
     let mut countries = Vec::new();
-    let mut flagged = 0;
-    let mut notes = Vec::new();
     let mut not_estimable = Vec::new();
+    let mut no_population = Vec::new();
+    let mut from_file = 0usize;
     for i in 0..view.len() {
         let g = group_of_unit.get(&i).copied();
         let z = z_of(i);
@@ -311,11 +610,39 @@ pub fn projection(
                 }
             }
         }
-        if !outside.is_empty() {
-            flagged += 1;
-        }
-        let estimable = z.is_some();
-        if !estimable {
+        // A participant without usable respondents has no mode: it is projected as absent.
+        let weight = match &population {
+            None => Some(1.0),
+            Some(p) => p[i],
+        };
+        let mut source = None;
+        if let Some(z) = z.clone() {
+            if weight.is_none() {
+                no_population.push(view.codes[i].clone());
+            }
+            let (point_cells, cells) = match g {
+                Some(g) => (own_cells[g].clone(), own_cells[g].clone()),
+                None => match file_cells(&view.codes[i]) {
+                    Some(c) => {
+                        from_file += 1;
+                        source = Some("file");
+                        (c.clone(), c)
+                    }
+                    None => {
+                        source = Some("pooled");
+                        (pooled_point.clone(), pooled.clone())
+                    }
+                },
+            };
+            units.push(Unit {
+                view: i,
+                group: g,
+                point_cells,
+                cells,
+                z,
+                weight: weight.unwrap_or(0.0),
+            });
+        } else {
             not_estimable.push(view.codes[i].clone());
         }
         countries.push(ProjectedCountry {
@@ -323,20 +650,17 @@ pub fn projection(
             name: view.names[i].clone(),
             region: region_of(i),
             participated: view.participated[i],
-            respondents: g.map_or(0, |g| count[g]),
+            respondents: g.map_or(0, |g| members[g].len()),
             prediction: None,
             low: None,
             high: None,
             outside_range: outside,
+            outside_hull: false,
+            pc1: None,
+            pc2: None,
+            weight: None,
+            composition: source,
         });
-        if let (Some(z), true) = (z, estimable) {
-            units.push(Unit {
-                view: i,
-                group: g,
-                a: g.map_or_else(|| pooled.clone(), |g| comp[g].clone()),
-                z,
-            });
-        }
     }
     if !not_estimable.is_empty() {
         notes.push(format!(
@@ -344,19 +668,97 @@ pub fn projection(
             not_estimable.join(", ")
         ));
     }
-    let predict = |coef: &[f64], u: &Unit, effect: f64| -> f64 {
-        effect
-            + u.a.iter().zip(&coef[..kr]).map(|(a, c)| a * c).sum::<f64>()
-            + u.z.iter().zip(&coef[kr..]).map(|(z, c)| z * c).sum::<f64>()
+    if !no_population.is_empty() {
+        return Err(req(format!(
+            "counting countries by population needs every eligible country's population; missing or not positive for: {}",
+            no_population.join(", ")
+        )));
+    }
+    if units.is_empty() {
+        return Err(req("no eligible country has every indicator"));
+    }
+
+    // The map: principal components of the indicators over the estimable countries, and
+    // the participants' hull on the first two.
+    let mut map_explained = Vec::new();
+    let map_error = if kz < 2 {
+        Some("the map needs at least two indicators".to_string())
+    } else {
+        let mut raw = Array2::<f64>::zeros((units.len(), kz));
+        for (m, u) in units.iter().enumerate() {
+            for (j, &c) in indicators.iter().enumerate() {
+                raw[[m, j]] = view.numeric[c].values[u.view].unwrap_or(0.0);
+            }
+        }
+        match pca::principal_components(raw.view()) {
+            Ok(p) => {
+                map_explained = p.explained.iter().take(2).copied().collect();
+                let hull = pca::convex_hull(
+                    &units
+                        .iter()
+                        .enumerate()
+                        .filter(|(_, u)| u.group.is_some())
+                        .map(|(m, _)| (p.scores[[m, 0]], p.scores[[m, 1]]))
+                        .collect::<Vec<_>>(),
+                );
+                for (m, u) in units.iter().enumerate() {
+                    let at = (p.scores[[m, 0]], p.scores[[m, 1]]);
+                    let c = &mut countries[u.view];
+                    c.pc1 = Some(at.0);
+                    c.pc2 = Some(at.1);
+                    c.outside_hull = !c.participated && !pca::inside_hull(&hull, at);
+                }
+                None
+            }
+            Err(e) => Some(format!("no map: {e}")),
+        }
     };
+
+    // Point predictions.
+    let (gh_nodes, gh_weights) = multilevel::gauss_hermite(NODES);
+    let z_part = |coef: &[f64], u: &Unit| -> f64 {
+        u.z.iter().zip(&coef[kr..]).map(|(z, c)| z * c).sum::<f64>()
+    };
+    let over = |coef: &[f64], u: &Unit, cells: &Cells, shift: f64| -> f64 {
+        let base = z_part(coef, u) + shift;
+        cells
+            .rows
+            .iter()
+            .zip(&cells.share)
+            .map(|(a, s)| {
+                let lin = base + a.iter().zip(&coef[..kr]).map(|(a, c)| a * c).sum::<f64>();
+                s * if binary { inv_logit(lin) } else { lin }
+            })
+            .sum()
+    };
+    let tau_hat = fit.country_sd;
     let point: Vec<f64> = units
         .iter()
-        .map(|u| predict(&fit.coef, u, u.group.map_or(0.0, |g| fit.modes[g])))
+        .map(|u| match u.group {
+            Some(g) => own_point[g],
+            None if binary => gh_nodes
+                .iter()
+                .zip(&gh_weights)
+                .map(|(t, w)| {
+                    w / std::f64::consts::PI.sqrt()
+                        * over(
+                            &fit.coef,
+                            u,
+                            &u.point_cells,
+                            std::f64::consts::SQRT_2 * tau_hat * t,
+                        )
+                })
+                .sum(),
+            None => over(&fit.coef, u, &u.point_cells, 0.0),
+        })
         .collect();
-    let n_units = units.len() as f64;
-    let universe_estimate = point.iter().sum::<f64>() / n_units;
+    let total_weight: f64 = units.iter().map(|u| u.weight).sum();
+    let weighted_mean = |v: &[f64]| -> f64 {
+        v.iter().zip(&units).map(|(p, u)| p * u.weight).sum::<f64>() / total_weight
+    };
+    let universe_estimate = weighted_mean(&point);
 
-    // Simulation.
+    // Simulation (each draw its own seeded stream, so the draws run in parallel).
     let chol = linalg::cholesky(fit.cov.view()).ok();
     let log_tau = fit.country_sd.ln();
     let log_tau_sd = if fit.log_sd_variance.is_finite() {
@@ -365,65 +767,80 @@ pub fn projection(
         0.0
     };
     let seed = settings.seed;
-    let mut sims = vec![vec![0.0; DRAWS]; units.len()];
-    let mut universe_draws = vec![0.0; DRAWS];
-    for d in 0..DRAWS {
-        let mut rng = Rng::stream(seed, d as u64);
-        let mut coef = fit.coef.clone();
-        if let Some(l) = &chol {
-            let e: Vec<f64> = (0..k).map(|_| rng.normal()).collect();
-            for a in 0..k {
-                coef[a] += (0..=a).map(|b| l[[a, b]] * e[b]).sum::<f64>();
+    let draws: Vec<Vec<f64>> = (0..DRAWS)
+        .into_par_iter()
+        .map(|d| {
+            let mut rng = Rng::stream(seed, d as u64);
+            let mut coef = fit.coef.clone();
+            if let Some(l) = &chol {
+                let e: Vec<f64> = (0..k).map(|_| rng.normal()).collect();
+                for a in 0..k {
+                    coef[a] += (0..=a).map(|b| l[[a, b]] * e[b]).sum::<f64>();
+                }
             }
-        }
-        let tau = if fit.country_sd > 0.0 {
-            (log_tau + log_tau_sd * rng.normal()).exp()
-        } else {
-            0.0
-        };
-        let mut total = 0.0;
-        for (m, u) in units.iter().enumerate() {
-            let effect = match u.group {
-                Some(g) => fit.modes[g] + fit.mode_variance[g].sqrt() * rng.normal(),
-                None => tau * rng.normal(),
+            let tau = if fit.country_sd > 0.0 {
+                (log_tau + log_tau_sd * rng.normal()).exp()
+            } else {
+                0.0
             };
-            let v = predict(&coef, u, effect);
-            sims[m][d] = v;
-            total += v;
-        }
-        universe_draws[d] = total / n_units;
-    }
+            units
+                .iter()
+                .map(|u| {
+                    let effect = match u.group {
+                        Some(g) => {
+                            let shift: f64 = sensitivity[g]
+                                .iter()
+                                .zip(coef.iter().zip(&fit.coef))
+                                .map(|(s, (b, b0))| s * (b - b0))
+                                .sum();
+                            fit.modes[g] + shift + fit.mode_variance[g].sqrt() * rng.normal()
+                        }
+                        None => tau * rng.normal(),
+                    };
+                    over(&coef, u, &u.cells, effect)
+                })
+                .collect()
+        })
+        .collect();
     let quantiles = |v: &mut Vec<f64>| -> (f64, f64) {
         v.sort_by(f64::total_cmp);
         let at = |q: f64| v[((q * (v.len() - 1) as f64).round() as usize).min(v.len() - 1)];
         (at(0.025), at(0.975))
     };
+    let mut universe_draws: Vec<f64> = draws.iter().map(|d| weighted_mean(d)).collect();
     for (m, u) in units.iter().enumerate() {
-        let (lo, hi) = quantiles(&mut sims[m]);
+        let mut sims: Vec<f64> = draws.iter().map(|d| d[m]).collect();
+        let (lo, hi) = quantiles(&mut sims);
         let c = &mut countries[u.view];
         c.prediction = Some(point[m]);
         c.low = Some(lo);
         c.high = Some(hi);
+        c.weight = Some(u.weight);
     }
     let (universe_low, universe_high) = quantiles(&mut universe_draws);
 
     let participants_mean = (0..n_groups)
-        .map(|g| ysum[g] / count[g] as f64)
+        .map(|g| ysum[g] / members[g].len() as f64)
         .sum::<f64>()
         / n_groups as f64;
-    let absent: Vec<f64> = countries
+    let wmean = |v: &[(f64, f64)]| -> Option<f64> {
+        let w: f64 = v.iter().map(|p| p.1).sum();
+        (!v.is_empty() && w > 0.0).then(|| v.iter().map(|p| p.0 * p.1).sum::<f64>() / w)
+    };
+    let absent: Vec<(f64, f64)> = countries
         .iter()
         .filter(|c| !c.participated)
-        .filter_map(|c| c.prediction)
+        .filter_map(|c| Some((c.prediction?, c.weight?)))
         .collect();
-    let mean = |v: &[f64]| (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64);
+    let flagged = countries.iter().filter(|c| c.flagged()).count();
     let flagged_share = countries
         .iter()
-        .filter(|c| c.prediction.is_some() && !c.outside_range.is_empty())
-        .count() as f64
-        / n_units;
+        .filter(|c| c.flagged())
+        .filter_map(|c| c.weight)
+        .sum::<f64>()
+        / total_weight;
 
-    // Regions.
+    // Regions (countries weighted as in the universe estimate).
     let mut region_names: Vec<String> = Vec::new();
     for c in &countries {
         if let Some(r) = &c.region {
@@ -436,12 +853,12 @@ pub fn projection(
     let regions: Vec<RegionRow> = region_names
         .iter()
         .map(|r| {
-            let of = |part: Option<bool>| -> Vec<f64> {
+            let of = |part: Option<bool>| -> Vec<(f64, f64)> {
                 countries
                     .iter()
                     .filter(|c| c.region.as_ref() == Some(r))
                     .filter(|c| part.is_none_or(|p| c.participated == p))
-                    .filter_map(|c| c.prediction)
+                    .filter_map(|c| Some((c.prediction?, c.weight?)))
                     .collect()
             };
             let (p, a, all) = (of(Some(true)), of(Some(false)), of(None));
@@ -449,9 +866,9 @@ pub fn projection(
                 region: r.clone(),
                 participants: p.len(),
                 absent: a.len(),
-                participants_mean: mean(&p),
-                absent_mean: mean(&a),
-                universe_mean: mean(&all),
+                participants_mean: wmean(&p),
+                absent_mean: wmean(&a),
+                universe_mean: wmean(&all),
             }
         })
         .collect();
@@ -488,6 +905,30 @@ pub fn projection(
     if !fit.converged {
         notes.push("the multilevel model did not converge: treat the projection with care".into());
     }
+    let composition = match (&project.composition, &file_positions, from_file) {
+        (None, _, _) => "absent countries: the participants' pooled respondent composition (the project has no composition file)",
+        (Some(_), None, _) => "absent countries: the participants' pooled respondent composition (the composition file does not give every respondent predictor)",
+        (Some(_), Some(_), 0) => "absent countries: the participants' pooled respondent composition (the composition file has no cells for them in this wave)",
+        (Some(_), Some(_), _) => "absent countries: their cells in the composition file where it has them, else the participants' pooled respondent composition",
+    };
+    let pooled_absent: Vec<&str> = countries
+        .iter()
+        .filter(|c| c.composition == Some("pooled"))
+        .map(|c| c.code.as_str())
+        .collect();
+    if from_file > 0 && !pooled_absent.is_empty() {
+        notes.push(format!(
+            "the composition file has no cells for {}: they use the participants' pooled composition",
+            pooled_absent.join(", ")
+        ));
+    }
+    let projection_method = if binary {
+        format!(
+            "The outcome is binary (0/1), so the model is logistic with a random country intercept (Laplace approximation) and the projections are probabilities. A participant's prediction is the mean over its respondents of the fitted probability at its conditional mode; an absent country's integrates the probability over its unknown country effect u ~ N(0, tau^2) by {NODES}-point Gauss-Hermite quadrature. The pooled composition enters the point projections exactly (by its distinct respondent cells, or {POINT_CELLS} quantiles of the linear predictor when there are more); the simulation draws summarise each country's composition by at most {CELLS} respondents at evenly spaced quantiles of the linear predictor."
+        )
+    } else {
+        "The outcome is continuous, so the model is linear with a random country intercept (REML). A participant's prediction is the mean over its respondents of the fitted value at its conditional mode; an absent country's is the fitted value at its indicators and composition with a country effect of 0 (its expectation).".to_string()
+    };
     Ok(ProjectionReport {
         wave: view.wave,
         outcome: ps.outcome.clone(),
@@ -496,29 +937,38 @@ pub fn projection(
             .iter()
             .map(|&c| view.numeric[c].column.clone())
             .collect(),
+        kind: if binary { "logistic" } else { "linear" },
         terms,
         coef: fit.coef.clone(),
         se: fit.se.clone(),
         country_sd: fit.country_sd,
         residual_sd: fit.residual_sd,
-        method: "REML",
+        method: if binary { "Laplace" } else { "REML" },
+        projection_method,
         converged: fit.converged,
         n_respondents: rows.len(),
         n_participants: n_groups,
         n_absent: absent.len(),
         participants_mean,
-        projected_absent_mean: mean(&absent),
+        projected_absent_mean: wmean(&absent),
         universe_estimate,
         universe_low,
         universe_high,
+        shares: match options.shares {
+            CountryShares::Equal => "equal",
+            CountryShares::Population => "population",
+        },
+        population_column,
         seed,
         draws: DRAWS,
         flagged,
         flagged_share,
+        map_explained,
+        map_error,
         countries,
         regions,
         largest_differences,
-        composition: "absent countries: the participants' pooled respondent composition (no composition file)",
+        composition,
         notes,
     })
 }

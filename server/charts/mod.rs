@@ -7,6 +7,7 @@ pub mod impact;
 pub mod map;
 pub mod model;
 pub mod plan;
+pub mod projection;
 pub mod selection_bounds;
 pub mod sensitivity;
 

@@ -162,10 +162,47 @@ pub struct MicrodataRoles {
     pub respondent: Option<String>,
 }
 
+/// The `[projection]` section: files used by the multilevel projection (kept apart from
+/// [`Manifest`] so that manifests built in code need not name it).
+#[derive(Debug, Clone, Default, Deserialize, Serialize, PartialEq, Eq)]
+#[serde(deny_unknown_fields)]
+pub struct ProjectionFiles {
+    /// A CSV of respondent composition cells per country and wave (see the README).
+    #[serde(default)]
+    pub composition: Option<String>,
+}
+
+/// The manifest as written, with the sections [`Manifest`] does not hold.
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct Written {
+    title: String,
+    #[serde(default)]
+    description: Option<String>,
+    columns: ColumnRoles,
+    #[serde(default)]
+    indicators: Indicators,
+    #[serde(default)]
+    eligibility: Vec<EligibilityRule>,
+    #[serde(default)]
+    recruitment: Recruitment,
+    #[serde(default)]
+    microdata: Option<MicrodataRoles>,
+    #[serde(default)]
+    population: Option<Population>,
+    #[serde(default)]
+    projection: ProjectionFiles,
+}
+
 impl Manifest {
     /// Parses manifest text; syntax and type errors name the line and column.
     pub fn parse(text: &str) -> Result<Manifest, Vec<Problem>> {
-        let manifest: Manifest = toml::from_str(text).map_err(|e| {
+        Self::parse_with_projection(text).map(|(m, _)| m)
+    }
+
+    /// Parses manifest text with its `[projection]` section.
+    pub fn parse_with_projection(text: &str) -> Result<(Manifest, ProjectionFiles), Vec<Problem>> {
+        let written: Written = toml::from_str(text).map_err(|e| {
             let (row, column) = e
                 .span()
                 .map(|span| line_and_column(text, span.start))
@@ -178,9 +215,20 @@ impl Manifest {
                 format!("{message}; see the README's table of project.toml fields"),
             )]
         })?;
+        let projection = written.projection;
+        let manifest = Manifest {
+            title: written.title,
+            description: written.description,
+            columns: written.columns,
+            indicators: written.indicators,
+            eligibility: written.eligibility,
+            recruitment: written.recruitment,
+            microdata: written.microdata,
+            population: written.population,
+        };
         let problems = manifest.check_consistency();
         if problems.is_empty() {
-            Ok(manifest)
+            Ok((manifest, projection))
         } else {
             Err(problems)
         }

@@ -2,6 +2,7 @@
 //! microdata, loaded with polars and validated. Every problem is reported as
 //! `file:row:column: message`; nothing here panics on bad input.
 
+pub mod composition;
 pub mod eligibility;
 pub mod manifest;
 pub mod problem;
@@ -31,6 +32,8 @@ pub struct Project {
     /// One row per country and wave, typed columns (see [`table::load_table`]).
     pub frame: Table,
     pub microdata: Option<Table>,
+    /// The respondent composition of countries (`[projection] composition`), if declared.
+    pub composition: Option<composition::Composition>,
     /// Distinct waves, ascending.
     pub waves: Vec<i64>,
     pub eligibility: Eligibility,
@@ -142,7 +145,7 @@ impl Project {
                 "the manifest is not UTF-8 text; save it as UTF-8",
             )]
         })?;
-        let manifest = Manifest::parse(&text)?;
+        let (manifest, projection_files) = Manifest::parse_with_projection(&text)?;
         let mut conflicts = conflicting_roles(MANIFEST_FILE, &frame_specs(&manifest));
         if let Some(roles) = &manifest.microdata {
             conflicts.extend(conflicting_roles(MANIFEST_FILE, &microdata_specs(roles)));
@@ -266,6 +269,23 @@ impl Project {
             },
         };
 
+        let composition = match &projection_files.composition {
+            None => None,
+            Some(name) => {
+                let known: std::collections::HashSet<String> =
+                    keys.iter().map(|k| k.0.clone()).collect();
+                match composition::load(dir, name, manifest.microdata.as_ref(), &known) {
+                    Ok((c, bytes)) => {
+                        inputs.push(LoadedFile::new(name, &bytes, Some(c.cells.len())));
+                        Some(c)
+                    }
+                    Err(p) => {
+                        problems.extend(p);
+                        None
+                    }
+                }
+            }
+        };
         if !problems.is_empty() {
             return Err(problems.into_vec());
         }
@@ -277,6 +297,7 @@ impl Project {
             manifest,
             frame,
             microdata,
+            composition,
             waves,
             eligibility,
             warnings,

@@ -68,3 +68,84 @@ pub fn principal_components(x: ArrayView2<f64>) -> Result<Components, PcaError> 
         scores,
     })
 }
+
+/// The convex hull of points in the plane, counter-clockwise, by Andrew's monotone chain
+/// (Andrew 1979, Inf. Process. Lett. 9, 216-219). Fewer than three distinct points give
+/// the distinct points themselves (a segment or a point).
+pub fn convex_hull(points: &[(f64, f64)]) -> Vec<(f64, f64)> {
+    let mut p: Vec<(f64, f64)> = points
+        .iter()
+        .copied()
+        .filter(|(x, y)| x.is_finite() && y.is_finite())
+        .collect();
+    p.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.total_cmp(&b.1)));
+    p.dedup();
+    if p.len() < 3 {
+        return p;
+    }
+    let cross = |o: (f64, f64), a: (f64, f64), b: (f64, f64)| {
+        (a.0 - o.0) * (b.1 - o.1) - (a.1 - o.1) * (b.0 - o.0)
+    };
+    let mut hull: Vec<(f64, f64)> = Vec::with_capacity(2 * p.len());
+    for pass in 0..2 {
+        let start = hull.len();
+        let iter: Box<dyn Iterator<Item = &(f64, f64)>> = if pass == 0 {
+            Box::new(p.iter())
+        } else {
+            Box::new(p.iter().rev())
+        };
+        for &q in iter {
+            while hull.len() >= start + 2 && cross(hull[hull.len() - 2], hull[hull.len() - 1], q) <= 0.0
+            {
+                hull.pop();
+            }
+            hull.push(q);
+        }
+        hull.pop();
+    }
+    hull
+}
+
+/// Whether `q` lies inside or on the convex polygon `hull` (counter-clockwise, from
+/// [`convex_hull`]), with a relative tolerance for points on an edge. A hull of fewer than
+/// three points contains nothing but its own points.
+pub fn inside_hull(hull: &[(f64, f64)], q: (f64, f64)) -> bool {
+    if hull.len() < 3 {
+        return hull.contains(&q);
+    }
+    let scale = hull
+        .iter()
+        .fold(1e-12f64, |m, p| m.max(p.0.abs()).max(p.1.abs()));
+    (0..hull.len()).all(|i| {
+        let (a, b) = (hull[i], hull[(i + 1) % hull.len()]);
+        (b.0 - a.0) * (q.1 - a.1) - (b.1 - a.1) * (q.0 - a.0) >= -1e-12 * scale * scale
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn hull_of_a_square_with_inner_points() {
+        // Common practice: a unit square with points inside and on an edge.
+        let pts = [
+            (0.0, 0.0),
+            (1.0, 0.0),
+            (1.0, 1.0),
+            (0.0, 1.0),
+            (0.5, 0.5),
+            (0.5, 0.0),
+            (0.2, 0.7),
+        ];
+        let hull = convex_hull(&pts);
+        assert_eq!(hull.len(), 4, "{hull:?}");
+        assert!(inside_hull(&hull, (0.3, 0.3)));
+        assert!(inside_hull(&hull, (1.0, 0.5)));
+        assert!(!inside_hull(&hull, (1.01, 0.5)));
+        assert!(!inside_hull(&hull, (-0.5, -0.5)));
+        // Collinear points: a segment contains nothing else.
+        let line = convex_hull(&[(0.0, 0.0), (1.0, 1.0), (2.0, 2.0)]);
+        assert!(!inside_hull(&line, (0.5, 0.6)));
+    }
+}

@@ -9,12 +9,15 @@ use axum::response::{Html, Response};
 use axum::Json;
 
 use super::context::{off_thread, resolve, SettingsForm};
-use super::csv_response;
+use super::{csv_response, svg_response};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
 use crate::analysis::cautions::{Caution, STANDING};
-use crate::analysis::projection::{projection, ProjectionReport, ProjectionSettings};
+use crate::analysis::projection::{
+    projection_with, CountryShares, ProjectionOptions, ProjectionReport, ProjectionSettings,
+};
+use crate::charts;
 use crate::csv_out::{cell, csv_text};
 use crate::project::Project;
 
@@ -28,6 +31,9 @@ struct ProjectionPage<'a> {
     r: &'a ProjectionReport,
     variables: Vec<String>,
     own_query: String,
+    map_chart: String,
+    /// The project declares a population column (countries can count by population).
+    has_population: bool,
     cautions: &'a [Caution],
 }
 
@@ -54,6 +60,24 @@ pub(crate) fn projection_settings(
     })
 }
 
+/// How countries count (`shares=equal|population`; population from project.toml).
+pub(crate) fn projection_options(query: &super::context::Query) -> AppResult<ProjectionOptions> {
+    let shares = match query
+        .iter()
+        .find(|(k, _)| k == "shares")
+        .map(|(_, v)| v.as_str())
+    {
+        None | Some("equal") => CountryShares::Equal,
+        Some("population") => CountryShares::Population,
+        Some(other) => {
+            return Err(AppError::BadRequest(format!(
+                "shares must be equal or population, not '{other}'"
+            )))
+        }
+    };
+    Ok(ProjectionOptions { shares })
+}
+
 pub(crate) fn compute(
     state: &AppState,
     query: &super::context::Query,
@@ -61,7 +85,8 @@ pub(crate) fn compute(
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/projection", &project, &settings);
     let ps = projection_settings(&project, query)?;
-    let r = projection(&project, &view, &settings, &ps)?;
+    let options = projection_options(query)?;
+    let r = projection_with(&project, &view, &settings, &ps, &options)?;
     let variables = project
         .manifest
         .microdata
@@ -82,6 +107,18 @@ pub(crate) fn own_query(ps: &ProjectionSettings) -> String {
     q.finish()
 }
 
+/// [`own_query`] with the counting of countries (left out when equal, the default).
+fn own_query_of(r: &ProjectionReport) -> String {
+    let mut q = own_query(&ProjectionSettings {
+        outcome: r.outcome.clone(),
+        predictors: r.predictors.clone(),
+    });
+    if r.shares == "population" {
+        q.push_str("&shares=population");
+    }
+    q
+}
+
 pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
@@ -91,10 +128,9 @@ pub async fn page(
     let html = ProjectionPage {
         page: "projection",
         nav_query: form.query.clone(),
-        own_query: own_query(&ProjectionSettings {
-            outcome: r.outcome.clone(),
-            predictors: r.predictors.clone(),
-        }),
+        own_query: own_query_of(&r),
+        map_chart: charts::projection::component_map(&r),
+        has_population: state.project().manifest.population.is_some(),
         form,
         f: Fmt,
         r: &r,
@@ -119,6 +155,10 @@ pub async fn artifact(
 ) -> AppResult<Response> {
     let (_, r, _) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
+        "map.svg" => Ok(svg_response(
+            "projection-map.svg",
+            charts::projection::component_map(&r),
+        )),
         "table.csv" => Ok(csv_response(
             "projection.csv",
             csv_text(
@@ -132,6 +172,10 @@ pub async fn artifact(
                     "low_95",
                     "high_95",
                     "outside_participants_range",
+                    "outside_participants_hull",
+                    "pc1",
+                    "pc2",
+                    "weight",
                 ],
                 r.countries.iter().map(|c| {
                     vec![
@@ -144,10 +188,16 @@ pub async fn artifact(
                         cell(c.low),
                         cell(c.high),
                         c.outside_range.join(" "),
+                        u8::from(c.outside_hull).to_string(),
+                        cell(c.pc1),
+                        cell(c.pc2),
+                        cell(c.weight),
                     ]
                 }),
             ),
         )),
-        _ => Err(AppError::NotFound(format!("no /projection/{item}"))),
+        _ => Err(AppError::NotFound(format!(
+            "no /projection/{item}; try map.svg or table.csv"
+        ))),
     }
 }
