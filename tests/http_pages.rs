@@ -190,7 +190,7 @@ fn raw_column_names_never_reach_the_missing_note_or_the_predictor_list() {
     let m: toml::Value = toml::from_str(&stripped).unwrap();
     let names: Vec<String> = ["numeric", "categorical"]
         .iter()
-        .flat_map(|k| m["indicators"][k].as_array().unwrap().clone())
+        .flat_map(|k| m["indicators"][*k].as_array().unwrap().clone())
         .chain(m["microdata"]["variables"].as_array().unwrap().clone())
         .map(|v| v.as_str().unwrap().to_string())
         .filter(|n| n.contains('_'))
@@ -228,11 +228,66 @@ fn raw_column_names_never_reach_the_missing_note_or_the_predictor_list() {
     let form = fragment(&page.body, "aria-label=\"Model settings\"", "</form>");
     let predictors = fragment(form, "<legend>Predictors</legend>", "</fieldset>");
     assert!(predictors.contains("value=\"log_gdp_pc\""), "{predictors}");
-    assert!(predictors.contains("value=\"income_decile\""), "{predictors}");
+    assert!(
+        predictors.contains("value=\"income_decile\""),
+        "{predictors}"
+    );
     let shown = shown_text(form);
     assert!(raw_in(&shown).is_empty(), "{:?} in {shown}", raw_in(&shown));
     assert!(shown.contains("GDP pc (log) (country)"), "{shown}");
     assert!(shown.contains("Income decile"), "{shown}");
     let headings = shown_text(fragment(&page.body, "<section id=\"pooled\">", "</h2>"));
     assert!(raw_in(&headings).is_empty(), "{headings}");
+}
+
+#[path = "../benches/common/routes.rs"]
+mod routes;
+
+#[test]
+fn the_benchmarks_request_every_route_of_the_router() {
+    // Our own rule: `cargo bench --bench pages` and `--bench load` time every GET route
+    // of the router (the projects pages need --projects and are left out), and every
+    // route they request answers.
+    let source = std::fs::read_to_string(
+        std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("server/web/mod.rs"),
+    )
+    .unwrap();
+    let compact: String = source.split_whitespace().collect();
+    let mut patterns = Vec::new();
+    for piece in compact.split(".route(\"").skip(1) {
+        let Some((path, rest)) = piece.split_once("\",") else {
+            continue;
+        };
+        if rest.starts_with("get(") && !path.starts_with("/projects") {
+            patterns.push(path.to_string());
+        }
+    }
+    assert!(patterns.len() >= 25, "{patterns:?}");
+    let matches = |pattern: &str, route: &str| {
+        let path = route.split('?').next().unwrap_or(route);
+        let (p, r): (Vec<&str>, Vec<&str>) =
+            (pattern.split('/').collect(), path.split('/').collect());
+        p.len() == r.len()
+            && p.iter()
+                .zip(&r)
+                .all(|(a, b)| a == b || (a.starts_with('{') && !b.is_empty()))
+    };
+    for pattern in &patterns {
+        assert!(
+            routes::ROUTES.iter().any(|r| matches(pattern, r)),
+            "{pattern} is not in benches/common/routes.rs"
+        );
+    }
+    for needed in [
+        "/api/impact/bounds",
+        "/impact/bounds/bounds.svg",
+        "/impact/bounds/bounds.csv",
+    ] {
+        assert!(routes::ROUTES.contains(&needed), "{needed}");
+    }
+    let addr = start_server(&demo_dir());
+    for route in routes::ROUTES {
+        let r = http(addr, "GET", route, &[]);
+        assert_eq!(r.status, 200, "{route}: {}", r.body);
+    }
 }

@@ -196,7 +196,8 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
     assert!(made.ends_with('Z') && made.as_bytes()[10] == b'T', "{made}");
     assert!(block.contains(made));
     // Used, not only stated: the numbers are the pages' for the same settings.
-    assert!(html.contains("outcome left_right; predictors age, education"));
+    // Readable labels, not raw column names (README, `[indicators.labels]`).
+    assert!(html.contains("outcome Left right; predictors Age, Education"), "{html}");
     assert!(html.contains("A linear random-intercept model of left_right"));
     assert!(html.contains("What if XAB joined"));
     let addr = start_server(&demo_dir());

@@ -1,5 +1,8 @@
 //! The routes both page benchmarks request: every page, JSON twin and download linked
-//! from the overview, the report, and a few other settings as a meeting would try them.
+//! from the overview (the impact page's bounds section and the CSV sidecars included),
+//! the report, the static files, and a few other settings as a meeting would try them.
+//! `tests/http_pages.rs` checks that every GET route of the router (`server/web/mod.rs`)
+//! is here and answers 200.
 
 /// Every route the overview links to, directly or through a page, with two other settings.
 pub const ROUTES: &[&str] = &[
@@ -29,15 +32,21 @@ pub const ROUTES: &[&str] = &[
     "/plan/map.svg",
     "/plan/plan.csv",
     "/plan/candidates.csv",
+    "/plan/baselines.csv",
     "/impact",
     "/api/impact",
     "/impact/pooled.svg",
     "/impact/coefficients.svg",
     "/impact/table.csv",
+    "/api/impact/bounds",
+    "/impact/bounds/bounds.svg",
+    "/impact/bounds/bounds.csv",
     "/sensitivity",
     "/api/sensitivity",
     "/sensitivity/trimming.svg",
     "/sensitivity/table.csv",
+    "/sensitivity/model-draws.svg",
+    "/sensitivity/model-draws.csv",
     "/projection",
     "/api/projection",
     "/projection/table.csv",
@@ -45,6 +54,9 @@ pub const ROUTES: &[&str] = &[
     "/projection?outcome=turnout&predictor=age&predictor=female",
     "/projection?shares=population",
     "/report",
+    "/balance/table.csv.json",
+    "/static/gapwise.css",
+    "/static/favicon.svg",
     "/model?wave=2&model=firth&weighting=raking",
     "/balance?wave=1&model=probit&weighting=covariate-balancing-gmm",
     "/plan?wave=2&model=firth&weighting=raking",

@@ -98,9 +98,10 @@ pub fn coefficients(r: &ImpactReport) -> String {
         let labels: Vec<String> = terms
             .iter()
             .map(|&j| {
-                r.term_labels.get(j).cloned().unwrap_or_else(|| {
-                    crate::project::manifest::readable_label(&r.terms[j])
-                })
+                r.term_labels
+                    .get(j)
+                    .cloned()
+                    .unwrap_or_else(|| crate::project::manifest::readable_label(&r.terms[j]))
             })
             .collect();
         let keys: Vec<Key> = r

@@ -432,12 +432,10 @@ fn newton(
         };
         let floor = current.objective - 1e-12 * current.objective.abs().max(1.0);
         let moved = super::newton::halving_step(&beta, &step, floor, |candidate| {
-            evaluate(kind, x, y, candidate, firth)
-                .ok()
-                .map(|next| {
-                    let objective = next.objective;
-                    (next, objective)
-                })
+            evaluate(kind, x, y, candidate, firth).ok().map(|next| {
+                let objective = next.objective;
+                (next, objective)
+            })
         });
         let accepted = moved.is_some();
         last_step = match moved {

@@ -5,7 +5,7 @@ use std::sync::Arc;
 
 use serde::Serialize;
 
-use super::error::{AppError, AppResult};
+use super::error::AppResult;
 use super::state::AppState;
 use super::work::Lane;
 use crate::analysis::cache::CacheKey;

@@ -439,8 +439,13 @@ mod tests {
         let written = impact_query(&imp);
         assert!(written.contains("kind=logistic"), "{written}");
         assert!(!written.contains("family"), "{written}");
-        let parse = |q: &str| -> PageQuery { form_urlencoded::parse(q.as_bytes()).into_owned().collect() };
-        for q in ["family=logistic", "kind=logistic", "family=linear&kind=logistic"] {
+        let parse =
+            |q: &str| -> PageQuery { form_urlencoded::parse(q.as_bytes()).into_owned().collect() };
+        for q in [
+            "family=logistic",
+            "kind=logistic",
+            "family=linear&kind=logistic",
+        ] {
             assert_eq!(
                 impact_settings(&project, &parse(q)).expect(q).kind,
                 Kind::Logistic,
@@ -448,7 +453,9 @@ mod tests {
             );
         }
         assert_eq!(
-            impact_settings(&project, &parse("kind=logistic&family=linear")).unwrap().kind,
+            impact_settings(&project, &parse("kind=logistic&family=linear"))
+                .unwrap()
+                .kind,
             Kind::Linear
         );
         let bad = impact_settings(&project, &parse("kind=poisson")).unwrap_err();

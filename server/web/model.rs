@@ -127,7 +127,8 @@ pub async fn artifact(
                 ],
                 r.model.coefficients.iter().map(|c| {
                     let odds = |x: Option<f64>| {
-                        if r.model.kind == ModelKind::Probit || c.term == crate::analysis::design::INTERCEPT
+                        if r.model.kind == ModelKind::Probit
+                            || c.term == crate::analysis::design::INTERCEPT
                         {
                             String::new()
                         } else {

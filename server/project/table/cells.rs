@@ -7,7 +7,10 @@ use super::{ColumnKind, ColumnSpec, Table, MISSING_TOKENS};
 use crate::project::problem::{short, short_list, Problem, ProblemList};
 
 /// Builds the typed frame with only the requested columns, or every problem found.
-pub(super) fn typed_columns(table: &Table, specs: &[ColumnSpec]) -> Result<DataFrame, Vec<Problem>> {
+pub(super) fn typed_columns(
+    table: &Table,
+    specs: &[ColumnSpec],
+) -> Result<DataFrame, Vec<Problem>> {
     let raw = &table.frame;
     let mut problems = ProblemList::new();
     let present: Vec<String> = raw

@@ -172,7 +172,10 @@ pub(super) fn check_csv_structure(bytes: &[u8], label: &str) -> Result<RowNumber
 /// Refuses, in one linear pass before any parsing, a file whose lines end in a carriage
 /// return alone, and lines or cells beyond [`MAX_LINE_BYTES`] and [`MAX_CELL_BYTES`],
 /// naming the line and column.
-pub(super) fn check_line_endings_and_lengths(bytes: &[u8], label: &str) -> Result<(), Vec<Problem>> {
+pub(super) fn check_line_endings_and_lengths(
+    bytes: &[u8],
+    label: &str,
+) -> Result<(), Vec<Problem>> {
     let first_end = bytes.iter().position(|&b| b == b'\n' || b == b'\r');
     if let Some(i) = first_end {
         if bytes[i] == b'\r' && bytes.get(i + 1) != Some(&b'\n') && i + 1 < bytes.len() {
