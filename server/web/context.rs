@@ -28,18 +28,23 @@ pub const PLAN_KEYS: [&str; 8] = [
 ];
 
 /// Query keys that belong to the impact view.
-pub const IMPACT_KEYS: [&str; 7] = [
+/// (`replicates`, the pipeline bootstrap, is shared with the planner's list; `bootstrap`
+/// is the older name of `wild_replicates`.)
+pub const IMPACT_KEYS: [&str; 8] = [
     "outcome",
     "predictor",
     "family",
     "shares",
     "population",
     "bootstrap",
+    "wild_replicates",
     "country_indicator",
 ];
 
 /// Query keys that belong to the meeting report (the waves it covers).
-pub const REPORT_KEYS: [&str; 1] = ["waves"];
+/// (`impact_replicates`: the impact section's pipeline bootstrap, whose page key
+/// `replicates` is the planner's in the report.)
+pub const REPORT_KEYS: [&str; 2] = ["waves", "impact_replicates"];
 
 /// Query keys of the impact page's sensitivity bounds (web::impact_bounds).
 pub const BOUNDS_KEYS: [&str; 2] = ["reference", "bounds_bootstrap"];
