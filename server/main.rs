@@ -188,9 +188,14 @@ enum Command {
         /// Country shares proportional to this population column (logged when named log_...).
         #[arg(long)]
         population: Option<String>,
-        /// Wild cluster bootstrap replicates (0 to skip).
-        #[arg(long, default_value_t = 399)]
-        bootstrap: usize,
+        /// Country bootstrap replicates of the whole pipeline: model, weights, two-step and
+        /// estimate re-run on countries drawn with replacement (0 to skip).
+        #[arg(long, default_value_t = gapwise::analysis::impact_bootstrap::DEFAULT_REPLICATES)]
+        replicates: usize,
+        /// Wild cluster bootstrap replicates for p-values (0 to skip; --bootstrap is the
+        /// older name).
+        #[arg(long, alias = "bootstrap", default_value_t = 399)]
+        wild_replicates: usize,
         /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
@@ -346,9 +351,14 @@ struct ReportArgs {
     /// Country shares proportional to this population column.
     #[arg(long)]
     population: Option<String>,
-    /// Wild cluster bootstrap replicates of the impact section (0 to skip).
+    /// Country bootstrap replicates of the impact section's whole pipeline (default 49 in
+    /// the report, 0 to skip).
     #[arg(long)]
-    bootstrap: Option<usize>,
+    impact_replicates: Option<usize>,
+    /// Wild cluster bootstrap replicates of the impact section (0 to skip; --bootstrap is
+    /// the older name).
+    #[arg(long, alias = "bootstrap")]
+    wild_replicates: Option<usize>,
 }
 
 impl ReportArgs {
@@ -407,8 +417,11 @@ impl ReportArgs {
             put("shares", "population".to_string());
             put("population", p.clone());
         }
-        if let Some(b) = self.bootstrap {
-            put("bootstrap", b.to_string());
+        if let Some(b) = self.impact_replicates {
+            put("impact_replicates", b.to_string());
+        }
+        if let Some(b) = self.wild_replicates {
+            put("wild_replicates", b.to_string());
         }
         q
     }
@@ -445,9 +458,16 @@ fn over_limit(command: &Option<Command>) -> Option<String> {
             budget, replicates, ..
         }) => check("--replicates", *replicates, limits::MAX_PLAN_REPLICATES)
             .and_then(|_| check("--budget", budget.unwrap_or(0), limits::MAX_PLAN_BUDGET)),
-        Some(Command::Impact { bootstrap, .. }) => {
-            check("--bootstrap", *bootstrap, limits::MAX_BOOTSTRAP_REPLICATES)
-        }
+        Some(Command::Impact {
+            replicates,
+            wild_replicates,
+            ..
+        }) => check(
+            "--wild-replicates",
+            *wild_replicates,
+            limits::MAX_BOOTSTRAP_REPLICATES,
+        )
+        .and_then(|_| check("--replicates", *replicates, limits::MAX_PIPELINE_REPLICATES)),
         _ => Ok(0),
     };
     result.err()
@@ -565,7 +585,8 @@ fn main() -> ExitCode {
             country_indicators,
             kind,
             population,
-            bootstrap,
+            replicates,
+            wild_replicates,
             json,
         }) => match analysis.settings() {
             Ok(mut settings) => {
@@ -579,7 +600,8 @@ fn main() -> ExitCode {
                         gapwise::analysis::impact::Shares::Equal,
                         gapwise::analysis::impact::Shares::Population,
                     ),
-                    replicates: bootstrap,
+                    replicates,
+                    wild_replicates,
                 };
                 cli::impact(&dir, settings, &imp, json)
             }

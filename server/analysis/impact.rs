@@ -8,6 +8,7 @@ use ndarray::Array2;
 use serde::Serialize;
 
 use super::design;
+use super::impact_bootstrap::{self, CountryStats};
 use super::participation::{self, AnalysisError};
 use super::settings::{Settings, WeightingKind};
 use crate::project::{Project, WaveView};
@@ -26,8 +27,11 @@ pub struct ImpactSettings {
     /// Country shares: each participating country counts by its weight ("equal"), or by
     /// its weight times its population ("population", from `population_column`).
     pub shares: Shares,
-    /// Wild cluster bootstrap replicates (linear models; 0 to skip).
+    /// Country (pairs cluster) bootstrap replicates of the whole pipeline: participation
+    /// model, weights, two-step and estimate (0 to skip; see analysis::impact_bootstrap).
     pub replicates: usize,
+    /// Wild cluster bootstrap replicates for p-values (linear models; 0 to skip).
+    pub wild_replicates: usize,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -41,9 +45,38 @@ pub enum Shares {
 #[derive(Debug, Clone, Serialize)]
 pub struct Pooled {
     pub estimate: f64,
+    /// Null where the variant has no standard error of its own (the multilevel
+    /// projection's interval is a prediction interval by simulation).
     pub se: f64,
     pub low: f64,
     pub high: f64,
+    #[serde(flatten)]
+    pub bootstrap: PooledBootstrap,
+}
+
+/// The pipeline bootstrap of a pooled mean (null where not estimable or not run).
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct PooledBootstrap {
+    pub bootstrap_se: Option<f64>,
+    pub bootstrap_ci95_low: Option<f64>,
+    pub bootstrap_ci95_high: Option<f64>,
+}
+
+/// The pipeline bootstrap of a variant's terms, with its replicates, seed and failures.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct TermsBootstrap {
+    /// Per term (null where not estimable or not run).
+    pub bootstrap_se: Vec<Option<f64>>,
+    pub bootstrap_ci95_low: Vec<Option<f64>>,
+    pub bootstrap_ci95_high: Vec<Option<f64>>,
+    /// Replicates that gave this variant no value.
+    pub bootstrap_failed: usize,
+    /// Why, counted by reason.
+    pub bootstrap_failures: Vec<impact_bootstrap::FailureCount>,
+    pub bootstrap_replicates: usize,
+    pub bootstrap_seed: u64,
+    /// Why the variant has no bootstrap, where it has none.
+    pub bootstrap_note: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -75,6 +108,8 @@ pub struct Variant {
     pub worse_than_none: bool,
     /// What the variant's standard errors are.
     pub se_kind: String,
+    #[serde(flatten)]
+    pub bootstrap: TermsBootstrap,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -256,23 +291,8 @@ pub fn impact(
     // same, or by population (Hainmueller 2012's base weights q).
     let n_units = design.n();
     let q: Vec<f64> = (0..n_units).map(base).collect();
-    let q_total: f64 = q.iter().sum();
     let balance_terms: Vec<String> = design.balance.iter().map(|b| b.label.clone()).collect();
-    let moments: Vec<(f64, f64)> = design
-        .balance
-        .iter()
-        .map(|b| {
-            let m = b.values.iter().zip(&q).map(|(v, w)| v * w).sum::<f64>() / q_total;
-            let var = b
-                .values
-                .iter()
-                .zip(&q)
-                .map(|(v, w)| w * (v - m).powi(2))
-                .sum::<f64>()
-                / q_total;
-            (m, var.sqrt())
-        })
-        .collect();
+    let moments = universe_moments(&design, &q);
     let smd_of = |share: &dyn Fn(usize) -> f64| -> Vec<Option<f64>> {
         if !population_ok {
             return vec![None; design.balance.len()];
@@ -383,12 +403,72 @@ pub fn impact(
 
     flag_changes(&mut variants, k);
     flag_worse_than_none(&mut variants);
+
+    // The pipeline bootstrap over countries, from per-country sufficient statistics.
+    let mut by_unit: Vec<Vec<usize>> = vec![Vec::new(); n_units];
+    for (r, &u) in unit_of.iter().enumerate() {
+        by_unit[u].push(r);
+    }
+    let d_rows: Vec<f64> = rows
+        .iter()
+        .map(|&i| design_weight[i].unwrap_or(0.0))
+        .collect();
+    let stats: Vec<Option<CountryStats>> = by_unit
+        .iter()
+        .map(|r| {
+            (!r.is_empty())
+                .then(|| CountryStats::from_rows(&x, &y, &d_rows, r))
+                .flatten()
+        })
+        .collect();
+    let mills_c = mills_indicators(&design, view, imp);
+    let boot = if population_ok {
+        impact_bootstrap::run(&impact_bootstrap::Input {
+            design: &design,
+            settings,
+            stats: &stats,
+            population: population.as_deref(),
+            mills_indicators: mills_c.as_deref().map_err(|_| ()),
+            kind: imp.kind,
+            k,
+            replicates: imp.replicates,
+            seed,
+        })
+    } else {
+        None
+    };
+    if let Some(boot) = &boot {
+        for (v, b) in variants.iter_mut().zip(boot) {
+            attach_bootstrap(v, b, imp.replicates, seed);
+        }
+    }
+    variants.push(projection_variant(project, view, settings, imp, variables));
     let mut notes = vec![
         "Unweighted: design weights rescaled so that every participating country counts the same. Weighted: so that each country counts by its country weight.".to_string(),
         format!("Confidence intervals and p-values use standard errors clustered by country (CR1) with t on {df} degrees of freedom (countries - 1); with few countries the wild cluster bootstrap p-values are the safer guide."),
         "The two-step (Mills-ratio) variant changes the model, not the weights: the outcome equation carries the predictors, the chosen country indicators and the inverse Mills ratio of the country probit; its pooled mean and intercept are the outcome equation's prediction without the selection term averaged over the whole eligible universe, with standard errors that include the estimated first step (Murphy & Topel 1985, clustered by country).".to_string(),
     ];
     notes.extend(notes_extra);
+    if let Some(boot) = &boot {
+        let failed: usize = boot.iter().map(|b| b.failed).sum();
+        notes.push(format!(
+            "Bootstrap columns: a country bootstrap of the whole pipeline (pairs cluster bootstrap, Cameron, Gelbach & Miller 2008): {} replicates (seed {seed}) each draw {} countries with replacement from the eligible universe, participants and non-participants together, re-fit the participation model, every weighting and the two-step's probit on the draw and re-estimate; standard error = the replicates' standard deviation, interval = their 2.5% and 97.5% percentiles. Unlike the clustered standard errors, these include the uncertainty of the estimated country weights. {}",
+            imp.replicates,
+            n_units,
+            if failed == 0 {
+                "No replicate failed.".to_string()
+            } else {
+                "Replicates that failed are counted beside each variant with their reasons, and left out of its columns.".to_string()
+            }
+        ));
+        if imp.kind == Kind::Logistic {
+            notes.push("With a logistic model the bootstrap re-estimates the pooled means but not the regression terms (their bootstrap columns are empty).".to_string());
+        }
+    } else if imp.replicates == 0 {
+        notes.push(
+            "The country bootstrap of the whole pipeline was not run (0 replicates).".to_string(),
+        );
+    }
     if let Shares::Population(c) = &imp.shares {
         notes.push(format!(
             "Country shares are proportional to population ({c}): entropy balancing takes the population as base weights and balances to the population-weighted universe (Hainmueller 2012); the other weightings multiply their country weights by population, so their balance against that universe is not exact (see the SMDs)."
@@ -427,10 +507,57 @@ pub fn impact(
 
 const MILLS_LABEL: &str = "Two-step: inverse Mills ratio of the country probit";
 
+/// Each balance column's mean and standard deviation over the universe with base weights
+/// q: m = Σ q v / Σ q, sd = sqrt(Σ q (v − m)² / Σ q).
+pub(super) fn universe_moments(design: &design::Design, q: &[f64]) -> Vec<(f64, f64)> {
+    let q_total: f64 = q.iter().sum();
+    design
+        .balance
+        .iter()
+        .map(|b| {
+            let m = b.values.iter().zip(q).map(|(v, w)| v * w).sum::<f64>() / q_total;
+            let var = b
+                .values
+                .iter()
+                .zip(q)
+                .map(|(v, w)| w * (v - m).powi(2))
+                .sum::<f64>()
+                / q_total;
+            (m, var.sqrt())
+        })
+        .collect()
+}
+
+/// The two-step's extra country indicators (those not already predictors), per indicator
+/// one value per design unit.
+fn mills_indicators(
+    design: &design::Design,
+    view: &WaveView,
+    imp: &ImpactSettings,
+) -> Result<Vec<Vec<f64>>, String> {
+    let mut c_values: Vec<Vec<f64>> = Vec::new();
+    for col in imp
+        .country_indicators
+        .iter()
+        .filter(|c| !imp.predictors.contains(c))
+    {
+        let ind = view
+            .numeric
+            .iter()
+            .find(|n| &n.column == col)
+            .ok_or_else(|| format!("'{col}' is not a numeric country indicator"))?;
+        let values: Option<Vec<f64>> = design.units.iter().map(|&u| ind.values[u]).collect();
+        c_values.push(values.ok_or_else(|| {
+            format!("'{col}' is missing for an eligible country, so its universe mean is unknown")
+        })?);
+    }
+    Ok(c_values)
+}
+
 /// Entropy balancing with the population as base weights q_i, to the population-weighted
 /// universe's means (and variances when asked): Hainmueller (2012), eq. 1-4 with q.
 /// Returns each design unit's share (zero for non-participants).
-fn population_entropy(
+pub(super) fn population_entropy(
     design: &design::Design,
     q: &[f64],
     moments: &[(f64, f64)],
@@ -519,24 +646,7 @@ fn mills_variant(
     let design = m.design;
     let n = design.n();
     let k = m.x.ncols();
-    let extra: Vec<&String> = imp
-        .country_indicators
-        .iter()
-        .filter(|c| !imp.predictors.contains(c))
-        .collect();
-    let mut c_values: Vec<Vec<f64>> = Vec::new();
-    for col in &extra {
-        let ind = m
-            .view
-            .numeric
-            .iter()
-            .find(|n| &&n.column == col)
-            .ok_or_else(|| format!("'{col}' is not a numeric country indicator"))?;
-        let values: Option<Vec<f64>> = design.units.iter().map(|&u| ind.values[u]).collect();
-        c_values.push(values.ok_or_else(|| {
-            format!("'{col}' is missing for an eligible country, so its universe mean is unknown")
-        })?);
-    }
+    let c_values = mills_indicators(design, m.view, imp)?;
     let participation_terms: Vec<&String> = design.terms.iter().skip(1).collect();
     if !participation_terms.is_empty()
         && participation_terms
@@ -615,6 +725,7 @@ fn mills_variant(
             se: pse,
             low: pm - q975 * pse,
             high: pm + q975 * pse,
+            bootstrap: PooledBootstrap::default(),
         }),
         sign_changed: vec![false; coef.len()],
         verdict_changed: vec![false; coef.len()],
@@ -627,7 +738,105 @@ fn mills_variant(
         worse_than_none: false,
         se_kind: "Murphy-Topel, clustered by country: includes the estimated country probit"
             .to_string(),
+        bootstrap: TermsBootstrap::default(),
     })
+}
+
+pub const PROJECTION_KEY: &str = "multilevel-projection";
+const PROJECTION_LABEL: &str = "Multilevel projection to the whole eligible universe";
+
+/// The multilevel projection (analysis::projection) as a variant: its universe estimate
+/// and its 95% prediction interval as the pooled mean; it has no terms of the impact
+/// model and no country bootstrap (its interval comes from simulating the fitted model).
+fn projection_variant(
+    project: &Project,
+    view: &WaveView,
+    settings: &Settings,
+    imp: &ImpactSettings,
+    variables: &[String],
+) -> Variant {
+    let ps = super::projection::ProjectionSettings {
+        outcome: imp.outcome.clone(),
+        predictors: imp
+            .predictors
+            .iter()
+            .filter(|p| variables.contains(p))
+            .cloned()
+            .collect(),
+    };
+    match super::projection::projection(project, view, settings, &ps) {
+        Err(e) => failed(PROJECTION_KEY, PROJECTION_LABEL, e.to_string(), 0),
+        Ok(p) => Variant {
+            key: PROJECTION_KEY.to_string(),
+            label: PROJECTION_LABEL.to_string(),
+            error: None,
+            pooled: Some(Pooled {
+                estimate: p.universe_estimate,
+                se: f64::NAN,
+                low: p.universe_low,
+                high: p.universe_high,
+                bootstrap: PooledBootstrap::default(),
+            }),
+            coef: Vec::new(),
+            se: Vec::new(),
+            p_cluster: Vec::new(),
+            p_bootstrap: None,
+            sign_changed: Vec::new(),
+            verdict_changed: Vec::new(),
+            smd: Vec::new(),
+            max_abs_smd: None,
+            worse_than_none: false,
+            se_kind: format!(
+                "95% prediction interval by simulation from the fitted {} multilevel model ({} draws, seed {}); the model's respondent predictors: {}; every eligible country counts the same",
+                p.method,
+                p.draws,
+                p.seed,
+                if ps.predictors.is_empty() { "none".to_string() } else { ps.predictors.join(", ") }
+            ),
+            bootstrap: TermsBootstrap {
+                bootstrap_note: Some(
+                    "not bootstrapped: the interval is the projection's own prediction interval"
+                        .to_string(),
+                ),
+                bootstrap_seed: settings.seed,
+                ..TermsBootstrap::default()
+            },
+        },
+    }
+}
+
+/// Copies a variant's pipeline bootstrap into its fields (nothing for a variant that
+/// failed on the full sample).
+fn attach_bootstrap(
+    v: &mut Variant,
+    b: &impact_bootstrap::VariantBootstrap,
+    replicates: usize,
+    seed: u64,
+) {
+    if v.error.is_some() {
+        return;
+    }
+    if let Some(p) = v.pooled.as_mut() {
+        p.bootstrap = PooledBootstrap {
+            bootstrap_se: b.pooled.se,
+            bootstrap_ci95_low: b.pooled.low,
+            bootstrap_ci95_high: b.pooled.high,
+        };
+    }
+    let n = v.coef.len();
+    let term = |f: fn(&crate::stats::bootstrap::Summary) -> Option<f64>| -> Vec<Option<f64>> {
+        (0..n).map(|j| b.terms.get(j).and_then(f)).collect()
+    };
+    v.bootstrap = TermsBootstrap {
+        bootstrap_se: term(|s| s.se),
+        bootstrap_ci95_low: term(|s| s.low),
+        bootstrap_ci95_high: term(|s| s.high),
+        bootstrap_failed: b.failed,
+        bootstrap_failures: b.failures.clone(),
+        bootstrap_replicates: replicates,
+        bootstrap_seed: seed,
+        bootstrap_note: None,
+    };
 }
 
 fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
@@ -646,6 +855,7 @@ fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
         max_abs_smd: None,
         worse_than_none: false,
         se_kind: String::new(),
+        bootstrap: TermsBootstrap::default(),
     }
 }
 
@@ -677,6 +887,7 @@ fn estimate(
             se: f.se[0],
             low: f.coef[0] - q975 * f.se[0],
             high: f.coef[0] + q975 * f.se[0],
+            bootstrap: PooledBootstrap::default(),
         });
     match regression::fit(xs.view(), &ys, Some(&ws), &cs, imp.kind) {
         Err(e) => failed(key, label, e.to_string(), x.ncols()),
@@ -687,14 +898,14 @@ fn estimate(
                 .zip(&f.se)
                 .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
                 .collect();
-            let p_bootstrap = (imp.replicates > 0).then(|| match imp.kind {
+            let p_bootstrap = (imp.wild_replicates > 0).then(|| match imp.kind {
                 // Every term from one pass over the respondents.
                 Kind::Linear => regression::wild_cluster_bootstrap_terms(
                     xs.view(),
                     &ys,
                     Some(&ws),
                     &cs,
-                    imp.replicates,
+                    imp.wild_replicates,
                     seed,
                 )
                 .unwrap_or_else(|_| vec![f64::NAN; x.ncols()]),
@@ -706,7 +917,7 @@ fn estimate(
                             Some(&ws),
                             &cs,
                             j,
-                            imp.replicates,
+                            imp.wild_replicates,
                             seed,
                         )
                         .unwrap_or(f64::NAN)
@@ -728,6 +939,7 @@ fn estimate(
                 max_abs_smd: None,
                 worse_than_none: false,
                 se_kind: String::new(),
+                bootstrap: TermsBootstrap::default(),
             }
         }
     }

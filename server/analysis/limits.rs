@@ -8,6 +8,9 @@ pub const MAX_PLAN_REPLICATES: usize = 1000;
 /// Wild cluster bootstrap replicates of the impact view (399 on pages by default).
 pub const MAX_BOOTSTRAP_REPLICATES: usize = 1999;
 
+/// Country bootstrap replicates of the impact view's whole pipeline (199 by default).
+pub const MAX_PIPELINE_REPLICATES: usize = 1999;
+
 /// Countries in one recruitment plan.
 pub const MAX_PLAN_BUDGET: usize = 50;
 

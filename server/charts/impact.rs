@@ -87,7 +87,11 @@ pub fn coefficients(r: &ImpactReport) -> String {
         let nt = terms.len();
         let nv = r.variants.len();
         let mut extent: f64 = 1e-9;
-        for v in r.variants.iter().filter(|v| v.error.is_none()) {
+        for v in r
+            .variants
+            .iter()
+            .filter(|v| v.error.is_none() && v.coef.len() > k)
+        {
             for &j in &terms {
                 extent = extent
                     .max((v.coef[j] - 1.96 * v.se[j]).abs())
@@ -108,7 +112,7 @@ pub fn coefficients(r: &ImpactReport) -> String {
             .variants
             .iter()
             .enumerate()
-            .filter(|(_, v)| v.error.is_none())
+            .filter(|(_, v)| v.error.is_none() && v.coef.len() > k)
             .map(|(vi, v)| Key::new(v.label.clone(), Glyph::Marker(vi, colour(vi))))
             .collect();
         let body = headed(root, TITLE, &keys)?;
@@ -135,7 +139,8 @@ pub fn coefficients(r: &ImpactReport) -> String {
             BLACK.stroke_width(1),
         ))?;
         for (vi, v) in r.variants.iter().enumerate() {
-            if v.error.is_some() {
+            // Failed variants, and the projection (a pooled mean without terms).
+            if v.error.is_some() || v.coef.len() <= k {
                 continue;
             }
             let c = colour(vi);

@@ -3,6 +3,7 @@
 
 pub mod balance;
 pub mod binary;
+pub mod bootstrap;
 pub mod describe;
 pub mod linalg;
 pub mod multilevel;

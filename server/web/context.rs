@@ -28,8 +28,10 @@ pub const PLAN_KEYS: [&str; 8] = [
 ];
 
 /// Query keys that belong to the impact view (`kind` is the model: linear or logistic,
-/// as the command line's `--kind`; `family` is read as its older name).
-pub const IMPACT_KEYS: [&str; 8] = [
+/// as the command line's `--kind`; `family` is read as its older name). `replicates`, the
+/// pipeline bootstrap, is shared with the planner's list; `bootstrap` is the older name of
+/// `wild_replicates`.
+pub const IMPACT_KEYS: [&str; 9] = [
     "outcome",
     "predictor",
     "kind",
@@ -37,11 +39,14 @@ pub const IMPACT_KEYS: [&str; 8] = [
     "shares",
     "population",
     "bootstrap",
+    "wild_replicates",
     "country_indicator",
 ];
 
 /// Query keys that belong to the meeting report (the waves it covers).
-pub const REPORT_KEYS: [&str; 1] = ["waves"];
+/// (`impact_replicates`: the impact section's pipeline bootstrap, whose page key
+/// `replicates` is the planner's in the report.)
+pub const REPORT_KEYS: [&str; 2] = ["waves", "impact_replicates"];
 
 /// Query keys of the impact page's sensitivity bounds (web::impact_bounds).
 pub const BOUNDS_KEYS: [&str; 2] = ["reference", "bounds_bootstrap"];

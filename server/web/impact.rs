@@ -15,6 +15,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
+use crate::analysis::impact_bootstrap;
 use crate::analysis::limits;
 use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::charts;
@@ -48,7 +49,35 @@ struct ImpactPage<'a> {
     bounds: super::impact_bounds::Section,
 }
 
+/// How many of a variant's pipeline bootstrap replicates failed, and why, in words.
+pub(crate) fn failure_text(v: &crate::analysis::impact::Variant) -> String {
+    let b = &v.bootstrap;
+    if let Some(note) = &b.bootstrap_note {
+        return note.clone();
+    }
+    if b.bootstrap_replicates == 0 {
+        return "not run".to_string();
+    }
+    if b.bootstrap_failed == 0 {
+        return format!("none of {}", b.bootstrap_replicates);
+    }
+    format!(
+        "{} of {}: {}",
+        b.bootstrap_failed,
+        b.bootstrap_replicates,
+        b.bootstrap_failures
+            .iter()
+            .map(|f| format!("{} × {}", f.count, f.label))
+            .collect::<Vec<_>>()
+            .join("; ")
+    )
+}
+
 impl ImpactPage<'_> {
+    fn failures(&self, v: &crate::analysis::impact::Variant) -> String {
+        failure_text(v)
+    }
+
     /// Every analysis setting of the first form (wave, model, weighting, trimming, missing
     /// values, indicators, seed) as hidden fields, so that the model form keeps them.
     fn settings_hidden(&self) -> Vec<(String, String)> {
@@ -82,9 +111,13 @@ pub(crate) fn side_by_side(r: &ImpactReport) -> Vec<(String, Vec<Cell>)> {
                             Some(b) => format!(" p*={}", f.o3(&b.get(j).copied())),
                             None => format!(" p={}", f.o3(&v.p_cluster.get(j).copied())),
                         };
+                        let boot = match v.bootstrap.bootstrap_se.get(j).copied().flatten() {
+                            Some(b) => format!(" [b.s.e. {}]", f.n3(&b)),
+                            None => String::new(),
+                        };
                         Cell {
                             main: f.n3(c),
-                            detail: format!("({}){p}", f.o3(&v.se.get(j).copied())),
+                            detail: format!("({}){p}{boot}", f.o3(&v.se.get(j).copied())),
                             class: if v.sign_changed.get(j).copied().unwrap_or(false) {
                                 "flag-sign"
                             } else if v.verdict_changed.get(j).copied().unwrap_or(false) {
@@ -181,18 +214,28 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
             )))
         }
     };
-    let replicates = match get("bootstrap") {
-        None => 399,
-        Some(v) => v
+    let whole = |key: &str, value: String, limit: usize| -> AppResult<usize> {
+        value
             .parse::<usize>()
             .ok()
-            .filter(|r| *r <= limits::MAX_BOOTSTRAP_REPLICATES)
+            .filter(|r| *r <= limit)
             .ok_or_else(|| {
                 AppError::BadRequest(format!(
-                    "bootstrap must be a whole number up to {}, not '{v}'",
-                    limits::MAX_BOOTSTRAP_REPLICATES
+                    "{key} must be a whole number up to {limit}, not '{value}'"
                 ))
-            })?,
+            })
+    };
+    // `bootstrap` is the older name of `wild_replicates`.
+    let wild_replicates = match get("wild_replicates")
+        .map(|v| ("wild_replicates", v))
+        .or_else(|| get("bootstrap").map(|v| ("bootstrap", v)))
+    {
+        None => 399,
+        Some((key, v)) => whole(key, v, limits::MAX_BOOTSTRAP_REPLICATES)?,
+    };
+    let replicates = match get("replicates") {
+        None => impact_bootstrap::DEFAULT_REPLICATES,
+        Some(v) => whole("replicates", v, limits::MAX_PIPELINE_REPLICATES)?,
     };
     let country_indicators = query
         .iter()
@@ -207,6 +250,7 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
         country_indicators,
         shares,
         replicates,
+        wild_replicates,
     })
 }
 
@@ -238,7 +282,8 @@ pub fn impact_query(imp: &ImpactSettings) -> String {
         q.append_pair("shares", "population");
         q.append_pair("population", c);
     }
-    q.append_pair("bootstrap", &imp.replicates.to_string());
+    q.append_pair("replicates", &imp.replicates.to_string());
+    q.append_pair("wild_replicates", &imp.wild_replicates.to_string());
     q.finish()
 }
 
@@ -373,6 +418,10 @@ pub async fn artifact(
                         cell(Some(p.se)),
                         String::new(),
                         String::new(),
+                        cell(p.bootstrap.bootstrap_se),
+                        cell(p.bootstrap.bootstrap_ci95_low),
+                        cell(p.bootstrap.bootstrap_ci95_high),
+                        v.bootstrap.bootstrap_failed.to_string(),
                         String::new(),
                         String::new(),
                     ]);
@@ -385,6 +434,10 @@ pub async fn artifact(
                         cell(v.se.get(j).copied()),
                         cell(v.p_cluster.get(j).copied()),
                         cell(v.p_bootstrap.as_ref().and_then(|b| b.get(j).copied())),
+                        cell(v.bootstrap.bootstrap_se.get(j).copied().flatten()),
+                        cell(v.bootstrap.bootstrap_ci95_low.get(j).copied().flatten()),
+                        cell(v.bootstrap.bootstrap_ci95_high.get(j).copied().flatten()),
+                        v.bootstrap.bootstrap_failed.to_string(),
                         u8::from(v.sign_changed.get(j).copied().unwrap_or(false)).to_string(),
                         u8::from(v.verdict_changed.get(j).copied().unwrap_or(false)).to_string(),
                     ]);
@@ -400,6 +453,10 @@ pub async fn artifact(
                         "cluster_se",
                         "p_cluster",
                         "p_wild_bootstrap",
+                        "bootstrap_se",
+                        "bootstrap_ci95_low",
+                        "bootstrap_ci95_high",
+                        "bootstrap_failed",
                         "sign_changed",
                         "verdict_changed",
                     ],
@@ -429,7 +486,8 @@ mod tests {
             kind: Kind::Logistic,
             country_indicators: vec!["log_gdp_pc".to_string()],
             shares: Shares::Population("log_population".to_string()),
-            replicates: 99,
+            replicates: 49,
+            wild_replicates: 99,
         };
         let query: PageQuery = form_urlencoded::parse(impact_query(&imp).as_bytes())
             .map(|(k, v)| (k.into_owned(), v.into_owned()))

@@ -17,6 +17,7 @@ use super::plan::{plan_query, plan_settings};
 use super::state::AppState;
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::impact::{ImpactReport, ImpactSettings, Shares};
+use crate::analysis::limits;
 use crate::analysis::participation::Coefficient;
 use crate::analysis::planner::{Plan, PlanSettings};
 use crate::analysis::projection::{ProjectionReport, ProjectionSettings};
@@ -27,6 +28,11 @@ use crate::project::{Project, WaveView};
 
 /// Our stylesheet, inlined so the report stands alone.
 const CSS: &str = include_str!("../../static/gapwise.css");
+
+/// The report's country bootstrap replicates of the impact section unless asked
+/// otherwise: fewer than the impact page's 199, so that a report of several waves stays
+/// quick (its reproducibility block says so).
+pub const REPORT_IMPACT_REPLICATES: usize = 49;
 
 /// One wave's section, with its charts and tables drawn.
 struct WaveSection<'a> {
@@ -76,7 +82,24 @@ pub fn report_settings(project: &Project, query: &PageQuery) -> AppResult<Report
         .unwrap_or(Waves::One);
     let plan = plan_settings(query)?;
     let impact = if project.microdata.is_some() && project.manifest.microdata.is_some() {
-        Some(impact_settings(project, query)?)
+        let mut imp = impact_settings(project, query)?;
+        // In the report `replicates` is the planner's; the impact section's pipeline
+        // bootstrap has its own key and a smaller default, to keep the report quick.
+        imp.replicates = match query.iter().rev().find(|(k, _)| k == "impact_replicates") {
+            None => REPORT_IMPACT_REPLICATES,
+            Some((_, v)) => v
+                .trim()
+                .parse::<usize>()
+                .ok()
+                .filter(|r| *r <= limits::MAX_PIPELINE_REPLICATES)
+                .ok_or_else(|| {
+                    AppError::BadRequest(format!(
+                        "impact_replicates must be a whole number up to {}, not '{v}'",
+                        limits::MAX_PIPELINE_REPLICATES
+                    ))
+                })?,
+        };
+        Some(imp)
     } else {
         None
     };
@@ -94,7 +117,7 @@ pub fn report_settings(project: &Project, query: &PageQuery) -> AppResult<Report
 pub fn report_query(rs: &ReportSettings) -> String {
     let mut parts = vec![rs.settings.to_query(), plan_query(&rs.plan)];
     if let Some(imp) = &rs.impact {
-        parts.push(impact_query(imp));
+        parts.push(report_impact_query(imp));
     }
     if let Some(w) = rs.waves.as_query_value() {
         parts.push(
@@ -105,6 +128,26 @@ pub fn report_query(rs: &ReportSettings) -> String {
     }
     parts.retain(|p| !p.is_empty());
     parts.join("&")
+}
+
+/// The impact keys of the report's query: as the impact page's, with the pipeline
+/// bootstrap under `impact_replicates` (the report's `replicates` is the planner's).
+fn report_impact_query(imp: &ImpactSettings) -> String {
+    let page: Vec<(String, String)> = form_urlencoded::parse(impact_query(imp).as_bytes())
+        .into_owned()
+        .collect();
+    let mut q = form_urlencoded::Serializer::new(String::new());
+    for (k, v) in &page {
+        q.append_pair(
+            if k == "replicates" {
+                "impact_replicates"
+            } else {
+                k
+            },
+            v,
+        );
+    }
+    q.finish()
 }
 
 /// The command line that writes the same report (`gapwise report PROJECT ...`), each
@@ -163,7 +206,8 @@ pub fn command_line(rs: &ReportSettings) -> String {
         if let Shares::Population(c) = &imp.shares {
             flag("population", c);
         }
-        flag("bootstrap", &imp.replicates.to_string());
+        flag("impact-replicates", &imp.replicates.to_string());
+        flag("wild-replicates", &imp.wild_replicates.to_string());
     }
     if s.match_variances {
         args.push("--variances".into());
@@ -283,8 +327,23 @@ fn setting_rows(r: &Report) -> Vec<SettingRow> {
             },
         ));
         rows.push(row(
+            "Country bootstrap replicates of the impact section (the whole pipeline)",
+            if imp.replicates == 0 {
+                "0: not run".to_string()
+            } else if imp.replicates == REPORT_IMPACT_REPLICATES {
+                format!(
+                    "{} (fewer than the impact page's {}, to keep the report quick; seed {})",
+                    imp.replicates,
+                    crate::analysis::impact_bootstrap::DEFAULT_REPLICATES,
+                    rs.settings.seed
+                )
+            } else {
+                format!("{} (seed {})", imp.replicates, rs.settings.seed)
+            },
+        ));
+        rows.push(row(
             "Wild cluster bootstrap replicates",
-            imp.replicates.to_string(),
+            imp.wild_replicates.to_string(),
         ));
     }
     if let Some(ps) = &r.projection_settings {
@@ -420,9 +479,12 @@ impl Parts for CachedParts<'_> {
         _: &Project,
         _: &WaveView,
         settings: &Settings,
-        _: &ImpactSettings,
+        imp: &ImpactSettings,
     ) -> Result<ImpactReport, String> {
-        let q = self.sub_query(settings, &context::IMPACT_KEYS);
+        // The impact page's own query for these settings, so that the report and the
+        // page share one cached result when they ask the same.
+        let mut q = self.sub_query(settings, &[]);
+        q.extend(form_urlencoded::parse(impact_query(imp).as_bytes()).into_owned());
         context::cached(self.state, &q, super::impact::compute)
             .map(|r| r.1.clone())
             .map_err(|e| e.to_string())
