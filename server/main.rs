@@ -66,6 +66,9 @@ enum Command {
         /// taking part, comma-separated (needs --outcome).
         #[arg(long, value_delimiter = ',', requires = "outcome")]
         sensitivity: Vec<f64>,
+        /// Seed of the imputations (--missing impute).
+        #[arg(long)]
+        seed: Option<u64>,
         /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
@@ -191,6 +194,9 @@ enum Command {
         /// Wild cluster bootstrap replicates (0 to skip).
         #[arg(long, default_value_t = 399)]
         bootstrap: usize,
+        /// Seed of the imputations (--missing impute) and of the bootstrap.
+        #[arg(long)]
+        seed: Option<u64>,
         /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
@@ -250,6 +256,9 @@ enum Command {
         /// combined weight) instead of one per country.
         #[arg(long)]
         respondents: bool,
+        /// Seed of the imputations (--missing impute).
+        #[arg(long)]
+        seed: Option<u64>,
     },
     /// Write the invented demo project into a folder.
     MakeDemo {
@@ -289,9 +298,14 @@ struct AnalysisArgs {
     /// Cap weights at this quantile of participants' weights (e.g. 0.95).
     #[arg(long)]
     trim: Option<String>,
-    /// complete-cases, median-fill, or fill-and-balance (median fill, and the weights also balance the missingness indicators).
+    /// complete-cases, median-fill, fill-and-balance (median fill, and the weights also
+    /// balance the missingness indicators), or impute (multiple imputation by chained
+    /// equations; estimates combined by Rubin's rules).
     #[arg(long, default_value = "complete-cases")]
     missing: String,
+    /// Completed frames under --missing impute (default 20).
+    #[arg(long)]
+    imputations: Option<String>,
     /// Entropy balancing also matches the universe's variances.
     #[arg(long)]
     variances: bool,
@@ -433,6 +447,12 @@ impl AnalysisArgs {
         if self.variances {
             pairs.push(("variances", "1"));
         }
+        if let Some(m) = &self.imputations {
+            if self.missing != "impute" {
+                return Err("--imputations needs --missing impute".to_string());
+            }
+            pairs.push(("imputations", m));
+        }
         gapwise::analysis::Settings::from_pairs(pairs).map_err(|e| e.to_string())
     }
 }
@@ -501,8 +521,14 @@ fn main() -> ExitCode {
             analysis,
             out,
             respondents,
+            seed,
         }) => match analysis.settings() {
-            Ok(settings) => cli::export_weights(&dir, &settings, &out, respondents),
+            Ok(mut settings) => {
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
+                cli::export_weights(&dir, &settings, &out, respondents)
+            }
             Err(message) => {
                 eprintln!("{message}");
                 2
@@ -566,6 +592,7 @@ fn main() -> ExitCode {
             kind,
             population,
             bootstrap,
+            seed,
             json,
         }) => match (
             analysis.settings(),
@@ -573,6 +600,9 @@ fn main() -> ExitCode {
         ) {
             (Ok(mut settings), Some(kind)) => {
                 settings.wave = wave;
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
                 let imp = gapwise::analysis::impact::ImpactSettings {
                     outcome,
                     predictors,
@@ -688,20 +718,26 @@ fn main() -> ExitCode {
             analysis,
             outcome,
             sensitivity,
+            seed,
             json,
         }) => match analysis.settings() {
-            Ok(settings) => cli::fit(
-                &cli::UniverseSource {
-                    path: source,
-                    wave: universe.wave,
-                    id: universe.id,
-                    flag: universe.flag,
-                    extra: Default::default(),
-                },
-                settings,
-                outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
-                json,
-            ),
+            Ok(mut settings) => {
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
+                cli::fit(
+                    &cli::UniverseSource {
+                        path: source,
+                        wave: universe.wave,
+                        id: universe.id,
+                        flag: universe.flag,
+                        extra: Default::default(),
+                    },
+                    settings,
+                    outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
+                    json,
+                )
+            }
             Err(message) => {
                 eprintln!("{message}");
                 2

@@ -8,6 +8,7 @@ pub mod coverage;
 pub mod design;
 pub mod exports;
 pub mod impact;
+pub mod imputed;
 pub mod limits;
 pub mod microdata;
 pub mod multilevel;

@@ -3,7 +3,9 @@
 
 pub mod balance;
 pub mod binary;
+pub mod combine;
 pub mod describe;
+pub mod imputation;
 pub mod linalg;
 pub mod multilevel;
 pub mod normal;

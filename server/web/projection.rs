@@ -61,8 +61,22 @@ pub(crate) fn compute(
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/projection", &project, &settings);
     let ps = projection_settings(&project, query)?;
-    let r = projection(&project, &view, &settings, &ps)
-        .map_err(|e| AppError::BadRequest(e.to_string()))?;
+    let r = if crate::analysis::imputed::wanted(&settings) {
+        // One completed frame (the notes say so); the combination is not computed here.
+        let done =
+            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
+                .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let mut r = projection(&project, &done.views[0], &settings, &ps)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        r.notes.insert(
+            0,
+            crate::analysis::imputed::single_frame_note(&done.summary),
+        );
+        r
+    } else {
+        projection(&project, &view, &settings, &ps)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?
+    };
     let variables = project
         .manifest
         .microdata
