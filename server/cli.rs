@@ -291,6 +291,9 @@ pub fn fit(
             }
         }
     };
+    if crate::analysis::imputed::wanted(&settings) {
+        return fit_imputed(source, &view, &settings, summary.as_ref(), json);
+    }
     match participation::fit(&view, &settings) {
         Ok(mut report) => {
             if !source.path.is_dir() {
@@ -329,6 +332,73 @@ pub fn fit(
                         let _ = writeln!(text, "  (Λ: an odds ratio on taking part, not on the outcome; the bounds hold for inverse-probability-type weights)");
                     }
                 }
+                emit(&text);
+            }
+            0
+        }
+        Err(e) => {
+            eprintln!("{e}");
+            1
+        }
+    }
+}
+
+/// `gapwise fit --missing impute`: the fit on every completed frame, combined.
+fn fit_imputed(
+    source: &UniverseSource,
+    view: &WaveView,
+    settings: &Settings,
+    summary: Option<&crate::analysis::selection_bounds::OutcomeSummary>,
+    json: bool,
+) -> i32 {
+    let project = if source.path.is_dir() {
+        Project::load(&source.path).ok()
+    } else {
+        None
+    };
+    let result = crate::progress::during("imputing and fitting", json, || {
+        crate::analysis::imputed::fit(project.as_ref(), view, settings)
+    });
+    match result {
+        Ok(mut r) => {
+            if !source.path.is_dir() {
+                r.report.wave = None;
+            }
+            if json {
+                #[derive(serde::Serialize)]
+                struct WithOutcome<'a> {
+                    #[serde(flatten)]
+                    fit: &'a crate::analysis::imputed::ImputedFit,
+                    #[serde(skip_serializing_if = "Option::is_none")]
+                    outcome: Option<&'a crate::analysis::selection_bounds::OutcomeSummary>,
+                }
+                emit_json(&WithOutcome {
+                    fit: &r,
+                    outcome: summary,
+                });
+            } else {
+                let mut text = fit_text(&r.report);
+                let _ = writeln!(
+                    text,
+                    "\nCombined over {} imputations (seed {}; Rubin's rules, Barnard-Rubin df from complete-data {:.0}):",
+                    r.imputation.imputations, r.imputation.seed, r.df_complete
+                );
+                for (j, term) in r.report.model.terms.iter().enumerate() {
+                    let _ = writeln!(
+                        text,
+                        "  {term:<28} df {:>8}  missing information {:>6}",
+                        opt(r.df.get(j).copied().flatten(), 1),
+                        opt(r.fraction_missing_information.get(j).copied().flatten(), 3)
+                    );
+                }
+                if let Some(s) = summary {
+                    let _ = writeln!(
+                        text,
+                        "\n{}: inverse-probability mean {:.4} on the incomplete frame (not imputed)",
+                        s.column, s.weighted_mean
+                    );
+                }
+                let _ = writeln!(text, "caution: {}", r.imputation.caution);
                 emit(&text);
             }
             0
@@ -427,6 +497,56 @@ pub fn plan(
     plan_settings: &crate::analysis::planner::PlanSettings,
     json: bool,
 ) -> i32 {
+    if crate::analysis::imputed::wanted(&settings) {
+        let loaded = if source.path.is_dir() {
+            load_project_wave(source, &mut settings).map(|(p, v)| (Some(p), v))
+        } else {
+            load_universe(source, &mut settings).map(|v| (None, v))
+        };
+        let (project, view) = match loaded {
+            Ok(l) => l,
+            Err(message) => {
+                eprintln!("{message}");
+                return 1;
+            }
+        };
+        let result = crate::progress::during("imputing and planning", json, || {
+            crate::analysis::imputed::plan(project.as_ref(), &view, &settings, plan_settings)
+        });
+        return match result {
+            Ok(mut p) => {
+                if project.is_none() {
+                    p.plan.wave = None;
+                }
+                if json {
+                    emit_json(&p);
+                } else {
+                    let mut text = plan_text(&p.plan);
+                    let _ = writeln!(
+                        text,
+                        "\nMultiple imputation ({} frames, seed {}): the plan is built on {}; share of imputations whose own plan picks each country:",
+                        p.imputation.imputations, p.imputation.seed, p.plan_frame
+                    );
+                    for (id, share) in &p.pick_agreement {
+                        let _ = writeln!(text, "  {id:<8} {:.0}%", 100.0 * share);
+                    }
+                    if let Some(s) = p.objective_spread {
+                        let _ = writeln!(
+                            text,
+                            "  expected objective over the imputations: mean {:.3}, range {:.3} to {:.3}",
+                            s.mean, s.min, s.max
+                        );
+                    }
+                    emit(&text);
+                }
+                0
+            }
+            Err(e) => {
+                eprintln!("{e}");
+                1
+            }
+        };
+    }
     // A project folder is loaded once here, so that chances from its history can read
     // the earlier waves.
     let result = if source.path.is_dir() {
@@ -727,6 +847,26 @@ pub fn impact(
             return 1;
         }
     };
+    if crate::analysis::imputed::wanted(&settings) {
+        return match crate::progress::during(
+            "imputing and estimating every correction",
+            json,
+            || crate::analysis::imputed::impact(&project, &view, &settings, imp),
+        ) {
+            Ok(r) => {
+                if json {
+                    emit_json(&r);
+                } else {
+                    emit(&impact_text(&r.report));
+                }
+                0
+            }
+            Err(e) => {
+                eprintln!("{e}");
+                1
+            }
+        };
+    }
     match crate::progress::during("estimating every correction", json, || {
         crate::analysis::impact::impact(&project, &view, &settings, imp)
     }) {
@@ -957,6 +1097,47 @@ pub fn export_weights(dir: &Path, settings: &Settings, out: &Path, respondents: 
             "combined_weight": "country_weight x design_weight / the sum of the design weights of the country's respondents in the wave, so each country's respondents sum to its country weight; empty when either is missing",
             "reason": "why a weight is empty; empty when there are weights",
         });
+        (csv, columns)
+    } else if crate::analysis::imputed::wanted(settings) {
+        // Multiple imputation: the mean weight, its range and the weight in each frame.
+        let m = settings.imputations;
+        let mut header: Vec<String> = [
+            "wave",
+            "code",
+            "name",
+            "took_part",
+            "propensity",
+            "weight",
+            "weight_min",
+            "weight_max",
+        ]
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
+        header.extend((1..=m).map(|k| format!("weight_{k}")));
+        header.push("reason".to_string());
+        let refs: Vec<&str> = header.iter().map(String::as_str).collect();
+        let csv = crate::csv_out::csv_text(
+            &refs,
+            countries.rows.iter().map(|r| {
+                let by = r.weights_by_imputation.as_deref().unwrap_or(&[]);
+                let spread = crate::stats::combine::spread(by);
+                let mut row = vec![
+                    r.wave.to_string(),
+                    r.code.clone(),
+                    r.name.clone(),
+                    u8::from(r.took_part).to_string(),
+                    cell(r.propensity),
+                    cell(r.weight),
+                    cell(spread.map(|s| s.min)),
+                    cell(spread.map(|s| s.max)),
+                ];
+                row.extend((0..m).map(|k| cell(by.get(k).copied())));
+                row.push(r.reason.clone().unwrap_or_default());
+                row
+            }),
+        );
+        let columns = serde_json::json!({"wave": "wave", "code": "country code", "name": "country name", "took_part": "1 took part, 0 did not", "propensity": "estimated probability of taking part, mean over the imputations", "weight": "mean over the imputations of the country's weight (in each, participants' weights sum to the wave's number of countries); 0 for non-participants", "weight_min": "smallest weight over the imputations", "weight_max": "largest weight over the imputations", "weight_1..": format!("the weight in each of the {m} completed frames (seed {})", settings.seed), "reason": "why propensity and weight are empty; empty when they are not"});
         (csv, columns)
     } else {
         let csv = crate::csv_out::csv_text(

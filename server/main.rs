@@ -66,6 +66,9 @@ enum Command {
         /// taking part, comma-separated (needs --outcome).
         #[arg(long, value_delimiter = ',', requires = "outcome")]
         sensitivity: Vec<f64>,
+        /// Seed of the imputations (--missing impute).
+        #[arg(long)]
+        seed: Option<u64>,
         /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
@@ -196,6 +199,9 @@ enum Command {
         /// older name).
         #[arg(long, alias = "bootstrap", default_value_t = 399)]
         wild_replicates: usize,
+        /// Seed of the imputations (--missing impute) and of the bootstraps.
+        #[arg(long)]
+        seed: Option<u64>,
         /// Print one JSON object instead of tables.
         #[arg(long)]
         json: bool,
@@ -255,6 +261,9 @@ enum Command {
         /// combined weight) instead of one per country.
         #[arg(long)]
         respondents: bool,
+        /// Seed of the imputations (--missing impute).
+        #[arg(long)]
+        seed: Option<u64>,
     },
     /// Write the invented demo project into a folder.
     MakeDemo {
@@ -294,9 +303,14 @@ struct AnalysisArgs {
     /// Cap weights at this quantile of participants' weights (e.g. 0.95).
     #[arg(long)]
     trim: Option<String>,
-    /// complete-cases, median-fill, or fill-and-balance (median fill, and the weights also balance the missingness indicators).
+    /// complete-cases, median-fill, fill-and-balance (median fill, and the weights also
+    /// balance the missingness indicators), or impute (multiple imputation by chained
+    /// equations; estimates combined by Rubin's rules).
     #[arg(long, default_value = "complete-cases")]
     missing: String,
+    /// Completed frames under --missing impute (default 20).
+    #[arg(long)]
+    imputations: Option<String>,
     /// Entropy balancing also matches the universe's variances.
     #[arg(long)]
     variances: bool,
@@ -446,6 +460,12 @@ impl AnalysisArgs {
         if self.variances {
             pairs.push(("variances", "1"));
         }
+        if let Some(m) = &self.imputations {
+            if self.missing != "impute" {
+                return Err("--imputations needs --missing impute".to_string());
+            }
+            pairs.push(("imputations", m));
+        }
         gapwise::analysis::Settings::from_pairs(pairs).map_err(|e| e.to_string())
     }
 }
@@ -521,8 +541,14 @@ fn main() -> ExitCode {
             analysis,
             out,
             respondents,
+            seed,
         }) => match analysis.settings() {
-            Ok(settings) => cli::export_weights(&dir, &settings, &out, respondents),
+            Ok(mut settings) => {
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
+                cli::export_weights(&dir, &settings, &out, respondents)
+            }
             Err(message) => {
                 eprintln!("{message}");
                 2
@@ -587,10 +613,14 @@ fn main() -> ExitCode {
             population,
             replicates,
             wild_replicates,
+            seed,
             json,
         }) => match analysis.settings() {
             Ok(mut settings) => {
                 settings.wave = wave;
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
                 let imp = gapwise::analysis::impact::ImpactSettings {
                     outcome,
                     predictors,
@@ -703,20 +733,26 @@ fn main() -> ExitCode {
             analysis,
             outcome,
             sensitivity,
+            seed,
             json,
         }) => match analysis.settings() {
-            Ok(settings) => cli::fit(
-                &cli::UniverseSource {
-                    path: source,
-                    wave: universe.wave,
-                    id: universe.id,
-                    flag: universe.flag,
-                    extra: Default::default(),
-                },
-                settings,
-                outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
-                json,
-            ),
+            Ok(mut settings) => {
+                if let Some(seed) = seed {
+                    settings.seed = seed;
+                }
+                cli::fit(
+                    &cli::UniverseSource {
+                        path: source,
+                        wave: universe.wave,
+                        id: universe.id,
+                        flag: universe.flag,
+                        extra: Default::default(),
+                    },
+                    settings,
+                    outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
+                    json,
+                )
+            }
             Err(message) => {
                 eprintln!("{message}");
                 2

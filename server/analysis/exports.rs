@@ -25,6 +25,10 @@ pub struct CountryWeight {
     pub weight: Option<f64>,
     /// Why the country has no weight (`None` when it has one).
     pub reason: Option<String>,
+    /// Under multiple imputation (then `weight` and `propensity` are means over the
+    /// imputations): the weight in each completed frame.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub weights_by_imputation: Option<Vec<f64>>,
 }
 
 /// What happened in one wave.
@@ -70,9 +74,25 @@ pub fn country_weights(project: &Project, settings: &Settings) -> CountryWeights
             propensity,
             weight,
             reason,
+            weights_by_imputation: None,
         };
-        match fit(&view, &s) {
-            Ok(r) => {
+        let fitted = if super::imputed::wanted(&s) {
+            super::imputed::fit(Some(project), &view, &s)
+                .map(|r| {
+                    let by: HashMap<String, Vec<f64>> = r
+                        .weights_spread
+                        .iter()
+                        .map(|u| (u.id.clone(), u.weights.clone()))
+                        .collect();
+                    (r.report, Some(by))
+                })
+                .map_err(|e| e.to_string())
+        } else {
+            fit(&view, &s).map(|r| (r, None)).map_err(|e| e.to_string())
+        };
+        match fitted {
+            Ok((r, by_imputation)) => {
+                let first_new = rows.len();
                 let fitted: HashMap<&str, (f64, f64)> = r
                     .units
                     .iter()
@@ -85,6 +105,11 @@ pub fn country_weights(project: &Project, settings: &Settings) -> CountryWeights
                             let reason = left_out_reason(&r.dropped, &view.codes[i]);
                             rows.push(row(i, None, None, Some(reason)));
                         }
+                    }
+                }
+                if let Some(by) = &by_imputation {
+                    for r in &mut rows[first_new..] {
+                        r.weights_by_imputation = by.get(&r.code).cloned();
                     }
                 }
                 waves.push(WaveWeights {
@@ -111,7 +136,7 @@ pub fn country_weights(project: &Project, settings: &Settings) -> CountryWeights
                     effective_n: None,
                     dropped: Vec::new(),
                     warnings: Vec::new(),
-                    error: Some(e.to_string()),
+                    error: Some(e.clone()),
                 });
             }
         }

@@ -9,6 +9,7 @@ pub mod design;
 pub mod exports;
 pub mod impact;
 pub mod impact_bootstrap;
+pub mod imputed;
 pub mod limits;
 pub mod microdata;
 pub mod multilevel;

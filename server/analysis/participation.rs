@@ -850,6 +850,17 @@ pub fn missing_note(design: &Design, settings: &Settings) -> String {
             "Median fill with a missingness indicator per filled indicator, in the model and among the balanced columns: {}",
             filled()
         ),
+        // An imputed analysis replaces this note (analysis::imputed); on a frame that
+        // reached an analysis without being completed, the incomplete countries are left out.
+        MissingRule::Impute if design.dropped.is_empty() => {
+            "No missing values among the chosen indicators".to_string()
+        }
+        MissingRule::Impute => format!(
+            "This result did not use the imputations: {} countr{} with missing values left out: {}",
+            design.dropped.len(),
+            if design.dropped.len() == 1 { "y" } else { "ies" },
+            design.dropped.join("; ")
+        ),
     }
 }
 

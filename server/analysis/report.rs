@@ -165,6 +165,9 @@ impl Parts for Compute {
         settings: &Settings,
         ps: &PlanSettings,
     ) -> Result<Plan, String> {
+        if super::imputed::wanted(settings) {
+            return super::imputed::plan(Some(project), view, settings, ps).map(|r| r.plan);
+        }
         plan_for(project, view, settings, ps).map_err(|e| e.to_string())
     }
 
@@ -175,6 +178,9 @@ impl Parts for Compute {
         settings: &Settings,
         imp: &ImpactSettings,
     ) -> Result<ImpactReport, String> {
+        if super::imputed::wanted(settings) {
+            return super::imputed::impact(project, view, settings, imp).map(|r| r.report);
+        }
         impact(project, view, settings, imp).map_err(|e| e.to_string())
     }
 
@@ -185,6 +191,16 @@ impl Parts for Compute {
         settings: &Settings,
         ps: &ProjectionSettings,
     ) -> Result<ProjectionReport, String> {
+        if super::imputed::wanted(settings) {
+            // One completed frame, said in the notes (as on the projection page).
+            let done = super::imputed::complete_project_wave(Some(project), view, settings)
+                .map_err(|e| e.to_string())?;
+            let mut r =
+                projection(project, &done.views[0], settings, ps).map_err(|e| e.to_string())?;
+            r.notes
+                .insert(0, super::imputed::single_frame_note(&done.summary));
+            return Ok(r);
+        }
         projection(project, view, settings, ps).map_err(|e| e.to_string())
     }
 }
@@ -242,8 +258,21 @@ pub fn report_with(
             .map(|ps| parts.projection(project, &view, &settings, ps));
         sections.push(WaveReport {
             wave,
-            fit: fit(&view, &settings).map_err(|e| e.to_string()),
-            balance: compare(&view, &settings).map_err(|e| e.to_string()),
+            fit: if super::imputed::wanted(&settings) {
+                super::imputed::fit(Some(project), &view, &settings)
+                    .map(|r| r.report)
+                    .map_err(|e| e.to_string())
+            } else {
+                fit(&view, &settings).map_err(|e| e.to_string())
+            },
+            balance: if super::imputed::wanted(&settings) {
+                super::imputed::compare(Some(project), &view, &settings)
+                    .map(|r| r.comparison)
+                    .map_err(|e| e.to_string())
+            } else {
+                compare(&view, &settings).map_err(|e| e.to_string())
+            },
+            // The coverage section reads the observed frame (complete cases) in every case.
             coverage: coverage(&view),
             plan: parts.plan(project, &view, &settings, &request.plan),
             impact,

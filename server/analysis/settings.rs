@@ -82,6 +82,9 @@ pub enum MissingRule {
     /// As `MedianFill`, and the weights also balance the missingness indicators (the
     /// missing-indicator approach for balancing weights).
     FillAndBalance,
+    /// Fill each gap several times by chained equations (`imputations` completed frames),
+    /// run the analysis on each and combine by Rubin's rules (analysis::imputed).
+    Impute,
 }
 
 impl MissingRule {
@@ -90,6 +93,7 @@ impl MissingRule {
             MissingRule::CompleteCases => "complete-cases",
             MissingRule::MedianFill => "median-fill",
             MissingRule::FillAndBalance => "fill-and-balance",
+            MissingRule::Impute => "impute",
         }
     }
 
@@ -98,6 +102,7 @@ impl MissingRule {
             "complete-cases" => Some(MissingRule::CompleteCases),
             "median-fill" => Some(MissingRule::MedianFill),
             "fill-and-balance" => Some(MissingRule::FillAndBalance),
+            "impute" => Some(MissingRule::Impute),
             _ => None,
         }
     }
@@ -119,7 +124,14 @@ pub struct Settings {
     /// Entropy balancing also matches the universe's variances.
     pub match_variances: bool,
     pub seed: u64,
+    /// Completed frames under `MissingRule::Impute` (M; its seed is `seed`).
+    pub imputations: usize,
 }
+
+/// The default number of imputations M.
+pub const DEFAULT_IMPUTATIONS: usize = 20;
+/// The most imputations a request may ask for.
+pub const MAX_IMPUTATIONS: usize = 200;
 
 impl Default for Settings {
     fn default() -> Self {
@@ -133,6 +145,7 @@ impl Default for Settings {
             missing: MissingRule::CompleteCases,
             match_variances: false,
             seed: 20_261_201,
+            imputations: DEFAULT_IMPUTATIONS,
         }
     }
 }
@@ -179,13 +192,20 @@ impl Settings {
                     }
                 }
                 "missing" => {
-                    s.missing = MissingRule::parse(value).ok_or_else(|| SettingsError(format!("missing must be complete-cases, median-fill or fill-and-balance, not '{value}'")))?;
+                    s.missing = MissingRule::parse(value).ok_or_else(|| SettingsError(format!("missing must be complete-cases, median-fill, fill-and-balance or impute, not '{value}'")))?;
                 }
                 "variances" => s.match_variances = matches!(value, "1" | "true" | "yes" | "on"),
+                "imputations" => {
+                    let m: usize = value.parse().map_err(|_| SettingsError(format!("imputations must be a whole number such as 20, not '{value}'")))?;
+                    if !(2..=MAX_IMPUTATIONS).contains(&m) {
+                        return Err(SettingsError(format!("imputations must be between 2 and {MAX_IMPUTATIONS}, not {m}")));
+                    }
+                    s.imputations = m;
+                }
                 "seed" => s.seed = value.parse().map_err(|_| SettingsError(format!("seed must be a whole number, not '{value}'")))?,
                 other => {
                     return Err(SettingsError(format!(
-                        "unknown setting '{other}'; the settings are wave, model, weighting, covariates, factors, trim, missing, variances, seed"
+                        "unknown setting '{other}'; the settings are wave, model, weighting, covariates, factors, trim, missing, imputations, variances, seed"
                     )))
                 }
             }
@@ -213,6 +233,9 @@ impl Settings {
         }
         if self.missing != MissingRule::CompleteCases {
             pairs.push(("missing", self.missing.as_str().to_string()));
+        }
+        if self.missing == MissingRule::Impute && self.imputations != DEFAULT_IMPUTATIONS {
+            pairs.push(("imputations", self.imputations.to_string()));
         }
         if self.match_variances {
             pairs.push(("variances", "1".to_string()));
@@ -261,6 +284,10 @@ mod tests {
             .contains("logit, firth or probit"));
         assert!(Settings::from_pairs([("colour", "red")]).is_err());
         assert!(Settings::from_pairs([("trim", "1.5")]).is_err());
+        let s = Settings::from_pairs([("missing", "impute"), ("imputations", "7")]).unwrap();
+        assert_eq!((s.missing, s.imputations), (MissingRule::Impute, 7));
+        assert!(s.to_query().contains("imputations=7"));
+        assert!(Settings::from_pairs([("imputations", "1")]).is_err());
     }
 
     /// settings -> query -> settings gives the same settings, also for names that need
@@ -277,6 +304,7 @@ mod tests {
             missing: MissingRule::MedianFill,
             match_variances: true,
             seed: 42,
+            imputations: DEFAULT_IMPUTATIONS,
         };
         let query = s.to_query();
         assert!(!query.contains(' ') && !query.contains("& "), "{query}");

@@ -27,6 +27,22 @@ pub fn component_map(c: &CoverageReport) -> String {
 /// The same map with the plan's recruits ringed (plum diamonds) and hypothetical joiners
 /// drawn as if they took part (plum squares).
 pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[String]) -> String {
+    map_with(c, planned, joiners, &[])
+}
+
+/// The map of a completed frame (multiple imputation) with the countries whose
+/// indicators were filled crossed (black ×), so that their positions are read as
+/// partly filled in.
+pub fn component_map_imputed(c: &CoverageReport, imputed: &[String]) -> String {
+    map_with(c, &[], &[], imputed)
+}
+
+fn map_with(
+    c: &CoverageReport,
+    planned: &[String],
+    joiners: &[String],
+    imputed: &[String],
+) -> String {
     const TITLE: &str =
         "Which kinds of countries are missing: the eligible universe on two components";
     if let Some(e) = &c.map_error {
@@ -58,6 +74,9 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
         }
         if !joiners.is_empty() {
             keys.push(Key::new("What if it joined", Glyph::Square(plum)));
+        }
+        if !imputed.is_empty() {
+            keys.push(Key::new("Has filled (imputed) values", Glyph::Cross(BLACK)));
         }
         let body = headed(
             root,
@@ -115,6 +134,12 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
                         + Rectangle::new([(-7, -7), (7, 7)], plum.filled())
                 }),
         )?;
+        chart.draw_series(
+            c.points
+                .iter()
+                .filter(|p| imputed.contains(&p.id))
+                .map(|p| Cross::new((p.pc1, p.pc2), 5, BLACK.stroke_width(2))),
+        )?;
         // Labels: the plan's countries first, then the countries farthest from the centre,
         // each where it collides with no other label; the rest name themselves on hover.
         let pixels: Vec<(i32, i32)> = c
@@ -156,7 +181,12 @@ pub fn component_map_marked(c: &CoverageReport, planned: &[String], joiners: &[S
                 } else {
                     "eligible, did not take part"
                 };
-                (px, format!("{} ({}): {status}", p.name, p.id))
+                let filled = if imputed.contains(&p.id) {
+                    "; has filled values"
+                } else {
+                    ""
+                };
+                (px, format!("{} ({}): {status}{filled}", p.name, p.id))
             })
             .collect();
         Ok(())

@@ -4,6 +4,7 @@
 pub mod balance;
 pub mod coverage;
 pub mod impact;
+pub mod imputation;
 pub mod map;
 pub mod model;
 pub mod plan;

@@ -4,7 +4,9 @@
 pub mod balance;
 pub mod binary;
 pub mod bootstrap;
+pub mod combine;
 pub mod describe;
+pub mod imputation;
 pub mod linalg;
 pub mod multilevel;
 pub mod newton;

@@ -14,6 +14,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::balance::{compare, BalanceComparison};
 use crate::analysis::cautions::{Caution, STANDING};
+use crate::analysis::imputed::{self, BalanceSpread};
 use crate::charts;
 use crate::csv_out::{cell, csv_text};
 
@@ -32,24 +33,67 @@ struct BalancePage<'a> {
     before_max: Option<f64>,
     /// Per row, (SMD, variance ratio) after each method.
     cells: Vec<Vec<(Option<f64>, Option<f64>)>>,
+    /// Under multiple imputation: the spread of the diagnostics over the imputations.
+    imputed: Option<&'a BalanceSpread>,
+    /// Per method (aligned with `b.methods`): the effective number's range, in words.
+    eff_range: Vec<String>,
+}
+
+/// The balance page's result: the comparison and, under multiple imputation, the
+/// spread over the imputations (the JSON twin shows both, flattened).
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct BalanceResult {
+    #[serde(flatten)]
+    pub b: BalanceComparison,
+    #[serde(flatten, skip_serializing_if = "Option::is_none")]
+    pub imputed: Option<BalanceSpread>,
+}
+
+impl BalancePage<'_> {
+    /// The range of method `k`'s effective number over the imputations, if any.
+    fn eff_range_of(&self, k: &usize) -> Option<&str> {
+        self.eff_range
+            .get(*k)
+            .map(String::as_str)
+            .filter(|r| !r.is_empty())
+    }
 }
 
 fn compute(
     state: &AppState,
     query: &super::context::Query,
-) -> AppResult<(SettingsForm, BalanceComparison)> {
+) -> AppResult<(SettingsForm, BalanceResult)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/balance", &project, &settings);
-    let b = compare(&view, &settings)?;
-    Ok((form, b))
+    let result = if imputed::wanted(&settings) {
+        let r = imputed::compare(Some(&project), &view, &settings)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        BalanceResult {
+            b: r.comparison,
+            imputed: Some(r.spread),
+        }
+    } else {
+        BalanceResult {
+            b: compare(&view, &settings)?,
+            imputed: None,
+        }
+    };
+    Ok((form, result))
 }
 
 pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, b) = off_thread(&state, &query, compute).await?;
+    let (form, result) = off_thread(&state, &query, compute).await?;
+    let b = &result.b;
     let form = form.presenting(&query);
+    let eff_range = result.imputed.as_ref().map_or_else(Vec::new, |s| {
+        s.effective_n_spread
+            .iter()
+            .map(|e| e.map_or_else(String::new, |e| format!("{:.1} to {:.1}", e.min, e.max)))
+            .collect()
+    });
     let cells = (0..b.rows.len())
         .map(|i| {
             b.methods
@@ -66,9 +110,11 @@ pub async fn page(
         nav_query: form.query.clone(),
         form,
         f: Fmt,
-        chart: charts::balance::smd_dots(&b),
-        b: &b,
+        chart: charts::balance::smd_dots(b),
+        b,
         cautions: &STANDING,
+        imputed: result.imputed.as_ref(),
+        eff_range,
     }
     .render()?;
     Ok(Html(html))
@@ -77,7 +123,7 @@ pub async fn page(
 pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
-) -> AppResult<Json<BalanceComparison>> {
+) -> AppResult<Json<BalanceResult>> {
     Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
@@ -86,13 +132,14 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, b) = off_thread(&state, &query, compute).await?;
+    let (_, result) = off_thread(&state, &query, compute).await?;
+    let b = &result.b;
     match item.as_str() {
         "smd.svg" => Ok(svg_response(
             "balance-smd.svg",
-            charts::balance::smd_dots(&b),
+            charts::balance::smd_dots(b),
         )),
-        "table.csv" => Ok(csv_response("balance.csv", table_csv(&b))),
+        "table.csv" => Ok(csv_response("balance.csv", table_csv(b))),
         _ => Err(AppError::NotFound(format!(
             "no {item} here; try smd.svg or table.csv"
         ))),

@@ -112,6 +112,10 @@ pub struct SettingsForm {
     pub weightings: Vec<Choice>,
     pub trims: Vec<Choice>,
     pub missing: Vec<Choice>,
+    /// Completed frames under multiple imputation.
+    pub imputations: usize,
+    /// The seed of every random draw (kept across form submissions).
+    pub seed: u64,
     pub covariates: Vec<Choice>,
     pub factors: Vec<Choice>,
     /// The current settings as a query string, for links between pages.
@@ -182,6 +186,10 @@ impl SettingsForm {
                     MissingRule::FillAndBalance,
                     "Fill with median + missing flag, and balance the flags",
                 ),
+                (
+                    MissingRule::Impute,
+                    "Multiple imputation (results combined)",
+                ),
             ]
             .into_iter()
             .map(|(k, label)| Choice {
@@ -190,6 +198,8 @@ impl SettingsForm {
                 selected: settings.missing == k,
             })
             .collect(),
+            imputations: settings.imputations,
+            seed: settings.seed,
             covariates: m
                 .indicators
                 .numeric

@@ -32,15 +32,39 @@ struct CoveragePage<'a> {
     cautions: &'a [Caution],
 }
 
-fn compute(
-    state: &AppState,
-    query: &super::context::Query,
-) -> AppResult<(SettingsForm, CoverageReport, Option<IncompleteCountries>)> {
+/// The coverage page's result; under multiple imputation the map is of the first
+/// completed frame, and the countries with filled values are named in the last element.
+type CoverageResult = (
+    SettingsForm,
+    CoverageReport,
+    Option<IncompleteCountries>,
+    Vec<String>,
+);
+
+fn compute(state: &AppState, query: &super::context::Query) -> AppResult<CoverageResult> {
     let (project, settings, view) = resolve(state, query)?;
+    let form = SettingsForm::new("/coverage", &project, &settings);
+    if crate::analysis::imputed::wanted(&settings) {
+        let done =
+            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
+                .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let mut c = coverage(&done.views[0]);
+        let filled = done.summary.countries_filled.clone();
+        c.summary.push(format!(
+            "Multiple imputation: this page shows a single completed frame (the first of {}, seed {}), not a combination; the {} countr{} with filled values are crossed on the map. {}",
+            done.summary.imputations,
+            done.summary.seed,
+            filled.len(),
+            if filled.len() == 1 { "y" } else { "ies" },
+            crate::analysis::imputed::CAUTION
+        ));
+        return Ok((form, c, None, filled));
+    }
     Ok((
-        SettingsForm::new("/coverage", &project, &settings),
+        form,
         coverage(&view),
         incomplete_for(&view, &settings),
+        Vec::new(),
     ))
 }
 
@@ -48,14 +72,14 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Html<String>> {
-    let (form, c, incomplete) = off_thread(&state, &query, compute).await?;
+    let (form, c, incomplete, filled) = off_thread(&state, &query, compute).await?;
     let form = form.presenting(&query);
     let html = CoveragePage {
         page: "coverage",
         nav_query: form.query.clone(),
         form,
         f: Fmt,
-        map_chart: charts::map::component_map(&c),
+        map_chart: charts::map::component_map_imputed(&c, &filled),
         spread_chart: charts::map::spreads(&c),
         c: &c,
         incomplete,
@@ -77,11 +101,11 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<super::context::Query>,
 ) -> AppResult<Response> {
-    let (_, c, _) = off_thread(&state, &query, compute).await?;
+    let (_, c, _, filled) = off_thread(&state, &query, compute).await?;
     match item.as_str() {
         "map.svg" => Ok(svg_response(
             "component-map.svg",
-            charts::map::component_map(&c),
+            charts::map::component_map_imputed(&c, &filled),
         )),
         "spreads.svg" => Ok(svg_response(
             "indicator-spreads.svg",

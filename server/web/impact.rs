@@ -262,6 +262,13 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactRe
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/impact", &project, &settings);
     let imp = impact_settings(&project, query)?;
+    // Under multiple imputation: every correction on each completed frame, combined by
+    // Rubin's rules (the notes say so); nobody is left out, so nothing is incomplete.
+    if crate::analysis::imputed::wanted(&settings) {
+        let r = crate::analysis::imputed::impact(&project, &view, &settings, &imp)
+            .map_err(AppError::BadRequest)?;
+        return Ok((form, r.report, None));
+    }
     let r = impact(&project, &view, &settings, &imp)?;
     Ok((form, r, incomplete_for(&view, &settings)))
 }

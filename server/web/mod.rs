@@ -65,6 +65,7 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/", get(overview::page))
         .route("/api/overview", get(overview::json))
         .route("/charts/coverage.svg", get(overview::coverage_svg))
+        .route("/api/imputation", get(overview::imputation_json))
         // Balance
         .route("/balance", get(balance::page))
         .route("/api/balance", get(balance::json))

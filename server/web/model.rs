@@ -41,6 +41,13 @@ fn compute(
 ) -> AppResult<(SettingsForm, FitReport)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/model", &project, &settings);
+    // Under multiple imputation: the fit combined over the completed frames (Rubin's
+    // rules for the coefficients; weights and balance as means).
+    if crate::analysis::imputed::wanted(&settings) {
+        let r = crate::analysis::imputed::fit(Some(&project), &view, &settings)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        return Ok((form, r.report));
+    }
     let r = fit(&view, &settings)?;
     Ok((form, r))
 }

@@ -3,7 +3,7 @@
 use std::sync::Arc;
 
 use askama::Template;
-use axum::extract::State;
+use axum::extract::{Query as QueryString, State};
 use axum::response::{Html, IntoResponse};
 use axum::Json;
 
@@ -12,6 +12,7 @@ use super::error::AppResult;
 use super::state::AppState;
 use super::svg_response;
 use crate::analysis::cautions::Caution;
+use crate::analysis::imputed::{self, ImputationSummary};
 use crate::analysis::overview::{overview, Overview, WaveStatus};
 use crate::charts;
 
@@ -26,6 +27,18 @@ struct OverviewPage<'a> {
     coverage_chart: String,
     cautions: &'a [Caution],
     f: super::format::Fmt,
+    /// With `missing=impute` in the query: what multiple imputation fills in the wave.
+    imputation: Option<ImputationView>,
+}
+
+/// The overview's section on multiple imputation (with its two charts).
+struct ImputationView {
+    s: ImputationSummary,
+    /// Per filled cell: code, name, indicator label, the filled values in words.
+    rows: Vec<(String, String, String, String)>,
+    observed_chart: String,
+    convergence_chart: String,
+    query: String,
 }
 
 impl OverviewPage<'_> {
@@ -70,8 +83,68 @@ fn compute(state: &AppState, _query: &Query) -> AppResult<Overview> {
     Ok(overview(&state.project()))
 }
 
-pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResponse> {
+/// What multiple imputation fills in the query's wave (`missing=impute`).
+fn compute_imputation(state: &AppState, query: &Query) -> AppResult<ImputationSummary> {
+    let (project, settings, view) = super::context::resolve(state, query)?;
+    imputed::complete_project_wave(Some(&project), &view, &settings)
+        .map(|c| c.summary)
+        .map_err(|e| super::error::AppError::BadRequest(e.to_string()))
+}
+
+fn filled_in_words(c: &imputed::FilledCell) -> String {
+    if let Some(v) = &c.values {
+        let lo = v.iter().copied().fold(f64::INFINITY, f64::min);
+        let hi = v.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+        let mean = v.iter().sum::<f64>() / v.len().max(1) as f64;
+        format!("mean {mean:.3}, from {lo:.3} to {hi:.3}")
+    } else if let Some(l) = &c.levels {
+        let mut counts: Vec<(String, usize)> = Vec::new();
+        for level in l {
+            match counts.iter_mut().find(|(x, _)| x == level) {
+                Some(e) => e.1 += 1,
+                None => counts.push((level.clone(), 1)),
+            }
+        }
+        counts.sort_by(|a, b| b.1.cmp(&a.1).then(a.0.cmp(&b.0)));
+        counts
+            .iter()
+            .map(|(x, n)| format!("{x} ({n} of {})", l.len()))
+            .collect::<Vec<_>>()
+            .join(", ")
+    } else {
+        String::new()
+    }
+}
+
+pub async fn page(
+    State(state): State<Arc<AppState>>,
+    QueryString(query): QueryString<Query>,
+) -> AppResult<impl IntoResponse> {
     let o = off_thread(&state, &Query::new(), compute).await?;
+    let settings = super::context::settings_from_query(&query)?;
+    let imputation = if imputed::wanted(&settings) {
+        let s = off_thread(&state, &query, compute_imputation).await?;
+        Some(ImputationView {
+            rows: s
+                .cells
+                .iter()
+                .map(|c| {
+                    (
+                        c.code.clone(),
+                        c.name.clone(),
+                        c.label.clone(),
+                        filled_in_words(c),
+                    )
+                })
+                .collect(),
+            observed_chart: charts::imputation::observed_vs_imputed(&s),
+            convergence_chart: charts::imputation::convergence(&s),
+            query: settings.to_query(),
+            s,
+        })
+    } else {
+        None
+    };
     let html = OverviewPage {
         page: "overview",
         nav_query: String::new(),
@@ -84,9 +157,19 @@ pub async fn page(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResp
         f: super::format::Fmt,
         cautions: &o.cautions,
         o: &o,
+        imputation,
     }
     .render()?;
     Ok(Html(html))
+}
+
+/// What multiple imputation fills in a wave (the overview's imputation section), with
+/// every filled value of every imputation and the convergence traces.
+pub async fn imputation_json(
+    State(state): State<Arc<AppState>>,
+    QueryString(query): QueryString<Query>,
+) -> AppResult<Json<ImputationSummary>> {
+    Ok(Json(off_thread(&state, &query, compute_imputation).await?))
 }
 
 pub async fn json(State(state): State<Arc<AppState>>) -> AppResult<Json<Overview>> {

@@ -181,6 +181,31 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/plan", &project, &settings);
     let ps = plan_settings(query)?;
+    // Under multiple imputation: the plan of the first completed frame, with how often the
+    // other imputations' plans agree (in its notes).
+    if crate::analysis::imputed::wanted(&settings) {
+        let r = crate::analysis::imputed::plan(Some(&project), &view, &settings, &ps)
+            .map_err(AppError::BadRequest)?;
+        let mut p = r.plan;
+        let agreement = r
+            .pick_agreement
+            .iter()
+            .map(|(id, share)| format!("{id} {:.0}%", 100.0 * share))
+            .collect::<Vec<_>>()
+            .join(", ");
+        p.notes.insert(
+            1,
+            format!(
+                "Share of the {} imputations whose own plan picks each country of this plan: {agreement}{}",
+                r.imputation.imputations,
+                r.objective_spread.map_or_else(String::new, |s| format!(
+                    "; the plans' expected objective ranges from {:.3} to {:.3} (mean {:.3})",
+                    s.min, s.max, s.mean
+                ))
+            ),
+        );
+        return Ok((form, p, coverage(&view), None));
+    }
     let p = plan_for(&project, &view, &settings, &ps)?;
     Ok((form, p, coverage(&view), incomplete_for(&view, &settings)))
 }

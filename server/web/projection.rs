@@ -86,7 +86,20 @@ pub(crate) fn compute(
     let form = SettingsForm::new("/projection", &project, &settings);
     let ps = projection_settings(&project, query)?;
     let options = projection_options(query)?;
-    let r = projection_with(&project, &view, &settings, &ps, &options)?;
+    let r = if crate::analysis::imputed::wanted(&settings) {
+        // One completed frame (the notes say so); the combination is not computed here.
+        let done =
+            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
+                .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let mut r = projection_with(&project, &done.views[0], &settings, &ps, &options)?;
+        r.notes.insert(
+            0,
+            crate::analysis::imputed::single_frame_note(&done.summary),
+        );
+        r
+    } else {
+        projection_with(&project, &view, &settings, &ps, &options)?
+    };
     let variables = project
         .manifest
         .microdata

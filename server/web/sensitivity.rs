@@ -36,6 +36,15 @@ fn compute(
 ) -> AppResult<(SettingsForm, Sensitivity)> {
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/sensitivity", &project, &settings);
+    if crate::analysis::imputed::wanted(&settings) {
+        let done =
+            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
+                .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let mut s = with_model_uncertainty(&project, &done.views[0], &settings)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        s.missing_caveat = Some(crate::analysis::imputed::single_frame_note(&done.summary));
+        return Ok((form, s));
+    }
     let s = with_model_uncertainty(&project, &view, &settings)?;
     Ok((form, s))
 }

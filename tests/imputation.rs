@@ -1,0 +1,460 @@
+//! Multiple imputation: Rubin's rules against R's mice, a simulation on a real-indicator
+//! frame with values removed at random, reproducibility, predictive mean matching filling
+//! only observed values, and a category with a missing value and a sparse level.
+
+use std::path::Path;
+
+use gapwise::analysis::imputed;
+use gapwise::analysis::settings::{MissingRule, Settings};
+use gapwise::project::{Project, WaveView};
+use gapwise::stats::combine;
+use gapwise::stats::random::Rng;
+use serde_json::Value;
+
+fn fixture(name: &str) -> std::path::PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures")
+        .join(name)
+}
+
+fn numbers(v: &Value) -> Vec<f64> {
+    v.as_array()
+        .expect("an array")
+        .iter()
+        .map(|x| x.as_f64().expect("a number"))
+        .collect()
+}
+
+fn close(a: f64, b: f64, tol: f64) -> bool {
+    (a - b).abs() <= tol * b.abs().max(1.0)
+}
+
+/// Rubin's rules on the same completed-data estimates and variances as R's mice::pool()
+/// (tests/fixtures/make_mice_fixture.R: mice 3.15 on its nhanes data, 20 imputations, a
+/// linear and a logistic model, complete-data df 22 and infinite), to 1e-8.
+#[test]
+fn rubins_rules_match_mice_pool() {
+    let text = std::fs::read_to_string(fixture("mice_pool.json")).unwrap();
+    let fx: Value = serde_json::from_str(&text).unwrap();
+    let cases = fx["cases"].as_array().unwrap();
+    assert_eq!(cases.len(), 3);
+    for case in cases {
+        let name = case["name"].as_str().unwrap();
+        let dfcom = match &case["dfcom"] {
+            Value::String(s) if s == "Inf" => f64::INFINITY,
+            v => v.as_f64().unwrap(),
+        };
+        let terms = case["terms"].as_array().unwrap();
+        let estimates = case["estimates"].as_array().unwrap();
+        let variances = case["variances"].as_array().unwrap();
+        assert_eq!(estimates.len(), terms.len());
+        assert_eq!(variances.len(), terms.len());
+        for j in 0..terms.len() {
+            let q = numbers(&estimates[j]);
+            let u = numbers(&variances[j]);
+            assert_eq!(q.len(), 20, "{name}");
+            let p = combine::pool(&q, &u, dfcom).unwrap();
+            let want = |k: &str| numbers(&case[k])[j];
+            for (ours, key) in [
+                (p.estimate, "qbar"),
+                (p.within, "ubar"),
+                (p.between, "b"),
+                (p.total, "t"),
+                (p.df, "df"),
+                (p.riv, "riv"),
+                (p.lambda, "lambda"),
+                (p.fmi, "fmi"),
+            ] {
+                assert!(
+                    close(ours, want(key), 1e-8),
+                    "{name}, {}: {key} ours {ours} mice {}",
+                    terms[j],
+                    want(key)
+                );
+            }
+            // The variance exceeds the within-imputation variance (common practice).
+            assert!(p.total > p.within);
+        }
+    }
+}
+
+fn real_project() -> Project {
+    Project::load(&fixture("real_frame")).expect("the real frame loads")
+}
+
+/// The complete real frame's wave 2007 with values removed completely at random.
+fn with_holes(view: &WaveView, share: f64, rng: &mut Rng) -> WaveView {
+    let mut v = view.clone();
+    for ind in v.numeric.iter_mut().take(2) {
+        for x in ind.values.iter_mut() {
+            if rng.uniform() < share {
+                *x = None;
+            }
+        }
+    }
+    v
+}
+
+/// Simulation (common practice, van Buuren 2018 section 2.5): on the complete Gapminder
+/// frame (tests/fixtures/real_frame, wave 2007), 25% of two indicators are removed at
+/// random 40 times; each time the participation model is fitted on 10 imputations. The
+/// combined 95% intervals must cover the complete-data estimate at least at the nominal
+/// rate less simulation error (they are centred near it and also carry the sampling
+/// variance, so they cover it more often than 95%: measured 1.000); the interval of the
+/// missing-data part alone, q̄ ± t(M−1)√((1+1/M)B), must cover it near the nominal rate
+/// (measured 0.925 over 160 intervals); and the total variance must exceed the
+/// complete-data variance on average (missing values lose information).
+#[test]
+fn combined_intervals_cover_the_complete_data_estimate() {
+    let project = real_project();
+    let view = project.wave(2007).unwrap();
+    // The three numeric indicators only: a continent with separation has no estimate
+    // under the plain logit, so there would be nothing to cover.
+    let settings = Settings {
+        weighting: gapwise::analysis::settings::WeightingKind::InverseProbability,
+        factors: Some(Vec::new()),
+        ..Settings::default()
+    };
+    let complete = gapwise::analysis::participation::fit(&view, &settings).unwrap();
+    let k = complete.model.terms.len();
+    assert!(complete.model.coef.iter().all(Option::is_some));
+    let mut rng = Rng::stream(2026, 18);
+    let (mut covered, mut total, mut covered_missing_part) = (0usize, 0usize, 0usize);
+    let mut ratio = vec![0.0; k];
+    let reps = 40;
+    for r in 0..reps {
+        let holed = with_holes(&view, 0.25, &mut rng);
+        let s = Settings {
+            missing: MissingRule::Impute,
+            imputations: 10,
+            seed: 100 + r as u64,
+            ..settings.clone()
+        };
+        let fit = imputed::fit(None, &holed, &s).unwrap();
+        assert_eq!(fit.imputations.len(), 10);
+        assert_eq!(fit.report.model.terms, complete.model.terms);
+        for j in 0..k {
+            let c = &fit.report.model.coefficients[j];
+            let truth = complete.model.coef[j].unwrap();
+            let (lo, hi) = (c.ci95_low.unwrap(), c.ci95_high.unwrap());
+            covered += usize::from(lo <= truth && truth <= hi);
+            total += 1;
+            // The missing-data part alone: q̄ ± t(M−1) √((1 + 1/M) B) should cover the
+            // complete-data estimate near the nominal rate when the imputations are proper.
+            let q: Vec<f64> = fit.imputations.iter().map(|i| i.coef[j].unwrap()).collect();
+            let m = q.len() as f64;
+            let qbar = q.iter().sum::<f64>() / m;
+            let b = q.iter().map(|x| (x - qbar).powi(2)).sum::<f64>() / (m - 1.0);
+            let half = gapwise::stats::regression::student::upper_quantile(0.975, m - 1.0)
+                * ((1.0 + 1.0 / m) * b).sqrt();
+            covered_missing_part += usize::from((qbar - truth).abs() <= half);
+            ratio[j] += (fit.se[j].unwrap() / complete.model.se[j].unwrap()).powi(2) / reps as f64;
+        }
+    }
+    let rate = covered as f64 / total as f64;
+    let rate_missing_part = covered_missing_part as f64 / total as f64;
+    assert!(
+        (0.85..=1.0).contains(&rate_missing_part),
+        "missing-data part coverage {rate_missing_part}"
+    );
+    // Nominal 0.95 less about three binomial standard errors at this many intervals.
+    assert!(
+        rate >= 0.95 - 3.0 * (0.95f64 * 0.05 / total as f64).sqrt(),
+        "coverage {rate}"
+    );
+    // The coefficients of the two indicators with holes (terms 1 and 2), and the terms on
+    // average, lose information.
+    assert_eq!(complete.model.terms[1], "log_gdp_pc");
+    assert_eq!(complete.model.terms[2], "life_expectancy");
+    for (j, r) in ratio.iter().enumerate().skip(1).take(2) {
+        assert!(*r > 1.0, "term {j}: mean T / complete-data variance {r}");
+    }
+    let mean_ratio = ratio.iter().sum::<f64>() / k as f64;
+    assert!(mean_ratio > 1.0, "{ratio:?}");
+    eprintln!("coverage of the complete-data estimate {rate:.3} (by the missing-data part alone {rate_missing_part:.3}); variance ratios {ratio:?}");
+}
+
+/// The same seed gives the same imputations and the same combined fit; another seed
+/// other ones; filled values are values observed in the frame (PMM); `imputations` and
+/// the seed are shown.
+#[test]
+fn imputations_are_reproducible_and_fill_observed_values() {
+    let project = real_project();
+    let view = project.wave(2002).unwrap();
+    let mut rng = Rng::stream(7, 1);
+    let holed = with_holes(&view, 0.2, &mut rng);
+    let others = imputed::other_waves(&project, 2002);
+    let s = Settings {
+        missing: MissingRule::Impute,
+        imputations: 5,
+        seed: 99,
+        ..Settings::default()
+    };
+    let a = imputed::complete(&holed, &others, &s).unwrap();
+    let b = imputed::complete(&holed, &others, &s).unwrap();
+    let c = imputed::complete(
+        &holed,
+        &others,
+        &Settings {
+            seed: 100,
+            ..s.clone()
+        },
+    )
+    .unwrap();
+    assert_eq!(a.views.len(), 5);
+    assert_eq!(a.summary.seed, 99);
+    assert_eq!(a.summary.waves_used, vec![1992, 1997, 2002, 2007]);
+    let values = |v: &gapwise::analysis::imputed::CompletedViews| {
+        v.views
+            .iter()
+            .map(|w| w.numeric[0].values.clone())
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(values(&a), values(&b));
+    assert_ne!(values(&a), values(&c));
+    // Every donor value comes from the frame's observed values (this wave or another).
+    for j in 0..2 {
+        let mut pool: Vec<f64> = holed.numeric[j].values.iter().flatten().copied().collect();
+        for o in &others {
+            pool.extend(o.numeric[j].values.iter().flatten());
+        }
+        for v in &a.views {
+            for (i, x) in v.numeric[j].values.iter().enumerate() {
+                let x = x.expect("completed");
+                match holed.numeric[j].values[i] {
+                    Some(obs) => assert_eq!(x, obs),
+                    None => assert!(pool.contains(&x), "{x} was never observed"),
+                }
+            }
+        }
+    }
+    // The filled cells are listed with their M values.
+    let holes = holed.numeric[..2]
+        .iter()
+        .map(|c| c.values.iter().filter(|x| x.is_none()).count())
+        .sum::<usize>();
+    assert_eq!(a.summary.cells.len(), holes);
+    assert!(a
+        .summary
+        .cells
+        .iter()
+        .all(|c| c.values.as_ref().unwrap().len() == 5));
+    assert_eq!(a.summary.traces.len(), 2);
+    assert!(a.summary.traces[0]
+        .means
+        .iter()
+        .all(|m| m.len() == imputed::CYCLES));
+    // The same completed frames give the same combined fit.
+    let fit1 = imputed::fit_completed(&a, &s).unwrap();
+    let fit2 = imputed::fit_completed(&b, &s).unwrap();
+    assert_eq!(
+        serde_json::to_string(&fit1.coef).unwrap(),
+        serde_json::to_string(&fit2.coef).unwrap()
+    );
+}
+
+/// A category with missing values, one level held by a single country and one level that
+/// no participant has: the imputation fills only existing levels, and the analysis runs
+/// (the level no participant has is what the model reports as not estimable, not a
+/// crash).
+#[test]
+fn a_category_with_missing_values_and_a_sparse_level() {
+    let project = real_project();
+    let mut view = project.wave(2007).unwrap();
+    let cont = &mut view.categorical[0];
+    let levels = cont.levels.len();
+    // Remove every 6th country's continent.
+    for (i, v) in cont.values.iter_mut().enumerate() {
+        if i % 6 == 3 {
+            *v = None;
+        }
+    }
+    // Oceania (a small level) keeps a single observed country.
+    if let Some(o) = cont.levels.iter().position(|l| l == "Oceania") {
+        let mut seen = false;
+        for v in cont.values.iter_mut() {
+            if *v == Some(o) {
+                if seen {
+                    *v = None;
+                }
+                seen = true;
+            }
+        }
+    }
+    let s = Settings {
+        missing: MissingRule::Impute,
+        imputations: 6,
+        seed: 5,
+        weighting: gapwise::analysis::settings::WeightingKind::InverseProbability,
+        model: gapwise::analysis::settings::ModelKind::Firth,
+        ..Settings::default()
+    };
+    let done = imputed::complete(&view, &[], &s).unwrap();
+    for v in &done.views {
+        assert!(v.categorical[0]
+            .values
+            .iter()
+            .all(|x| x.is_some_and(|l| l < levels)));
+    }
+    assert!(done
+        .summary
+        .cells
+        .iter()
+        .all(|c| c.levels.as_ref().is_some_and(|l| l.len() == 6)));
+    assert!(
+        done.summary.fallbacks.is_empty(),
+        "{:?}",
+        done.summary.fallbacks
+    );
+    let fit = imputed::fit_completed(&done, &s).unwrap();
+    assert_eq!(fit.imputations.len(), 6);
+    assert_eq!(fit.coef.len(), fit.report.model.terms.len());
+    // Numbers the combination cannot give are null, with a reason.
+    for (j, c) in fit.report.model.coefficients.iter().enumerate() {
+        assert_eq!(c.coef.is_none(), c.not_estimable.is_some(), "{j}");
+    }
+}
+
+/// `--missing impute` on a frame without missing values: every completed frame is the
+/// observed one, the between-imputation variance is zero, and the combined estimate is
+/// the complete-data one (common practice).
+#[test]
+fn nothing_missing_gives_the_complete_data_fit() {
+    let project = real_project();
+    let view = project.wave(1997).unwrap();
+    let base = Settings {
+        weighting: gapwise::analysis::settings::WeightingKind::InverseProbability,
+        ..Settings::default()
+    };
+    let complete = gapwise::analysis::participation::fit(&view, &base).unwrap();
+    let s = Settings {
+        missing: MissingRule::Impute,
+        imputations: 3,
+        ..base
+    };
+    let fit = imputed::fit(Some(&project), &view, &s).unwrap();
+    assert!(fit.imputation.cells.is_empty());
+    assert_eq!(fit.coef.len(), complete.model.coef.len());
+    for j in 0..fit.coef.len() {
+        // A term the complete-data logit cannot estimate stays null, with its reason.
+        if complete.model.coef[j].is_none() {
+            assert!(fit.coef[j].is_none());
+            assert!(fit.report.model.coefficients[j].not_estimable.is_some());
+            continue;
+        }
+        assert!(close(
+            fit.coef[j].unwrap(),
+            complete.model.coef[j].unwrap(),
+            1e-10
+        ));
+        assert!(close(
+            fit.se[j].unwrap(),
+            complete.model.se[j].unwrap(),
+            1e-10
+        ));
+    }
+}
+
+mod common;
+
+/// The pages accept `missing=impute`: the overview lists what is filled with its two
+/// charts and the caution, the balance page shows means over the imputations, the JSON
+/// twins carry the combination, and pages that use one completed frame say so (common
+/// practice for the pages' shape, as in tests/analysis_pages.rs).
+#[test]
+fn pages_accept_imputation() {
+    let addr = common::start_server(&common::demo_dir());
+    let q = "missing=impute&imputations=5&wave=4";
+    let r = common::http(addr, "GET", &format!("/?{q}"), &[]);
+    assert_eq!(r.status, 200, "{}", r.body);
+    assert!(
+        r.body.contains("id=\"imputation\""),
+        "no imputation section"
+    );
+    assert!(r.body.contains("id=\"filled-cells\""));
+    assert!(r.body.contains("missing at random"));
+    assert!(r.body.matches("<svg").count() >= 3);
+    let j = common::http(addr, "GET", &format!("/api/imputation?{q}"), &[]);
+    assert_eq!(j.status, 200, "{}", j.body);
+    let v: Value = serde_json::from_str(&j.body).unwrap();
+    assert_eq!(v["imputations"], 5);
+    assert!(!v["cells"].as_array().unwrap().is_empty());
+    assert_eq!(v["traces"][0]["means"].as_array().unwrap().len(), 5);
+
+    let b = common::http(addr, "GET", &format!("/api/balance?{q}"), &[]);
+    assert_eq!(b.status, 200, "{}", b.body);
+    let v: Value = serde_json::from_str(&b.body).unwrap();
+    assert!(v["missing_note"]
+        .as_str()
+        .unwrap()
+        .starts_with("Multiple imputation"));
+    assert_eq!(
+        v["effective_n_spread"].as_array().unwrap().len(),
+        v["methods"].as_array().unwrap().len()
+    );
+    for page in ["/balance", "/model", "/coverage", "/sensitivity"] {
+        let r = common::http(addr, "GET", &format!("{page}?{q}"), &[]);
+        assert_eq!(r.status, 200, "{page}: {}", r.body);
+        assert!(r.body.contains("imputation"), "{page} does not say it");
+    }
+    let c = common::http(addr, "GET", &format!("/coverage?{q}"), &[]);
+    assert!(c.body.contains("single completed frame"));
+    assert!(c.body.contains("Has filled (imputed) values"));
+}
+
+/// `gapwise fit --missing impute --json` prints each imputation's coefficients and
+/// standard errors beside the combined ones, and recombining them by Rubin's rules gives
+/// the printed combination (the check anyone can make; common practice).
+#[test]
+fn fit_json_carries_the_imputations() {
+    let out = common::gapwise(&[
+        "fit",
+        common::demo_dir().to_str().unwrap(),
+        "--wave",
+        "4",
+        "--missing",
+        "impute",
+        "--imputations",
+        "6",
+        "--seed",
+        "11",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let v: Value = serde_json::from_str(&out.stdout).unwrap();
+    let imps = v["imputations"].as_array().unwrap();
+    assert_eq!(imps.len(), 6);
+    let k = v["coef"].as_array().unwrap().len();
+    assert_eq!(v["se"].as_array().unwrap().len(), k);
+    assert_eq!(v["df"].as_array().unwrap().len(), k);
+    assert_eq!(
+        v["fraction_missing_information"].as_array().unwrap().len(),
+        k
+    );
+    let dfcom = v["df_complete"].as_f64().unwrap();
+    for j in 0..k {
+        let q: Vec<f64> = imps
+            .iter()
+            .map(|i| i["coef"][j].as_f64().unwrap())
+            .collect();
+        let u: Vec<f64> = imps
+            .iter()
+            .map(|i| i["se"][j].as_f64().unwrap().powi(2))
+            .collect();
+        let p = combine::pool(&q, &u, dfcom).unwrap();
+        assert!(close(p.estimate, v["coef"][j].as_f64().unwrap(), 1e-12));
+        assert!(close(p.se, v["se"][j].as_f64().unwrap(), 1e-12));
+        assert!(close(p.df, v["df"][j].as_f64().unwrap(), 1e-12));
+    }
+    assert_eq!(v["imputation"]["seed"], 11);
+    // Nobody is left out under imputation.
+    assert!(v["dropped"].as_array().unwrap().is_empty());
+    let bad = common::gapwise(&[
+        "fit",
+        common::demo_dir().to_str().unwrap(),
+        "--imputations",
+        "6",
+    ]);
+    assert_ne!(bad.code, 0);
+    assert!(bad.stderr.contains("--missing impute"), "{}", bad.stderr);
+}
