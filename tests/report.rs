@@ -197,7 +197,10 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
     assert!(block.contains(made));
     // Used, not only stated: the numbers are the pages' for the same settings.
     // Readable labels, not raw column names (README, `[indicators.labels]`).
-    assert!(html.contains("outcome Left right; predictors Age, Education"), "{html}");
+    assert!(
+        html.contains("outcome Left right; predictors Age, Education"),
+        "{html}"
+    );
     assert!(html.contains("A linear random-intercept model of left_right"));
     assert!(html.contains("What if XAB joined"));
     let addr = start_server(&demo_dir());
