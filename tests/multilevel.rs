@@ -456,7 +456,11 @@ fn projection_page_twin_and_download_agree() {
     assert!(page.body.contains("/projection/map.svg?"));
     let map = http(addr, "GET", &format!("/projection/map.svg?{query}"), &[]);
     assert_eq!(map.status, 200);
-    assert!(map.body.contains("<svg"), "{}", &map.body[..map.body.len().min(200)]);
+    assert!(
+        map.body.contains("<svg"),
+        "{}",
+        &map.body[..map.body.len().min(200)]
+    );
     // Counting countries by population (the demo declares log_population): a different
     // universe estimate, said on the page.
     let by_pop = http(
@@ -469,9 +473,19 @@ fn projection_page_twin_and_download_agree() {
     let p: Value = serde_json::from_str(&by_pop.body).unwrap();
     assert_eq!(p["shares"], "population");
     assert!((f(&p["universe_estimate"]) - estimate).abs() > 1e-9);
-    let page_pop = http(addr, "GET", &format!("/projection?{query}&shares=population"), &[]);
+    let page_pop = http(
+        addr,
+        "GET",
+        &format!("/projection?{query}&shares=population"),
+        &[],
+    );
     assert!(page_pop.body.contains("Countries count by population"));
-    let bad = http(addr, "GET", &format!("/api/projection?{query}&shares=people"), &[]);
+    let bad = http(
+        addr,
+        "GET",
+        &format!("/api/projection?{query}&shares=people"),
+        &[],
+    );
     assert_eq!(bad.status, 400);
     // Countries with a missing indicator are not estimable: null, never 0.
     for c in countries {
@@ -525,8 +539,14 @@ fn logistic_projection_matches_glmer_and_numerical_integration() {
         (CountryShares::Equal, "universe_equal"),
         (CountryShares::Population, "universe_population"),
     ] {
-        let r = projection_with(&project, &view, &settings, &ps, &ProjectionOptions { shares })
-            .unwrap();
+        let r = projection_with(
+            &project,
+            &view,
+            &settings,
+            &ps,
+            &ProjectionOptions { shares },
+        )
+        .unwrap();
         assert_eq!(r.kind, "logistic");
         assert_eq!(r.method, "Laplace");
         assert!(r.converged);
@@ -594,5 +614,8 @@ fn a_bad_composition_file_is_named_by_line_and_column() {
     );
     std::fs::remove_file(dir.path().join("composition.csv")).unwrap();
     let problems = Project::load(dir.path()).unwrap_err();
-    assert!(problems[0].to_string().contains("composition.csv"), "{problems:?}");
+    assert!(
+        problems[0].to_string().contains("composition.csv"),
+        "{problems:?}"
+    );
 }

@@ -419,9 +419,7 @@ pub fn projection_with(
         }
         y.push(outcome[i].unwrap_or(0.0));
     }
-    let binary = y.iter().all(|&v| v == 0.0 || v == 1.0)
-        && y.contains(&0.0)
-        && y.contains(&1.0);
+    let binary = y.iter().all(|&v| v == 0.0 || v == 1.0) && y.contains(&0.0) && y.contains(&1.0);
     let data = Data {
         x: x.view(),
         y: &y,

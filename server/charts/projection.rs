@@ -5,8 +5,7 @@ use plotters::prelude::*;
 use plotters::style::text_anchor::{HPos, Pos, VPos};
 
 use super::{
-    colour, failed_chart, font, headed, place_labels, render, with_hover_titles, Glyph, Key,
-    SLIDE,
+    colour, failed_chart, font, headed, place_labels, render, with_hover_titles, Glyph, Key, SLIDE,
 };
 use crate::analysis::projection::{ProjectedCountry, ProjectionReport};
 
@@ -17,14 +16,25 @@ const POINT_FONT: u32 = 16;
 /// How many countries get a label (flagged ones first).
 const LABELLED: usize = 12;
 
+/// A country on the map: the country, its two components and its prediction.
+type Shown<'a> = (&'a ProjectedCountry, f64, f64, f64);
+
 const LIGHT: RGBColor = RGBColor(0xE4, 0xF1, 0xF3);
 const DARK: RGBColor = RGBColor(0x0B, 0x3C, 0x44);
 
 /// A colour on the light-to-dark ramp at `t` in [0, 1].
 fn ramp(t: f64) -> RGBColor {
-    let t = if t.is_finite() { t.clamp(0.0, 1.0) } else { 0.5 };
+    let t = if t.is_finite() {
+        t.clamp(0.0, 1.0)
+    } else {
+        0.5
+    };
     let mix = |a: u8, b: u8| (f64::from(a) + t * (f64::from(b) - f64::from(a))).round() as u8;
-    RGBColor(mix(LIGHT.0, DARK.0), mix(LIGHT.1, DARK.1), mix(LIGHT.2, DARK.2))
+    RGBColor(
+        mix(LIGHT.0, DARK.0),
+        mix(LIGHT.1, DARK.1),
+        mix(LIGHT.2, DARK.2),
+    )
 }
 
 /// Eligible countries on the first two components, shaded by their predicted mean outcome
@@ -33,17 +43,23 @@ fn ramp(t: f64) -> RGBColor {
 /// flagged countries and the most extreme predictions are labelled where a label fits;
 /// every point names itself on hover.
 pub fn component_map(r: &ProjectionReport) -> String {
-    let title = format!("Projected {} on the map of the eligible universe", r.outcome);
+    let title = format!(
+        "Projected {} on the map of the eligible universe",
+        r.outcome
+    );
     if let Some(e) = &r.map_error {
         return failed_chart(&title, e);
     }
-    let shown: Vec<(&ProjectedCountry, f64, f64, f64)> = r
+    let shown: Vec<Shown> = r
         .countries
         .iter()
         .filter_map(|c| Some((c, c.pc1?, c.pc2?, c.prediction?)))
         .collect();
     if shown.is_empty() {
-        return failed_chart(&title, "No country has a projection and a place on the map.");
+        return failed_chart(
+            &title,
+            "No country has a projection and a place on the map.",
+        );
     }
     let (lo, hi) = shown
         .iter()
@@ -60,7 +76,7 @@ pub fn component_map(r: &ProjectionReport) -> String {
     let digits = if r.kind == "logistic" { 3 } else { 2 };
     let mut hover: Vec<((i32, i32), String)> = Vec::new();
     let svg = render(&title, SLIDE, |root| {
-        let span = |f: &dyn Fn(&(&ProjectedCountry, f64, f64, f64)) -> f64| {
+        let span = |f: &dyn Fn(&Shown) -> f64| {
             let (l, h) = shown
                 .iter()
                 .map(f)
@@ -140,11 +156,11 @@ pub fn component_map(r: &ProjectionReport) -> String {
         // Labels: flagged countries, then the highest and lowest predictions.
         let mut order: Vec<usize> = (0..shown.len()).collect();
         order.sort_by(|&a, &b| {
-            shown[b]
-                .0
-                .flagged()
-                .cmp(&shown[a].0.flagged())
-                .then((shown[b].3 - (lo + hi) / 2.0).abs().total_cmp(&(shown[a].3 - (lo + hi) / 2.0).abs()))
+            shown[b].0.flagged().cmp(&shown[a].0.flagged()).then(
+                (shown[b].3 - (lo + hi) / 2.0)
+                    .abs()
+                    .total_cmp(&(shown[a].3 - (lo + hi) / 2.0).abs()),
+            )
         });
         let wanted: Vec<(usize, String, i32)> = order
             .into_iter()

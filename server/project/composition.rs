@@ -105,7 +105,10 @@ pub fn parse(
                 name,
                 Some(1),
                 Some(col),
-                format!("no column '{col}' ({role}); the header needs {}, {} and {SHARE_COLUMN}", roles.country, roles.wave),
+                format!(
+                    "no column '{col}' ({role}); the header needs {}, {} and {SHARE_COLUMN}",
+                    roles.country, roles.wave
+                ),
             ));
         }
     }
@@ -161,27 +164,30 @@ pub fn parse(
         let wave = match cell(wave_at).parse::<i64>() {
             Ok(w) => w,
             Err(_) => {
-                problems.push_kind("cell", Problem::at(
-                    name,
-                    Some(line),
-                    Some(&roles.wave),
-                    format!("'{}' is not a whole-number wave", cell(wave_at)),
-                ));
+                problems.push_kind(
+                    "cell",
+                    Problem::at(
+                        name,
+                        Some(line),
+                        Some(&roles.wave),
+                        format!("'{}' is not a whole-number wave", cell(wave_at)),
+                    ),
+                );
                 continue;
             }
         };
         let share = match cell(share_at).parse::<f64>() {
             Ok(s) if s.is_finite() && s >= 0.0 => s,
             _ => {
-                problems.push_kind("cell", Problem::at(
-                    name,
-                    Some(line),
-                    Some(SHARE_COLUMN),
-                    format!(
-                        "'{}' is not a share (a number at least 0)",
-                        cell(share_at)
+                problems.push_kind(
+                    "cell",
+                    Problem::at(
+                        name,
+                        Some(line),
+                        Some(SHARE_COLUMN),
+                        format!("'{}' is not a share (a number at least 0)", cell(share_at)),
                     ),
-                ));
+                );
                 continue;
             }
         };
@@ -189,12 +195,18 @@ pub fn parse(
         for (&k, v) in variable_at.iter().zip(&variables) {
             match cell(k).parse::<f64>() {
                 Ok(x) if x.is_finite() => values.push(x),
-                _ => problems.push_kind("cell", Problem::at(
-                    name,
-                    Some(line),
-                    Some(v),
-                    format!("'{}' is not a number; give the cell's value of {v}", cell(k)),
-                )),
+                _ => problems.push_kind(
+                    "cell",
+                    Problem::at(
+                        name,
+                        Some(line),
+                        Some(v),
+                        format!(
+                            "'{}' is not a number; give the cell's value of {v}",
+                            cell(k)
+                        ),
+                    ),
+                ),
             }
         }
         if values.len() == variables.len() {
@@ -266,10 +278,24 @@ mod tests {
         let bad = "iso,wave,age,colour,share\nXZZ,1,30,0,0.4\nXAA,x,30,1,0.6\nXAB,1,old,1,-1\n";
         let e = parse("composition.csv", bad.as_bytes(), &roles(), &codes).unwrap_err();
         let text: Vec<String> = e.iter().map(|p| p.to_string()).collect();
-        assert!(text.iter().any(|t| t.starts_with("composition.csv:1:colour")), "{text:?}");
-        assert!(text.iter().any(|t| t.starts_with("composition.csv:2:iso")), "{text:?}");
-        assert!(text.iter().any(|t| t.starts_with("composition.csv:3:wave")), "{text:?}");
-        assert!(text.iter().any(|t| t.starts_with("composition.csv:4:share")), "{text:?}");
+        assert!(
+            text.iter()
+                .any(|t| t.starts_with("composition.csv:1:colour")),
+            "{text:?}"
+        );
+        assert!(
+            text.iter().any(|t| t.starts_with("composition.csv:2:iso")),
+            "{text:?}"
+        );
+        assert!(
+            text.iter().any(|t| t.starts_with("composition.csv:3:wave")),
+            "{text:?}"
+        );
+        assert!(
+            text.iter()
+                .any(|t| t.starts_with("composition.csv:4:share")),
+            "{text:?}"
+        );
         let no_share = "iso,wave,age\nXAA,1,30\n";
         let e = parse("composition.csv", no_share.as_bytes(), &roles(), &codes).unwrap_err();
         assert_eq!(e.len(), 1);

@@ -95,7 +95,8 @@ pub fn convex_hull(points: &[(f64, f64)]) -> Vec<(f64, f64)> {
             Box::new(p.iter().rev())
         };
         for &q in iter {
-            while hull.len() >= start + 2 && cross(hull[hull.len() - 2], hull[hull.len() - 1], q) <= 0.0
+            while hull.len() >= start + 2
+                && cross(hull[hull.len() - 2], hull[hull.len() - 1], q) <= 0.0
             {
                 hull.pop();
             }

@@ -9,10 +9,10 @@ use axum::response::{Html, Response};
 use axum::Json;
 
 use super::context::{off_thread, resolve, SettingsForm};
-use super::{csv_response, svg_response};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::state::AppState;
+use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::projection::{
     projection_with, CountryShares, ProjectionOptions, ProjectionReport, ProjectionSettings,
