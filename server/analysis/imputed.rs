@@ -12,8 +12,8 @@ use crate::project::{Project, WaveView};
 use crate::stats::combine::{self, Spread};
 use crate::stats::imputation::{self, CategoricalColumn, Frame, NumericColumn, Options, Panel};
 
-/// Cycles of the chained equations per imputation.
-pub const CYCLES: usize = 10;
+/// Cycles of the chained equations per imputation (as R's mice by default).
+pub const CYCLES: usize = 5;
 /// Donor pool of predictive mean matching.
 pub const DONORS: usize = 5;
 

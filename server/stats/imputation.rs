@@ -510,12 +510,17 @@ fn pmm(
     let mut order: Vec<usize> = (0..obs.len()).collect();
     for (k, &i) in mis.iter().enumerate() {
         let target = pred[k];
-        order.sort_by(|&a, &b| {
-            (fitted[a] - target)
+        // The d closest (ties by position), then in that order: a partial selection.
+        let closer = |a: &usize, b: &usize| {
+            (fitted[*a] - target)
                 .abs()
-                .total_cmp(&(fitted[b] - target).abs())
-                .then(a.cmp(&b))
-        });
+                .total_cmp(&(fitted[*b] - target).abs())
+                .then(a.cmp(b))
+        };
+        if d < order.len() {
+            order.select_nth_unstable_by(d - 1, closer);
+        }
+        order[..d].sort_by(closer);
         let donor = order[rng.below(d)];
         current[i] = y[donor];
     }
