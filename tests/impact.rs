@@ -18,7 +18,11 @@ fn corrections_move_the_pooled_estimate_toward_the_truth() {
         assert_eq!(r.status, 200, "{}", r.body);
         let v: Value = serde_json::from_str(&r.body).unwrap();
         let variants = v["variants"].as_array().unwrap();
-        assert_eq!(variants.len(), 8, "seven corrections and the multilevel projection");
+        assert_eq!(
+            variants.len(),
+            8,
+            "seven corrections and the multilevel projection"
+        );
         let pooled = |key: &str| {
             variants.iter().find(|x| x["key"] == key).unwrap()["pooled"]["estimate"]
                 .as_f64()

@@ -110,12 +110,20 @@ fn agrees_with_the_offline_reference() {
         let pooled = v.pooled.as_ref().expect("pooled");
         let close = |a: f64, b: f64, tol: f64| (a - b).abs() <= tol;
         assert!(
-            close(pooled.estimate, x["pooled_estimate"].as_f64().unwrap(), 1e-6),
+            close(
+                pooled.estimate,
+                x["pooled_estimate"].as_f64().unwrap(),
+                1e-6
+            ),
             "{ours}: {} vs {}",
             pooled.estimate,
             x["pooled_estimate"]
         );
-        assert!(close(v.coef[1], x["slope_estimate"].as_f64().unwrap(), 1e-6));
+        assert!(close(
+            v.coef[1],
+            x["slope_estimate"].as_f64().unwrap(),
+            1e-6
+        ));
         let rel = |a: f64, b: f64| (a / b - 1.0).abs();
         let se = boot_se(v);
         let ref_se = x["pooled_bootstrap_se"].as_f64().unwrap();
@@ -130,15 +138,24 @@ fn agrees_with_the_offline_reference() {
         assert_eq!(ci.len(), 2);
         let lo = pooled.bootstrap.bootstrap_ci95_low.unwrap();
         let hi = pooled.bootstrap.bootstrap_ci95_high.unwrap();
-        assert!(close(lo, ci[0].as_f64().unwrap(), 0.5 * ref_se), "{ours} low {lo}");
-        assert!(close(hi, ci[1].as_f64().unwrap(), 0.5 * ref_se), "{ours} high {hi}");
+        assert!(
+            close(lo, ci[0].as_f64().unwrap(), 0.5 * ref_se),
+            "{ours} low {lo}"
+        );
+        assert!(
+            close(hi, ci[1].as_f64().unwrap(), 0.5 * ref_se),
+            "{ours} high {hi}"
+        );
         // The percentile interval holds the point estimate in an ordinary case.
         assert!(lo < pooled.estimate && pooled.estimate < hi);
         // Failures: none for equal shares; rare for the others (the reference's counts
         // are per 2000).
         let failed_share = v.bootstrap.bootstrap_failed as f64 / 999.0;
         let ref_share = x["failed"].as_f64().unwrap() / 2000.0;
-        assert!((failed_share - ref_share).abs() < 0.03, "{ours}: {failed_share} vs {ref_share}");
+        assert!(
+            (failed_share - ref_share).abs() < 0.03,
+            "{ours}: {failed_share} vs {ref_share}"
+        );
     }
 }
 
