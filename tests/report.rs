@@ -354,7 +354,8 @@ fn the_report_button_carries_the_page_settings() {
         "trim=0.9",
         "outcome=left_right",
         "predictor=age",
-        "bootstrap=0",
+        // `bootstrap` is read as the older name of `wild_replicates`.
+        "wild_replicates=0",
     ] {
         assert!(
             link.contains(kept),
@@ -758,7 +759,9 @@ async fn the_report_reuses_what_the_pages_computed() {
     };
     for page in [
         "/plan?wave=3&replicates=3",
-        "/impact?wave=3&outcome=left_right&bootstrap=0",
+        // The settings the report's impact section asks for, written out (49 pipeline
+        // replicates): the cache keys a page by its query.
+        "/impact?wave=3&outcome=left_right&kind=linear&replicates=49&wild_replicates=0",
         "/projection?wave=3&outcome=left_right",
     ] {
         assert_eq!(get(page).await.0, StatusCode::OK, "{page}");

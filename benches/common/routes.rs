@@ -35,6 +35,7 @@ pub const ROUTES: &[&str] = &[
     "/plan/baselines.csv",
     "/impact",
     "/api/impact",
+    "/api/imputation",
     "/impact/pooled.svg",
     "/impact/coefficients.svg",
     "/impact/table.csv",

@@ -31,7 +31,7 @@ check(cookies.length === 1 && cookies[0].httpOnly && cookies[0].sameSite === 'St
 // The 401 above is a console error of its own; the pages below must add none.
 consoleErrors.length = 0;
 
-const pages = ['/', '/coverage', '/model', '/balance', '/plan?replicates=20', '/impact?bootstrap=49', '/sensitivity'];
+const pages = ['/', '/coverage', '/model', '/balance', '/plan?replicates=20', '/impact?wild_replicates=49&replicates=49', '/sensitivity'];
 for (const p of pages) {
   const response = await page.goto(base + p);
   check(response && response.status() === 200, `${p} answered ${response && response.status()}`);

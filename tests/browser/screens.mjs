@@ -11,7 +11,7 @@ const browser = await chromium.launch({
   executablePath: process.env.CHROMIUM || '/usr/bin/chromium',
   args: ['--headless', '--no-sandbox', '--disable-gpu', '--no-first-run'],
 });
-const pages = (process.env.PAGES || '/,/coverage,/model,/balance,/plan?replicates=10,/impact?bootstrap=0,/projection,/sensitivity,/projects,/balance?view=present,/no-such-page').split(',');
+const pages = (process.env.PAGES || '/,/coverage,/model,/balance,/plan?replicates=10,/impact?wild_replicates=0,/projection,/sensitivity,/projects,/balance?view=present,/no-such-page').split(',');
 for (const [w, h] of [[1024, 768], [1920, 1080]]) {
   const context = await browser.newContext({ viewport: { width: w, height: h } });
   const page = await context.newPage();
