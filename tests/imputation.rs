@@ -133,6 +133,7 @@ fn combined_intervals_cover_the_complete_data_estimate() {
         let fit = imputed::fit(None, &holed, &s).unwrap();
         assert_eq!(fit.imputations.len(), 10);
         assert_eq!(fit.report.model.terms, complete.model.terms);
+        #[allow(clippy::needless_range_loop)] // j indexes four parallel vectors
         for j in 0..k {
             let c = &fit.report.model.coefficients[j];
             let truth = complete.model.coef[j].unwrap();

@@ -60,7 +60,7 @@ impl CountryStats {
                 }
             }
         }
-        if !(total > 0.0) {
+        if total.is_nan() || total <= 0.0 {
             return None;
         }
         for i in 0..k {
@@ -306,7 +306,7 @@ fn estimate(stats: &[Option<&CountryStats>], share: &[f64], kind: Kind, k: usize
             }
         }
     }
-    if !(total > 0.0) {
+    if total.is_nan() || total <= 0.0 {
         return Err(Failure::NoParticipant);
     }
     let terms = match kind {
