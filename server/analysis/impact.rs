@@ -755,15 +755,7 @@ fn projection_variant(
     imp: &ImpactSettings,
     variables: &[String],
 ) -> Variant {
-    let ps = super::projection::ProjectionSettings {
-        outcome: imp.outcome.clone(),
-        predictors: imp
-            .predictors
-            .iter()
-            .filter(|p| variables.contains(p))
-            .cloned()
-            .collect(),
-    };
+    let ps = super::projection::ProjectionSettings::for_impact(imp, variables);
     match super::projection::projection(project, view, settings, &ps) {
         Err(e) => failed(PROJECTION_KEY, PROJECTION_LABEL, e.to_string(), 0),
         Ok(p) => Variant {

@@ -353,6 +353,10 @@ pub fn each<T: Send>(
     analysis: impl Fn(&WaveView) -> Result<T, AnalysisError> + Sync,
 ) -> Result<Vec<T>, ImputedError> {
     use rayon::prelude::*;
+    // Rubin's rules need a between-imputation variance: at least two completed frames.
+    if completed.views.len() < 2 {
+        return Err(combine::CombineError::TooFewImputations(completed.views.len()).into());
+    }
     completed
         .views
         .par_iter()
@@ -455,9 +459,6 @@ pub fn fit_completed(
     completed: &CompletedViews,
     settings: &Settings,
 ) -> Result<ImputedFit, ImputedError> {
-    if completed.views.len() < 2 {
-        return Err(combine::CombineError::TooFewImputations(completed.views.len()).into());
-    }
     let fits = each(completed, |v| participation::fit(v, settings))?;
     let first = &fits[0];
     let terms = first.model.terms.clone();
@@ -708,9 +709,6 @@ pub fn compare_completed(
     completed: &CompletedViews,
     settings: &Settings,
 ) -> Result<ImputedBalance, ImputedError> {
-    if completed.views.len() < 2 {
-        return Err(combine::CombineError::TooFewImputations(completed.views.len()).into());
-    }
     let all = each(completed, |v| balance::compare(v, settings))?;
     let mut comparison = all[0].clone();
     let balance_spread = average_balance(&mut comparison.rows, all.iter().map(|c| &c.rows));

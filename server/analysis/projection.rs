@@ -165,6 +165,22 @@ pub struct ProjectionSettings {
     pub predictors: Vec<String>,
 }
 
+impl ProjectionSettings {
+    /// The projection of an impact request's outcome, with those of its predictors that
+    /// are survey variables (`variables`; country indicators enter the projection anyway).
+    pub fn for_impact(imp: &super::impact::ImpactSettings, variables: &[String]) -> Self {
+        ProjectionSettings {
+            outcome: imp.outcome.clone(),
+            predictors: imp
+                .predictors
+                .iter()
+                .filter(|p| variables.contains(p))
+                .cloned()
+                .collect(),
+        }
+    }
+}
+
 /// How countries count in the universe estimate.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "kebab-case")]

@@ -84,15 +84,7 @@ impl ReportSettings {
     pub fn projection(&self, project: &Project) -> Option<ProjectionSettings> {
         let imp = self.impact.as_ref()?;
         let variables = &project.manifest.microdata.as_ref()?.variables;
-        Some(ProjectionSettings {
-            outcome: imp.outcome.clone(),
-            predictors: imp
-                .predictors
-                .iter()
-                .filter(|p| variables.contains(p))
-                .cloned()
-                .collect(),
-        })
+        Some(ProjectionSettings::for_impact(imp, variables))
     }
 }
 

@@ -270,6 +270,16 @@ impl SettingsForm {
 /// The cache key of a page's result: the page (by its result type), the project's
 /// revision and the normalised settings (wave filled in, then the page's own keys in a
 /// fixed order). `None` when the settings do not parse; the computation then reports why.
+/// The current name of a page key that is still read under an older one, so that both
+/// spellings of the same settings share one cached result.
+fn current_name(key: &str) -> &str {
+    match key {
+        "bootstrap" => "wild_replicates",
+        "family" => "kind",
+        other => other,
+    }
+}
+
 fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
     let project = state.project();
     let mut settings = settings_from_query(query).ok()?;
@@ -279,7 +289,7 @@ fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
     let mut own: Vec<(&str, &str)> = query
         .iter()
         .filter(|(k, _)| own_key(k))
-        .map(|(k, v)| (k.as_str(), v.as_str()))
+        .map(|(k, v)| (current_name(k), v.as_str()))
         .collect();
     // Stable: repeated keys (predictors, joiners) keep their order, which the result shows.
     own.sort_by_key(|(k, _)| *k);
@@ -349,4 +359,15 @@ where
         .work
         .run(lane, &state.cache, key, move || compute(&job_state, &query))
         .await?)
+}
+
+#[cfg(test)]
+mod key_name_tests {
+    /// Older key names map to the current ones (our own rule: one cached result per setting).
+    #[test]
+    fn older_key_names_share_the_current_key() {
+        assert_eq!(super::current_name("bootstrap"), "wild_replicates");
+        assert_eq!(super::current_name("family"), "kind");
+        assert_eq!(super::current_name("replicates"), "replicates");
+    }
 }
