@@ -208,3 +208,45 @@ fn components_agree_with_numpy_up_to_sign() {
         }
     }
 }
+
+/// The model page names its terms by their labels (the manifest's, as on the real-indicator
+/// frame, or derived from the column names), never by the raw names, while the JSON twin and
+/// the CSV keep both (common practice: raw names for scripts, labels for people).
+#[test]
+fn model_terms_are_named_by_their_labels() {
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/real_frame");
+    let addr = start_server(&dir);
+    let page = http(addr, "GET", "/model", &[]);
+    assert_eq!(page.status, 200, "{}", page.body);
+    let rows: Vec<&str> = page
+        .body
+        .split("<th scope=\"row\">")
+        .skip(1)
+        .map(|s| s.split('<').next().unwrap_or(""))
+        .collect();
+    assert!(rows.len() >= 4, "coefficient rows: {rows:?}");
+    assert!(
+        rows.contains(&"GDP per head (log 2005 US$ PPP)"),
+        "{rows:?}"
+    );
+    assert!(rows.contains(&"Continent: Oceania"), "{rows:?}");
+    for raw in ["log_gdp_pc", "life_expectancy", "log_population"] {
+        assert!(!rows.contains(&raw), "raw name {raw} in {rows:?}");
+    }
+    let json = get_json(addr, "/api/model");
+    let coefficients = json["model"]["coefficients"].as_array().unwrap();
+    assert_eq!(
+        coefficients.len(),
+        json["model"]["terms"].as_array().unwrap().len()
+    );
+    let gdp = coefficients
+        .iter()
+        .find(|c| c["term"] == "log_gdp_pc")
+        .expect("log_gdp_pc term");
+    assert_eq!(gdp["label"], "GDP per head (log 2005 US$ PPP)");
+    let csv = http(addr, "GET", "/model/coefficients.csv", &[]);
+    assert!(csv.body.starts_with("term,label,"), "{}", &csv.body[..60]);
+    assert!(csv
+        .body
+        .contains("log_gdp_pc,GDP per head (log 2005 US$ PPP),"));
+}

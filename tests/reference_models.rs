@@ -961,7 +961,8 @@ fn gmm_with_an_empty_level_says_it_fell_back() {
     assert_eq!(w["converged"], false, "{w}");
     assert_eq!(w["fell_back_to"], "inverse-probability", "{w}");
     assert!(
-        w["warnings"].to_string().contains("g=z"),
+        // The level is named by its label ("g: z": column g, level z).
+        w["warnings"].to_string().contains("g: z"),
         "{}",
         w["warnings"]
     );

@@ -32,6 +32,9 @@ pub struct Margin {
 pub struct Design {
     /// Term names, intercept first.
     pub terms: Vec<String>,
+    /// Readable labels of the terms, in the same order (the manifest's labels, or labels
+    /// derived from the column names), for everything a person reads.
+    pub term_labels: Vec<String>,
     /// Design matrix on the original scale, intercept column first.
     pub x: Array2<f64>,
     pub participated: Vec<bool>,
@@ -131,6 +134,7 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
     let n = units.len();
 
     let mut terms = vec![INTERCEPT.to_string()];
+    let mut term_labels = vec!["Intercept".to_string()];
     let mut columns: Vec<Vec<f64>> = vec![vec![1.0; n]];
     let mut balance = Vec::new();
     let mut filled = Vec::new();
@@ -157,6 +161,7 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
             present
         };
         terms.push(ind.column.clone());
+        term_labels.push(ind.label.clone());
         columns.push(values.clone());
         balance.push(BalanceColumn {
             name: ind.column.clone(),
@@ -182,13 +187,15 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
         for (k, &l) in present.iter().enumerate() {
             let indicator: Vec<f64> = codes.iter().map(|&c| f64::from(u8::from(c == l))).collect();
             let name = format!("{}={}", cat.column, levels[l]);
+            let label = format!("{}: {}", cat.label, levels[l]);
             if k > 0 {
                 terms.push(name.clone());
+                term_labels.push(label.clone());
                 columns.push(indicator.clone());
             }
             balance.push(BalanceColumn {
                 name,
-                label: format!("{}: {}", cat.label, levels[l]),
+                label,
                 values: indicator,
                 is_level: true,
             });
@@ -207,12 +214,13 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
         if settings.missing == MissingRule::FillAndBalance {
             balance.push(BalanceColumn {
                 name: name.clone(),
-                label,
+                label: label.clone(),
                 values: values.clone(),
                 is_level: true,
             });
         }
         terms.push(name);
+        term_labels.push(label);
         columns.push(values);
     }
 
@@ -231,7 +239,7 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
             if sd == 0.0 || !sd.is_finite() {
                 return Err(DesignError(format!(
                     "'{}' takes a single value among the {n} countr{} analysed in this wave, so it cannot explain participation; leave it out",
-                    terms[j],
+                    term_labels[j],
                     if n == 1 { "y" } else { "ies" }
                 )));
             }
@@ -241,6 +249,7 @@ pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError
     }
     Ok(Design {
         terms,
+        term_labels,
         x,
         participated: units.iter().map(|&i| view.participated[i]).collect(),
         ids: units.iter().map(|&i| view.codes[i].clone()).collect(),
@@ -283,6 +292,7 @@ impl Design {
         let pick_f = |v: &Vec<f64>| rows.iter().map(|&i| v[i]).collect::<Vec<_>>();
         Design {
             terms: self.terms.clone(),
+            term_labels: self.term_labels.clone(),
             x: self.x.select(ndarray::Axis(0), rows),
             participated: rows.iter().map(|&i| self.participated[i]).collect(),
             ids: rows.iter().map(|&i| self.ids[i].clone()).collect(),

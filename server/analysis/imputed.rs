@@ -495,6 +495,11 @@ pub fn fit_completed(
             let or = |v: f64| (logit && j > 0).then(|| v.exp());
             Coefficient {
                 term: term.clone(),
+                label: first
+                    .model
+                    .coefficients
+                    .get(j)
+                    .map_or_else(|| term.clone(), |c| c.label.clone()),
                 coef: p.map(|p| p.estimate),
                 se: p.map(|p| p.se),
                 z: p.map(|p| p.estimate / p.se),

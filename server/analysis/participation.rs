@@ -14,6 +14,8 @@ use crate::stats::{balance, binary, normal, weights};
 #[derive(Debug, Clone, Serialize)]
 pub struct Coefficient {
     pub term: String,
+    /// The term's readable label (the manifest's, or one derived from the column name).
+    pub label: String,
     /// On the indicator's original scale.
     pub coef: Option<f64>,
     pub se: Option<f64>,
@@ -382,7 +384,7 @@ fn not_estimable_reasons(
 ) -> Vec<Option<String>> {
     let k = fit.coef.len();
     let mut reasons: Vec<Option<String>> = vec![None; k];
-    let name = |j: usize| design.terms[j].as_str();
+    let name = |j: usize| design.term_labels[j].as_str();
     for alias in &fit.aliased {
         let mut d = Array1::<f64>::zeros(k);
         d[alias.term] = 1.0;
@@ -470,6 +472,7 @@ fn coefficients(design: &Design, kind: ModelKind, fit: &binary::BinaryFit) -> Ve
             let or = |x: Option<f64>| x.filter(|_| logit && j > 0).map(f64::exp);
             Coefficient {
                 term: design.terms[j].clone(),
+                label: design.term_labels[j].clone(),
                 coef,
                 se,
                 z: coef.zip(se).map(|(c, s)| c / s),
@@ -518,7 +521,7 @@ fn model_report(
             warnings.push(format!(
                 "{} separation: every participant's {} is {} every non-participant's, so the maximum-likelihood estimate does not exist; use the Firth model",
                 if s.complete { "complete" } else { "quasi-complete" },
-                design.terms[s.term],
+                design.term_labels[s.term],
                 if s.participants_above { "at or above" } else { "at or below" }
             ));
         } else if fit.extreme_units > 0 && !fit.weak_directions.is_empty() {
@@ -527,7 +530,7 @@ fn model_report(
                 .weak_directions
                 .iter()
                 .flat_map(|d| terms_moved(design, d))
-                .map(|j| design.terms[j].as_str())
+                .map(|j| design.term_labels[j].as_str())
                 .collect::<std::collections::BTreeSet<_>>()
                 .into_iter()
                 .collect();
@@ -679,7 +682,7 @@ fn compute_weights(
             let unreachable: Vec<&str> = cbps
                 .unreachable
                 .iter()
-                .map(|&j| design.terms[j].as_str())
+                .map(|&j| design.term_labels[j].as_str())
                 .collect();
             if gmm && cbps.stayed_at_start {
                 fell_back_to = Some("inverse-probability");

@@ -122,6 +122,7 @@ pub async fn artifact(
             csv_text(
                 &[
                     "term",
+                    "label",
                     "coefficient",
                     "std_error",
                     "z",
@@ -144,6 +145,7 @@ pub async fn artifact(
                     };
                     vec![
                         c.term.clone(),
+                        c.label.clone(),
                         estimable_cell(c.coef, c),
                         estimable_cell(c.se, c),
                         estimable_cell(c.z, c),
