@@ -1,0 +1,107 @@
+//! `gapwise check`: whether a project folder loads, and what it holds.
+
+use std::fmt::Write as _;
+use std::path::Path;
+
+use super::{emit, emit_json};
+use crate::analysis::overview::{overview, Overview};
+use crate::project::Project;
+
+/// `gapwise check DIR`: a summary and exit 0, or one line per problem and exit 1.
+pub fn check(dir: &Path, json: bool) -> i32 {
+    match Project::load(dir) {
+        Ok(project) => {
+            let o = overview(&project);
+            if json {
+                emit_json(&o);
+            } else {
+                emit(&summary_text(&o));
+            }
+            0
+        }
+        Err(problems) if json => {
+            // The same problems, as data: `valid` false, each problem with its file, row
+            // (null: not tied to a row), column and message.
+            emit_json(&serde_json::json!({
+                "valid": false,
+                "directory": dir.display().to_string(),
+                "problems": problems,
+            }));
+            1
+        }
+        Err(problems) => {
+            for p in &problems {
+                eprintln!("{p}");
+            }
+            eprintln!(
+                "{} problem{} in {}; fix them and run `gapwise check` again.",
+                problems.len(),
+                if problems.len() == 1 { "" } else { "s" },
+                dir.display()
+            );
+            1
+        }
+    }
+}
+
+/// The readable summary printed by `gapwise check`.
+pub fn summary_text(o: &Overview) -> String {
+    let mut out = String::new();
+    let _ = writeln!(
+        out,
+        "{}: {} countries, {} waves",
+        o.title,
+        o.n_countries,
+        o.waves.len()
+    );
+    let _ = writeln!(
+        out,
+        "\n{:>6} {:>9} {:>9} {:>10} {:>9}",
+        "wave", "rows", "eligible", "took part", "coverage"
+    );
+    for w in &o.waves {
+        let _ = writeln!(
+            out,
+            "{:>6} {:>9} {:>9} {:>10} {:>8.0}%",
+            w.wave,
+            w.rows,
+            w.eligible,
+            w.participating,
+            100.0 * w.coverage
+        );
+    }
+    let _ = writeln!(
+        out,
+        "\nmissing values among eligible countries (per wave) and in all rows:"
+    );
+    for m in &o.missing {
+        let per_wave: Vec<String> = m.eligible_missing.iter().map(usize::to_string).collect();
+        let _ = writeln!(
+            out,
+            "  {:<28} {:<16} {}",
+            m.indicator,
+            per_wave.join(" "),
+            m.total_missing
+        );
+    }
+    if let Some(md) = &o.microdata {
+        let _ = writeln!(
+            out,
+            "\nmicrodata: {} respondents; variables: {}",
+            md.respondents,
+            md.variables.join(", ")
+        );
+    }
+    if !o.warnings.is_empty() {
+        let _ = writeln!(
+            out,
+            "\n{} warning{}:",
+            o.warnings.len(),
+            if o.warnings.len() == 1 { "" } else { "s" }
+        );
+        for w in &o.warnings {
+            let _ = writeln!(out, "  {w}");
+        }
+    }
+    out
+}
