@@ -371,26 +371,35 @@ pub async fn upload(
         }
         accepted.push((format!("{stem}.{ext}"), bytes));
     }
-    let (upload, staging) =
-        store::new_staging(&dir, &name).map_err(|e| AppError::Internal(e.to_string()))?;
     let new_microdata = accepted.iter().any(|(f, _)| f.starts_with("microdata."));
-    for (file, bytes) in accepted {
-        std::fs::write(staging.join(file), bytes).map_err(|e| AppError::Internal(e.to_string()))?;
-    }
     // A new version without microdata keeps the current version's, unless asked not to.
     let remove = fields
         .get("remove_microdata")
         .is_some_and(|v| !v.is_empty());
-    let mut kept = false;
-    if !new_microdata && !remove {
-        if let Some(old) = store::current_microdata(&dir, &name) {
-            if let Some(file) = old.file_name() {
-                std::fs::copy(&old, staging.join(file))
-                    .map_err(|e| AppError::Internal(e.to_string()))?;
-                kept = true;
+    let accepted: Vec<(String, Vec<u8>)> =
+        accepted.into_iter().map(|(f, b)| (f, b.to_vec())).collect();
+    // Writing up to the body limit (and copying the old microdata) is blocking file work:
+    // it runs on the blocking pool, not on the server's async threads.
+    let (dir2, name2) = (dir.clone(), name.clone());
+    let (upload, kept) = tokio::task::spawn_blocking(move || -> std::io::Result<(String, bool)> {
+        let (upload, staging) = store::new_staging(&dir2, &name2)?;
+        for (file, bytes) in accepted {
+            std::fs::write(staging.join(file), bytes)?;
+        }
+        let mut kept = false;
+        if !new_microdata && !remove {
+            if let Some(old) = store::current_microdata(&dir2, &name2) {
+                if let Some(file) = old.file_name() {
+                    std::fs::copy(&old, staging.join(file))?;
+                    kept = true;
+                }
             }
         }
-    }
+        Ok((upload, kept))
+    })
+    .await
+    .map_err(|e| AppError::Internal(e.to_string()))?
+    .map_err(|e| AppError::Internal(e.to_string()))?;
     // The title travels in the address, not in a file: a saved project holds only its
     // manifest and data.
     let mut target = form_urlencoded::Serializer::new(String::from("/projects/map?"));
@@ -809,7 +818,15 @@ pub async fn map_form(
     Query(q): Query<MapQuery>,
 ) -> AppResult<Html<String>> {
     let dir = folder(&state)?;
-    let staging = store::staging(&dir, &q.name, &q.upload).map_err(AppError::BadRequest)?;
+    // Profiling the uploaded files reads them: blocking work, on the blocking pool.
+    tokio::task::spawn_blocking(move || map_form_page(&dir, &q))
+        .await
+        .map_err(|e| AppError::Internal(e.to_string()))?
+        .map(Html)
+}
+
+fn map_form_page(dir: &std::path::Path, q: &MapQuery) -> AppResult<String> {
+    let staging = store::staging(dir, &q.name, &q.upload).map_err(AppError::BadRequest)?;
     if !staging.is_dir() {
         return Err(AppError::NotFound(format!(
             "no upload for '{}'; start from /projects",
@@ -817,7 +834,7 @@ pub async fn map_form(
         )));
     }
     // A new version of an existing project starts from its current mapping.
-    let previous = store::current_manifest(&dir, &q.name);
+    let previous = store::current_manifest(dir, &q.name);
     let (entries, from_previous) = match &previous {
         Some(m) => {
             let mut e = manifest_to_form(m);
@@ -844,7 +861,6 @@ pub async fn map_form(
         kept,
         Vec::new(),
     )
-    .map(Html)
 }
 
 fn frame_columns(staging: &std::path::Path) -> Vec<ColumnInfo> {
@@ -1077,14 +1093,17 @@ pub async fn map_save(
         Err(message) => vec![message],
         Ok(manifest) => {
             let text = toml::to_string(&manifest).map_err(|e| AppError::Internal(e.to_string()))?;
-            std::fs::write(staging.join(MANIFEST_FILE), text)
-                .map_err(|e| AppError::Internal(e.to_string()))?;
             let dir2 = dir.clone();
             let (name2, upload2, keep) = (name.clone(), upload.clone(), state.keep_versions);
-            let saved =
-                tokio::task::spawn_blocking(move || store::save(&dir2, &name2, &upload2, keep))
-                    .await
-                    .map_err(|e| AppError::Internal(e.to_string()))?;
+            let manifest_path = staging.join(MANIFEST_FILE);
+            // File work on the blocking pool: the manifest, then the save's fsyncs and renames.
+            let saved = tokio::task::spawn_blocking(move || {
+                std::fs::write(manifest_path, text)
+                    .map(|()| store::save(&dir2, &name2, &upload2, keep))
+            })
+            .await
+            .map_err(|e| AppError::Internal(e.to_string()))?
+            .map_err(|e| AppError::Internal(e.to_string()))?;
             match saved {
                 Ok(project) => {
                     state.install(dir.join(&name), Arc::new(project));
@@ -1099,6 +1118,11 @@ pub async fn map_save(
         .into_iter()
         .filter(|(k, _)| !matches!(k.as_str(), "name" | "upload" | "kept"))
         .collect();
-    let html = render_map(&name, &upload, &staging, entries, false, kept, problems)?;
+    // Re-profiling the files reads them: blocking work, on the blocking pool.
+    let html = tokio::task::spawn_blocking(move || {
+        render_map(&name, &upload, &staging, entries, false, kept, problems)
+    })
+    .await
+    .map_err(|e| AppError::Internal(e.to_string()))??;
     Ok((StatusCode::UNPROCESSABLE_ENTITY, Html(html)).into_response())
 }
