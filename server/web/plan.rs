@@ -15,6 +15,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
+use crate::analysis::imputed::ImputedPlan;
 use crate::analysis::limits;
 use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::analysis::planner::{plan_for, Feasibility, ObjectiveKind, Plan, PlanSettings};
@@ -46,6 +47,8 @@ struct PlanPage<'a> {
     plan_has_support: bool,
     random_plan_draws: usize,
     incomplete: Option<IncompleteCountries>,
+    /// Under multiple imputation: the plan's expected objective per imputation, combined.
+    imputed: Option<ImputedPlan>,
     cautions: &'a [Caution],
 }
 
@@ -168,13 +171,16 @@ pub fn plan_query(ps: &PlanSettings) -> String {
     q.finish()
 }
 
-/// What the plan page shows: the form, the plan, the coverage map's positions, and the
-/// warning when leaving out incomplete countries changed who is analysed.
+/// What the plan page shows: the form, the plan, the coverage map's positions, the
+/// warning when leaving out incomplete countries changed who is analysed, and under
+/// multiple imputation the whole imputed result (the plan's expected objective on every
+/// completed frame, combined).
 pub(crate) type PlanResult = (
     SettingsForm,
     Plan,
     CoverageReport,
     Option<IncompleteCountries>,
+    Option<ImputedPlan>,
 );
 
 pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResult> {
@@ -186,7 +192,7 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
     if crate::analysis::imputed::wanted(&settings) {
         let r = crate::analysis::imputed::plan(Some(&project), &view, &settings, &ps)
             .map_err(AppError::BadRequest)?;
-        let mut p = r.plan;
+        let mut p = r.plan.clone();
         let agreement = r
             .pick_agreement
             .iter()
@@ -204,10 +210,16 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
                 ))
             ),
         );
-        return Ok((form, p, coverage(&view), None));
+        return Ok((form, p, coverage(&view), None, Some(r)));
     }
     let p = plan_for(&project, &view, &settings, &ps)?;
-    Ok((form, p, coverage(&view), incomplete_for(&view, &settings)))
+    Ok((
+        form,
+        p,
+        coverage(&view),
+        incomplete_for(&view, &settings),
+        None,
+    ))
 }
 
 fn map(p: &Plan, c: &CoverageReport) -> String {
@@ -219,7 +231,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, p, c, incomplete) = off_thread_heavy(&state, &query, compute).await?;
+    let (form, p, c, incomplete, imputed) = off_thread_heavy(&state, &query, compute).await?;
     let form = form.presenting(&query);
     let project = state.project();
     let mut feasibility_choices = vec![
@@ -268,6 +280,7 @@ pub async fn page(
         map_chart: map(&p, &c),
         plan_query: plan_query(&p.plan),
         incomplete,
+        imputed,
         form,
         f: Fmt,
         p: &p,
@@ -277,11 +290,24 @@ pub async fn page(
     Ok(Html(html))
 }
 
+/// The plan twin: the plan, or under multiple imputation the imputed result (the plan
+/// with the expected objective per imputation and combined), as `gapwise plan --json`.
+#[derive(serde::Serialize)]
+#[serde(untagged)]
+pub enum PlanTwin {
+    Plan(Box<Plan>),
+    Imputed(Box<ImputedPlan>),
+}
+
 pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
-) -> AppResult<Json<Plan>> {
-    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
+) -> AppResult<Json<PlanTwin>> {
+    let (_, p, _, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
+    Ok(Json(match imputed {
+        Some(i) => PlanTwin::Imputed(Box::new(i)),
+        None => PlanTwin::Plan(Box::new(p)),
+    }))
 }
 
 pub async fn artifact(
@@ -289,7 +315,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, p, c, _) = off_thread_heavy(&state, &query, compute).await?;
+    let (_, p, c, _, _) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "paths.svg" => Ok(svg_response(
             "recruitment-paths.svg",
