@@ -647,6 +647,8 @@ fn plan_and_impact_pages_carry_the_imputations() {
     let page = common::http(addr, "GET", &format!("/plan?{q}&replicates=0"), &[]);
     assert_eq!(page.status, 200, "{}", page.body);
     assert!(page.body.contains("id=\"plan-imputations\""));
+    // The map is the completed frame's, with the filled countries crossed.
+    assert!(page.body.contains("Has filled (imputed) values"));
     assert!(page.body.contains("Rubin's rules"));
     // Without imputation the twin is the plain plan.
     let plain = common::http(addr, "GET", "/api/plan?wave=4&replicates=0", &[]);

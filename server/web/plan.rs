@@ -210,7 +210,10 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
                 ))
             ),
         );
-        return Ok((form, p, coverage(&view), None, Some(r)));
+        // The map of the first completed frame (the plan's), as on the coverage page.
+        let c = crate::analysis::imputed::coverage(Some(&project), &view, &settings)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        return Ok((form, p, c.coverage, None, Some(r)));
     }
     let p = plan_for(&project, &view, &settings, &ps)?;
     Ok((
@@ -222,9 +225,11 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
     ))
 }
 
-fn map(p: &Plan, c: &CoverageReport) -> String {
+/// The plan on the map; under multiple imputation the countries with filled values crossed.
+fn map(p: &Plan, c: &CoverageReport, imputed: Option<&ImputedPlan>) -> String {
     let planned: Vec<String> = p.steps.iter().map(|s| s.id.clone()).collect();
-    charts::map::component_map_marked(c, &planned, &p.plan.joiners)
+    let filled = imputed.map_or(&[][..], |i| &i.imputation.countries_filled[..]);
+    charts::map::component_map_marked_imputed(c, &planned, &p.plan.joiners, filled)
 }
 
 pub async fn page(
@@ -277,7 +282,7 @@ pub async fn page(
             && p.plan.cost_budget.is_some(),
         random_plan_draws: crate::analysis::planner::baselines::OUTCOMES_PER_RANDOM_PLAN,
         path_chart: charts::plan::paths(&p),
-        map_chart: map(&p, &c),
+        map_chart: map(&p, &c, imputed.as_ref()),
         plan_query: plan_query(&p.plan),
         incomplete,
         imputed,
@@ -315,13 +320,16 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, p, c, _, _) = off_thread_heavy(&state, &query, compute).await?;
+    let (_, p, c, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "paths.svg" => Ok(svg_response(
             "recruitment-paths.svg",
             charts::plan::paths(&p),
         )),
-        "map.svg" => Ok(svg_response("recruitment-map.svg", map(&p, &c))),
+        "map.svg" => Ok(svg_response(
+            "recruitment-map.svg",
+            map(&p, &c, imputed.as_ref()),
+        )),
         "plan.csv" => Ok(csv_response(
             "recruitment-plan.csv",
             csv_text(
