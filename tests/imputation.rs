@@ -459,3 +459,347 @@ fn fit_json_carries_the_imputations() {
     assert_ne!(bad.code, 0);
     assert!(bad.stderr.contains("--missing impute"), "{}", bad.stderr);
 }
+
+/// Recombines one estimate's per-imputation (estimate, se) pairs by Rubin's rules and
+/// checks the printed combination (estimate, se, df, fraction of missing information).
+fn check_recombined(what: &str, each: &[(f64, f64)], dfcom: f64, combined: &Value) {
+    let q: Vec<f64> = each.iter().map(|e| e.0).collect();
+    let u: Vec<f64> = each.iter().map(|e| e.1 * e.1).collect();
+    let p = combine::pool(&q, &u, dfcom).unwrap();
+    for (ours, key) in [
+        (p.estimate, "estimate"),
+        (p.se, "se"),
+        (p.df, "df"),
+        (p.fmi, "fmi"),
+    ] {
+        let printed = combined[key]
+            .as_f64()
+            .unwrap_or_else(|| panic!("{what}: no {key}"));
+        assert!(
+            close(ours, printed, 1e-10),
+            "{what}, {key}: recombined {ours}, printed {printed}"
+        );
+    }
+}
+
+/// `gapwise impact --missing impute --json` prints, per correction, the pooled mean and
+/// the coefficients of each imputation beside the combined ones with their df and
+/// fraction of missing information; recombining them by Rubin's rules gives the printed
+/// combination (the check anyone can make; common practice), and the report's own
+/// numbers are the combined ones.
+#[test]
+fn impact_json_carries_the_imputations() {
+    let m = 4;
+    let out = common::gapwise(&[
+        "impact",
+        common::demo_dir().to_str().unwrap(),
+        "--wave",
+        "4",
+        "--outcome",
+        "trust_parliament",
+        "--predictors",
+        "age,education",
+        "--missing",
+        "impute",
+        "--imputations",
+        &m.to_string(),
+        "--seed",
+        "21",
+        "--replicates",
+        "0",
+        "--wild-replicates",
+        "0",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let v: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert_eq!(v["imputation"]["imputations"], m);
+    let variants = v["variants"].as_array().unwrap();
+    let combination = v["combination"].as_array().unwrap();
+    assert_eq!(combination.len(), variants.len());
+    assert!(variants.len() >= 3, "{}", variants.len());
+    let n_terms = v["terms"].as_array().unwrap().len();
+    let mut checked = 0;
+    for (variant, c) in variants.iter().zip(combination) {
+        let key = c["key"].as_str().unwrap();
+        assert_eq!(variant["key"], c["key"]);
+        let imps = c["imputations"].as_array().unwrap();
+        assert_eq!(imps.len(), m, "{key}");
+        if c["pooled"].is_null() {
+            // Not combined: the correction says why.
+            assert!(variant["error"].is_string(), "{key}");
+            assert!(variant["pooled"].is_null(), "{key}");
+        } else {
+            let each: Vec<(f64, f64)> = imps
+                .iter()
+                .map(|i| {
+                    (
+                        i["pooled"]["estimate"].as_f64().unwrap(),
+                        i["pooled"]["se"].as_f64().unwrap(),
+                    )
+                })
+                .collect();
+            let dfcom = c["df_complete_pooled"].as_f64().unwrap();
+            check_recombined(&format!("{key} pooled mean"), &each, dfcom, &c["pooled"]);
+            // The report's pooled mean is the combined one.
+            assert!(close(
+                variant["pooled"]["estimate"].as_f64().unwrap(),
+                c["pooled"]["estimate"].as_f64().unwrap(),
+                1e-12
+            ));
+            checked += 1;
+        }
+        let coefs = c["coef"].as_array().unwrap();
+        for (j, combined) in coefs.iter().enumerate() {
+            assert!(j < n_terms.max(coefs.len()));
+            let each: Option<Vec<(f64, f64)>> = imps
+                .iter()
+                .map(|i| Some((i["coef"][j].as_f64()?, i["se"][j].as_f64()?)))
+                .collect();
+            match each {
+                Some(each) => {
+                    let dfcom = c["df_complete_coef"].as_f64().unwrap();
+                    check_recombined(&format!("{key} term {j}"), &each, dfcom, combined);
+                    assert!(close(
+                        variant["coef"][j].as_f64().unwrap(),
+                        combined["estimate"].as_f64().unwrap(),
+                        1e-12
+                    ));
+                    checked += 1;
+                }
+                // Not estimated on some frame: nothing is combined.
+                None => assert!(combined.is_null(), "{key} term {j}"),
+            }
+        }
+    }
+    assert!(
+        checked > 2 * variants.len(),
+        "only {checked} estimates checked"
+    );
+}
+
+/// `gapwise plan --missing impute --json` prints the plan's expected objective on each
+/// completed frame (the first is the plan's own value) and their combination by Rubin's
+/// rules with infinite complete-data df (recombined here; common practice).
+#[test]
+fn plan_json_carries_the_imputations() {
+    let m = 3;
+    let out = common::gapwise(&[
+        "plan",
+        common::demo_dir().to_str().unwrap(),
+        "--wave",
+        "4",
+        "--missing",
+        "impute",
+        "--imputations",
+        &m.to_string(),
+        "--seed",
+        "8",
+        "--replicates",
+        "0",
+        "--json",
+    ]);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    let v: Value = serde_json::from_str(&out.stdout).unwrap();
+    let by = v["objective_by_imputation"].as_array().unwrap();
+    assert_eq!(by.len(), m);
+    assert!(close(
+        by[0]["estimate"].as_f64().unwrap(),
+        v["optimality"]["plan_value"].as_f64().unwrap(),
+        1e-12
+    ));
+    let each: Vec<(f64, f64)> = by
+        .iter()
+        .map(|b| (b["estimate"].as_f64().unwrap(), b["se"].as_f64().unwrap()))
+        .collect();
+    // The demo's five invitations are enumerated exactly: no Monte Carlo variance.
+    assert_eq!(v["expectation"], "exact");
+    assert!(each.iter().all(|e| e.1 == 0.0));
+    check_recombined(
+        "plan objective",
+        &each,
+        f64::INFINITY,
+        &v["objective_combined"],
+    );
+    assert_eq!(
+        v["pick_agreement"].as_array().unwrap().len(),
+        v["steps"].as_array().unwrap().len()
+    );
+    assert!(v["objective_note"]
+        .as_str()
+        .unwrap()
+        .contains("not included"));
+}
+
+/// The plan and impact pages and their twins under `missing=impute` show and carry the
+/// same per-imputation figures as the command line (common practice for the pages'
+/// shape, as in tests/analysis_pages.rs).
+#[test]
+fn plan_and_impact_pages_carry_the_imputations() {
+    let addr = common::start_server(&common::demo_dir());
+    let q = "missing=impute&imputations=3&wave=4&seed=8";
+    let j = common::http(addr, "GET", &format!("/api/plan?{q}&replicates=0"), &[]);
+    assert_eq!(j.status, 200, "{}", j.body);
+    let v: Value = serde_json::from_str(&j.body).unwrap();
+    assert_eq!(v["objective_by_imputation"].as_array().unwrap().len(), 3);
+    assert!(v["objective_combined"]["estimate"].is_number());
+    assert!(v["steps"].as_array().is_some_and(|s| !s.is_empty()));
+    let page = common::http(addr, "GET", &format!("/plan?{q}&replicates=0"), &[]);
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert!(page.body.contains("id=\"plan-imputations\""));
+    // The map is the completed frame's, with the filled countries crossed.
+    assert!(page.body.contains("Has filled (imputed) values"));
+    assert!(page.body.contains("Rubin's rules"));
+    // Without imputation the twin is the plain plan.
+    let plain = common::http(addr, "GET", "/api/plan?wave=4&replicates=0", &[]);
+    let v: Value = serde_json::from_str(&plain.body).unwrap();
+    assert!(v.get("objective_by_imputation").is_none());
+
+    let iq = format!("{q}&replicates=0&wild_replicates=0");
+    let j = common::http(addr, "GET", &format!("/api/impact?{iq}"), &[]);
+    assert_eq!(j.status, 200, "{}", j.body);
+    let v: Value = serde_json::from_str(&j.body).unwrap();
+    let combination = v["combination"].as_array().unwrap();
+    assert_eq!(combination.len(), v["variants"].as_array().unwrap().len());
+    assert!(combination
+        .iter()
+        .all(|c| c["imputations"].as_array().unwrap().len() == 3));
+    let page = common::http(addr, "GET", &format!("/impact?{iq}"), &[]);
+    assert_eq!(page.status, 200, "{}", page.body);
+    assert!(page.body.contains("id=\"imputations\""));
+    assert!(page.body.contains("id=\"imputation-pooled\""));
+    // One column per imputation in the pooled-mean table.
+    let table = &page.body[page.body.find("id=\"imputation-pooled\"").unwrap()..];
+    let head = &table[..table.find("</thead>").unwrap()];
+    assert_eq!(head.matches("Imputation ").count(), 3);
+    let plain = common::http(
+        addr,
+        "GET",
+        "/api/impact?wave=4&replicates=0&wild_replicates=0",
+        &[],
+    );
+    let v: Value = serde_json::from_str(&plain.body).unwrap();
+    assert!(v.get("combination").is_none());
+}
+
+/// The meeting report's coverage section under `missing=impute` is the coverage page's:
+/// the first completed frame, the filled countries crossed on the map and named; without
+/// imputation it names none (common practice).
+#[test]
+fn report_coverage_uses_the_imputed_frame() {
+    let project = Project::load(&common::demo_dir()).unwrap();
+    let view = project.wave(4).unwrap();
+    let settings = Settings {
+        missing: MissingRule::Impute,
+        imputations: 2,
+        wave: Some(4),
+        ..Settings::default()
+    };
+    let expected = imputed::coverage(Some(&project), &view, &settings).unwrap();
+    assert!(!expected.filled.is_empty());
+    let addr = common::start_server(&common::demo_dir());
+    let r = common::http(
+        addr,
+        "GET",
+        "/report?wave=4&missing=impute&imputations=2&replicates=0&bootstrap=0",
+        &[],
+    );
+    assert_eq!(r.status, 200, "{}", r.body);
+    let section = &r.body[r.body.find("id=\"missing-4\"").unwrap()..];
+    let section = &section[..section.find("</section>").unwrap()];
+    assert!(
+        section.contains("Has filled (imputed) values"),
+        "no filled mark"
+    );
+    assert!(section.contains("single completed frame"));
+    assert!(section.contains(&format!("the {} countr", expected.filled.len())));
+    for code in &expected.filled {
+        assert!(section.contains(code.as_str()), "{code} not named");
+    }
+    // The map's positions are those of the coverage page's completed frame.
+    let c = common::http(
+        addr,
+        "GET",
+        "/api/coverage?wave=4&missing=impute&imputations=2",
+        &[],
+    );
+    let v: Value = serde_json::from_str(&c.body).unwrap();
+    let filled: Vec<&str> = v["filled"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_str().unwrap())
+        .collect();
+    assert_eq!(filled, expected.filled);
+    assert_eq!(
+        v["points"].as_array().unwrap().len(),
+        expected.coverage.points.len()
+    );
+    let plain = common::http(addr, "GET", "/report?wave=4&replicates=0&bootstrap=0", &[]);
+    let section = &plain.body[plain.body.find("id=\"missing-4\"").unwrap()..];
+    let section = &section[..section.find("</section>").unwrap()];
+    assert!(!section.contains("Has filled (imputed) values"));
+}
+
+/// The categorical form of the observed-against-filled diagnostic: with continents
+/// removed from the real frame, the level counts add up (observed countries; filled
+/// values × imputations), and the chart draws one labelled pair of bars per level
+/// (common practice for the chart's contents).
+#[test]
+fn filled_levels_are_compared_with_observed_ones() {
+    let project = real_project();
+    let mut view = project.wave(2007).unwrap();
+    let cont = &mut view.categorical[0];
+    for (i, v) in cont.values.iter_mut().enumerate() {
+        if i % 5 == 2 {
+            *v = None;
+        }
+    }
+    let missing = cont.values.iter().filter(|x| x.is_none()).count();
+    let observed = cont.values.len() - missing;
+    let levels = cont.levels.clone();
+    let m = 4;
+    let s = Settings {
+        missing: MissingRule::Impute,
+        imputations: m,
+        seed: 3,
+        ..Settings::default()
+    };
+    let done = imputed::complete(&view, &[], &s).unwrap();
+    let l = &done.summary.observed_vs_imputed_levels;
+    assert_eq!(l.len(), 1);
+    assert_eq!(l[0].levels, levels);
+    assert_eq!(l[0].observed.len(), levels.len());
+    assert_eq!(l[0].imputed.len(), levels.len());
+    assert_eq!(l[0].observed.iter().sum::<usize>(), observed);
+    assert_eq!(l[0].imputed.iter().sum::<usize>(), missing * m);
+    let svg = gapwise::charts::imputation::observed_vs_imputed_levels(&done.summary);
+    assert!(svg.starts_with("<svg"), "{}", &svg[..200.min(svg.len())]);
+    let texts: Vec<&str> = svg
+        .split("</text>")
+        .filter_map(|t| t.rsplit_once('>').map(|(_, x)| x.trim()))
+        .collect();
+    for level in &levels {
+        assert_eq!(
+            texts.iter().filter(|t| *t == level).count(),
+            1,
+            "label {level} not drawn once"
+        );
+    }
+    // Two bars per level plus the two legend swatches, in the two colours.
+    let fills = |hex: &str| svg.matches(&format!("fill=\"{hex}\"")).count();
+    assert_eq!(fills("#7A7A7A"), levels.len() + 1, "observed bars");
+    assert_eq!(fills("#1B6F7A"), levels.len() + 1, "filled bars");
+    // Numeric indicators only: the chart says there is nothing to compare.
+    let numeric_only = imputed::complete(
+        &with_holes(&project.wave(2007).unwrap(), 0.2, &mut Rng::stream(1, 1)),
+        &[],
+        &s,
+    )
+    .unwrap();
+    assert!(numeric_only.summary.observed_vs_imputed_levels.is_empty());
+    assert!(
+        gapwise::charts::imputation::observed_vs_imputed_levels(&numeric_only.summary)
+            .contains("No categorical indicator has filled values")
+    );
+}

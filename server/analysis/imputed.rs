@@ -45,6 +45,19 @@ pub struct ObservedImputed {
     pub imputed: Vec<f64>,
 }
 
+/// Observed and filled levels of one categorical indicator in the wave (the categorical
+/// form of the usual diagnostic): counts per level, aligned with `levels`.
+#[derive(Debug, Clone, Serialize)]
+pub struct ObservedImputedLevels {
+    pub indicator: String,
+    pub label: String,
+    pub levels: Vec<String>,
+    /// Countries of the wave observed at each level.
+    pub observed: Vec<usize>,
+    /// Filled values at each level, over every imputation.
+    pub imputed: Vec<usize>,
+}
+
 /// A convergence trace over the whole frame imputed (every wave used).
 #[derive(Debug, Clone, Serialize)]
 pub struct TraceReport {
@@ -73,6 +86,8 @@ pub struct ImputationSummary {
     pub indicators_filled: Vec<(String, usize)>,
     pub cells: Vec<FilledCell>,
     pub observed_vs_imputed: Vec<ObservedImputed>,
+    /// Categorical indicators with filled values: observed against filled level counts.
+    pub observed_vs_imputed_levels: Vec<ObservedImputedLevels>,
     pub traces: Vec<TraceReport>,
     pub fallbacks: Vec<String>,
     pub caution: String,
@@ -223,6 +238,7 @@ pub fn complete(
     let mut countries = Vec::new();
     let mut indicators_filled = Vec::new();
     let mut observed_vs_imputed = Vec::new();
+    let mut observed_vs_imputed_levels = Vec::new();
     for (k, &j) in numeric_cols.iter().enumerate() {
         let ind = &view.numeric[j];
         let missing: Vec<usize> = (0..n0).filter(|&i| ind.values[i].is_none()).collect();
@@ -276,6 +292,27 @@ pub fn complete(
                 ),
             });
         }
+        let mut observed = vec![0; ind.levels.len()];
+        for &l in ind.values.iter().flatten() {
+            if let Some(n) = observed.get_mut(l) {
+                *n += 1;
+            }
+        }
+        let mut filled = vec![0; ind.levels.len()];
+        for c in &result.completed {
+            for &i in &missing {
+                if let Some(n) = filled.get_mut(c.categorical[k][i]) {
+                    *n += 1;
+                }
+            }
+        }
+        observed_vs_imputed_levels.push(ObservedImputedLevels {
+            indicator: ind.column.clone(),
+            label: ind.label.clone(),
+            levels: ind.levels.clone(),
+            observed,
+            imputed: filled,
+        });
     }
     countries.sort();
     countries.dedup();
@@ -330,6 +367,7 @@ pub fn complete(
             indicators_filled,
             cells,
             observed_vs_imputed,
+            observed_vs_imputed_levels,
             traces,
             fallbacks: result.fallbacks,
             caution: CAUTION.to_string(),
@@ -779,15 +817,48 @@ pub fn wanted(settings: &Settings) -> bool {
     settings.missing == MissingRule::Impute
 }
 
-/// One correction's estimates combined over the imputations.
+/// An estimate and its standard error on one completed frame (`se` null where the
+/// estimate has none).
+#[derive(Debug, Clone, Copy, Serialize)]
+pub struct EstimateSe {
+    pub estimate: f64,
+    pub se: f64,
+}
+
+/// One correction's estimates on one completed frame: the pooled mean and the
+/// coefficients (aligned with `terms`), `null` where not estimated.
+#[derive(Debug, Clone, Serialize)]
+pub struct VariantImputation {
+    pub pooled: Option<EstimateSe>,
+    pub coef: Vec<Option<f64>>,
+    pub se: Vec<Option<f64>>,
+}
+
+/// One correction's estimates combined over the imputations, beside the estimates of
+/// each imputation (so that anyone can recombine them).
 #[derive(Debug, Clone, Serialize)]
 pub struct VariantCombination {
     pub key: String,
+    /// The pooled mean by Rubin's rules (with its df and fraction of missing information).
     pub pooled: Option<combine::Pooled>,
     /// Per term (`terms`); `None` where some imputation has no estimate.
     pub coef: Vec<Option<combine::Pooled>>,
+    /// Complete-data degrees of freedom of the pooled mean (countries − 1).
+    pub df_complete_pooled: f64,
+    /// Complete-data degrees of freedom of the coefficients (countries − 1 − terms, at least 1).
+    pub df_complete_coef: f64,
+    /// Imputation by imputation (M entries).
+    pub imputations: Vec<VariantImputation>,
     /// The largest |SMD| over the imputations (a diagnostic: mean and range).
     pub max_abs_smd: Option<Spread>,
+}
+
+/// What multiple imputation adds to an impact report: the combination per correction and
+/// what was filled.
+#[derive(Debug, Clone, Serialize)]
+pub struct ImpactCombination {
+    pub combination: Vec<VariantCombination>,
+    pub imputation: ImputationSummary,
 }
 
 /// The impact view under multiple imputation: every correction's pooled mean and
@@ -797,8 +868,8 @@ pub struct VariantCombination {
 pub struct ImputedImpact {
     #[serde(flatten)]
     pub report: super::impact::ImpactReport,
-    pub combination: Vec<VariantCombination>,
-    pub imputation: ImputationSummary,
+    #[serde(flatten)]
+    pub combined: ImpactCombination,
 }
 
 /// [`super::impact::impact`] on each completed view, combined. Neither the pipeline nor
@@ -852,6 +923,12 @@ pub fn impact(
             q.zip(u)
                 .and_then(|(q, u)| combine::pool(&q, &u, df_mean).ok())
         };
+        if pooled.is_none() && variant.error.is_none() {
+            variant.error = Some(
+                "no pooled mean with a standard error on every completed frame, so the imputations cannot be combined by Rubin's rules (the bootstraps that give this correction its standard error are not run per imputation)"
+                    .to_string(),
+            );
+        }
         variant.pooled = pooled.as_ref().map(|p| impact::Pooled {
             estimate: p.estimate,
             se: p.se,
@@ -874,6 +951,19 @@ pub fn impact(
         } else {
             Vec::new()
         };
+        let finite = |x: Option<f64>| x.filter(|x| x.is_finite());
+        let per_imputation: Vec<VariantImputation> = same
+            .iter()
+            .zip(coefs.iter().zip(&ses))
+            .map(|(v, (c, e))| VariantImputation {
+                pooled: v.pooled.as_ref().map(|p| EstimateSe {
+                    estimate: p.estimate,
+                    se: p.se,
+                }),
+                coef: c.iter().map(|&x| finite(x)).collect(),
+                se: e.iter().map(|&x| finite(x)).collect(),
+            })
+            .collect();
         variant.coef = pooled_coef
             .iter()
             .map(|p| p.as_ref().map_or(f64::NAN, |p| p.estimate))
@@ -905,6 +995,9 @@ pub fn impact(
             key: variant.key.clone(),
             pooled,
             coef: pooled_coef,
+            df_complete_pooled: df_mean,
+            df_complete_coef: df_coef,
+            imputations: per_imputation,
             max_abs_smd: smd,
         });
     }
@@ -931,14 +1024,17 @@ pub fn impact(
     report.notes.push(CAUTION.to_string());
     Ok(ImputedImpact {
         report,
-        combination,
-        imputation: completed.summary,
+        combined: ImpactCombination {
+            combination,
+            imputation: completed.summary,
+        },
     })
 }
 
 /// The planner under multiple imputation: the plan is built on the first completed
-/// frame (with its stability); every imputation's own plan (without bootstrap) says how
-/// often it picks the same countries and what it expects.
+/// frame (with its stability); the same invitations are then judged on every completed
+/// frame, and those expected objectives are combined by Rubin's rules; every other
+/// imputation's own plan (without bootstrap) says how often it picks the same countries.
 #[derive(Debug, Clone, Serialize)]
 pub struct ImputedPlan {
     #[serde(flatten)]
@@ -947,11 +1043,22 @@ pub struct ImputedPlan {
     pub plan_frame: String,
     /// For each pick of the plan: the share of imputations whose plan picks it too.
     pub pick_agreement: Vec<(String, f64)>,
-    /// The plan's expected objective over the imputations' plans (mean and range).
+    /// The expected objective of each imputation's own plan (mean and range).
     pub objective_spread: Option<Spread>,
+    /// The plan's expected objective on each completed frame (M entries): the estimate and
+    /// its Monte Carlo standard error (0 where every outcome is enumerated). The first is
+    /// the plan's own `optimality.plan_value`.
+    pub objective_by_imputation: Vec<EstimateSe>,
+    /// Those combined by Rubin's rules, with complete-data df taken as infinite (the
+    /// within-imputation variance is the Monte Carlo one only: the uncertainty of the
+    /// chances of joining is not in it); `None` when they cannot be combined.
+    pub objective_combined: Option<combine::Pooled>,
+    /// What the combination's within-imputation variance does and does not include.
+    pub objective_note: String,
     pub imputation: ImputationSummary,
 }
 
+/// [`super::planner::plan_for`] under multiple imputation (see [`ImputedPlan`]).
 pub fn plan(
     project: Option<&Project>,
     view: &WaveView,
@@ -959,7 +1066,11 @@ pub fn plan(
     plan_settings: &super::planner::PlanSettings,
 ) -> Result<ImputedPlan, String> {
     use super::planner;
+    use rayon::prelude::*;
     let completed = complete_project_wave(project, view, settings).map_err(|e| e.to_string())?;
+    if completed.views.len() < 2 {
+        return Err(combine::CombineError::TooFewImputations(completed.views.len()).to_string());
+    }
     let run = |v: &WaveView, ps: &planner::PlanSettings| match project {
         Some(p) => planner::plan_for(p, v, settings, ps),
         None => planner::plan(v, settings, ps),
@@ -969,13 +1080,29 @@ pub fn plan(
         replicates: 0,
         ..plan_settings.clone()
     };
-    let others: Vec<planner::Plan> = {
-        use rayon::prelude::*;
-        completed.views[1..]
-            .par_iter()
-            .map(|v| run(v, &quick).map_err(|e| e.to_string()))
-            .collect::<Result<_, _>>()?
-    };
+    let picks: Vec<(String, bool)> = first
+        .steps
+        .iter()
+        .map(|s| (s.id.clone(), s.supported))
+        .collect();
+    // Every completed frame judges the first plan's invitations; each other one also
+    // makes its own plan.
+    let each: Vec<(Option<planner::Plan>, planner::PlanValue)> = completed
+        .views
+        .par_iter()
+        .enumerate()
+        .map(|(m, v)| {
+            let value = planner::expected_objective(project, v, settings, &quick, &picks);
+            let own = if m == 0 {
+                Ok(None)
+            } else {
+                run(v, &quick).map(Some)
+            };
+            own.and_then(|o| value.map(|x| (o, x)))
+                .map_err(|e| format!("imputation {}: {e}", m + 1))
+        })
+        .collect::<Result<_, _>>()?;
+    let others: Vec<&planner::Plan> = each.iter().filter_map(|(p, _)| p.as_ref()).collect();
     let m = completed.views.len() as f64;
     let pick_agreement = first
         .steps
@@ -988,16 +1115,66 @@ pub fn plan(
             (s.id.clone(), n as f64 / m)
         })
         .collect();
-    let values: Vec<f64> = std::iter::once(first.optimality.plan_value)
+    let own_values: Vec<f64> = std::iter::once(first.optimality.plan_value)
         .chain(others.iter().map(|p| p.optimality.plan_value))
         .collect();
-    first.notes.insert(0, format!("{}; the plan is built on the first completed frame, and each of the other imputations' own plans is compared with it", missing_note(&completed.summary)));
+    let objective_by_imputation: Vec<EstimateSe> = each
+        .iter()
+        .map(|(_, v)| EstimateSe {
+            estimate: v.estimate,
+            se: v.mc_error,
+        })
+        .collect();
+    let q: Vec<f64> = objective_by_imputation.iter().map(|v| v.estimate).collect();
+    let u: Vec<f64> = objective_by_imputation
+        .iter()
+        .map(|v| v.se * v.se)
+        .collect();
+    let objective_combined = combine::pool(&q, &u, f64::INFINITY).ok();
+    first.notes.insert(0, format!("{}; the plan is built on the first completed frame, its invitations are judged on every completed frame (combined by Rubin's rules), and each of the other imputations' own plans is compared with it", missing_note(&completed.summary)));
     first.notes.push(CAUTION.to_string());
     Ok(ImputedPlan {
         plan: first,
         plan_frame: "the first completed frame".to_string(),
         pick_agreement,
-        objective_spread: combine::spread(&values),
+        objective_spread: combine::spread(&own_values),
+        objective_by_imputation,
+        objective_combined,
+        objective_note: "Within each completed frame the expected objective is computed exactly (or by Monte Carlo, whose variance is the within-imputation variance); the uncertainty of the chances of joining themselves is not included, so the interval shows only what the missing values and the draws leave open.".to_string(),
         imputation: completed.summary,
+    })
+}
+
+/// The coverage view under multiple imputation: the first completed frame's map and
+/// tables (coverage is a picture, not an estimate, so it is not combined), the countries
+/// with filled values to mark on the map, and a sentence that says so.
+#[derive(Debug, Clone, Serialize)]
+pub struct ImputedCoverage {
+    #[serde(flatten)]
+    pub coverage: super::coverage::CoverageReport,
+    /// Codes of the countries with at least one filled value.
+    pub filled: Vec<String>,
+}
+
+/// [`super::coverage::coverage`] on the first completed frame (see [`ImputedCoverage`]).
+pub fn coverage(
+    project: Option<&Project>,
+    view: &WaveView,
+    settings: &Settings,
+) -> Result<ImputedCoverage, ImputedError> {
+    let done = complete_project_wave(project, view, settings)?;
+    let mut c = super::coverage::coverage(&done.views[0]);
+    let filled = done.summary.countries_filled.clone();
+    c.summary.push(format!(
+        "Multiple imputation: this shows a single completed frame (the first of {}, seed {}), not a combination; the {} countr{} with filled values are crossed on the map. {}",
+        done.summary.imputations,
+        done.summary.seed,
+        filled.len(),
+        if filled.len() == 1 { "y" } else { "ies" },
+        CAUTION
+    ));
+    Ok(ImputedCoverage {
+        coverage: c,
+        filled,
     })
 }

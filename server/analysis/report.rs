@@ -96,7 +96,11 @@ pub struct WaveReport {
     pub settings: Settings,
     pub fit: Result<FitReport, String>,
     pub balance: Result<BalanceComparison, String>,
+    /// Under multiple imputation the first completed frame's coverage (as on the
+    /// coverage page), else the observed frame's.
     pub coverage: CoverageReport,
+    /// Under multiple imputation: the countries with filled values (crossed on the map).
+    pub coverage_filled: Vec<String>,
     pub plan: Result<Plan, String>,
     pub impact: Option<Result<ImpactReport, String>>,
     pub projection: Option<Result<ProjectionReport, String>>,
@@ -248,6 +252,7 @@ pub fn report_with(
         let projection = projection_settings
             .as_ref()
             .map(|ps| parts.projection(project, &view, &settings, ps));
+        let (coverage, coverage_filled) = coverage_section(project, &view, &settings);
         sections.push(WaveReport {
             wave,
             fit: if super::imputed::wanted(&settings) {
@@ -264,8 +269,8 @@ pub fn report_with(
             } else {
                 compare(&view, &settings).map_err(|e| e.to_string())
             },
-            // The coverage section reads the observed frame (complete cases) in every case.
-            coverage: coverage(&view),
+            coverage,
+            coverage_filled,
             plan: parts.plan(project, &view, &settings, &request.plan),
             impact,
             projection,
@@ -282,6 +287,27 @@ pub fn report_with(
         sections,
         inputs: project.inputs.clone(),
     })
+}
+
+/// The coverage section: under multiple imputation the coverage page's view (the first
+/// completed frame, filled countries marked); should the imputation fail, the observed
+/// frame, saying so.
+fn coverage_section(
+    project: &Project,
+    view: &WaveView,
+    settings: &Settings,
+) -> (CoverageReport, Vec<String>) {
+    if !super::imputed::wanted(settings) {
+        return (coverage(view), Vec::new());
+    }
+    match super::imputed::coverage(Some(project), view, settings) {
+        Ok(r) => (r.coverage, r.filled),
+        Err(e) => {
+            let mut c = coverage(view);
+            c.summary.push(format!("Multiple imputation failed ({e}): this section shows the observed frame, without the countries whose values are missing."));
+            (c, Vec::new())
+        }
+    }
 }
 
 /// A moment as UTC in ISO 8601 to the second (`1970-01-01T00:00:00Z`); moments before

@@ -3,7 +3,10 @@
 
 use plotters::prelude::*;
 
-use super::{colour, failed_chart, font, headed, render, Glyph, Key, GREY, SLIDE};
+use super::{
+    colour, draw_row_labels, failed_chart, font, headed, label_area, render, Glyph, Key, GREY,
+    SLIDE,
+};
 use crate::analysis::imputed::ImputationSummary;
 
 /// Per numeric indicator with filled values, one panel: observed values as grey ticks on
@@ -75,6 +78,88 @@ pub fn observed_vs_imputed(s: &ImputationSummary) -> String {
                     .enumerate()
                     .map(|(k, &v)| Cross::new((1.0 + jitter(k), v), 3, colour(0).stroke_width(1))),
             )?;
+        }
+        Ok(())
+    })
+}
+
+/// Per categorical indicator with filled values (up to three), one panel of paired bars:
+/// for each level, the share of the wave's observed countries at that level (grey, upper
+/// bar) and the share of the filled values at it over every imputation (colour, lower
+/// bar), so that filled levels out of line with the observed ones stand out.
+pub fn observed_vs_imputed_levels(s: &ImputationSummary) -> String {
+    const TITLE: &str = "Observed (grey) and filled levels (colour): share of each level";
+    const LABEL_FONT: u32 = 13;
+    let panels: Vec<_> = s
+        .observed_vs_imputed_levels
+        .iter()
+        .filter(|p| {
+            !p.levels.is_empty()
+                && p.observed.len() == p.levels.len()
+                && p.imputed.len() == p.levels.len()
+                && p.imputed.iter().sum::<usize>() > 0
+        })
+        .take(3)
+        .collect();
+    if panels.is_empty() {
+        return failed_chart(
+            TITLE,
+            "No categorical indicator has filled values in this wave.",
+        );
+    }
+    render(TITLE, SLIDE, |root| {
+        let grey = GREY;
+        let filled = colour(0);
+        let body = headed(
+            root,
+            TITLE,
+            &[
+                Key::new("observed countries", Glyph::Bar(grey)),
+                Key::new("filled values (every imputation)", Glyph::Bar(filled)),
+            ],
+        )?;
+        let areas = body.split_evenly((1, panels.len()));
+        for (area, p) in areas.iter().zip(&panels) {
+            let n = p.levels.len();
+            let share = |counts: &[usize]| -> Vec<f64> {
+                let total = counts.iter().sum::<usize>().max(1) as f64;
+                counts.iter().map(|&c| c as f64 / total).collect()
+            };
+            let (obs, imp) = (share(&p.observed), share(&p.imputed));
+            let top = obs
+                .iter()
+                .chain(&imp)
+                .copied()
+                .fold(0.05f64, f64::max)
+                .min(1.0)
+                * 1.1;
+            let labels: Vec<String> = p.levels.iter().map(|l| short(l)).collect();
+            let mut chart = ChartBuilder::on(area)
+                .margin(10)
+                .caption(short(&p.label), font(15))
+                .x_label_area_size(30)
+                .y_label_area_size(label_area(&labels, LABEL_FONT, 40))
+                .build_cartesian_2d(0f64..top, -0.6..(n as f64 - 0.4))?;
+            chart
+                .configure_mesh()
+                .light_line_style(WHITE.mix(0.0))
+                .disable_y_mesh()
+                .y_labels(0)
+                .x_labels(4)
+                .x_label_formatter(&|x| format!("{:.0}%", 100.0 * x))
+                .label_style(font(LABEL_FONT))
+                .draw()?;
+            draw_row_labels(root, &chart, &labels, LABEL_FONT)?;
+            let y_of = |i: usize| (n - 1 - i) as f64;
+            chart.draw_series(obs.iter().enumerate().map(|(i, &v)| {
+                Rectangle::new([(0.0, y_of(i) + 0.02), (v, y_of(i) + 0.36)], grey.filled())
+            }))?;
+            chart.draw_series(imp.iter().enumerate().map(|(i, &v)| {
+                Rectangle::new(
+                    [(0.0, y_of(i) - 0.36), (v, y_of(i) - 0.02)],
+                    filled.filled(),
+                )
+            }))?;
         }
         Ok(())
     })

@@ -37,6 +37,18 @@ pub fn component_map_imputed(c: &CoverageReport, imputed: &[String]) -> String {
     map_with(c, &[], &[], imputed)
 }
 
+/// The report's map: the plan's recruits and joiners as in [`component_map_marked`], and
+/// under multiple imputation the countries with filled values crossed as in
+/// [`component_map_imputed`].
+pub fn component_map_marked_imputed(
+    c: &CoverageReport,
+    planned: &[String],
+    joiners: &[String],
+    imputed: &[String],
+) -> String {
+    map_with(c, planned, joiners, imputed)
+}
+
 fn map_with(
     c: &CoverageReport,
     planned: &[String],

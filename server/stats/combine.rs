@@ -17,6 +17,11 @@
 //! estimand the imputations do not move gets ν ≈ ν_obs rather than a division by zero.
 //! The fraction of missing information is γ = (r + 2 / (ν + 3)) / (r + 1) (Rubin 1987,
 //! eq. 3.1.10, with ν for the large-sample ν_old as in `mice::pool`).
+//!
+//! An estimand without within-imputation variance (W = 0: a quantity computed exactly on
+//! each completed frame, such as the planner's expected objective) has r = ∞ and γ = 1
+//! when the imputations disagree (all its uncertainty comes from the missing values) and
+//! r = 0 when they agree; with ν_com = ∞ it then gets ν = M − 1.
 
 use serde::Serialize;
 
@@ -90,10 +95,14 @@ pub fn pool(
     let between = estimates.iter().map(|q| (q - qbar).powi(2)).sum::<f64>() / (mf - 1.0);
     let inflated = (1.0 + 1.0 / mf) * between;
     let total = within + inflated;
+    // With no variance at all (every imputation agrees and none has sampling variance)
+    // nothing is lost to the missing values: r = 0 rather than 0/0.
     let riv = if within > 0.0 {
         inflated / within
-    } else {
+    } else if inflated > 0.0 {
         f64::INFINITY
+    } else {
+        0.0
     };
     let lambda = if total > 0.0 { inflated / total } else { 0.0 };
     let df = barnard_rubin(mf, lambda, df_complete);
@@ -171,5 +180,22 @@ mod tests {
         assert!(pool(&[1.0], &[1.0], 10.0).is_err());
         assert!(pool(&[1.0, 2.0], &[1.0], 10.0).is_err());
         assert!(pool(&[1.0, f64::NAN], &[1.0, 1.0], 10.0).is_err());
+    }
+
+    /// No within-imputation variance (from the formulas above): q = 1, 2, 3 with u = 0
+    /// gives T = (1 + 1/3) B = 4/3, λ = γ = 1 and ν = M − 1 = 2 for ν_com = ∞; identical
+    /// estimates give T = 0 and r = 0.
+    #[test]
+    fn no_within_imputation_variance() {
+        let p = pool(&[1.0, 2.0, 3.0], &[0.0; 3], f64::INFINITY).unwrap();
+        assert!((p.total - 4.0 / 3.0).abs() < 1e-12);
+        assert!((p.df - 2.0).abs() < 1e-9, "{}", p.df);
+        assert_eq!(p.fmi, 1.0);
+        assert!(p.ci95_low < 1.0 && p.ci95_high > 3.0);
+        let same = pool(&[2.0; 4], &[0.0; 4], f64::INFINITY).unwrap();
+        assert_eq!(same.total, 0.0);
+        assert_eq!(same.riv, 0.0);
+        assert!(same.fmi < 1e-6);
+        assert_eq!((same.ci95_low, same.ci95_high), (2.0, 2.0));
     }
 }

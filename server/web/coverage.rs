@@ -45,20 +45,9 @@ fn compute(state: &AppState, query: &super::context::Query) -> AppResult<Coverag
     let (project, settings, view) = resolve(state, query)?;
     let form = SettingsForm::new("/coverage", &project, &settings);
     if crate::analysis::imputed::wanted(&settings) {
-        let done =
-            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
-                .map_err(|e| AppError::BadRequest(e.to_string()))?;
-        let mut c = coverage(&done.views[0]);
-        let filled = done.summary.countries_filled.clone();
-        c.summary.push(format!(
-            "Multiple imputation: this page shows a single completed frame (the first of {}, seed {}), not a combination; the {} countr{} with filled values are crossed on the map. {}",
-            done.summary.imputations,
-            done.summary.seed,
-            filled.len(),
-            if filled.len() == 1 { "y" } else { "ies" },
-            crate::analysis::imputed::CAUTION
-        ));
-        return Ok((form, c, None, filled));
+        let r = crate::analysis::imputed::coverage(Some(&project), &view, &settings)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        return Ok((form, r.coverage, None, r.filled));
     }
     Ok((
         form,
@@ -89,11 +78,22 @@ pub async fn page(
     Ok(Html(html))
 }
 
+/// The coverage twin: the report and, under multiple imputation, the countries with
+/// filled values (the ones the map crosses).
+#[derive(serde::Serialize)]
+pub struct CoverageTwin {
+    #[serde(flatten)]
+    coverage: CoverageReport,
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    filled: Vec<String>,
+}
+
 pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<super::context::Query>,
-) -> AppResult<Json<CoverageReport>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
+) -> AppResult<Json<CoverageTwin>> {
+    let (_, coverage, _, filled) = off_thread(&state, &query, compute).await?;
+    Ok(Json(CoverageTwin { coverage, filled }))
 }
 
 pub async fn artifact(

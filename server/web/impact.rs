@@ -16,6 +16,7 @@ use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::impact::{impact, ImpactReport, ImpactSettings, Shares};
 use crate::analysis::impact_bootstrap;
+use crate::analysis::imputed::ImpactCombination;
 use crate::analysis::limits;
 use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::charts;
@@ -47,6 +48,68 @@ struct ImpactPage<'a> {
     table: Vec<(String, Vec<Cell>)>,
     /// Sensitivity to an unmeasured cause of taking part (web::impact_bounds).
     bounds: super::impact_bounds::Section,
+    /// Under multiple imputation: each correction's estimates per imputation, combined.
+    imputed: Option<ImpactCombination>,
+    imputation_rows: Vec<ImputationRow>,
+}
+
+/// One estimate's line in the imputation table: combined, then imputation by imputation
+/// (estimate, standard error).
+struct ImputationLine {
+    label: String,
+    combined: Option<crate::stats::combine::Pooled>,
+    each: Vec<Option<(f64, f64)>>,
+}
+
+/// One correction under multiple imputation: its pooled mean and its coefficients.
+struct ImputationRow {
+    label: String,
+    pooled: ImputationLine,
+    terms: Vec<ImputationLine>,
+}
+
+fn imputation_rows(r: &ImpactReport, c: &ImpactCombination) -> Vec<ImputationRow> {
+    r.variants
+        .iter()
+        .zip(&c.combination)
+        .map(|(v, k)| ImputationRow {
+            label: v.label.clone(),
+            pooled: ImputationLine {
+                label: "pooled mean".to_string(),
+                combined: k.pooled.clone(),
+                each: k
+                    .imputations
+                    .iter()
+                    .map(|i| i.pooled.map(|p| (p.estimate, p.se)))
+                    .collect(),
+            },
+            terms: k
+                .coef
+                .iter()
+                .enumerate()
+                .map(|(j, combined)| ImputationLine {
+                    label: r
+                        .term_labels
+                        .get(j)
+                        .or(r.terms.get(j))
+                        .cloned()
+                        .unwrap_or_default(),
+                    combined: combined.clone(),
+                    each: k
+                        .imputations
+                        .iter()
+                        .map(|i| {
+                            i.coef
+                                .get(j)
+                                .copied()
+                                .flatten()
+                                .zip(i.se.get(j).copied().flatten())
+                        })
+                        .collect(),
+                })
+                .collect(),
+        })
+        .collect()
 }
 
 /// How many of a variant's pipeline bootstrap replicates failed, and why, in words.
@@ -254,9 +317,15 @@ pub fn impact_settings(project: &Project, query: &PageQuery) -> AppResult<Impact
     })
 }
 
-/// What the impact page shows: the form, the result, and the warning when leaving out
-/// incomplete countries changed who is analysed.
-pub(crate) type ImpactResult = (SettingsForm, ImpactReport, Option<IncompleteCountries>);
+/// What the impact page shows: the form, the result, the warning when leaving out
+/// incomplete countries changed who is analysed, and under multiple imputation the
+/// combination with each imputation's estimates.
+pub(crate) type ImpactResult = (
+    SettingsForm,
+    ImpactReport,
+    Option<IncompleteCountries>,
+    Option<ImpactCombination>,
+);
 
 pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactResult> {
     let (project, settings, view) = resolve(state, query)?;
@@ -267,10 +336,10 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactRe
     if crate::analysis::imputed::wanted(&settings) {
         let r = crate::analysis::imputed::impact(&project, &view, &settings, &imp)
             .map_err(AppError::BadRequest)?;
-        return Ok((form, r.report, None));
+        return Ok((form, r.report, None, Some(r.combined)));
     }
     let r = impact(&project, &view, &settings, &imp)?;
-    Ok((form, r, incomplete_for(&view, &settings)))
+    Ok((form, r, incomplete_for(&view, &settings), None))
 }
 
 /// The impact keys of a query that reproduces `imp` (percent-encoded, so that names with
@@ -298,7 +367,7 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, r, incomplete) = off_thread_heavy(&state, &query, compute).await?;
+    let (form, r, incomplete, imputed) = off_thread_heavy(&state, &query, compute).await?;
     let form = form.presenting(&query);
     let bounds = super::impact_bounds::section(&state, &query).await;
     let project = state.project();
@@ -387,16 +456,32 @@ pub async fn page(
         r: &r,
         cautions: &STANDING,
         bounds,
+        imputation_rows: imputed
+            .as_ref()
+            .map(|c| imputation_rows(&r, c))
+            .unwrap_or_default(),
+        imputed,
     }
     .render()?;
     Ok(Html(html))
 }
 
+/// The impact twin: the report and, under multiple imputation, the combination with
+/// each imputation's estimates (flattened beside it, as `gapwise impact --json`).
+#[derive(serde::Serialize)]
+pub struct ImpactTwin {
+    #[serde(flatten)]
+    report: ImpactReport,
+    #[serde(flatten)]
+    imputed: Option<ImpactCombination>,
+}
+
 pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
-) -> AppResult<Json<ImpactReport>> {
-    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
+) -> AppResult<Json<ImpactTwin>> {
+    let (_, report, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
+    Ok(Json(ImpactTwin { report, imputed }))
 }
 
 pub async fn artifact(
@@ -404,7 +489,7 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, r, _) = off_thread_heavy(&state, &query, compute).await?;
+    let (_, r, _, _) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "pooled.svg" => Ok(svg_response(
             "pooled-estimates.svg",

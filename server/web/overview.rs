@@ -37,6 +37,8 @@ struct ImputationView {
     /// Per filled cell: code, name, indicator label, the filled values in words.
     rows: Vec<(String, String, String, String)>,
     observed_chart: String,
+    /// Observed against filled level shares, when a categorical indicator was filled.
+    levels_chart: Option<String>,
     convergence_chart: String,
     query: String,
 }
@@ -138,6 +140,8 @@ pub async fn page(
                 })
                 .collect(),
             observed_chart: charts::imputation::observed_vs_imputed(&s),
+            levels_chart: (!s.observed_vs_imputed_levels.is_empty())
+                .then(|| charts::imputation::observed_vs_imputed_levels(&s)),
             convergence_chart: charts::imputation::convergence(&s),
             query: settings.to_query(),
             s,

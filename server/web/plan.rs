@@ -15,6 +15,7 @@ use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
 use crate::analysis::coverage::{coverage, CoverageReport};
+use crate::analysis::imputed::ImputedPlan;
 use crate::analysis::limits;
 use crate::analysis::participation::{incomplete_for, IncompleteCountries};
 use crate::analysis::planner::{plan_for, Feasibility, ObjectiveKind, Plan, PlanSettings};
@@ -46,6 +47,8 @@ struct PlanPage<'a> {
     plan_has_support: bool,
     random_plan_draws: usize,
     incomplete: Option<IncompleteCountries>,
+    /// Under multiple imputation: the plan's expected objective per imputation, combined.
+    imputed: Option<ImputedPlan>,
     cautions: &'a [Caution],
 }
 
@@ -168,13 +171,16 @@ pub fn plan_query(ps: &PlanSettings) -> String {
     q.finish()
 }
 
-/// What the plan page shows: the form, the plan, the coverage map's positions, and the
-/// warning when leaving out incomplete countries changed who is analysed.
+/// What the plan page shows: the form, the plan, the coverage map's positions, the
+/// warning when leaving out incomplete countries changed who is analysed, and under
+/// multiple imputation the whole imputed result (the plan's expected objective on every
+/// completed frame, combined).
 pub(crate) type PlanResult = (
     SettingsForm,
     Plan,
     CoverageReport,
     Option<IncompleteCountries>,
+    Option<ImputedPlan>,
 );
 
 pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResult> {
@@ -186,7 +192,7 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
     if crate::analysis::imputed::wanted(&settings) {
         let r = crate::analysis::imputed::plan(Some(&project), &view, &settings, &ps)
             .map_err(AppError::BadRequest)?;
-        let mut p = r.plan;
+        let mut p = r.plan.clone();
         let agreement = r
             .pick_agreement
             .iter()
@@ -204,22 +210,33 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
                 ))
             ),
         );
-        return Ok((form, p, coverage(&view), None));
+        // The map of the first completed frame (the plan's), as on the coverage page.
+        let c = crate::analysis::imputed::coverage(Some(&project), &view, &settings)
+            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        return Ok((form, p, c.coverage, None, Some(r)));
     }
     let p = plan_for(&project, &view, &settings, &ps)?;
-    Ok((form, p, coverage(&view), incomplete_for(&view, &settings)))
+    Ok((
+        form,
+        p,
+        coverage(&view),
+        incomplete_for(&view, &settings),
+        None,
+    ))
 }
 
-fn map(p: &Plan, c: &CoverageReport) -> String {
+/// The plan on the map; under multiple imputation the countries with filled values crossed.
+fn map(p: &Plan, c: &CoverageReport, imputed: Option<&ImputedPlan>) -> String {
     let planned: Vec<String> = p.steps.iter().map(|s| s.id.clone()).collect();
-    charts::map::component_map_marked(c, &planned, &p.plan.joiners)
+    let filled = imputed.map_or(&[][..], |i| &i.imputation.countries_filled[..]);
+    charts::map::component_map_marked_imputed(c, &planned, &p.plan.joiners, filled)
 }
 
 pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, p, c, incomplete) = off_thread_heavy(&state, &query, compute).await?;
+    let (form, p, c, incomplete, imputed) = off_thread_heavy(&state, &query, compute).await?;
     let form = form.presenting(&query);
     let project = state.project();
     let mut feasibility_choices = vec![
@@ -265,9 +282,10 @@ pub async fn page(
             && p.plan.cost_budget.is_some(),
         random_plan_draws: crate::analysis::planner::baselines::OUTCOMES_PER_RANDOM_PLAN,
         path_chart: charts::plan::paths(&p),
-        map_chart: map(&p, &c),
+        map_chart: map(&p, &c, imputed.as_ref()),
         plan_query: plan_query(&p.plan),
         incomplete,
+        imputed,
         form,
         f: Fmt,
         p: &p,
@@ -277,11 +295,24 @@ pub async fn page(
     Ok(Html(html))
 }
 
+/// The plan twin: the plan, or under multiple imputation the imputed result (the plan
+/// with the expected objective per imputation and combined), as `gapwise plan --json`.
+#[derive(serde::Serialize)]
+#[serde(untagged)]
+pub enum PlanTwin {
+    Plan(Box<Plan>),
+    Imputed(Box<ImputedPlan>),
+}
+
 pub async fn json(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
-) -> AppResult<Json<Plan>> {
-    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
+) -> AppResult<Json<PlanTwin>> {
+    let (_, p, _, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
+    Ok(Json(match imputed {
+        Some(i) => PlanTwin::Imputed(Box::new(i)),
+        None => PlanTwin::Plan(Box::new(p)),
+    }))
 }
 
 pub async fn artifact(
@@ -289,13 +320,16 @@ pub async fn artifact(
     Path(item): Path<String>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let (_, p, c, _) = off_thread_heavy(&state, &query, compute).await?;
+    let (_, p, c, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
     match item.as_str() {
         "paths.svg" => Ok(svg_response(
             "recruitment-paths.svg",
             charts::plan::paths(&p),
         )),
-        "map.svg" => Ok(svg_response("recruitment-map.svg", map(&p, &c))),
+        "map.svg" => Ok(svg_response(
+            "recruitment-map.svg",
+            map(&p, &c, imputed.as_ref()),
+        )),
         "plan.csv" => Ok(csv_response(
             "recruitment-plan.csv",
             csv_text(

@@ -401,7 +401,12 @@ pub fn render_report(r: &Report) -> Result<String, String> {
                     .as_ref()
                     .map(charts::balance::smd_dots)
                     .unwrap_or_default(),
-                map_chart: charts::map::component_map_marked(&w.coverage, &planned, &joiners),
+                map_chart: charts::map::component_map_marked_imputed(
+                    &w.coverage,
+                    &planned,
+                    &joiners,
+                    &w.coverage_filled,
+                ),
                 plan_chart: w.plan.as_ref().map(charts::plan::paths).unwrap_or_default(),
                 pooled_chart: impact.map(charts::impact::pooled).unwrap_or_default(),
                 w,

@@ -72,6 +72,40 @@ await firstCandidate.check();
 await Promise.all([page.waitForNavigation(), page.click('#candidates button[type="submit"]')]);
 check((await page.locator('.whatif').innerText()).includes(candidateId), 'what-if summary missing');
 
+// Multiple imputation from the settings form: choose it on a page, the page says so,
+// the overview shows what was filled with its charts, the plan and impact pages show the
+// per-imputation tables, and the JSON twins carry one entry per imputation.
+await page.goto(base + '/balance?wave=4');
+await page.click('details.settings-panel > summary');
+await page.selectOption('select[name="missing"]', 'impute');
+await page.fill('input[name="imputations"]', '3');
+await Promise.all([page.waitForURL(/missing=impute/), page.click('form.settings button[type="submit"]')]);
+const imputedBalance = await page.content();
+check(imputedBalance.includes('Multiple imputation'), 'the balance page under imputation does not say so');
+check(!imputedBalance.includes('NaN'), 'the balance page under imputation shows NaN');
+check(await page.locator('figure svg').count() > 0, 'the balance page under imputation shows no chart');
+const imputedQuery = new URL(page.url()).search.slice(1);
+check(imputedQuery.includes('imputations=3'), `the URL does not carry the imputations: ${imputedQuery}`);
+await page.goto(base + '/?' + imputedQuery);
+check(await page.locator('#imputation').count() === 1, 'the overview has no imputation section');
+check(await page.locator('#imputation figure svg').count() >= 2, 'the overview shows no imputation charts');
+check(await page.locator('#filled-cells').count() === 1, 'the overview does not list the filled values');
+check((await page.locator('#imputation-caution').innerText()).includes('missing at random'), 'no caution beside the imputation');
+await page.screenshot({ path: path.join(out, 'page-overview-imputed.png'), fullPage: true });
+await page.goto(base + '/plan?' + imputedQuery + '&replicates=0');
+check(await page.locator('#plan-imputations td').count() === 3, 'the plan page does not show the objective per imputation');
+check((await page.locator('#plan-imputations').innerText()).includes("Rubin's rules"), 'the plan page does not say how the imputations combine');
+await page.goto(base + '/impact?' + imputedQuery + '&replicates=0&wild_replicates=0');
+check(await page.locator('#imputation-pooled thead th').count() === 5 + 3, 'the impact page has no column per imputation');
+check(!(await page.content()).includes('NaN'), 'the impact page under imputation shows NaN');
+await page.screenshot({ path: path.join(out, 'page-impact-imputed.png'), fullPage: true });
+const planTwin = await (await page.request.get(base + '/api/plan?' + imputedQuery + '&replicates=0')).json();
+check(planTwin.objective_by_imputation && planTwin.objective_by_imputation.length === 3, 'the plan twin does not carry the imputations');
+const impactTwin = await (await page.request.get(base + '/api/impact?' + imputedQuery + '&replicates=0&wild_replicates=0')).json();
+check(impactTwin.combination && impactTwin.combination.every((c) => c.imputations.length === 3), 'the impact twin does not carry the imputations');
+const fitTwin = await (await page.request.get(base + '/api/imputation?' + imputedQuery)).json();
+check(fitTwin.imputations === 3 && fitTwin.cells.length > 0, 'the imputation twin is incomplete');
+
 // Downloads: a chart and a table.
 for (const [where, selector, starts] of [['/coverage', 'a[href^="/coverage/map.svg"]', '<svg'], ['/balance', 'a[href^="/balance/table.csv"]', 'covariate,']]) {
   await page.goto(base + where);

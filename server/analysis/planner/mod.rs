@@ -404,6 +404,63 @@ pub fn plan_for(
     plan_with(Some(project), view, settings, plan_settings)
 }
 
+/// A plan's expected objective on one frame, at the plan's reported precision.
+#[derive(Debug, Clone, Copy, Serialize)]
+pub struct PlanValue {
+    /// In the objective's natural direction (as `Optimality::plan_value`).
+    pub estimate: f64,
+    /// Monte Carlo standard error of the expectation; 0 when every outcome is enumerated.
+    pub mc_error: f64,
+}
+
+/// The expected objective of the invitations `picks` (country code, invited with support)
+/// on `view`, with the chances, costs and draws of who joins that [`plan_for`] would use
+/// there: so that one plan can be judged on several frames (the completed frames of
+/// multiple imputation). A country that is not a candidate of this view is refused.
+pub fn expected_objective(
+    project: Option<&Project>,
+    view: &WaveView,
+    settings: &Settings,
+    plan_settings: &PlanSettings,
+    picks: &[(String, bool)],
+) -> Result<PlanValue, PlanError> {
+    let inputs = Inputs::gather(project, view, settings, plan_settings)?;
+    let design = &inputs.design;
+    let kind = plan_settings.objective;
+    let eval = Evaluator::new(design);
+    let mut memo = Memo::new(&eval, &inputs.members, kind);
+    let draws = Draws::new(settings.seed, REPORT_DRAWS, design.n());
+    let plain = inputs.plain_menu();
+    let offers = picks
+        .iter()
+        .map(|(id, supported)| {
+            let offer = plain
+                .iter()
+                .find(|o| design.ids[o.unit] == *id)
+                .copied()
+                .and_then(|o| {
+                    if *supported {
+                        inputs.supported_offer(o.unit)
+                    } else {
+                        Some(o)
+                    }
+                });
+            offer.ok_or_else(|| {
+                PlanError::Request(format!(
+                    "'{id}' is not a candidate{} of wave {}",
+                    if *supported { " with support" } else { "" },
+                    view.wave
+                ))
+            })
+        })
+        .collect::<Result<Vec<Offer>, PlanError>>()?;
+    let e = report_expected(&mut memo, &draws, &offers);
+    Ok(PlanValue {
+        estimate: natural(kind, e.score),
+        mc_error: e.score_mc_error.unwrap_or(0.0),
+    })
+}
+
 fn plan_with(
     project: Option<&Project>,
     view: &WaveView,

@@ -192,6 +192,8 @@ pub struct Expected {
     pub feasible_chance: f64,
     /// The expectation of the chosen objective's score.
     pub score: f64,
+    /// Monte Carlo standard error of `score` (None when exact).
+    pub score_mc_error: Option<f64>,
     pub exact: bool,
 }
 
@@ -275,9 +277,11 @@ impl<'a> Memo<'a> {
             mean_abs_smd: 0.0,
             feasible_chance: 0.0,
             score: 0.0,
+            score_mc_error: None,
             exact: outcomes.exact,
         };
         let mut square = 0.0;
+        let mut score_square = 0.0;
         for (set, w) in &outcomes.sets {
             let m = self.map[set];
             e.effective_n += w * m.effective_n;
@@ -285,11 +289,15 @@ impl<'a> Memo<'a> {
             e.max_abs_smd += w * m.max_abs_smd;
             e.mean_abs_smd += w * m.mean_abs_smd;
             e.feasible_chance += w * f64::from(u8::from(m.feasible));
-            e.score += w * self.kind.score(&m);
+            let score = self.kind.score(&m);
+            e.score += w * score;
+            score_square += w * score * score;
         }
         if !outcomes.exact {
             let variance = (square - e.effective_n * e.effective_n).max(0.0);
             e.effective_n_mc_error = Some((variance / outcomes.draws as f64).sqrt());
+            let variance = (score_square - e.score * e.score).max(0.0);
+            e.score_mc_error = Some((variance / outcomes.draws as f64).sqrt());
         }
         e
     }
