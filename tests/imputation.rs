@@ -629,6 +629,28 @@ fn plan_json_carries_the_imputations() {
         .as_str()
         .unwrap()
         .contains("not included"));
+    // The readable form prints the same combined figure (common practice: text and JSON
+    // render one result).
+    let text = common::gapwise(&[
+        "plan",
+        common::demo_dir().to_str().unwrap(),
+        "--wave",
+        "4",
+        "--missing",
+        "impute",
+        "--imputations",
+        &m.to_string(),
+        "--seed",
+        "8",
+        "--replicates",
+        "0",
+    ]);
+    assert_eq!(text.code, 0, "{}", text.stderr);
+    let combined = format!(
+        "combined over the {m} frames by Rubin's rules: {:.3}",
+        v["objective_combined"]["estimate"].as_f64().unwrap()
+    );
+    assert!(text.stdout.contains(&combined), "{}", text.stdout);
 }
 
 /// The plan and impact pages and their twins under `missing=impute` show and carry the

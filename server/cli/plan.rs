@@ -75,6 +75,25 @@ fn imputed_plan_text(p: &ImputedPlan) -> String {
             s.mean, s.min, s.max
         );
     }
+    if let Some(c) = &p.objective_combined {
+        // An unbounded df means every completed frame gave the same value.
+        let df = if c.df.is_finite() {
+            format!("{:.1}", c.df)
+        } else {
+            "unbounded".to_string()
+        };
+        let _ = writeln!(
+            text,
+            "  this plan's expected objective, combined over the {} frames by Rubin's rules: {:.3} (s.e. {:.3}, 95% interval {:.3} to {:.3}, df {df}, fraction of missing information {:.2})\n  {}",
+            p.objective_by_imputation.len(),
+            c.estimate,
+            c.se,
+            c.ci95_low,
+            c.ci95_high,
+            c.fmi,
+            p.objective_note
+        );
+    }
     text
 }
 
