@@ -453,19 +453,35 @@ mod cache_key_tests {
             .collect()
     }
 
-    /// The key of `page`'s result for the query `text`.
-    fn key(state: &AppState, page: &str, text: &str) -> CacheKey {
-        let q = query(text);
-        match page {
-            "settings" | "model" => page_key::<Model>(state, &q),
-            "plan" => page_key::<super::super::plan::PlanResult>(state, &q),
-            "impact" => page_key::<super::super::impact::ImpactResult>(state, &q),
-            "bounds" => page_key::<crate::analysis::selection_bounds::SelectionBounds>(state, &q),
-            "projection" => page_key::<Projection>(state, &q),
-            "report" => page_key::<super::super::report::ReportHtml>(state, &q),
+    /// A page's result type, by what the tests need of it: its cache key and its own
+    /// settings.
+    struct Page {
+        key: fn(&AppState, &Query) -> Option<CacheKey>,
+        own: fn(&Project, &Query) -> AppResult<String>,
+    }
+
+    fn page<T: PageSettings>() -> Page {
+        Page {
+            key: page_key::<T>,
+            own: T::own_settings,
+        }
+    }
+
+    fn named(page_name: &str) -> Page {
+        match page_name {
+            "model" => page::<Model>(),
+            "plan" => page::<super::super::plan::PlanResult>(),
+            "impact" => page::<super::super::impact::ImpactResult>(),
+            "bounds" => page::<crate::analysis::selection_bounds::SelectionBounds>(),
+            "projection" => page::<Projection>(),
+            "report" => page::<super::super::report::ReportHtml>(),
             other => panic!("no page {other}"),
         }
-        .unwrap_or_else(|| panic!("{page}?{text} has a key"))
+    }
+
+    /// The key of `page`'s result for the query `text`.
+    fn key(state: &AppState, page: &str, text: &str) -> CacheKey {
+        (named(page).key)(state, &query(text)).unwrap_or_else(|| panic!("{page}?{text} has a key"))
     }
 
     #[test]
@@ -590,17 +606,9 @@ mod cache_key_tests {
 
     /// The field names of a page's typed settings, read from their canonical JSON.
     fn fields(project: &Project, page: &str) -> Vec<String> {
-        let q = Query::new();
         let text = match page {
             "settings" => canonical(&Settings::default()),
-            "plan" => super::super::plan::PlanResult::own_settings(project, &q),
-            "impact" => super::super::impact::ImpactResult::own_settings(project, &q),
-            "bounds" => {
-                crate::analysis::selection_bounds::SelectionBounds::own_settings(project, &q)
-            }
-            "projection" => Projection::own_settings(project, &q),
-            "report" => super::super::report::ReportHtml::own_settings(project, &q),
-            other => panic!("no page {other}"),
+            other => (named(other).own)(project, &Query::new()),
         }
         .expect("default settings parse");
         let value: serde_json::Value = serde_json::from_str(&text).expect("json");
