@@ -105,3 +105,48 @@ async fn work_settings_are_capped_on_pages_and_command_line() {
         );
     }
 }
+
+/// Two spellings of the same settings are one result: the second request is answered
+/// from the cache (reordered and repeated indicators, a number written two ways, older key
+/// names, defaults spelled out, keys in another order); a changed setting is computed.
+/// Our own rule (issue 12: one cache keyed by the normalised settings).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_spelling_of_the_same_settings_is_one_cached_result() {
+    let state = Arc::new(AppState::new(
+        Project::load(&gapwise::demo_dir()).expect("demo loads"),
+    ));
+    let pairs = [
+        (
+            "/model?covariates=literacy,log_gdp_pc&trim=0.90",
+            "/api/model?trim=0.9&covariates=log_gdp_pc,literacy,literacy&model=logit",
+        ),
+        (
+            "/api/impact?outcome=trust_parliament&predictor=age&family=linear&bootstrap=0&replicates=0",
+            "/api/impact?replicates=0&wild_replicates=0&kind=linear&predictor=age&outcome=trust_parliament&shares=equal",
+        ),
+        (
+            "/api/plan?budget=3&replicates=0",
+            "/api/plan?replicates=0&objective=effective-n&feasibility=auto&budget=%203&support=offer",
+        ),
+    ];
+    for (first, second) in pairs {
+        let before = state.cache.stats();
+        assert_eq!(get(&state, first).await, StatusCode::OK, "{first}");
+        let computed = state.cache.stats();
+        assert_eq!(computed.misses, before.misses + 1, "{first}");
+        assert_eq!(get(&state, second).await, StatusCode::OK, "{second}");
+        let after = state.cache.stats();
+        assert_eq!(after.misses, computed.misses, "{second} was computed again");
+        assert_eq!(after.hits, computed.hits + 1, "{second}");
+    }
+    let before = state.cache.stats();
+    assert_eq!(
+        get(&state, "/api/model?covariates=literacy&trim=0.9").await,
+        StatusCode::OK
+    );
+    assert_eq!(
+        state.cache.stats().misses,
+        before.misses + 1,
+        "other settings"
+    );
+}

@@ -15,6 +15,32 @@ use crate::project::{Project, WaveView};
 use crate::stats::binary;
 use crate::stats::selection_bounds::{self as sb, BootstrapIntervals};
 
+/// Why the bounds cannot be computed, by what the reader can do about it.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SelectionBoundsError {
+    /// The request names something this project cannot give (an outcome that is neither
+    /// a numeric indicator nor a survey variable, a population column that is not an
+    /// indicator, a reference that is not a number): change the setting.
+    #[error("{0}")]
+    Request(String),
+    /// The participation design cannot be built from these settings and data.
+    #[error("{0}")]
+    Design(#[from] design::DesignError),
+    /// The participation model cannot be fitted on this wave.
+    #[error("the participation model cannot be fitted: {0}")]
+    Model(#[from] binary::FitError),
+    /// The data cannot answer: no participant with a value, a missing or non-positive
+    /// population, propensities outside (0, 1].
+    #[error("{0}")]
+    Data(String),
+}
+
+impl From<sb::BoundsError> for SelectionBoundsError {
+    fn from(e: sb::BoundsError) -> Self {
+        SelectionBoundsError::Data(e.to_string())
+    }
+}
+
 /// The Λ grid shown on the impact page.
 pub const LAMBDA_GRID: [f64; 6] = [1.0, 1.1, 1.25, 1.5, 2.0, 3.0];
 /// Bootstrap replicates of the bounds unless asked otherwise.
@@ -35,7 +61,7 @@ pub enum Reference {
 
 impl Reference {
     /// `zero`, `unweighted` or a number.
-    pub fn parse(text: &str) -> Result<Reference, String> {
+    pub fn parse(text: &str) -> Result<Reference, SelectionBoundsError> {
         match text.trim() {
             "zero" => Ok(Reference::Zero),
             "unweighted" => Ok(Reference::Unweighted),
@@ -45,7 +71,9 @@ impl Reference {
                 .filter(|v| v.is_finite())
                 .map(Reference::Number)
                 .ok_or_else(|| {
-                    format!("the reference must be zero, unweighted or a number, not '{other}'")
+                    SelectionBoundsError::Request(format!(
+                        "the reference must be zero, unweighted or a number, not '{other}'"
+                    ))
                 }),
         }
     }
@@ -149,7 +177,7 @@ pub fn country_values(
     view: &WaveView,
     design: &Design,
     outcome: &str,
-) -> Result<(Vec<Option<f64>>, String), String> {
+) -> Result<(Vec<Option<f64>>, String), SelectionBoundsError> {
     if let Some(ind) = view.numeric.iter().find(|n| n.column == outcome) {
         return Ok((
             design
@@ -164,17 +192,17 @@ pub fn country_values(
     let roles = project.and_then(|p| p.manifest.microdata.as_ref());
     let micro = project.and_then(|p| p.microdata.as_ref());
     let (Some(roles), Some(micro)) = (roles, micro) else {
-        return Err(format!(
+        return Err(SelectionBoundsError::Request(format!(
             "'{outcome}' is not a numeric country indicator{}",
             if project.is_some() {
                 " and the project has no microdata"
             } else {
                 " of this frame (survey variables need a project folder with microdata)"
             }
-        ));
+        )));
     };
     if !roles.variables.contains(&outcome.to_string()) {
-        return Err(format!(
+        return Err(SelectionBoundsError::Request(format!(
             "'{outcome}' is neither a numeric country indicator ({}) nor a survey variable ({})",
             view.numeric
                 .iter()
@@ -182,7 +210,7 @@ pub fn country_values(
                 .collect::<Vec<_>>()
                 .join(", "),
             roles.variables.join(", ")
-        ));
+        )));
     }
     // Country codes as level indices: no copy of each respondent's code.
     let (countries, levels) = micro.factorise(&roles.country);
@@ -228,8 +256,8 @@ pub fn prepare(
     settings: &Settings,
     outcome: &str,
     shares: &Shares,
-) -> Result<Prepared, String> {
-    let design = design::build(view, settings).map_err(|e| e.to_string())?;
+) -> Result<Prepared, SelectionBoundsError> {
+    let design = design::build(view, settings)?;
     let (value, source) = country_values(project, view, &design, outcome)?;
     let base = match shares {
         Shares::Equal => vec![1.0; design.n()],
@@ -238,7 +266,11 @@ pub fn prepare(
                 .numeric
                 .iter()
                 .find(|n| &n.column == col)
-                .ok_or_else(|| format!("'{col}' is not a numeric country indicator"))?;
+                .ok_or_else(|| {
+                    SelectionBoundsError::Request(format!(
+                        "'{col}' is not a numeric country indicator"
+                    ))
+                })?;
             let scale = project.map(|p| p.manifest.population_scale(col));
             let people: Vec<f64> = design
                 .units
@@ -250,9 +282,9 @@ pub fn prepare(
                 .zip(&design.participated)
                 .any(|(p, &t)| t && !(p.is_finite() && *p > 0.0))
             {
-                return Err(
+                return Err(SelectionBoundsError::Data(
                     "a participating country's population is missing or not positive".to_string(),
-                );
+                ));
             }
             people
         }
@@ -296,12 +328,11 @@ fn propensities(
     z: &Array2<f64>,
     participated: &[bool],
     start: Option<&ndarray::Array1<f64>>,
-) -> Result<(Vec<f64>, bool, ndarray::Array1<f64>), String> {
+) -> Result<(Vec<f64>, bool, ndarray::Array1<f64>), binary::FitError> {
     let fit = match start {
         None => binary::fit(kind, z.view(), participated),
         Some(s) => binary::refit(kind, z.view(), participated, s, binary::SCORE_TOLERANCE),
-    }
-    .map_err(|e| e.to_string())?;
+    }?;
     let converged = fit.converged && fit.weak_directions.is_empty();
     Ok((
         binary::predict(kind, z.view(), &fit.coef),
@@ -333,13 +364,13 @@ pub fn outcome_summary(
     settings: &Settings,
     column: &str,
     lambdas: &[f64],
-) -> Result<OutcomeSummary, String> {
+) -> Result<OutcomeSummary, SelectionBoundsError> {
     let p = prepare(project, view, settings, column, &Shares::Equal)?;
     let z = p.design.standardised();
     let (e, _, _) = propensities(settings.model, &z, &p.design.participated, None)?;
     let (y, e, base) = participants(&p.value, &p.design.participated, &e, &p.base);
-    let (point, _) = sb::msm_bounds(&y, &e, &base, 1.0).map_err(|e| e.to_string())?;
-    let bounds = bounds_at(&y, &e, &base, lambdas).map_err(|e| e.to_string())?;
+    let (point, _) = sb::msm_bounds(&y, &e, &base, 1.0)?;
+    let bounds = bounds_at(&y, &e, &base, lambdas)?;
     Ok(OutcomeSummary {
         column: column.to_string(),
         weighted_mean: point,
@@ -361,15 +392,15 @@ pub fn selection_bounds(
     view: &WaveView,
     settings: &Settings,
     bs: &BoundsSettings,
-) -> Result<SelectionBounds, String> {
+) -> Result<SelectionBounds, SelectionBoundsError> {
     let p = prepare(project, view, settings, &bs.outcome, &bs.shares)?;
     let design = &p.design;
     let z = design.standardised();
     let (e_all, model_converged, estimate) =
         propensities(settings.model, &z, &design.participated, None)?;
     let (y, e, base) = participants(&p.value, &design.participated, &e_all, &p.base);
-    let bounds = bounds_at(&y, &e, &base, &bs.lambdas).map_err(|e| e.to_string())?;
-    let (weighted_mean, _) = sb::msm_bounds(&y, &e, &base, 1.0).map_err(|e| e.to_string())?;
+    let bounds = bounds_at(&y, &e, &base, &bs.lambdas)?;
+    let (weighted_mean, _) = sb::msm_bounds(&y, &e, &base, 1.0)?;
     let unweighted_mean = normalised_mean(&y, &base);
     let (reference_value, reference_label) = match bs.reference {
         Reference::Zero => (0.0, "zero".to_string()),
@@ -382,36 +413,32 @@ pub fn selection_bounds(
         ),
         Reference::Number(v) => (v, format!("{v}")),
     };
-    let breakdown =
-        sb::breakdown_lambda(&y, &e, &base, reference_value).map_err(|e| e.to_string())?;
+    let breakdown = sb::breakdown_lambda(&y, &e, &base, reference_value)?;
     let bootstrap = if bs.replicates > 0 {
         let n = design.n();
-        Some(
-            sb::percentile_bootstrap(
-                n,
-                bs.lambdas.len(),
-                bs.replicates,
-                settings.seed,
-                bs.level,
-                |rows| {
-                    let zs = z.select(Axis(0), rows);
-                    let took: Vec<bool> = rows.iter().map(|&i| design.participated[i]).collect();
-                    if took.iter().all(|&t| t) || !took.iter().any(|&t| t) {
-                        return None;
-                    }
-                    let (er, converged, _) =
-                        propensities(settings.model, &zs, &took, Some(&estimate)).ok()?;
-                    if !converged {
-                        return None;
-                    }
-                    let vr: Vec<Option<f64>> = rows.iter().map(|&i| p.value[i]).collect();
-                    let br: Vec<f64> = rows.iter().map(|&i| p.base[i]).collect();
-                    let (ys, es, bss) = participants(&vr, &took, &er, &br);
-                    bounds_at(&ys, &es, &bss, &bs.lambdas).ok()
-                },
-            )
-            .map_err(|e| e.to_string())?,
-        )
+        Some(sb::percentile_bootstrap(
+            n,
+            bs.lambdas.len(),
+            bs.replicates,
+            settings.seed,
+            bs.level,
+            |rows| {
+                let zs = z.select(Axis(0), rows);
+                let took: Vec<bool> = rows.iter().map(|&i| design.participated[i]).collect();
+                if took.iter().all(|&t| t) || !took.iter().any(|&t| t) {
+                    return None;
+                }
+                let (er, converged, _) =
+                    propensities(settings.model, &zs, &took, Some(&estimate)).ok()?;
+                if !converged {
+                    return None;
+                }
+                let vr: Vec<Option<f64>> = rows.iter().map(|&i| p.value[i]).collect();
+                let br: Vec<f64> = rows.iter().map(|&i| p.base[i]).collect();
+                let (ys, es, bss) = participants(&vr, &took, &er, &br);
+                bounds_at(&ys, &es, &bss, &bs.lambdas).ok()
+            },
+        )?)
     } else {
         None
     };

@@ -302,7 +302,7 @@ pub fn model_uncertainty(
                 None
             }
             Err(e) => {
-                out.pooled_note = Some(e);
+                out.pooled_note = Some(e.to_string());
                 None
             }
         },

@@ -252,6 +252,34 @@ impl Settings {
     }
 }
 
+impl Settings {
+    /// The same settings with the chosen indicators in the project's order (`numeric`,
+    /// `categorical`: the manifest's lists) and each named once, so that two spellings of
+    /// one choice (`a,b` and `b,a`) are one setting: the design's columns, and so every
+    /// table of a result, follow the project's order. Names the project does not have
+    /// stay, after the others in the order given, for the design to report.
+    pub fn with_indicators_in_order(mut self, numeric: &[String], categorical: &[String]) -> Self {
+        fn in_order(list: &mut Option<Vec<String>>, order: &[String]) {
+            if let Some(names) = list.as_mut() {
+                let mut ordered: Vec<String> = order
+                    .iter()
+                    .filter(|c| names.contains(c))
+                    .cloned()
+                    .collect();
+                for n in names.iter() {
+                    if !ordered.contains(n) {
+                        ordered.push(n.clone());
+                    }
+                }
+                *names = ordered;
+            }
+        }
+        in_order(&mut self.covariates, numeric);
+        in_order(&mut self.factors, categorical);
+        self
+    }
+}
+
 fn split_list(value: &str) -> Vec<String> {
     value
         .split(',')
@@ -288,6 +316,20 @@ mod tests {
         assert_eq!((s.missing, s.imputations), (MissingRule::Impute, 7));
         assert!(s.to_query().contains("imputations=7"));
         assert!(Settings::from_pairs([("imputations", "1")]).is_err());
+    }
+
+    /// Indicators in the project's order, each once; unknown names kept last (our own
+    /// rule: one choice, one setting).
+    #[test]
+    fn indicators_follow_the_project_order() {
+        let list = |v: &[&str]| v.iter().map(|s| s.to_string()).collect::<Vec<_>>();
+        let s = Settings::from_pairs([("covariates", "c,a,zz,a"), ("factors", "g,f")])
+            .unwrap()
+            .with_indicators_in_order(&list(&["a", "b", "c"]), &list(&["f", "g"]));
+        assert_eq!(s.covariates, Some(list(&["a", "c", "zz"])));
+        assert_eq!(s.factors, Some(list(&["f", "g"])));
+        let all = Settings::default().with_indicators_in_order(&list(&["a"]), &[]);
+        assert_eq!(all.covariates, None, "None (every indicator) stays None");
     }
 
     /// settings -> query -> settings gives the same settings, also for names that need

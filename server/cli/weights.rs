@@ -7,7 +7,9 @@ use serde::Serialize;
 
 use super::atomic_file::write_atomically;
 use super::universe::load_project;
-use crate::analysis::exports::{country_weights, respondent_weights, CountryWeights, WaveWeights};
+use crate::analysis::exports::{
+    country_weights, respondent_weights, CountryWeight, CountryWeights, WaveWeights,
+};
 use crate::analysis::Settings;
 use crate::csv_out::{cell, csv_text};
 use crate::project::{LoadedFile, Project};
@@ -175,23 +177,40 @@ fn respondent_table(project: &Project, countries: &CountryWeights) -> Result<Tab
     Ok(Table { csv, columns })
 }
 
+/// The first columns of every per-country export.
+const COUNTRY_COLUMNS: [&str; 6] = ["wave", "code", "name", "took_part", "propensity", "weight"];
+
+/// What the columns naming a country and whether it took part hold.
+fn identity_columns() -> Vec<Column> {
+    vec![
+        column("wave", "wave"),
+        column("code", "country code"),
+        column("name", "country name"),
+        column("took_part", "1 took part, 0 did not"),
+    ]
+}
+
+/// A country's cells under [`COUNTRY_COLUMNS`].
+fn country_cells(r: &CountryWeight) -> Vec<String> {
+    vec![
+        r.wave.to_string(),
+        r.code.clone(),
+        r.name.clone(),
+        u8::from(r.took_part).to_string(),
+        cell(r.propensity),
+        cell(r.weight),
+    ]
+}
+
 /// One row per eligible country and wave under multiple imputation: the mean weight, its
 /// range and the weight in each completed frame.
 fn imputed_country_table(countries: &CountryWeights, settings: &Settings) -> Table {
     let m = settings.imputations;
-    let mut header: Vec<String> = [
-        "wave",
-        "code",
-        "name",
-        "took_part",
-        "propensity",
-        "weight",
-        "weight_min",
-        "weight_max",
-    ]
-    .iter()
-    .map(|s| s.to_string())
-    .collect();
+    let mut header: Vec<String> = COUNTRY_COLUMNS
+        .iter()
+        .chain(&["weight_min", "weight_max"])
+        .map(|s| s.to_string())
+        .collect();
     header.extend((1..=m).map(|k| format!("weight_{k}")));
     header.push("reason".to_string());
     let refs: Vec<&str> = header.iter().map(String::as_str).collect();
@@ -200,68 +219,41 @@ fn imputed_country_table(countries: &CountryWeights, settings: &Settings) -> Tab
         countries.rows.iter().map(|r| {
             let by = r.weights_by_imputation.as_deref().unwrap_or(&[]);
             let spread = crate::stats::combine::spread(by);
-            let mut row = vec![
-                r.wave.to_string(),
-                r.code.clone(),
-                r.name.clone(),
-                u8::from(r.took_part).to_string(),
-                cell(r.propensity),
-                cell(r.weight),
-                cell(spread.map(|s| s.min)),
-                cell(spread.map(|s| s.max)),
-            ];
+            let mut row = country_cells(r);
+            row.extend([cell(spread.map(|s| s.min)), cell(spread.map(|s| s.max))]);
             row.extend((0..m).map(|k| cell(by.get(k).copied())));
             row.push(r.reason.clone().unwrap_or_default());
             row
         }),
     );
-    let columns = vec![
-        column("wave", "wave"),
-        column("code", "country code"),
-        column("name", "country name"),
-        column("took_part", "1 took part, 0 did not"),
+    let mut columns = identity_columns();
+    columns.extend([
         column("propensity", "estimated probability of taking part, mean over the imputations"),
         column("weight", "mean over the imputations of the country's weight (in each, participants' weights sum to the wave's number of countries); 0 for non-participants"),
         column("weight_min", "smallest weight over the imputations"),
         column("weight_max", "largest weight over the imputations"),
         column("weight_1..", format!("the weight in each of the {m} completed frames (seed {})", settings.seed)),
         column("reason", "why propensity and weight are empty; empty when they are not"),
-    ];
+    ]);
     Table { csv, columns }
 }
 
 /// One row per eligible country and wave.
 fn country_table(countries: &CountryWeights) -> Table {
+    let header: Vec<&str> = COUNTRY_COLUMNS.iter().chain(&["reason"]).copied().collect();
     let csv = csv_text(
-        &[
-            "wave",
-            "code",
-            "name",
-            "took_part",
-            "propensity",
-            "weight",
-            "reason",
-        ],
+        &header,
         countries.rows.iter().map(|r| {
-            vec![
-                r.wave.to_string(),
-                r.code.clone(),
-                r.name.clone(),
-                u8::from(r.took_part).to_string(),
-                cell(r.propensity),
-                cell(r.weight),
-                r.reason.clone().unwrap_or_default(),
-            ]
+            let mut row = country_cells(r);
+            row.push(r.reason.clone().unwrap_or_default());
+            row
         }),
     );
-    let columns = vec![
-        column("wave", "wave"),
-        column("code", "country code"),
-        column("name", "country name"),
-        column("took_part", "1 took part, 0 did not"),
+    let mut columns = identity_columns();
+    columns.extend([
         column("propensity", "estimated probability of taking part; empty when left out"),
         column("weight", "participants' weights sum to the wave's number of countries analysed; 0 for non-participants; empty when left out"),
         column("reason", "why propensity and weight are empty (e.g. a missing indicator value); empty when they are not"),
-    ];
+    ]);
     Table { csv, columns }
 }

@@ -87,10 +87,20 @@ pub fn settings_from_query(query: &Query) -> AppResult<Settings> {
     )?)
 }
 
-/// The project, the settings (wave filled in: the latest when not given) and the view.
+/// The settings of the query for this project: parsed, with the chosen indicators in the
+/// project's order and each named once ([`Settings::with_indicators_in_order`]), so that
+/// every spelling of one choice computes, and is cached as, one result.
+pub fn normalised_settings(project: &Project, query: &Query) -> AppResult<Settings> {
+    let indicators = &project.manifest.indicators;
+    Ok(settings_from_query(query)?
+        .with_indicators_in_order(&indicators.numeric, &indicators.categorical))
+}
+
+/// The project, the settings (normalised; wave filled in: the latest when not given) and
+/// the view.
 pub fn resolve(state: &AppState, query: &Query) -> AppResult<(Arc<Project>, Settings, WaveView)> {
     let project = state.project();
-    let mut settings = settings_from_query(query)?;
+    let mut settings = normalised_settings(&project, query)?;
     let (wave, view) = project.resolve_wave(settings.wave)?;
     settings.wave = Some(wave);
     Ok((project, settings, view))
@@ -267,38 +277,99 @@ impl SettingsForm {
     }
 }
 
-/// The cache key of a page's result: the page (by its result type), the project's
-/// revision and the normalised settings (wave filled in, then the page's own keys in a
-/// fixed order). `None` when the settings do not parse; the computation then reports why.
-/// The current name of a page key that is still read under an older one, so that both
-/// spellings of the same settings share one cached result.
-fn current_name(key: &str) -> &str {
-    match key {
-        "bootstrap" => "wild_replicates",
-        "family" => "kind",
-        other => other,
+/// A page's own settings, beyond the analysis settings, as its cache key holds them:
+/// parsed by the page's own parser and serialised canonically (every field, defaults
+/// filled in, older key names read as the current ones), so that every spelling of the
+/// same settings shares one cached result and settings that differ never do. Every page
+/// result type says which parser reads its query; a page that reads no key of its own
+/// gives nothing, so that other pages' keys carried in its address do not split its
+/// cache. (A result type without an implementation does not compile with the cache.)
+pub trait PageSettings {
+    /// The canonical text of the page's own settings; an error when they do not parse
+    /// (the result is then computed uncached, and says why).
+    fn own_settings(project: &Project, query: &Query) -> AppResult<String>;
+}
+
+/// Pages that read no key of their own.
+macro_rules! no_own_settings {
+    ($($t:ty),* $(,)?) => {$(
+        impl PageSettings for $t {
+            fn own_settings(_: &Project, _: &Query) -> AppResult<String> {
+                Ok(String::new())
+            }
+        }
+    )*};
+}
+
+no_own_settings!(
+    (SettingsForm, super::balance::BalanceResult),
+    super::coverage::CoverageResult,
+    (SettingsForm, crate::analysis::participation::FitReport),
+    crate::analysis::overview::Overview,
+    crate::analysis::imputed::ImputationSummary,
+    (SettingsForm, crate::analysis::sensitivity::Sensitivity),
+);
+
+/// The canonical text of a typed settings value: its JSON, fields in their declared order.
+fn canonical<T: Serialize>(settings: &T) -> AppResult<String> {
+    serde_json::to_string(settings)
+        .map_err(|e| super::error::AppError::Internal(format!("settings not serialisable: {e}")))
+}
+
+impl PageSettings for super::plan::PlanResult {
+    fn own_settings(_: &Project, query: &Query) -> AppResult<String> {
+        canonical(&super::plan::plan_settings(query)?)
     }
 }
 
-fn page_key<T>(state: &AppState, query: &Query) -> Option<CacheKey> {
+impl PageSettings for super::impact::ImpactResult {
+    fn own_settings(project: &Project, query: &Query) -> AppResult<String> {
+        canonical(&super::impact::impact_settings(project, query)?)
+    }
+}
+
+impl PageSettings for crate::analysis::selection_bounds::SelectionBounds {
+    fn own_settings(project: &Project, query: &Query) -> AppResult<String> {
+        canonical(&super::impact_bounds::bounds_settings(project, query)?)
+    }
+}
+
+impl PageSettings
+    for (
+        SettingsForm,
+        crate::analysis::projection::ProjectionReport,
+        Vec<String>,
+    )
+{
+    fn own_settings(project: &Project, query: &Query) -> AppResult<String> {
+        canonical(&(
+            super::projection::projection_settings(project, query)?,
+            super::projection::projection_options(query)?,
+        ))
+    }
+}
+
+impl PageSettings for super::report::ReportHtml {
+    fn own_settings(project: &Project, query: &Query) -> AppResult<String> {
+        canonical(&super::report::report_settings(project, query)?)
+    }
+}
+
+/// The cache key of a page's result: the page (by its result type), the project's
+/// revision, the normalised analysis settings (wave filled in) and the page's own typed
+/// settings ([`PageSettings`]). `None` when the settings do not parse; the computation
+/// then reports why.
+fn page_key<T: PageSettings>(state: &AppState, query: &Query) -> Option<CacheKey> {
     let project = state.project();
-    let mut settings = settings_from_query(query).ok()?;
+    let mut settings = normalised_settings(&project, query).ok()?;
     if settings.wave.is_none() {
         settings.wave = project.waves.last().copied();
     }
-    let mut own: Vec<(&str, &str)> = query
-        .iter()
-        .filter(|(k, _)| own_key(k))
-        .map(|(k, v)| (current_name(k), v.as_str()))
-        .collect();
-    // Stable: repeated keys (predictors, joiners) keep their order, which the result shows.
-    own.sort_by_key(|(k, _)| *k);
-    let mut canonical = form_urlencoded::Serializer::new(settings.to_query());
-    canonical.extend_pairs(own);
+    let own = T::own_settings(&project, query).ok()?;
     Some(CacheKey::new(
         project.revision,
         std::any::type_name::<T>(),
-        canonical.finish(),
+        format!("{}&{own}", settings.to_query()),
     ))
 }
 
@@ -310,7 +381,7 @@ pub fn cached<T>(
     compute: fn(&AppState, &Query) -> AppResult<T>,
 ) -> AppResult<Arc<T>>
 where
-    T: Serialize + Send + Sync + 'static,
+    T: PageSettings + Serialize + Send + Sync + 'static,
 {
     match page_key::<T>(state, query) {
         Some(key) => state.cache.get_or_compute(&key, || compute(state, query)),
@@ -326,7 +397,7 @@ pub async fn off_thread<T>(
     compute: fn(&AppState, &Query) -> AppResult<T>,
 ) -> AppResult<T>
 where
-    T: Clone + Serialize + Send + Sync + 'static,
+    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
 {
     run(Lane::Light, state, query, compute).await
 }
@@ -339,7 +410,7 @@ pub async fn off_thread_heavy<T>(
     compute: fn(&AppState, &Query) -> AppResult<T>,
 ) -> AppResult<T>
 where
-    T: Clone + Serialize + Send + Sync + 'static,
+    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
 {
     run(Lane::Heavy, state, query, compute).await
 }
@@ -351,7 +422,7 @@ async fn run<T>(
     compute: fn(&AppState, &Query) -> AppResult<T>,
 ) -> AppResult<T>
 where
-    T: Clone + Serialize + Send + Sync + 'static,
+    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
 {
     let key = page_key::<T>(state, query);
     let (job_state, query) = (Arc::clone(state), query.clone());
@@ -362,12 +433,229 @@ where
 }
 
 #[cfg(test)]
-mod key_name_tests {
-    /// Older key names map to the current ones (our own rule: one cached result per setting).
+mod cache_key_tests {
+    //! Our own rule (issue 12): one cached result per setting. Every spelling of the same
+    //! settings gives one key; settings that change a result give another.
+    use super::*;
+    use crate::analysis::participation::FitReport;
+    use crate::analysis::projection::ProjectionReport;
+
+    type Model = (SettingsForm, FitReport);
+    type Projection = (SettingsForm, ProjectionReport, Vec<String>);
+
+    fn state() -> AppState {
+        AppState::new(Project::load(&crate::demo_dir()).expect("demo loads"))
+    }
+
+    fn query(text: &str) -> Query {
+        form_urlencoded::parse(text.as_bytes())
+            .into_owned()
+            .collect()
+    }
+
+    /// A page's result type, by what the tests need of it: its cache key and its own
+    /// settings.
+    struct Page {
+        key: fn(&AppState, &Query) -> Option<CacheKey>,
+        own: fn(&Project, &Query) -> AppResult<String>,
+    }
+
+    fn page<T: PageSettings>() -> Page {
+        Page {
+            key: page_key::<T>,
+            own: T::own_settings,
+        }
+    }
+
+    fn named(page_name: &str) -> Page {
+        match page_name {
+            "model" => page::<Model>(),
+            "plan" => page::<super::super::plan::PlanResult>(),
+            "impact" => page::<super::super::impact::ImpactResult>(),
+            "bounds" => page::<crate::analysis::selection_bounds::SelectionBounds>(),
+            "projection" => page::<Projection>(),
+            "report" => page::<super::super::report::ReportHtml>(),
+            other => panic!("no page {other}"),
+        }
+    }
+
+    /// The key of `page`'s result for the query `text`.
+    fn key(state: &AppState, page: &str, text: &str) -> CacheKey {
+        (named(page).key)(state, &query(text)).unwrap_or_else(|| panic!("{page}?{text} has a key"))
+    }
+
     #[test]
-    fn older_key_names_share_the_current_key() {
-        assert_eq!(super::current_name("bootstrap"), "wild_replicates");
-        assert_eq!(super::current_name("family"), "kind");
-        assert_eq!(super::current_name("replicates"), "replicates");
+    fn spellings_of_the_same_settings_share_one_key() {
+        let state = state();
+        let latest = *state.project().waves.last().expect("waves");
+        let spelled_out = format!("wave={latest}&model=logit&weighting=entropy&trim=none");
+        let same = [
+            ("model", "", spelled_out.as_str()),
+            (
+                "model",
+                "covariates=literacy,log_gdp_pc&trim=0.90",
+                "trim=0.9&covariates=log_gdp_pc,literacy,literacy",
+            ),
+            ("model", "factors=region,electoral_system", "factors=electoral_system,region"),
+            // Other pages' keys do not split a page that does not read them.
+            ("model", "", "outcome=age&budget=3&reference=zero"),
+            (
+                "plan",
+                "",
+                "objective=effective-n&replicates=100&feasibility=auto&support=offer&budget=",
+            ),
+            ("plan", "budget=3", "budget=%203"),
+            (
+                "impact",
+                "outcome=trust_parliament&family=logistic&bootstrap=19",
+                "wild_replicates=19&kind=logistic&outcome=trust_parliament",
+            ),
+            (
+                "impact",
+                "",
+                "outcome=trust_parliament&predictor=age&predictor=female&predictor=education&kind=linear&shares=equal&wild_replicates=399",
+            ),
+            ("bounds", "", "reference=unweighted&bounds_bootstrap=199"),
+            ("projection", "", "outcome=trust_parliament&shares=equal"),
+            ("report", "", "waves=&model=logit"),
+        ];
+        for (page, a, b) in same {
+            assert_eq!(
+                key(&state, page, a),
+                key(&state, page, b),
+                "{page}: {a} | {b}"
+            );
+        }
+        // One page's result is never another's.
+        assert_ne!(key(&state, "model", ""), key(&state, "plan", ""));
+    }
+
+    /// Every field of every page's typed settings, with a change of it in the query (the
+    /// base query first); fields no query key sets are listed in `FIXED`.
+    const CHANGES: [(&str, &str, &str, &str); 37] = [
+        ("settings", "wave", "", "wave=3"),
+        ("settings", "model", "", "model=probit"),
+        ("settings", "weighting", "", "weighting=raking"),
+        ("settings", "covariates", "", "covariates=literacy"),
+        ("settings", "factors", "", "factors=region"),
+        ("settings", "trim", "", "trim=0.95"),
+        ("settings", "missing", "", "missing=median-fill"),
+        ("settings", "match_variances", "", "variances=1"),
+        ("settings", "seed", "", "seed=5"),
+        (
+            "settings",
+            "imputations",
+            "missing=impute",
+            "missing=impute&imputations=5",
+        ),
+        ("plan", "budget", "", "budget=3"),
+        ("plan", "cost_budget", "", "cost_budget=1000"),
+        ("plan", "cost_column", "", "cost_column=support_cost"),
+        ("plan", "feasibility", "", "feasibility=model"),
+        ("plan", "objective", "", "objective=largest-smd"),
+        ("plan", "replicates", "", "replicates=50"),
+        ("plan", "joiners", "joiner=XAB", "joiner=XAC"),
+        ("plan", "support", "", "support=none"),
+        ("impact", "outcome", "", "outcome=left_right"),
+        (
+            "impact",
+            "predictors",
+            "predictor=age",
+            "predictor=age&predictor=female",
+        ),
+        ("impact", "kind", "", "kind=logistic"),
+        (
+            "impact",
+            "country_indicators",
+            "",
+            "country_indicator=log_gdp_pc",
+        ),
+        (
+            "impact",
+            "shares",
+            "",
+            "shares=population&population=log_population",
+        ),
+        ("impact", "replicates", "", "replicates=49"),
+        ("impact", "wild_replicates", "", "wild_replicates=19"),
+        ("bounds", "outcome", "", "outcome=left_right"),
+        (
+            "bounds",
+            "shares",
+            "",
+            "shares=population&population=log_population",
+        ),
+        ("bounds", "reference", "", "reference=zero"),
+        ("bounds", "replicates", "", "bounds_bootstrap=49"),
+        ("projection", "outcome", "", "outcome=age"),
+        ("projection", "predictors", "", "predictor=age"),
+        ("projection", "shares", "", "shares=population"),
+        ("report", "settings", "", "model=firth"),
+        ("report", "waves", "", "waves=all"),
+        ("report", "plan", "", "budget=3"),
+        ("report", "impact", "", "outcome=left_right"),
+        ("report", "impact", "", "impact_replicates=9"),
+    ];
+
+    /// Fields that no query key sets (fixed on the pages).
+    const FIXED: [(&str, &str); 3] = [
+        ("plan", "random_draws"),
+        ("bounds", "lambdas"),
+        ("bounds", "level"),
+    ];
+
+    /// The field names of a page's typed settings, read from their canonical JSON.
+    fn fields(project: &Project, page: &str) -> Vec<String> {
+        let text = match page {
+            "settings" => canonical(&Settings::default()),
+            other => (named(other).own)(project, &Query::new()),
+        }
+        .expect("default settings parse");
+        let value: serde_json::Value = serde_json::from_str(&text).expect("json");
+        // The projection's settings are a pair: the request and its options.
+        let objects = match value {
+            serde_json::Value::Array(parts) => parts,
+            one => vec![one],
+        };
+        objects
+            .iter()
+            .flat_map(|o| o.as_object().expect("an object").keys().cloned())
+            .collect()
+    }
+
+    #[test]
+    fn settings_that_differ_never_share_a_key() {
+        let state = state();
+        for (page, field, base, changed) in CHANGES {
+            // The analysis settings are in every page's key; the model page stands for them.
+            let page = if page == "settings" { "model" } else { page };
+            assert_ne!(
+                key(&state, page, base),
+                key(&state, page, changed),
+                "{page}: {field} ({base} | {changed})"
+            );
+        }
+        // Every field of every page's settings is changed above or fixed.
+        let project = state.project();
+        for page in [
+            "settings",
+            "plan",
+            "impact",
+            "bounds",
+            "projection",
+            "report",
+        ] {
+            let fields = fields(&project, page);
+            assert!(fields.len() >= 2, "{page}: {fields:?}");
+            for f in fields {
+                assert!(
+                    CHANGES
+                        .iter()
+                        .any(|(p, name, _, _)| *p == page && *name == f)
+                        || FIXED.contains(&(page, f.as_str())),
+                    "{page}.{f}: no query change tests it"
+                );
+            }
+        }
     }
 }

@@ -34,7 +34,7 @@ struct CoveragePage<'a> {
 
 /// The coverage page's result; under multiple imputation the map is of the first
 /// completed frame, and the countries with filled values are named in the last element.
-type CoverageResult = (
+pub(crate) type CoverageResult = (
     SettingsForm,
     CoverageReport,
     Option<IncompleteCountries>,

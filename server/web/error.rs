@@ -95,6 +95,22 @@ impl From<crate::analysis::projection::ProjectionError> for AppError {
     }
 }
 
+impl From<crate::analysis::selection_bounds::SelectionBoundsError> for AppError {
+    fn from(e: crate::analysis::selection_bounds::SelectionBoundsError) -> Self {
+        use crate::analysis::selection_bounds::SelectionBoundsError;
+        match e {
+            SelectionBoundsError::Request(m) => AppError::BadRequest(m),
+            // As on every other page: a design or model this wave cannot give is 422.
+            SelectionBoundsError::Design(d) => {
+                crate::analysis::participation::AnalysisError::from(d).into()
+            }
+            SelectionBoundsError::Model(_) | SelectionBoundsError::Data(_) => {
+                AppError::Unprocessable(e.to_string())
+            }
+        }
+    }
+}
+
 impl From<askama::Error> for AppError {
     fn from(e: askama::Error) -> Self {
         AppError::Internal(format!("a page template failed: {e}"))
@@ -307,5 +323,36 @@ mod tests {
         // The message is kept as it was.
         let e: AppError = PlanError::Request("budget must be positive".into()).into();
         assert_eq!(e.to_string(), "budget must be positive");
+    }
+
+    /// The sensitivity bounds' errors follow the same rule as the other analyses' (RFC
+    /// 9110 as above): a setting to change is 400, data that cannot answer is 422.
+    #[test]
+    fn selection_bounds_errors_answer_like_the_other_analyses() {
+        use crate::analysis::selection_bounds::{Reference, SelectionBoundsError};
+        use crate::stats::binary::FitError;
+        use crate::stats::selection_bounds::BoundsError;
+        let status = |e: SelectionBoundsError| AppError::from(e).status().as_u16();
+        let bad_reference = Reference::parse("abc").expect_err("not a reference");
+        assert_eq!(status(bad_reference.clone()), 400);
+        assert!(AppError::from(bad_reference)
+            .to_string()
+            .contains("the reference must be zero, unweighted or a number, not 'abc'"));
+        assert_eq!(
+            status(SelectionBoundsError::Request(
+                "'x' is not an indicator".into()
+            )),
+            400
+        );
+        assert_eq!(
+            status(SelectionBoundsError::Design(DesignError("constant".into()))),
+            422
+        );
+        assert_eq!(status(FitError::Singular.into()), 422);
+        assert_eq!(status(BoundsError::Empty.into()), 422);
+        assert_eq!(
+            status(SelectionBoundsError::Data("population missing".into())),
+            422
+        );
     }
 }

@@ -37,7 +37,7 @@ pub fn bounds_settings(
     };
     let reference = match get("reference") {
         None => Reference::Unweighted,
-        Some(v) => Reference::parse(&v).map_err(AppError::BadRequest)?,
+        Some(v) => Reference::parse(&v)?,
     };
     let replicates = match get("bounds_bootstrap") {
         None => DEFAULT_REPLICATES,
@@ -64,7 +64,7 @@ pub fn bounds_settings(
 fn compute(state: &AppState, query: &PageQuery) -> AppResult<SelectionBounds> {
     let (project, settings, view) = resolve(state, query)?;
     let bs = bounds_settings(&project, query)?;
-    selection_bounds(Some(&project), &view, &settings, &bs).map_err(AppError::BadRequest)
+    Ok(selection_bounds(Some(&project), &view, &settings, &bs)?)
 }
 
 /// What the impact page shows of the bounds (see `impact_bounds.html`).

@@ -9,7 +9,7 @@ use axum::extract::{Query, State};
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
 
-use super::context::{self, off_thread_heavy, settings_from_query, Query as PageQuery};
+use super::context::{self, off_thread_heavy, Query as PageQuery};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
 use super::impact::{impact_query, impact_settings, side_by_side, Cell};
@@ -71,7 +71,7 @@ struct ReportPage<'a> {
 /// line's options under the same names): the analysis settings, `waves` (`3,4` or `all`),
 /// the planner's keys and the impact view's keys, each parsed by its page's own parser.
 pub fn report_settings(project: &Project, query: &PageQuery) -> AppResult<ReportSettings> {
-    let settings = settings_from_query(query)?;
+    let settings = context::normalised_settings(project, query)?;
     let waves = query
         .iter()
         .rev()
@@ -512,7 +512,7 @@ impl Parts for CachedParts<'_> {
 
 /// The rendered report, as the cache keeps it.
 #[derive(Clone, serde::Serialize)]
-struct ReportHtml {
+pub(crate) struct ReportHtml {
     html: String,
     filename: String,
 }
