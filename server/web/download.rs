@@ -27,7 +27,7 @@ use axum::middleware::Next;
 use axum::response::{IntoResponse, Response};
 use serde::Serialize;
 
-use super::context::{own_key, settings_from_query, Query};
+use super::context::{normalised_settings, own_key, Query};
 use super::state::AppState;
 use crate::analysis::impact::ImpactSettings;
 use crate::analysis::planner::PlanSettings;
@@ -102,7 +102,9 @@ struct Described {
 
 fn describe(state: &AppState, path: &str, query: &Query) -> Option<Described> {
     let project = state.project();
-    let mut settings = settings_from_query(query).ok()?;
+    // The same normalised settings as the result the download renders (indicators in the
+    // project's order), so the footnote and sidecar describe exactly that result.
+    let mut settings = normalised_settings(&project, query).ok()?;
     if settings.wave.is_none() {
         settings.wave = project.waves.last().copied();
     }
