@@ -81,8 +81,8 @@ fn main() {
         let report = multilevel_file(&path, &request).expect("fit");
         let seconds = start.elapsed().as_secs_f64();
         println!(
-            "{} ({}): {seconds:.2} s read included (target < {limit} s); country SD {:.4}, converged {}",
-            report.kind, report.method, report.country_sd, report.converged
+            "{} ({}): {seconds:.2} s read included (target < {limit} s); country SD {:.4}, converged {}, {} iterations",
+            report.kind, report.method, report.country_sd, report.converged, report.iterations
         );
     }
     projection_page();

@@ -1024,9 +1024,17 @@ fn at_zero(d: &Grouped) -> AtZero {
     use rayon::prelude::*;
     let p = d.p;
     let groups = d.start.len() - 1;
-    // Per country at beta: log-likelihood, score (p), information (p x p), S_j, I_j.
+    /// One country's sums at beta: log-likelihood, score (p), lower triangle of the
+    /// information (p x p, row-major), S_j and I_j.
+    struct CountrySums {
+        ll: f64,
+        score: Vec<f64>,
+        info: Vec<f64>,
+        s: f64,
+        v: f64,
+    }
     let sums = |beta: &Array1<f64>| -> (f64, Array1<f64>, Array2<f64>, f64) {
-        let parts: Vec<(f64, Vec<f64>, Vec<f64>, f64, f64)> = (0..groups)
+        let parts: Vec<CountrySums> = (0..groups)
             .into_par_iter()
             .map(|j| {
                 let mut ll = 0.0;
@@ -1051,20 +1059,26 @@ fn at_zero(d: &Grouped) -> AtZero {
                         }
                     }
                 }
-                (ll, score, info, s, v)
+                CountrySums {
+                    ll,
+                    score,
+                    info,
+                    s,
+                    v,
+                }
             })
             .collect();
         let mut ll = 0.0;
         let mut score = Array1::<f64>::zeros(p);
         let mut info = Array2::<f64>::zeros((p, p));
         let mut tau2_score = 0.0;
-        for (l, sc, inf, s, v) in parts {
-            ll += l;
-            tau2_score += (s * s - v) / 2.0;
+        for c in parts {
+            ll += c.ll;
+            tau2_score += (c.s * c.s - c.v) / 2.0;
             for a in 0..p {
-                score[a] += sc[a];
+                score[a] += c.score[a];
                 for b in 0..=a {
-                    info[[a, b]] += inf[a * p + b];
+                    info[[a, b]] += c.info[a * p + b];
                 }
             }
         }
