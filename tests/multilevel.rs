@@ -817,6 +817,30 @@ fn logistic_projection_of_the_demo_reports_the_boundary() {
     let (low, high) = (f(&r["universe_low"]), f(&r["universe_high"]));
     let estimate = f(&r["universe_estimate"]);
     assert!(0.0 < low && low < estimate && estimate < high && high < 1.0);
+    // The impact view's projection variant says it too.
+    let impact = http(
+        addr,
+        "GET",
+        &format!("/api/impact?{query}&kind=logistic&replicates=0&wild_replicates=0"),
+        &[],
+    );
+    assert_eq!(impact.status, 200, "{}", impact.body);
+    let i: Value = serde_json::from_str(&impact.body).unwrap();
+    let variant = i["variants"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|v| v["key"] == "multilevel-projection")
+        .expect("the projection variant");
+    assert!((f(&variant["pooled"]["estimate"]) - estimate).abs() < 1e-12);
+    assert!(
+        variant["se_kind"]
+            .as_str()
+            .unwrap()
+            .contains("estimated at its boundary, 0"),
+        "{}",
+        variant["se_kind"]
+    );
 }
 
 /// The meeting report carries the projection's map as inline SVG: one hover-titled marker
