@@ -201,7 +201,8 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
         html.contains("outcome Left right; predictors Age, Education"),
         "{html}"
     );
-    assert!(html.contains("A linear random-intercept model of left_right"));
+    assert!(html.contains("A linear random-intercept model of Left right on"));
+    assert!(!html.contains("model of left_right"));
     assert!(html.contains("What if XAB joined"));
     let addr = start_server(&demo_dir());
     let impact: Value = serde_json::from_str(

@@ -779,11 +779,12 @@ fn projection_variant(
             max_abs_smd: None,
             worse_than_none: false,
             se_kind: format!(
-                "95% prediction interval by simulation from the fitted {} multilevel model ({} draws, seed {}); the model's respondent predictors: {}; every eligible country counts the same",
+                "95% prediction interval by simulation from the fitted {} multilevel model ({} draws, seed {}); the model's respondent predictors: {}; every eligible country counts the same{}",
                 p.method,
                 p.draws,
                 p.seed,
-                if ps.predictors.is_empty() { "none".to_string() } else { ps.predictors.join(", ") }
+                if ps.predictors.is_empty() { "none".to_string() } else { ps.predictors.join(", ") },
+                if p.at_boundary { "; the country SD is estimated at its boundary, 0, so the interval leaves out variation between countries" } else { "" }
             ),
             bootstrap: TermsBootstrap {
                 bootstrap_note: Some(

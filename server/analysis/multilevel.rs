@@ -48,11 +48,16 @@ pub struct MultilevelReport {
     pub countries: usize,
     pub dropped: usize,
     pub converged: bool,
+    /// The country SD is estimated at its boundary, 0 (said in `note`).
+    pub at_boundary: bool,
+    /// Iterations of the outer search (see `MultilevelFit::iterations`).
+    pub iterations: usize,
     /// Countries in order, with their conditional modes and conditional variances.
     pub country_codes: Vec<String>,
     pub modes: Vec<f64>,
     pub mode_variance: Vec<f64>,
-    /// Set when design weights were used: the standard errors are approximate.
+    /// Set when the country SD is at its boundary, 0, and when design weights were used
+    /// (the standard errors are then approximate).
     pub note: Option<String>,
 }
 
@@ -119,6 +124,15 @@ pub fn multilevel_file(path: &Path, req: &Request) -> Result<MultilevelReport, M
     };
     let mut terms = vec!["intercept".to_string()];
     terms.extend(req.predictors.iter().cloned());
+    let notes: Vec<&str> = [
+        fit.at_boundary.then_some(multilevel::BOUNDARY_NOTE),
+        fit.weighted.then_some(
+            "design weights by pseudo-likelihood, scaled to each country's effective sample size: estimates and standard errors are approximate",
+        ),
+    ]
+    .into_iter()
+    .flatten()
+    .collect();
     Ok(MultilevelReport {
         kind: match req.kind {
             Kind::Linear => "linear",
@@ -136,11 +150,11 @@ pub fn multilevel_file(path: &Path, req: &Request) -> Result<MultilevelReport, M
         countries: fit.groups,
         dropped: data.dropped,
         converged: fit.converged,
+        at_boundary: fit.at_boundary,
+        iterations: fit.iterations,
         country_codes: data.clusters,
         modes: fit.modes,
         mode_variance: fit.mode_variance,
-        note: fit.weighted.then(|| {
-            "design weights by pseudo-likelihood, scaled to each country's effective sample size: estimates and standard errors are approximate".to_string()
-        }),
+        note: (!notes.is_empty()).then(|| notes.join("; ")),
     })
 }

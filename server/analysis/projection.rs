@@ -73,6 +73,18 @@ pub struct ProjectedCountry {
     pub composition: Option<&'static str>,
 }
 
+impl ProjectionReport {
+    /// The readable label of one of the report's indicators (the column itself when it is
+    /// not one of them).
+    pub fn indicator_label<'a>(&'a self, column: &'a str) -> &'a str {
+        self.indicators
+            .iter()
+            .position(|c| c == column)
+            .and_then(|k| self.indicator_labels.get(k))
+            .map_or(column, String::as_str)
+    }
+}
+
 impl ProjectedCountry {
     /// Absent and outside the participants' support (range or hull).
     pub fn flagged(&self) -> bool {
@@ -106,6 +118,13 @@ pub struct ProjectionReport {
     pub outcome: String,
     pub predictors: Vec<String>,
     pub indicators: Vec<String>,
+    /// Readable labels (the manifest's, else derived from the column name) of the
+    /// outcome, the respondent predictors and the indicators, for pages and charts.
+    pub outcome_label: String,
+    pub predictor_labels: Vec<String>,
+    pub indicator_labels: Vec<String>,
+    /// Per term of `terms`, its readable label.
+    pub term_labels: Vec<String>,
     /// "linear" or "logistic" (a binary outcome).
     pub kind: &'static str,
     /// The model: intercept, respondent predictors, then standardised indicators.
@@ -118,6 +137,8 @@ pub struct ProjectionReport {
     /// How the countries' predictions and the interval are made, in words.
     pub projection_method: String,
     pub converged: bool,
+    /// The country SD is estimated at its boundary, 0 (a note says what that means).
+    pub at_boundary: bool,
     pub n_respondents: usize,
     pub n_participants: usize,
     pub n_absent: usize,
@@ -129,8 +150,9 @@ pub struct ProjectionReport {
     pub universe_high: f64,
     /// How countries count in the universe estimate: "equal" or "population".
     pub shares: &'static str,
-    /// The population column when countries count by population.
+    /// The population column when countries count by population, and its label.
     pub population_column: Option<String>,
+    pub population_label: Option<String>,
     pub seed: u64,
     pub draws: usize,
     pub flagged: usize,
@@ -491,7 +513,8 @@ pub fn projection_with(
     let all_rows: Vec<usize> = (0..rows.len()).collect();
     let cells_of = |m: &[usize]| -> Cells {
         if binary {
-            representatives(m, &eta, &x, kr, CELLS)
+            distinct_cells(m, &x, kr, CELLS)
+                .unwrap_or_else(|| representatives(m, &eta, &x, kr, CELLS))
         } else {
             let mut mean = vec![0.0; kr];
             for &r in m {
@@ -916,8 +939,28 @@ pub fn projection_with(
             .iter()
             .map(|&c| format!("{} (standardised)", view.numeric[c].column)),
     );
+    let label = |c: &str| project.manifest.label(c).into_owned();
+    let predictor_labels: Vec<String> = ps.predictors.iter().map(|p| label(p)).collect();
+    let indicator_labels: Vec<String> = indicators
+        .iter()
+        .map(|&c| label(&view.numeric[c].column))
+        .collect();
+    let term_labels: Vec<String> = std::iter::once("intercept".to_string())
+        .chain(predictor_labels.iter().cloned())
+        .chain(
+            indicator_labels
+                .iter()
+                .map(|l| format!("{l} (standardised)")),
+        )
+        .collect();
     if !fit.converged {
         notes.push("the multilevel model did not converge: treat the projection with care".into());
+    }
+    if fit.at_boundary {
+        notes.push(format!(
+            "{}; the projections carry no country effect and the interval leaves out any uncertainty about variation between countries",
+            multilevel::BOUNDARY_NOTE
+        ));
     }
     let composition = match (&project.composition, &file_positions, from_file) {
         (None, _, _) => "absent countries: the participants' pooled respondent composition (the project has no composition file)",
@@ -951,6 +994,10 @@ pub fn projection_with(
             .iter()
             .map(|&c| view.numeric[c].column.clone())
             .collect(),
+        outcome_label: label(&ps.outcome),
+        predictor_labels,
+        indicator_labels,
+        term_labels,
         kind: if binary { "logistic" } else { "linear" },
         terms,
         coef: fit.coef.clone(),
@@ -960,6 +1007,7 @@ pub fn projection_with(
         method: if binary { "Laplace" } else { "REML" },
         projection_method,
         converged: fit.converged,
+        at_boundary: fit.at_boundary,
         n_respondents: rows.len(),
         n_participants: n_groups,
         n_absent: absent.len(),
@@ -972,6 +1020,7 @@ pub fn projection_with(
             CountryShares::Equal => "equal",
             CountryShares::Population => "population",
         },
+        population_label: population_column.as_deref().map(label),
         population_column,
         seed,
         draws: DRAWS,

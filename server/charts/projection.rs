@@ -45,7 +45,7 @@ fn ramp(t: f64) -> RGBColor {
 pub fn component_map(r: &ProjectionReport) -> String {
     let title = format!(
         "Projected {} on the map of the eligible universe",
-        r.outcome
+        r.outcome_label
     );
     if let Some(e) = &r.map_error {
         return failed_chart(&title, e);
@@ -209,7 +209,7 @@ pub fn component_map(r: &ProjectionReport) -> String {
                         "{} ({}): {status}; predicted {} {}{interval}",
                         c.name,
                         c.code,
-                        r.outcome,
+                        r.outcome_label,
                         super::tick(s.3, digits + 1)
                     ),
                 )

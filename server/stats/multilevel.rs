@@ -111,9 +111,20 @@ pub struct MultilevelFit {
     /// Countries with at least one respondent.
     pub groups: usize,
     pub converged: bool,
+    /// The country-level variance is estimated at its boundary, 0 (lme4 calls such a fit
+    /// singular): tau = 0, the modes 0, and the fixed effects those of the model without
+    /// country effects.
+    pub at_boundary: bool,
+    /// Iterations of the outer search (logistic: Newton steps over (b, log tau); linear:
+    /// golden-section steps over rho).
+    pub iterations: usize,
     /// Design weights were used (pseudo-likelihood; approximate).
     pub weighted: bool,
 }
+
+/// What a fit at the boundary says, for users.
+pub const BOUNDARY_NOTE: &str =
+    "the country-level variance is estimated at its boundary, 0: the data show no variation between countries beyond what the predictors explain, so the model reduces to one without country effects";
 
 fn check(data: &Data) -> Result<(), MultilevelError> {
     let (n, p) = data.x.dim();
@@ -287,8 +298,9 @@ impl LinearSums {
 }
 
 /// Minimises a function of one variable on [0, inf): a coarse log grid, then golden-section
-/// search between the grid neighbours of the best point. Returns (argmin, min, converged).
-fn minimise_nonnegative(f: impl Fn(f64) -> f64) -> (f64, f64, bool) {
+/// search between the grid neighbours of the best point. Returns (argmin, min, converged,
+/// golden-section iterations).
+fn minimise_nonnegative(f: impl Fn(f64) -> f64) -> (f64, f64, bool, usize) {
     let mut grid = vec![0.0];
     grid.extend((-16..=16).map(|k| 10f64.powf(k as f64 / 4.0)));
     let values: Vec<f64> = grid.iter().map(|&r| f(r)).collect();
@@ -304,7 +316,7 @@ fn minimise_nonnegative(f: impl Fn(f64) -> f64) -> (f64, f64, bool) {
             },
         );
     if !values[best].is_finite() {
-        return (f64::NAN, f64::NAN, false);
+        return (f64::NAN, f64::NAN, false, 0);
     }
     let mut lo = if best == 0 { 0.0 } else { grid[best - 1] };
     let mut hi = if best + 1 < grid.len() {
@@ -341,7 +353,7 @@ fn minimise_nonnegative(f: impl Fn(f64) -> f64) -> (f64, f64, bool) {
         x = 0.0;
         fx = f0;
     }
-    (x, fx, best + 1 < grid.len() && iterations < 200)
+    (x, fx, best + 1 < grid.len() && iterations < 200, iterations)
 }
 
 /// Fits the linear random-intercept model by REML or ML (see the module comment).
@@ -358,7 +370,7 @@ pub fn fit_linear(data: &Data, criterion: Criterion) -> Result<MultilevelFit, Mu
     if linalg::cholesky(sums.xtx.view()).is_err() {
         return Err(MultilevelError::Singular);
     }
-    let (rho, dev, converged) = minimise_nonnegative(|r| sums.deviance(r, criterion));
+    let (rho, dev, converged, iterations) = minimise_nonnegative(|r| sums.deviance(r, criterion));
     if !dev.is_finite() {
         return Err(MultilevelError::Singular);
     }
@@ -417,6 +429,8 @@ pub fn fit_linear(data: &Data, criterion: Criterion) -> Result<MultilevelFit, Mu
         n: data.y.len(),
         groups,
         converged,
+        at_boundary: rho == 0.0,
+        iterations,
         weighted: data.weight.is_some(),
     })
 }
@@ -769,7 +783,8 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     if groups < 2 {
         return Err(MultilevelError::TooFewGroups(groups));
     }
-    // Starting values: an ordinary logistic regression (Newton), log tau = log 0.5.
+    // Starting values and the boundary: the ordinary logistic regression, which is the
+    // model at tau = 0; log tau starts at log 0.5.
     let xtx = {
         let mut m = Array2::<f64>::zeros((p, p));
         for r in 0..n {
@@ -785,31 +800,12 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     if linalg::cholesky(xtx.view()).is_err() {
         return Err(MultilevelError::Singular);
     }
-    let mut beta = Array1::<f64>::zeros(p);
-    for _ in 0..30 {
-        let mut info = Array2::<f64>::eye(p) * 1e-8;
-        let mut score = Array1::<f64>::zeros(p);
-        for r in 0..n {
-            let row = &grouped.x[r * p..(r + 1) * p];
-            let eta: f64 = row.iter().zip(beta.iter()).map(|(x, c)| x * c).sum();
-            let pr = 1.0 / (1.0 + (-eta).exp());
-            let wi = grouped.w[r];
-            for a in 0..p {
-                score[a] += wi * (grouped.y[r] - pr) * row[a];
-                for b in 0..p {
-                    info[[a, b]] += wi * pr * (1.0 - pr) * row[a] * row[b];
-                }
-            }
-        }
-        let Ok(step) = linalg::solve_spd(info.view(), score.view()) else {
-            break;
-        };
-        let step = step.mapv(|v| v.clamp(-5.0, 5.0));
-        beta += &step;
-        if step.iter().all(|s| s.abs() < 1e-4) {
-            break;
-        }
-    }
+    let zero = at_zero(&grouped);
+    // The boundary tau = 0 is a local maximum of the profile when its slope there is not
+    // positive; the search then stops as soon as it heads there and the boundary is no
+    // worse than where it stands.
+    let boundary = (zero.converged && zero.tau2_score <= 0.0).then_some(zero.log_lik);
+    let beta = zero.beta.clone();
     let laplace = Logistic {
         data: &grouped,
         nodes: (vec![0.0], vec![std::f64::consts::PI.sqrt()]),
@@ -819,42 +815,73 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     let mut modes = vec![0.0; data.n_groups];
     let mut curvature = vec![0.0; data.n_groups];
     // The approximate Hessian comes with every gradient evaluation of the Newton phase and
-    // is kept for the next step at the same point.
-    let cached: std::cell::RefCell<(Vec<f64>, Array2<f64>)> =
-        std::cell::RefCell::new((Vec::new(), Array2::zeros((p + 1, p + 1))));
+    // is kept, with the gradient, for the next step at the same point. It leaves out the
+    // derivatives of the curvature term, which matter most in log tau: its row and column
+    // of log tau come instead from a forward difference of the analytic gradient (one
+    // evaluation more per step; without it the steps in log tau overshoot by up to a
+    // factor two near the optimum and the search creeps, sign alternating).
+    type Cached = (Vec<f64>, Array2<f64>, Vec<f64>);
+    let cached: std::cell::RefCell<Cached> =
+        std::cell::RefCell::new((Vec::new(), Array2::zeros((p + 1, p + 1)), Vec::new()));
     let approximate = |prm: &[f64], modes: &mut [f64], curv: &mut [f64]| {
-        {
+        let (mut h, g0) = {
             let c = cached.borrow();
             if c.0.as_slice() == prm {
-                return c.1.clone();
+                (c.1.clone(), c.2.clone())
+            } else {
+                drop(c);
+                let mut h = Array2::<f64>::zeros((p + 1, p + 1));
+                let mut g0 = vec![0.0; p + 1];
+                laplace.evaluate_full(prm, modes, curv, Some(&mut g0), Some(&mut h));
+                (h, g0)
             }
+        };
+        let step = 1e-4 * (1.0 + prm[p].abs());
+        let mut shifted = prm.to_vec();
+        shifted[p] += step;
+        let mut g1 = vec![0.0; p + 1];
+        laplace.evaluate(&shifted, modes, curv, Some(&mut g1));
+        for m in 0..=p {
+            let d = (g1[m] - g0[m]) / step;
+            h[[p, m]] = d;
+            h[[m, p]] = d;
         }
-        let mut h = Array2::<f64>::zeros((p + 1, p + 1));
-        laplace.evaluate_full(prm, modes, curv, None, Some(&mut h));
         h
     };
     let with_hessian =
         |prm: &[f64], modes: &mut [f64], curv: &mut [f64], grad: Option<&mut [f64]>| {
-            if grad.is_none() {
+            let Some(grad) = grad else {
                 return laplace.evaluate(prm, modes, curv, None);
-            }
+            };
             let mut h = Array2::<f64>::zeros((p + 1, p + 1));
-            let v = laplace.evaluate_full(prm, modes, curv, grad, Some(&mut h));
-            *cached.borrow_mut() = (prm.to_vec(), h);
+            let v = laplace.evaluate_full(prm, modes, curv, Some(&mut *grad), Some(&mut h));
+            *cached.borrow_mut() = (prm.to_vec(), h, grad.to_vec());
             v
         };
-    let (params, converged) = newton(
+    let ascent = newton(
         &mut params,
         with_hessian,
         Some(&approximate),
+        boundary,
         &mut modes,
         &mut curvature,
     );
+    if ascent.at_boundary {
+        // Every quadrature rule is exact at tau = 0 (the integrand is a point mass).
+        return Ok(boundary_fit(
+            &zero,
+            &grouped,
+            data,
+            groups,
+            ascent.iterations,
+        ));
+    }
+    let (params, converged) = (ascent.params, ascent.converged);
     if nodes == 1 {
         return finish(
             &laplace,
             params,
-            converged,
+            (converged, ascent.iterations),
             &mut modes,
             &mut curvature,
             data,
@@ -888,11 +915,14 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
         value
     };
     let mut start = params;
-    let (prm, ok) = newton(&mut start, numeric, None, &mut modes, &mut curvature);
+    let quadrature = newton(&mut start, numeric, None, None, &mut modes, &mut curvature);
     finish(
         &quad,
-        prm,
-        ok && converged,
+        quadrature.params,
+        (
+            quadrature.converged && converged,
+            ascent.iterations + quadrature.iterations,
+        ),
         &mut modes,
         &mut curvature,
         data,
@@ -905,7 +935,7 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
 fn finish(
     model: &Logistic,
     params: Vec<f64>,
-    converged: bool,
+    (converged, iterations): (bool, usize),
     modes: &mut [f64],
     curvature: &mut [f64],
     data: &Data,
@@ -963,8 +993,182 @@ fn finish(
         n: data.y.len(),
         groups,
         converged,
+        at_boundary: false,
+        iterations,
         weighted: data.weight.is_some(),
     })
+}
+
+/// The logistic model at tau = 0: the ordinary (weighted) logistic regression.
+struct AtZero {
+    beta: Array1<f64>,
+    /// Its log-likelihood, the limit of the Laplace (and of every quadrature)
+    /// approximation as tau -> 0.
+    log_lik: f64,
+    /// Its information -d^2 l / db db' at `beta`.
+    info: Array2<f64>,
+    /// The slope of the log-likelihood in tau^2 at tau = 0 and `beta`, which is the slope
+    /// of the profile there (the envelope theorem, `beta` maximising at tau = 0).
+    tau2_score: f64,
+    converged: bool,
+}
+
+/// Fits [`AtZero`] by Newton's method (steps clamped to 5 against separation), the sums
+/// gathered per country in parallel. The slope in tau^2 at 0 is the score of a variance
+/// component, sum_j (S_j^2 - I_j) / 2 with S_j = sum_i w_i (y_ij - p_ij) and
+/// I_j = sum_i w_i p_ij (1 - p_ij) (Lin 1997, "Variance component testing in generalised
+/// linear models with random effects", Biometrika 84, 309-326): expanding a country's
+/// Laplace term g(u-hat) - log(tau^2 h) / 2 to first order in tau^2 gives the same
+/// l0_j + tau^2 (S_j^2 - I_j) / 2 as the exact integral.
+fn at_zero(d: &Grouped) -> AtZero {
+    use rayon::prelude::*;
+    let p = d.p;
+    let groups = d.start.len() - 1;
+    /// One country's sums at beta: log-likelihood, score (p), lower triangle of the
+    /// information (p x p, row-major), S_j and I_j.
+    struct CountrySums {
+        ll: f64,
+        score: Vec<f64>,
+        info: Vec<f64>,
+        s: f64,
+        v: f64,
+    }
+    let sums = |beta: &Array1<f64>| -> (f64, Array1<f64>, Array2<f64>, f64) {
+        let parts: Vec<CountrySums> = (0..groups)
+            .into_par_iter()
+            .map(|j| {
+                let mut ll = 0.0;
+                let mut score = vec![0.0; p];
+                let mut info = vec![0.0; p * p];
+                let (mut s, mut v) = (0.0, 0.0);
+                for r in d.start[j]..d.start[j + 1] {
+                    let row = &d.x[r * p..(r + 1) * p];
+                    let eta: f64 = row.iter().zip(beta.iter()).map(|(x, c)| x * c).sum();
+                    let (pr, l1p) = logistic_parts(eta);
+                    let w = d.w[r];
+                    ll += w * (d.y[r] * eta - l1p);
+                    let resid = w * (d.y[r] - pr);
+                    let var = w * pr * (1.0 - pr);
+                    s += resid;
+                    v += var;
+                    for a in 0..p {
+                        score[a] += resid * row[a];
+                        let va = var * row[a];
+                        for b in 0..=a {
+                            info[a * p + b] += va * row[b];
+                        }
+                    }
+                }
+                CountrySums {
+                    ll,
+                    score,
+                    info,
+                    s,
+                    v,
+                }
+            })
+            .collect();
+        let mut ll = 0.0;
+        let mut score = Array1::<f64>::zeros(p);
+        let mut info = Array2::<f64>::zeros((p, p));
+        let mut tau2_score = 0.0;
+        for c in parts {
+            ll += c.ll;
+            tau2_score += (c.s * c.s - c.v) / 2.0;
+            for a in 0..p {
+                score[a] += c.score[a];
+                for b in 0..=a {
+                    info[[a, b]] += c.info[a * p + b];
+                }
+            }
+        }
+        for a in 0..p {
+            for b in 0..a {
+                info[[b, a]] = info[[a, b]];
+            }
+        }
+        (ll, score, info, tau2_score)
+    };
+    let mut beta = Array1::<f64>::zeros(p);
+    let mut converged = false;
+    let (mut ll, mut score, mut info, mut tau2_score) = sums(&beta);
+    for _ in 0..50 {
+        let Ok(step) = linalg::solve_spd(info.view(), score.view()) else {
+            break;
+        };
+        if step.iter().any(|v| !v.is_finite()) {
+            break;
+        }
+        let step = step.mapv(|v| v.clamp(-5.0, 5.0));
+        beta += &step;
+        (ll, score, info, tau2_score) = sums(&beta);
+        if step
+            .iter()
+            .all(|s| s.abs() < 1e-10 * (1.0 + beta.iter().fold(0.0f64, |m, b| m.max(b.abs()))))
+        {
+            converged = ll.is_finite() && beta.iter().all(|b| b.is_finite());
+            break;
+        }
+    }
+    AtZero {
+        beta,
+        log_lik: ll,
+        info,
+        tau2_score,
+        converged,
+    }
+}
+
+/// The fit at the boundary tau = 0: the ordinary logistic regression, whose information is
+/// the Laplace approximation's in b there (its cross terms with tau vanish, the
+/// likelihood being even in tau); every country's mode and conditional variance 0.
+fn boundary_fit(
+    zero: &AtZero,
+    grouped: &Grouped,
+    data: &Data,
+    groups: usize,
+    iterations: usize,
+) -> MultilevelFit {
+    let p = grouped.p;
+    let cov = linalg::inverse_spd(zero.info.view())
+        .unwrap_or_else(|_| Array2::from_elem((p, p), f64::NAN));
+    let se = (0..p)
+        .map(|k| {
+            let v = cov[[k, k]];
+            if v.is_finite() && v >= 0.0 {
+                v.sqrt()
+            } else {
+                f64::NAN
+            }
+        })
+        .collect();
+    MultilevelFit {
+        coef: zero.beta.to_vec(),
+        se,
+        cov,
+        country_sd: 0.0,
+        residual_sd: None,
+        log_likelihood: zero.log_lik,
+        icc: None,
+        modes: vec![0.0; data.n_groups],
+        mode_variance: vec![0.0; data.n_groups],
+        log_sd_variance: f64::NAN,
+        n: data.y.len(),
+        groups,
+        converged: zero.converged,
+        at_boundary: true,
+        iterations,
+        weighted: data.weight.is_some(),
+    }
+}
+
+/// Where a Newton search ended.
+struct Ascent {
+    params: Vec<f64>,
+    converged: bool,
+    /// Stopped at the boundary tau = 0 (see [`newton`]).
+    at_boundary: bool,
+    iterations: usize,
 }
 
 /// An approximate Hessian at the parameters (for Newton steps).
@@ -1021,18 +1225,38 @@ fn numeric_hessian(
 
 /// Maximises `objective` by Newton steps with a Hessian from differences of the gradient,
 /// damped (Levenberg) when not negative definite and halved until the value improves.
+///
+/// `boundary`: the log-likelihood at tau = 0 when that boundary is a local maximum of the
+/// profile. In log tau the boundary lies at minus infinity and the gradient there fades
+/// like tau^2, so steps toward it never meet the convergence test; instead the search
+/// stops at the boundary as soon as its gradient in log tau points there and the
+/// boundary's value is at least the current one (as lme4's bounded optimiser stops at
+/// theta = 0; Bates et al. 2015, J. Stat. Softw. 67(1), sec. 5).
 fn newton(
     params: &mut Vec<f64>,
     objective: impl Fn(&[f64], &mut [f64], &mut [f64], Option<&mut [f64]>) -> f64,
     approximate: Option<&Approximate>,
+    boundary: Option<f64>,
     modes: &mut [f64],
     curvature: &mut [f64],
-) -> (Vec<f64>, bool) {
+) -> Ascent {
     let k = params.len();
     let mut grad = vec![0.0; k];
     let mut value = objective(params, modes, curvature, Some(&mut grad));
     let mut converged = false;
+    let mut iterations = 0;
     for _ in 0..100 {
+        if let Some(at_zero) = boundary {
+            if grad[k - 1] <= 0.0 && at_zero >= value - 1e-10 * value.abs().max(1.0) {
+                return Ascent {
+                    params: params.clone(),
+                    converged: true,
+                    at_boundary: true,
+                    iterations,
+                };
+            }
+        }
+        iterations += 1;
         let hessian = match approximate {
             Some(f) => f(params, modes, curvature),
             None => {
@@ -1082,7 +1306,10 @@ fn newton(
             trial[k - 1] = trial[k - 1].max(-12.0);
             let mut gt = vec![0.0; k];
             let vt = objective(&trial, modes, curvature, Some(&mut gt));
-            if vt.is_finite() && vt >= value - 1e-10 * value.abs().max(1.0) {
+            // Accept only what does not fall below the current value beyond rounding: a
+            // looser allowance (it was 1e-10 relative) let steps that overshoot by a
+            // little be taken back and forth without end.
+            if vt.is_finite() && vt >= value - 1e-13 * value.abs().max(1.0) {
                 *params = trial.clone();
                 value = vt;
                 grad = gt;
@@ -1097,7 +1324,12 @@ fn newton(
             break;
         }
     }
-    (params.clone(), converged)
+    Ascent {
+        params: params.clone(),
+        converged,
+        at_boundary: false,
+        iterations,
+    }
 }
 
 #[cfg(test)]

@@ -29,7 +29,8 @@ struct ProjectionPage<'a> {
     form: SettingsForm,
     f: Fmt,
     r: &'a ProjectionReport,
-    variables: Vec<String>,
+    /// The survey variables with their readable labels.
+    variables: Vec<(String, String)>,
     own_query: String,
     map_chart: String,
     /// The project declares a population column (countries can count by population).
@@ -138,16 +139,20 @@ pub async fn page(
 ) -> AppResult<Html<String>> {
     let (form, r, variables) = off_thread(&state, &query, compute).await?;
     let form = form.presenting(&query);
+    let project = state.project();
     let html = ProjectionPage {
         page: "projection",
         nav_query: form.query.clone(),
         own_query: own_query_of(&r),
         map_chart: charts::projection::component_map(&r),
-        has_population: state.project().manifest.population.is_some(),
+        has_population: project.manifest.population.is_some(),
         form,
         f: Fmt,
         r: &r,
-        variables,
+        variables: variables
+            .iter()
+            .map(|v| (v.clone(), project.manifest.label(v).into_owned()))
+            .collect(),
         cautions: &STANDING,
     }
     .render()?;

@@ -44,6 +44,8 @@ struct WaveSection<'a> {
     map_chart: String,
     plan_chart: String,
     pooled_chart: String,
+    /// The projection's map of predicted country means (empty without a projection).
+    projection_chart: String,
 }
 
 /// One setting, in words, for the settings and reproducibility blocks.
@@ -409,6 +411,10 @@ pub fn render_report(r: &Report) -> Result<String, String> {
                 ),
                 plan_chart: w.plan.as_ref().map(charts::plan::paths).unwrap_or_default(),
                 pooled_chart: impact.map(charts::impact::pooled).unwrap_or_default(),
+                projection_chart: match &w.projection {
+                    Some(Ok(p)) => charts::projection::component_map(p),
+                    _ => String::new(),
+                },
                 w,
             }
         })
