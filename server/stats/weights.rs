@@ -245,9 +245,9 @@ const GMM_NEAR: f64 = 1e-4;
 /// Newton iterations before the over-identified fit gives up.
 const GMM_MAX_ITERATIONS: usize = 100;
 
-/// The over-identified fit of [`cbps_over_identified`] started exactly at `b0` (a warm
-/// start: bootstrap draws start from the full sample's solution, so that each finds the
-/// minimum that corresponds to it).
+/// The over-identified fit of [`cbps_over_identified`] started exactly at `b0` (bootstrap
+/// draws start from the full sample's solution instead, with
+/// [`cbps_over_identified_warm`], so that each finds the minimum that corresponds to it).
 ///
 /// Minimised by Newton's method on the analytic gradient
 /// dQ/db = 2 J'a - a'(dS/db)a (a = S^-1 g, J = dg/db) with the Hessian from forward
