@@ -21,6 +21,9 @@ pub enum WeightError {
     Singular,
     #[error("a propensity is not strictly between 0 and 1 (unit {0}); weights would be infinite")]
     DegeneratePropensity(usize),
+    /// A starting point (or curvature) whose size does not match the design's columns.
+    #[error("the fit's start has {given} values but the design has {expected} columns")]
+    StartSize { given: usize, expected: usize },
 }
 
 /// Inverse-probability weights w_i = T_i / p_i (Horvitz & Thompson 1952; Rosenbaum 1987):
@@ -270,7 +273,10 @@ pub fn cbps_over_identified_from(
         return Err(WeightError::NoParticipants);
     }
     if b0.len() != x.ncols() {
-        return Err(WeightError::Singular);
+        return Err(WeightError::StartSize {
+            given: b0.len(),
+            expected: x.ncols(),
+        });
     }
     gmm_fit(x, t, b0, |b| gmm_newton(x, t, b))
 }
@@ -294,7 +300,14 @@ pub fn cbps_over_identified_warm(
     }
     let k = x.ncols();
     if b0.len() != k || curvature.dim() != (k, k) {
-        return Err(WeightError::Singular);
+        return Err(WeightError::StartSize {
+            given: if b0.len() != k {
+                b0.len()
+            } else {
+                curvature.nrows()
+            },
+            expected: k,
+        });
     }
     gmm_fit(x, t, b0, |b| gmm_bfgs(x, t, b, curvature))
 }
@@ -1038,7 +1051,10 @@ mod tests {
         assert_eq!(fit.coef, start);
         assert_eq!(
             cbps_over_identified_from(x.view(), &t, &array![0.0]).unwrap_err(),
-            WeightError::Singular
+            WeightError::StartSize {
+                given: 1,
+                expected: 3
+            }
         );
     }
 
