@@ -809,22 +809,6 @@ fn attach_bootstrap(
     if v.error.is_some() {
         return;
     }
-    let not_run = b
-        .failures
-        .iter()
-        .any(|f| f.reason == impact_bootstrap::Failure::NotRun);
-    if not_run {
-        v.bootstrap = TermsBootstrap {
-            bootstrap_se: vec![None; v.coef.len()],
-            bootstrap_ci95_low: vec![None; v.coef.len()],
-            bootstrap_ci95_high: vec![None; v.coef.len()],
-            bootstrap_replicates: 0,
-            bootstrap_seed: seed,
-            bootstrap_note: Some(impact_bootstrap::NOT_RUN_NOTE.to_string()),
-            ..TermsBootstrap::default()
-        };
-        return;
-    }
     if let Some(p) = v.pooled.as_mut() {
         p.bootstrap = PooledBootstrap {
             bootstrap_se: b.pooled.se,

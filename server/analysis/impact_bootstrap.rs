@@ -29,6 +29,7 @@ use crate::stats::bootstrap::{self, Summary};
 use crate::stats::linalg;
 use crate::stats::normal;
 use crate::stats::regression::Kind;
+use crate::stats::weights;
 
 /// Pipeline bootstrap replicates unless asked otherwise (pages and command line).
 pub const DEFAULT_REPLICATES: usize = 199;
@@ -88,12 +89,7 @@ pub enum Failure {
     ModelFailed,
     Infeasible,
     Singular,
-    /// The variant is not re-estimated on draws (not a failure; see `NOT_RUN_NOTE`).
-    NotRun,
 }
-
-/// Why the over-identified covariate-balancing weighting carries no bootstrap.
-pub const NOT_RUN_NOTE: &str = "not bootstrapped: the over-identified (GMM) covariate-balancing fit is too slow to repeat on every draw and does not settle on one answer there; its clustered standard errors treat the weights as known, so read them as too small";
 
 impl Failure {
     pub fn label(self) -> &'static str {
@@ -109,7 +105,6 @@ impl Failure {
                 "the weighting has no solution on the draw (infeasible balance, or no convergence)"
             }
             Failure::Singular => "the regression is singular on the draw",
-            Failure::NotRun => "not re-estimated on draws",
         }
     }
 }
@@ -165,8 +160,9 @@ pub fn run(input: &Input) -> Option<Vec<VariantBootstrap>> {
         return None;
     }
     let g = input.design.n();
+    let gmm_start = gmm_full_sample(input.design);
     let draws = bootstrap::run(g, input.replicates, input.seed, |rows| {
-        Ok::<_, ()>(replicate(input, rows))
+        Ok::<_, ()>(replicate(input, gmm_start.as_ref(), rows))
     })
     .ok()?;
     let draws: Vec<Vec<Draw>> = draws.into_iter().map(|d| d.unwrap_or_default()).collect();
@@ -223,8 +219,68 @@ pub fn run(input: &Input) -> Option<Vec<VariantBootstrap>> {
     )
 }
 
+/// The over-identified covariate-balancing fit on the full sample, as
+/// participation::weigh computes it (from the just-identified solution, else the logit):
+/// the warm start of every draw. `None` when it did not converge, and draws then start
+/// as the full sample did.
+fn gmm_full_sample(design: &Design) -> Option<GmmStart> {
+    let z = design.standardised();
+    let t = &design.participated;
+    let start = logit_start(&z, t);
+    let fit = weights::cbps_over_identified(z.view(), t, &start).ok()?;
+    Some(GmmStart {
+        curvature: fit.curvature.filter(|_| fit.converged)?,
+        coef: fit.coef,
+    })
+}
+
+/// The full sample's over-identified fit: where the draws start, with its curvature.
+pub struct GmmStart {
+    pub coef: Array1<f64>,
+    pub curvature: Array2<f64>,
+}
+
+fn logit_start(z: &Array2<f64>, t: &[bool]) -> Array1<f64> {
+    binary::fit(ModelKind::Logit, z.view(), t)
+        .map(|f| f.coef)
+        .unwrap_or_else(|_| Array1::zeros(z.ncols()))
+}
+
+/// The over-identified covariate-balancing shares on a draw: the fit started at the full
+/// sample's solution (so that each draw finds the minimum that corresponds to it; the
+/// criterion has several), then participation::weigh's steps: inverse-probability
+/// weights, the settings' trimming, normalisation to the number of drawn units, times
+/// the base shares. A fit that does not converge (or cannot balance a column) fails.
+fn gmm_shares(
+    design: &Design,
+    settings: &Settings,
+    warm: Option<&GmmStart>,
+    base: &[f64],
+) -> Result<Vec<f64>, Failure> {
+    let z = design.standardised();
+    let t = &design.participated;
+    let fit = match warm {
+        Some(w) => weights::cbps_over_identified_warm(z.view(), t, &w.coef, &w.curvature),
+        None => weights::cbps_over_identified(z.view(), t, &logit_start(&z, t)),
+    }
+    .map_err(|_| Failure::Infeasible)?;
+    if !fit.converged {
+        return Err(Failure::Infeasible);
+    }
+    let mut w =
+        weights::inverse_probability(&fit.propensity, t).map_err(|_| Failure::Infeasible)?;
+    if let Some(q) = settings.trim {
+        w = weights::trim(&w, t, q);
+    }
+    Ok(weights::normalise(&w, design.n() as f64)
+        .iter()
+        .zip(base)
+        .map(|(a, b)| a * b)
+        .collect())
+}
+
 /// Every variant's value on one draw of countries.
-fn replicate(input: &Input, rows: &[usize]) -> Vec<Draw> {
+fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec<Draw> {
     let n_variants = variant_count();
     let design = input.design.subset(rows);
     let stats: Vec<Option<&CountryStats>> = rows.iter().map(|&i| input.stats[i].as_ref()).collect();
@@ -245,15 +301,11 @@ fn replicate(input: &Input, rows: &[usize]) -> Vec<Draw> {
             .map_err(|_| Failure::ModelFailed)
     };
     for kind in WeightingKind::ALL {
-        if kind == WeightingKind::CovariateBalancingGmm {
-            // Not re-fitted on draws: its GMM fit takes over ten times the time of all the
-            // other weightings together, and on draws it does not settle on one answer
-            // (different starts gave bootstrap errors differing by a factor of two).
-            out.push(Err(Failure::NotRun));
-            continue;
-        }
         let share: Result<Vec<f64>, Failure> = match &model {
             Err(f) => Err(*f),
+            Ok(_) if kind == WeightingKind::CovariateBalancingGmm => {
+                gmm_shares(&design, input.settings, gmm_start, &base)
+            }
             Ok(model) => {
                 if kind == WeightingKind::InverseProbability && !model.report.converged {
                     Err(Failure::ModelFailed)

@@ -1,4 +1,5 @@
-//! The damped Newton step shared by the maximum-likelihood fits (binary.rs, regression.rs):
+//! The damped Newton step shared by the maximum-likelihood fits (binary.rs, regression.rs)
+//! and the weightings' Newton loops (weights.rs; minimisations pass the negated objective):
 //! a full Newton step, halved until the objective does not fall.
 
 use ndarray::Array1;

@@ -8,6 +8,7 @@ use ndarray::{Array1, Array2, ArrayView2, Axis};
 
 use super::binary::logistic;
 use super::linalg;
+use super::newton;
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum WeightError {
@@ -20,6 +21,9 @@ pub enum WeightError {
     Singular,
     #[error("a propensity is not strictly between 0 and 1 (unit {0}); weights would be infinite")]
     DegeneratePropensity(usize),
+    /// A starting point (or curvature) whose size does not match the design's columns.
+    #[error("the fit's start has {given} values but the design has {expected} columns")]
+    StartSize { given: usize, expected: usize },
 }
 
 /// Inverse-probability weights w_i = T_i / p_i (Horvitz & Thompson 1952; Rosenbaum 1987):
@@ -90,6 +94,10 @@ pub struct CbpsFit {
     /// The over-identified fit ended where it started (no step lowered the criterion), so
     /// its weights are those of the starting logit.
     pub stayed_at_start: bool,
+    /// The over-identified fit's Hessian of its criterion at the solution (forward
+    /// differences), when it converged by Newton's method: the starting curvature of
+    /// [`cbps_over_identified_warm`].
+    pub curvature: Option<Array2<f64>>,
 }
 
 /// Columns of `x` whose universe mean participants cannot reproduce with any positive
@@ -121,7 +129,7 @@ pub fn unreachable_columns(x: ArrayView2<f64>, t: &[bool]) -> Vec<usize> {
 ///
 /// The conditions are the gradient of the convex function
 /// f(b) = sum_i [T_i exp(-x_i'b) + (1 - T_i) x_i'b], minimised by Newton's method with
-/// step halving. A solution exists only if the universe means lie inside the convex hull of
+/// step halving ([`newton::halving_step`]). A solution exists only if the universe means lie inside the convex hull of
 /// the participants' rows reachable with weights 1/p of at least 1 (each participant stands
 /// at least for itself); otherwise the iterations diverge and the fit is reported as not
 /// converged.
@@ -165,24 +173,17 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
         let Ok(step) = linalg::solve_spd(h.view(), g.view()) else {
             break;
         };
-        let mut s = 1.0;
-        let mut moved = false;
-        for _ in 0..50 {
-            let candidate = &b + &(&step * s);
-            let fc = objective(&candidate);
-            // Near the solution the decrease falls below the rounding of f itself; accept
-            // steps that do not increase f beyond that rounding.
-            if fc.is_finite() && fc <= f + 1e-12 * f.abs().max(1.0) {
-                b = candidate;
-                f = fc;
-                moved = true;
-                break;
-            }
-            s *= 0.5;
-        }
-        if !moved {
+        // Near the solution the decrease falls below the rounding of f itself; accept
+        // steps that do not increase f beyond that rounding (a maximisation of -f).
+        let floor = -(f + 1e-12 * f.abs().max(1.0));
+        let Some((candidate, fc, _)) = newton::halving_step(&b, &step, floor, |c| {
+            let fc = objective(c);
+            Some((fc, -fc))
+        }) else {
             break;
-        }
+        };
+        b = candidate;
+        f = fc;
     }
     let propensity: Vec<f64> = x.dot(&b).iter().map(|&e| logistic(e)).collect();
     let max_imbalance = balance_conditions(x, t, &propensity)
@@ -197,6 +198,7 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
         max_imbalance,
         unreachable,
         stayed_at_start: false,
+        curvature: None,
     })
 }
 
@@ -216,9 +218,12 @@ fn balance_conditions(x: ArrayView2<f64>, t: &[bool], p: &[f64]) -> Array1<f64> 
 /// the balance conditions (T_i/p_i - 1) x_i together,
 /// minimising Q(b) = g(b)' S(b)^-1 g(b) with g the mean of the stacked conditions and S their
 /// covariance under the model, S = (1/n) sum_i [[p(1-p), 1-p], [1-p, (1-p)/p]] (x) x_i x_i'
-/// (continuously updated, as in the paper). Minimised by BFGS with the analytic gradient
-/// dQ/db = 2 J'a - a'(dS/db)a, a = S^-1 g, J = dg/db; started from the just-identified
-/// solution when it exists, else from `start`.
+/// (continuously updated, as in the paper). Started from the just-identified solution
+/// when it exists, else from `start` (the logit); see [`cbps_over_identified_from`].
+///
+/// Q has several local minima (the two sets of conditions differ per unit only by the
+/// factor 1/p_i, so S is close to singular); the estimate is the one reached by descent
+/// from that start.
 pub fn cbps_over_identified(
     x: ArrayView2<f64>,
     t: &[bool],
@@ -227,31 +232,288 @@ pub fn cbps_over_identified(
     if !t.iter().any(|&v| v) {
         return Err(WeightError::NoParticipants);
     }
-    let objective = |b: &Array1<f64>| gmm_objective(x, t, b);
     let just = cbps_just_identified(x, t)
         .ok()
         .filter(|f| f.converged)
         .map(|f| f.coef);
-    let b0 = just.unwrap_or_else(|| start.clone());
-    let (coef, converged, iterations) = bfgs(&objective, b0.clone(), 500, 1e-8);
-    let propensity: Vec<f64> = x.dot(&coef).iter().map(|&e| logistic(e)).collect();
+    cbps_over_identified_from(x, t, just.as_ref().unwrap_or(start))
+}
+
+/// Steps of the over-identified fit below which it counts as converged (largest change
+/// of a coefficient on the standardised scale).
+pub const GMM_STEP_TOLERANCE: f64 = 1e-8;
+/// Newton steps below which the over-identified fit is close enough to a strict minimum
+/// to trust its gradient over the rounding of the criterion.
+const GMM_NEAR: f64 = 1e-4;
+/// Newton iterations before the over-identified fit gives up.
+const GMM_MAX_ITERATIONS: usize = 100;
+
+/// The over-identified fit of [`cbps_over_identified`] started exactly at `b0` (bootstrap
+/// draws start from the full sample's solution instead, with
+/// [`cbps_over_identified_warm`], so that each finds the minimum that corresponds to it).
+///
+/// Minimised by Newton's method on the analytic gradient
+/// dQ/db = 2 J'a - a'(dS/db)a (a = S^-1 g, J = dg/db) with the Hessian from forward
+/// differences of that gradient (Nocedal & Wright 2006, Numerical Optimization, section
+/// 8.1, from memory), made positive definite by a growing multiple of the identity where
+/// it is not (ibid., section 3.4), and steps halved until Q does not rise beyond its
+/// rounding ([`newton::halving_step`]; within 1e-10 of Q once the steps are small at a
+/// positive-definite Hessian, where Q's rounding exceeds its change). Converged when the Newton step of a positive-definite
+/// Hessian (a strict local minimum) moves no coefficient by more than
+/// [`GMM_STEP_TOLERANCE`]. A column no weighting of participants can balance
+/// ([`unreachable_columns`]) leaves Q without a finite minimiser (it falls forever as that
+/// column's coefficient runs off), so the fit does not start and reports that it stayed at
+/// `b0`.
+pub fn cbps_over_identified_from(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    b0: &Array1<f64>,
+) -> Result<CbpsFit, WeightError> {
+    if !t.iter().any(|&v| v) {
+        return Err(WeightError::NoParticipants);
+    }
+    if b0.len() != x.ncols() {
+        return Err(WeightError::StartSize {
+            given: b0.len(),
+            expected: x.ncols(),
+        });
+    }
+    gmm_fit(x, t, b0, |b| gmm_newton(x, t, b))
+}
+
+/// The over-identified fit started at a neighbouring problem's solution `b0` with its
+/// `curvature` (a bootstrap draw started from the full sample's fit): quasi-Newton (BFGS,
+/// Nocedal & Wright 2006, section 6.1, from memory) on the Hessian itself, B_0 =
+/// `curvature`, B+ = B - B s s'B / s'B s + y y' / y's (skipped unless y's > 0, which keeps
+/// B positive definite), so each iteration costs one evaluation of the criterion and its
+/// gradient instead of the k + 1 of a Newton step with differenced Hessian. Steps halved
+/// as in [`cbps_over_identified_from`]; converged when the step -B^-1 grad moves no
+/// coefficient by more than [`GMM_STEP_TOLERANCE`].
+pub fn cbps_over_identified_warm(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    b0: &Array1<f64>,
+    curvature: &Array2<f64>,
+) -> Result<CbpsFit, WeightError> {
+    if !t.iter().any(|&v| v) {
+        return Err(WeightError::NoParticipants);
+    }
+    let k = x.ncols();
+    if b0.len() != k || curvature.dim() != (k, k) {
+        return Err(WeightError::StartSize {
+            given: if b0.len() != k {
+                b0.len()
+            } else {
+                curvature.nrows()
+            },
+            expected: k,
+        });
+    }
+    gmm_fit(x, t, b0, |b| gmm_bfgs(x, t, b, curvature))
+}
+
+/// Runs `descend` from `b0` unless a column cannot be balanced, and reports the fit.
+fn gmm_fit(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    b0: &Array1<f64>,
+    descend: impl FnOnce(&Array1<f64>) -> GmmDescent,
+) -> Result<CbpsFit, WeightError> {
+    let unreachable = unreachable_columns(x, t);
+    let descent = if unreachable.is_empty() {
+        descend(b0)
+    } else {
+        GmmDescent {
+            coef: b0.clone(),
+            converged: false,
+            iterations: 0,
+            moved: false,
+            curvature: None,
+        }
+    };
+    let propensity: Vec<f64> = x.dot(&descent.coef).iter().map(|&e| logistic(e)).collect();
     let max_imbalance = balance_conditions(x, t, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
-    // BFGS returns its start when no step lowers the criterion; that is a solution only
-    // if the gradient already vanishes there.
-    let (q0, g0) = objective(&b0);
-    let optimal_at_start = q0.is_finite() && g0.iter().all(|v| v.abs() < 1e-8);
-    let stayed_at_start = !optimal_at_start && (&coef - &b0).iter().all(|d| *d == 0.0);
+    let stayed_at_start = !descent.converged && !descent.moved;
     Ok(CbpsFit {
-        coef,
+        coef: descent.coef,
         propensity,
-        converged: converged && !stayed_at_start,
-        iterations,
+        converged: descent.converged,
+        iterations: descent.iterations,
         max_imbalance,
-        unreachable: unreachable_columns(x, t),
+        unreachable,
         stayed_at_start,
+        curvature: descent.curvature,
     })
+}
+
+/// Where Newton's method on the GMM criterion ended.
+struct GmmDescent {
+    coef: Array1<f64>,
+    converged: bool,
+    iterations: usize,
+    /// At least one step was taken.
+    moved: bool,
+    /// The Hessian at the solution (Newton's method only).
+    curvature: Option<Array2<f64>>,
+}
+
+fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
+    let mut b = b0.clone();
+    let (mut q, mut grad) = gmm_objective(x, t, &b);
+    let mut out = GmmDescent {
+        coef: b.clone(),
+        converged: false,
+        iterations: 0,
+        moved: false,
+        curvature: None,
+    };
+    if !q.is_finite() {
+        return out;
+    }
+    for iteration in 1..=GMM_MAX_ITERATIONS {
+        out.iterations = iteration;
+        let Some(hessian) = gmm_hessian(x, t, &b, &grad) else {
+            break;
+        };
+        let Some((step, positive_definite)) = modified_newton_step(&hessian, &grad) else {
+            break;
+        };
+        let largest = step.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+        if positive_definite && largest < GMM_STEP_TOLERANCE {
+            out.converged = true;
+            out.curvature = Some(hessian);
+            break;
+        }
+        // A maximisation of -Q: accept the first halving at which Q does not rise beyond
+        // its rounding. Close to a strict minimum Q changes by less than its own rounding
+        // (S is nearly singular, so Q carries far more than one unit of rounding), and the
+        // full step of the accurate gradient is taken unless Q rises clearly.
+        let near = positive_definite && largest < GMM_NEAR;
+        let slack = if near { 1e-10 } else { 1e-14 };
+        let floor = -(q + slack * q.abs());
+        let Some((candidate, (qc, gc), _)) = newton::halving_step(&b, &step, floor, |c| {
+            let (qc, gc) = gmm_objective(x, t, c);
+            qc.is_finite().then_some(((qc, gc), -qc))
+        }) else {
+            break;
+        };
+        b = candidate;
+        grad = gc;
+        q = qc;
+        out.moved = true;
+    }
+    out.coef = b;
+    out
+}
+
+fn gmm_bfgs(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    b0: &Array1<f64>,
+    curvature: &Array2<f64>,
+) -> GmmDescent {
+    let mut b = b0.clone();
+    let mut out = GmmDescent {
+        coef: b.clone(),
+        converged: false,
+        iterations: 0,
+        moved: false,
+        curvature: None,
+    };
+    let (mut q, mut grad) = gmm_objective(x, t, &b);
+    if !q.is_finite() {
+        return out;
+    }
+    let mut hessian = curvature.clone();
+    for iteration in 1..=GMM_MAX_ITERATIONS {
+        out.iterations = iteration;
+        let Some((step, _)) = modified_newton_step(&hessian, &grad) else {
+            break;
+        };
+        let largest = step.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+        if largest < GMM_STEP_TOLERANCE {
+            out.converged = true;
+            break;
+        }
+        let slack = if largest < GMM_NEAR { 1e-10 } else { 1e-14 };
+        let floor = -(q + slack * q.abs());
+        let Some((candidate, (qc, gc), _)) = newton::halving_step(&b, &step, floor, |c| {
+            let (qc, gc) = gmm_objective(x, t, c);
+            qc.is_finite().then_some(((qc, gc), -qc))
+        }) else {
+            break;
+        };
+        let s = &candidate - &b;
+        let y = &gc - &grad;
+        let sy = s.dot(&y);
+        let bs = hessian.dot(&s);
+        let sbs = s.dot(&bs);
+        if sy > 1e-12 * sbs.abs() && sbs > 0.0 {
+            let k = s.len();
+            for i in 0..k {
+                for j in 0..k {
+                    hessian[[i, j]] += y[i] * y[j] / sy - bs[i] * bs[j] / sbs;
+                }
+            }
+        }
+        b = candidate;
+        grad = gc;
+        q = qc;
+        out.moved = true;
+    }
+    out.coef = b;
+    out
+}
+
+/// The Hessian of the GMM criterion by forward differences of its analytic gradient,
+/// symmetrised; `None` where the criterion cannot be computed at a shifted point.
+fn gmm_hessian(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    b: &Array1<f64>,
+    grad: &Array1<f64>,
+) -> Option<Array2<f64>> {
+    let k = b.len();
+    let mut h = Array2::<f64>::zeros((k, k));
+    for j in 0..k {
+        let delta = 1e-6 * b[j].abs().max(1.0);
+        let mut shifted = b.clone();
+        shifted[j] += delta;
+        let (q, g) = gmm_objective(x, t, &shifted);
+        if !q.is_finite() {
+            return None;
+        }
+        h.column_mut(j).assign(&((&g - grad) / delta));
+    }
+    let ht = h.t().to_owned();
+    Some((h + ht) * 0.5)
+}
+
+/// The Newton step -H^-1 g of a minimisation, with H + mu I in place of H when H is not
+/// positive definite (mu grown tenfold from 1e-8 times H's largest diagonal element until
+/// the Cholesky factorisation succeeds); also whether H itself was positive definite.
+fn modified_newton_step(h: &Array2<f64>, g: &Array1<f64>) -> Option<(Array1<f64>, bool)> {
+    let minus_g = -g;
+    if let Ok(step) = linalg::solve_spd(h.view(), minus_g.view()) {
+        return Some((step, true));
+    }
+    let size = h
+        .diag()
+        .iter()
+        .fold(0.0f64, |m, v| m.max(v.abs()))
+        .max(1e-300);
+    let mut mu = 1e-8 * size;
+    while mu <= 1e8 * size {
+        let mut damped = h.clone();
+        damped.diag_mut().mapv_inplace(|v| v + mu);
+        if let Ok(step) = linalg::solve_spd(damped.view(), minus_g.view()) {
+            return Some((step, false));
+        }
+        mu *= 10.0;
+    }
+    None
 }
 
 /// The continuously updated GMM criterion of [`cbps_over_identified`] and its gradient.
@@ -301,68 +563,6 @@ fn gmm_objective(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> (f64, Array
         })
         .collect();
     (q, x.t().dot(&per_unit))
-}
-
-/// BFGS with backtracking (Nocedal & Wright 2006, alg. 6.1) on a function returning its
-/// value and gradient. Returns the minimiser, whether the gradient fell below `tol`, and
-/// the iterations used.
-/// A function returning its value and gradient.
-type ValueAndGradient<'a> = &'a dyn Fn(&Array1<f64>) -> (f64, Array1<f64>);
-
-fn bfgs(
-    f: ValueAndGradient<'_>,
-    x0: Array1<f64>,
-    max_iter: usize,
-    tol: f64,
-) -> (Array1<f64>, bool, usize) {
-    let k = x0.len();
-    let mut x = x0;
-    let (mut fx, mut g) = f(&x);
-    let mut h_inv = Array2::<f64>::eye(k);
-    for it in 0..max_iter {
-        if g.iter().all(|v| v.abs() < tol) {
-            return (x, true, it);
-        }
-        let mut direction = -h_inv.dot(&g);
-        if direction.dot(&g) >= 0.0 {
-            h_inv = Array2::eye(k);
-            direction = -g.clone();
-        }
-        let mut step = 1.0;
-        let mut accepted = None;
-        for _ in 0..60 {
-            let candidate = &x + &(&direction * step);
-            let (fc, gc) = f(&candidate);
-            if fc.is_finite() && fc <= fx + 1e-4 * step * direction.dot(&g) + 1e-14 * fx.abs() {
-                accepted = Some((candidate, fc, gc));
-                break;
-            }
-            step *= 0.5;
-        }
-        let Some((x_new, f_new, g_new)) = accepted else {
-            return (x, g.iter().all(|v| v.abs() < tol.sqrt()), it);
-        };
-        let s = &x_new - &x;
-        let y = &g_new - &g;
-        let sy = s.dot(&y);
-        if sy > 1e-300 {
-            let rho = 1.0 / sy;
-            let hy = h_inv.dot(&y);
-            let yhy = y.dot(&hy);
-            // H+ = H - rho (s y'H + H y s') + (rho^2 y'Hy + rho) s s'
-            for a in 0..k {
-                for b in 0..k {
-                    h_inv[[a, b]] += -rho * (s[a] * hy[b] + hy[a] * s[b])
-                        + (rho * rho * yhy + rho) * s[a] * s[b];
-                }
-            }
-        }
-        x = x_new;
-        fx = f_new;
-        g = g_new;
-    }
-    let converged = g.iter().all(|v| v.abs() < tol);
-    (x, converged, max_iter)
 }
 
 /// The result of entropy balancing.
@@ -545,23 +745,18 @@ pub fn entropy_dual(
         let Some(step) = step else {
             break;
         };
-        let mut s = 1.0;
-        let mut moved = false;
-        for _ in 0..60 {
-            let candidate = &lambda + &(&step * s);
-            let (wc, dc) = weights_at(&candidate);
-            if dc.is_finite() && dc <= dual + 1e-12 * dual.abs().max(1.0) {
-                lambda = candidate;
-                w = wc;
-                dual = dc;
-                moved = true;
-                break;
-            }
-            s *= 0.5;
-        }
-        if !moved {
+        // The dual is minimised: a maximisation of its negative, steps accepted while the
+        // dual does not rise beyond its rounding.
+        let floor = -(dual + 1e-12 * dual.abs().max(1.0));
+        let Some((candidate, (wc, dc), _)) = newton::halving_step(&lambda, &step, floor, |c| {
+            let (wc, dc) = weights_at(c);
+            Some(((wc, dc), -dc))
+        }) else {
             break;
-        }
+        };
+        lambda = candidate;
+        w = wc;
+        dual = dc;
     }
     if !converged {
         converged = d.t().dot(&w).iter().all(|v| v.abs() < 1e-10);
@@ -725,6 +920,142 @@ mod tests {
                 grad[j]
             );
         }
+    }
+
+    /// The NSW sample of tests/fixtures/nsw.csv: treated as participants, the eight
+    /// indicators standardised (n - 1 divisor) with an intercept.
+    fn nsw() -> (Array2<f64>, Vec<bool>) {
+        let text = std::fs::read_to_string(
+            std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/nsw.csv"),
+        )
+        .unwrap();
+        let rows: Vec<Vec<f64>> = text
+            .lines()
+            .skip(1)
+            .map(|l| l.split(',').skip(1).map(|c| c.parse().unwrap()).collect())
+            .collect();
+        assert_eq!(rows.len(), 445);
+        let n = rows.len();
+        let mut x = Array2::<f64>::ones((n, 9));
+        for j in 1..9 {
+            let col: Vec<f64> = rows.iter().map(|r| r[j]).collect();
+            let m = col.iter().sum::<f64>() / n as f64;
+            let sd = (col.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (n - 1) as f64).sqrt();
+            for i in 0..n {
+                x[[i, j]] = (col[i] - m) / sd;
+            }
+        }
+        (x, rows.iter().map(|r| r[0] == 1.0).collect())
+    }
+
+    fn gmm_reference() -> serde_json::Value {
+        serde_json::from_str(
+            &std::fs::read_to_string(
+                std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+                    .join("tests/fixtures/gmm_reference.json"),
+            )
+            .unwrap(),
+        )
+        .unwrap()
+    }
+
+    fn floats(v: &serde_json::Value) -> Vec<f64> {
+        v.as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_f64().unwrap())
+            .collect()
+    }
+
+    #[test]
+    fn gmm_matches_scipy_on_nsw() {
+        // tests/fixtures/make_gmm_fixture.py: scipy's BFGS and a Newton polish of the same
+        // criterion (Imai & Ratkovic 2014, section 2.2) from the just-identified solution.
+        let (x, t) = nsw();
+        let reference = gmm_reference();
+        let coef = floats(&reference["coef_standardised"]);
+        let start = super::super::binary::fit(super::super::binary::ModelKind::Logit, x.view(), &t)
+            .unwrap()
+            .coef;
+        let fit = cbps_over_identified(x.view(), &t, &start).unwrap();
+        assert!(fit.converged && !fit.stayed_at_start);
+        assert_eq!(fit.coef.len(), coef.len());
+        for (a, b) in fit.coef.iter().zip(&coef) {
+            assert!((a - b).abs() < 1e-6, "{a} vs {b}");
+        }
+        let (q, _) = gmm_objective(x.view(), &t, &fit.coef);
+        let q_ref = reference["criterion"].as_f64().unwrap();
+        assert!((q - q_ref).abs() < 1e-12, "{q} vs {q_ref}");
+        let w = normalise(
+            &inverse_probability(&fit.propensity, &t).unwrap(),
+            t.len() as f64,
+        );
+        let w_ref = floats(&reference["weights"]);
+        assert_eq!(w.len(), w_ref.len());
+        for (a, b) in w.iter().zip(&w_ref) {
+            assert!((a - b).abs() < 1e-6 * b.abs().max(1.0), "{a} vs {b}");
+        }
+        // Warm starts near the solution return to it (the basin's minimum), in a few
+        // Newton steps.
+        let mut rng = crate::stats::random::Rng::new(11);
+        for _ in 0..5 {
+            let near: Array1<f64> = fit.coef.iter().map(|b| b + 0.02 * rng.normal()).collect();
+            let again = cbps_over_identified_from(x.view(), &t, &near).unwrap();
+            assert!(
+                again.converged && again.iterations < 15,
+                "{}",
+                again.iterations
+            );
+            for (a, b) in again.coef.iter().zip(&fit.coef) {
+                assert!((a - b).abs() < 1e-7);
+            }
+        }
+        // The quasi-Newton warm start from the solution's curvature reaches the same
+        // minimum from the same points.
+        let curvature = fit.curvature.clone().expect("curvature");
+        let mut rng = crate::stats::random::Rng::new(11);
+        for _ in 0..5 {
+            let near: Array1<f64> = fit.coef.iter().map(|b| b + 0.02 * rng.normal()).collect();
+            let again = cbps_over_identified_warm(x.view(), &t, &near, &curvature).unwrap();
+            assert!(
+                again.converged && again.iterations < 30,
+                "{}",
+                again.iterations
+            );
+            for (a, b) in again.coef.iter().zip(&fit.coef) {
+                assert!((a - b).abs() < 1e-7, "{a} vs {b}");
+            }
+        }
+        // Started at the solution: converged at once, without moving.
+        let at = cbps_over_identified_from(x.view(), &t, &fit.coef).unwrap();
+        assert!(at.converged && !at.stayed_at_start && at.iterations == 1);
+    }
+
+    #[test]
+    fn gmm_without_a_finite_minimiser_stays_at_its_start() {
+        // Column 2 is 1 only for non-participants: no weighting of participants balances it,
+        // so Q has no finite minimiser (common practice: report, do not chase infinity).
+        let x = array![
+            [1.0, -1.0, 0.0],
+            [1.0, 0.5, 0.0],
+            [1.0, 1.2, 0.0],
+            [1.0, -0.3, 1.0],
+            [1.0, 0.8, 1.0],
+            [1.0, -0.6, 0.0]
+        ];
+        let t = [true, true, false, false, false, true];
+        let start = array![0.1, 0.2, -0.5];
+        let fit = cbps_over_identified_from(x.view(), &t, &start).unwrap();
+        assert_eq!(fit.unreachable, vec![2]);
+        assert!(fit.stayed_at_start && !fit.converged);
+        assert_eq!(fit.coef, start);
+        assert_eq!(
+            cbps_over_identified_from(x.view(), &t, &array![0.0]).unwrap_err(),
+            WeightError::StartSize {
+                given: 1,
+                expected: 3
+            }
+        );
     }
 
     #[test]
