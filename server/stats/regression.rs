@@ -69,11 +69,11 @@ pub struct RegressionFit {
 }
 
 /// Sums, over rows i, w_i x_i x_i' (lower triangle), v_i x_i and a scalar s_i, split across
-/// rayon's pool; `weights(i)` gives (w_i, v_i, s_i). Works on the contiguous rows of `x` directly, since this
-/// is the inner loop of every fit on millions of respondents.
+/// rayon's pool; `weights(i, x_i)` gives (w_i, v_i, s_i). Works on the contiguous rows of
+/// `x` directly, since this is the inner loop of every fit on millions of respondents.
 fn accumulate<F>(x: ArrayView2<f64>, weights: F) -> (Array2<f64>, Array1<f64>, f64)
 where
-    F: Fn(usize) -> (f64, f64, f64) + Sync,
+    F: Fn(usize, &[f64]) -> (f64, f64, f64) + Sync,
 {
     let (n, k) = x.dim();
     let owned;
@@ -96,7 +96,7 @@ where
             let mut total = 0.0;
             for i in (b * block)..((b + 1) * block).min(n) {
                 let row = &flat[i * k..(i + 1) * k];
-                let (w, wy, extra) = weights(i);
+                let (w, wy, extra) = weights(i, row);
                 total += extra;
                 for a in 0..k {
                     let wa = w * row[a];
@@ -237,19 +237,57 @@ pub fn cluster_covariance(bread: &Array2<f64>, scores: &Array2<f64>, n: usize) -
     bread.dot(&meat).dot(bread) * c
 }
 
-/// Summed score contributions s_i x_i per cluster.
-fn cluster_scores(x: ArrayView2<f64>, s: &[f64], cluster: &[usize], groups: usize) -> Array2<f64> {
-    let k = x.ncols();
-    let mut u = vec![0.0; groups * k];
+/// Summed score contributions s_i x_i per cluster, with `score(i, x_i)` giving s_i: one
+/// pass over the rows in blocks on rayon's pool, each block with its own per-cluster sums,
+/// added up in a fixed order (the same result on every run).
+fn cluster_scores<F>(x: ArrayView2<f64>, cluster: &[usize], groups: usize, score: F) -> Array2<f64>
+where
+    F: Fn(usize, &[f64]) -> f64 + Sync,
+{
+    use rayon::prelude::*;
+    let (n, k) = x.dim();
     let standard = x.as_standard_layout();
     let flat = standard.as_slice().unwrap_or(&[]);
-    for (i, row) in flat.chunks_exact(k.max(1)).enumerate() {
-        let ug = &mut u[cluster[i] * k..(cluster[i] + 1) * k];
-        for (a, v) in ug.iter_mut().zip(row) {
-            *a += s[i] * v;
-        }
+    let block = if n < 20_000 { n.max(1) } else { 16_384 };
+    let parts: Vec<Vec<f64>> = (0..n.div_ceil(block))
+        .into_par_iter()
+        .map(|b| {
+            let mut u = vec![0.0; groups * k];
+            for i in (b * block)..((b + 1) * block).min(n) {
+                let row = &flat[i * k..(i + 1) * k];
+                let s = score(i, row);
+                let ug = &mut u[cluster[i] * k..(cluster[i] + 1) * k];
+                for (a, v) in ug.iter_mut().zip(row) {
+                    *a += s * v;
+                }
+            }
+            u
+        })
+        .collect();
+    let mut u = vec![0.0; groups * k];
+    for part in parts {
+        u.iter_mut().zip(part).for_each(|(a, b)| *a += b);
     }
     Array2::from_shape_vec((groups, k), u).unwrap_or_else(|_| Array2::zeros((groups, k)))
+}
+
+/// x_i' beta for one row.
+#[inline]
+fn row_dot(row: &[f64], beta: &[f64]) -> f64 {
+    row.iter().zip(beta).map(|(a, b)| a * b).sum()
+}
+
+/// The logistic function and log(1 + exp(eta)) from one exponential, exp(-|eta|), with the
+/// same branches as [`logistic`] and the log-likelihood's softplus.
+#[inline]
+fn logistic_and_softplus(eta: f64) -> (f64, f64) {
+    if eta >= 0.0 {
+        let t = (-eta).exp();
+        (1.0 / (1.0 + t), eta + t.ln_1p())
+    } else {
+        let t = eta.exp();
+        (t / (1.0 + t), t.ln_1p())
+    }
 }
 
 /// Fits the model with clustered standard errors. `cluster[i]` is respondent i's cluster
@@ -281,26 +319,27 @@ pub fn fit(
         return Err(RegressionError::OneCluster(distinct));
     }
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
-    let (beta, bread, scores, converged, iterations) = match kind {
+    let (beta, bread, u, converged, iterations) = match kind {
         Kind::Linear => {
             let (beta, bread) = weighted_least_squares(x, y, w)?;
-            let fitted = x.dot(&beta);
-            let s: Vec<f64> = (0..n).map(|i| weight(i) * (y[i] - fitted[i])).collect();
-            (beta, bread, s, true, 1)
+            let b = beta.to_vec();
+            let u = cluster_scores(x, cluster, groups, |i, row| {
+                weight(i) * (y[i] - row_dot(row, &b))
+            });
+            (beta, bread, u, true, 1)
         }
         Kind::Logistic => {
             if let Some(bad) = y.iter().find(|v| **v != 0.0 && **v != 1.0) {
                 return Err(RegressionError::NotBinary(*bad));
             }
             let (beta, bread, converged, iterations) = logistic_newton(x, y, w)?;
-            let eta = x.dot(&beta);
-            let s: Vec<f64> = (0..n)
-                .map(|i| weight(i) * (y[i] - logistic(eta[i])))
-                .collect();
-            (beta, bread, s, converged, iterations)
+            let b = beta.to_vec();
+            let u = cluster_scores(x, cluster, groups, |i, row| {
+                weight(i) * (y[i] - logistic(row_dot(row, &b)))
+            });
+            (beta, bread, u, converged, iterations)
         }
     };
-    let u = cluster_scores(x, &scores, cluster, groups);
     let cov = cluster_covariance(&bread, &u, n);
     Ok(RegressionFit {
         coef: beta.to_vec(),
@@ -326,16 +365,11 @@ fn logistic_newton(
     // One pass over the respondents gives the information, the score and the
     // log-likelihood at beta.
     let pass = |beta: &Array1<f64>| -> (Array2<f64>, Array1<f64>, f64) {
-        let eta = x.dot(beta);
-        let (mut m, g, ll) = accumulate(x, |i| {
-            let e = eta[i];
-            let p = logistic(e);
+        let b = beta.to_vec();
+        let (mut m, g, ll) = accumulate(x, |i, row| {
+            let e = row_dot(row, &b);
+            let (p, softplus) = logistic_and_softplus(e);
             let wi = weight(i);
-            let softplus = if e > 0.0 {
-                e + (-e).exp().ln_1p()
-            } else {
-                e.exp().ln_1p()
-            };
             (
                 wi * p * (1.0 - p),
                 wi * (y[i] - p),
@@ -435,12 +469,11 @@ pub fn score_cluster_bootstrap(
     let eta = restricted_x.dot(&restricted);
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
     let p: Vec<f64> = eta.iter().map(|&e| logistic(e)).collect();
-    let (mut h, _, _) = accumulate(x, |i| (weight(i) * p[i] * (1.0 - p[i]), 0.0, 0.0));
+    let (mut h, _, _) = accumulate(x, |i, _| (weight(i) * p[i] * (1.0 - p[i]), 0.0, 0.0));
     symmetrise(&mut h);
     let h_inv = linalg::inverse_spd(h.view()).map_err(|_| RegressionError::Singular)?;
     let groups = cluster.iter().max().map_or(0, |m| m + 1);
-    let s: Vec<f64> = (0..n).map(|i| weight(i) * (y[i] - p[i])).collect();
-    let scores = cluster_scores(x, &s, cluster, groups);
+    let scores = cluster_scores(x, cluster, groups, |i, _| weight(i) * (y[i] - p[i]));
     let present: Vec<usize> = (0..groups)
         .filter(|&g| scores.row(g).iter().any(|v| *v != 0.0))
         .collect();

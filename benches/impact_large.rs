@@ -1,0 +1,121 @@
+//! The impact page on a project with about 570,000 respondents, cold: the demo's frame and
+//! manifest with twice the demo's respondents per country and wave (each demo respondent
+//! and one drawn at random, seeded, from the same country and wave), through the router as
+//! a browser's request would go, first request on a fresh server (the median of several).
+//! Target: under 300 ms cold.
+//!
+//!     cargo bench --bench impact_large
+//!
+//! The project is written (seeded) into the target directory on first run.
+
+use std::collections::HashMap;
+use std::fmt::Write as _;
+use std::path::PathBuf;
+use std::sync::Arc;
+use std::time::Instant;
+
+use axum::body::Body;
+use axum::http::Request;
+use gapwise::project::Project;
+use gapwise::stats::random::Rng;
+use gapwise::web::{self, AppState};
+use tower::ServiceExt;
+
+const ROUTES: [&str; 3] = [
+    "/impact",
+    "/api/impact",
+    "/impact?wave=1&kind=logistic&outcome=turnout",
+];
+
+fn project_dir() -> PathBuf {
+    let target = std::env::var("CARGO_TARGET_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|_| PathBuf::from("target"));
+    let dir = target.join("bench-impact-large");
+    if dir.join("microdata.csv").exists() {
+        return dir;
+    }
+    let demo = gapwise::demo_dir();
+    std::fs::create_dir_all(&dir).expect("bench project dir");
+    for file in ["project.toml", "frame.csv"] {
+        std::fs::copy(demo.join(file), dir.join(file)).expect("copy demo file");
+    }
+    let text = std::fs::read_to_string(demo.join("microdata.csv")).expect("demo microdata");
+    let mut lines = text.lines();
+    let header = lines.next().expect("header");
+    let rows: Vec<&str> = lines.filter(|l| !l.is_empty()).collect();
+    // Rows of each country and wave (the first two fields).
+    let mut groups: HashMap<&str, Vec<usize>> = HashMap::new();
+    for (i, row) in rows.iter().enumerate() {
+        let end = row.match_indices(',').nth(1).map_or(row.len(), |(p, _)| p);
+        groups.entry(&row[..end]).or_default().push(i);
+    }
+    let mut rng = Rng::new(560_000);
+    let mut out = String::with_capacity(text.len() * 2 + 1);
+    let _ = writeln!(out, "{header}");
+    for row in &rows {
+        let end = row.match_indices(',').nth(1).map_or(row.len(), |(p, _)| p);
+        let group = &groups[&row[..end]];
+        let drawn = rows[group[rng.below(group.len())]];
+        let _ = writeln!(out, "{row}\n{drawn}");
+    }
+    let tmp = dir.join("microdata.csv.part");
+    std::fs::write(&tmp, out).expect("write bench microdata");
+    std::fs::rename(&tmp, dir.join("microdata.csv")).expect("rename bench microdata");
+    dir
+}
+
+/// Milliseconds to answer `uri`; panics unless the answer is 200.
+fn time(runtime: &tokio::runtime::Runtime, state: &Arc<AppState>, uri: &str) -> f64 {
+    let start = Instant::now();
+    let status = runtime.block_on(async {
+        let response = web::router(Arc::clone(state))
+            .oneshot(Request::get(uri).body(Body::empty()).expect("request"))
+            .await
+            .expect("router answers");
+        let status = response.status();
+        let _ = axum::body::to_bytes(response.into_body(), usize::MAX).await;
+        status
+    });
+    assert!(status.is_success(), "{uri} answered {status}");
+    start.elapsed().as_secs_f64() * 1000.0
+}
+
+fn main() {
+    let dir = project_dir();
+    let start = Instant::now();
+    let project = Project::load(&dir).expect("bench project loads");
+    let load_ms = start.elapsed().as_secs_f64() * 1000.0;
+    let respondents = project.microdata.as_ref().map_or(0, |m| m.height());
+    println!("{respondents} respondents; project load {load_ms:.0} ms (not counted below)");
+    drop(project);
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .expect("runtime");
+    println!(
+        "{:<56} {:>10} {:>10} {:>11}",
+        "route", "cold ms", "max ms", "cached ms"
+    );
+    let mut worst = 0.0f64;
+    for uri in ROUTES {
+        let mut cold = Vec::new();
+        let mut cached = Vec::new();
+        for _ in 0..3 {
+            let state = Arc::new(AppState::new(Project::load(&dir).expect("loads")));
+            cold.push(time(&runtime, &state, uri));
+            cached.push(time(&runtime, &state, uri));
+        }
+        cold.sort_by(f64::total_cmp);
+        cached.sort_by(f64::total_cmp);
+        let (c, max, h) = (
+            cold[cold.len() / 2],
+            cold[cold.len() - 1],
+            cached[cached.len() / 2],
+        );
+        worst = worst.max(c);
+        println!("{uri:<56} {c:>10.1} {max:>10.1} {h:>11.2}");
+    }
+    println!("slowest cold median: {worst:.0} ms (goal: under 300 ms)");
+}
