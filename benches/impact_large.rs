@@ -4,7 +4,7 @@
 //! a browser's request would go, first request on a fresh server (the median of several).
 //! Target: under 300 ms cold.
 //!
-//!     cargo bench --bench impact_large
+//!     cargo bench --bench impact_large [-- ROUTE...]
 //!
 //! The project is written (seeded) into the target directory on first run.
 
@@ -99,7 +99,17 @@ fn main() {
         "route", "cold ms", "max ms", "cached ms"
     );
     let mut worst = 0.0f64;
-    for uri in ROUTES {
+    // `cargo bench --bench impact_large -- ROUTE...` times only those routes.
+    let chosen: Vec<String> = std::env::args()
+        .skip(1)
+        .filter(|a| a.starts_with('/'))
+        .collect();
+    let routes: Vec<&str> = if chosen.is_empty() {
+        ROUTES.to_vec()
+    } else {
+        chosen.iter().map(String::as_str).collect()
+    };
+    for uri in routes {
         let mut cold = Vec::new();
         let mut cached = Vec::new();
         for _ in 0..3 {

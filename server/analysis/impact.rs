@@ -323,12 +323,35 @@ pub fn impact(
     terms.extend(imp.predictors.iter().cloned());
     let mut variants = Vec::new();
     let seed = settings.seed;
+    let d_rows: Vec<f64> = rows
+        .iter()
+        .map(|&i| design_weight[i].unwrap_or(0.0))
+        .collect();
+    // A linear model's every weighting from per-country sums of the design-weighted
+    // respondents: a weighting only rescales each country's sums by share / design total.
+    let linear_sums = (imp.kind == Kind::Linear)
+        .then(|| regression::LinearSums::new(x.view(), &y, Some(&d_rows), &cluster));
+    let mut unit_of_cluster = vec![0; cluster_ids.len()];
+    for (&u, &g) in &cluster_ids {
+        unit_of_cluster[g] = u;
+    }
     let run = |key: &str, label: &str, share: Result<Vec<f64>, String>, se_kind: &str| -> Variant {
         match share {
             Err(e) => failed(key, label, e, x.ncols()),
             Ok(share) => {
-                let w = respondent_weights(&|u| share[u]);
-                let mut v = estimate(key, label, &x, &y, &w, &cluster, imp, seed, df);
+                let mut v = match &linear_sums {
+                    Some(sums) => {
+                        let factor: Vec<f64> = unit_of_cluster
+                            .iter()
+                            .map(|&u| share[u] / design_total[&u])
+                            .collect();
+                        estimate_linear(key, label, &sums.scaled(&factor), imp, seed, df)
+                    }
+                    None => {
+                        let w = respondent_weights(&|u| share[u]);
+                        estimate(key, label, &x, &y, &w, &cluster, imp, seed, df)
+                    }
+                };
                 v.smd = smd_of(&|u| share[u]);
                 v.max_abs_smd = v
                     .smd
@@ -409,10 +432,6 @@ pub fn impact(
     for (r, &u) in unit_of.iter().enumerate() {
         by_unit[u].push(r);
     }
-    let d_rows: Vec<f64> = rows
-        .iter()
-        .map(|&i| design_weight[i].unwrap_or(0.0))
-        .collect();
     let stats: Vec<Option<CountryStats>> = by_unit
         .iter()
         .map(|r| {
@@ -864,6 +883,59 @@ fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
         worse_than_none: false,
         se_kind: String::new(),
         bootstrap: TermsBootstrap::default(),
+    }
+}
+
+/// [`estimate`] of a linear model from its per-country sums (the same estimates, from the
+/// normal equations instead of a QR decomposition of the respondents).
+fn estimate_linear(
+    key: &str,
+    label: &str,
+    sums: &regression::LinearSums,
+    imp: &ImpactSettings,
+    seed: u64,
+    df: usize,
+) -> Variant {
+    let q975 = regression::student::upper_quantile(0.975, df as f64);
+    let pooled = sums.first_column().fit().ok().map(|f| Pooled {
+        estimate: f.coef[0],
+        se: f.se[0],
+        low: f.coef[0] - q975 * f.se[0],
+        high: f.coef[0] + q975 * f.se[0],
+        bootstrap: PooledBootstrap::default(),
+    });
+    let k = imp.predictors.len() + 1;
+    match sums.fit() {
+        Err(e) => failed(key, label, e.to_string(), k),
+        Ok(f) => {
+            let p_cluster: Vec<f64> = f
+                .coef
+                .iter()
+                .zip(&f.se)
+                .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
+                .collect();
+            let p_bootstrap = (imp.wild_replicates > 0).then(|| {
+                sums.wild_bootstrap_terms(&f, imp.wild_replicates, seed)
+                    .unwrap_or_else(|_| vec![f64::NAN; k])
+            });
+            Variant {
+                key: key.to_string(),
+                label: label.to_string(),
+                error: None,
+                pooled,
+                sign_changed: vec![false; f.coef.len()],
+                verdict_changed: vec![false; f.coef.len()],
+                coef: f.coef,
+                se: f.se,
+                p_cluster,
+                p_bootstrap,
+                smd: Vec::new(),
+                max_abs_smd: None,
+                worse_than_none: false,
+                se_kind: String::new(),
+                bootstrap: TermsBootstrap::default(),
+            }
+        }
     }
 }
 

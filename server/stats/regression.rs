@@ -647,6 +647,170 @@ impl ClusterSums {
     }
 }
 
+/// A weighted linear model's respondents as per-cluster sufficient statistics: M_g =
+/// X_g'W_g X_g, b_g = X_g'W_g y_g and the row count n_g. Weights that are a per-cluster
+/// factor times fixed base weights (country weights spread over design weights) only
+/// rescale M_g and b_g, so every weighting's fit, CR1 errors and wild cluster bootstrap
+/// follow from one pass over the respondents ([`LinearSums::scaled`]).
+#[derive(Debug, Clone)]
+pub struct LinearSums {
+    m: Vec<Array2<f64>>,
+    b: Vec<Array1<f64>>,
+    rows: Vec<usize>,
+}
+
+impl LinearSums {
+    /// One parallel pass over the rows (in blocks summed in a fixed order).
+    pub fn new(x: ArrayView2<f64>, y: &[f64], w: Option<&[f64]>, cluster: &[usize]) -> Self {
+        use rayon::prelude::*;
+        let (n, k) = x.dim();
+        let groups = cluster.iter().max().map_or(0, |m| m + 1);
+        let standard = x.as_standard_layout();
+        let flat = standard.as_slice().unwrap_or(&[]);
+        let block = if n < 20_000 { n.max(1) } else { 16_384 };
+        let empty = || {
+            (
+                vec![Array2::<f64>::zeros((k, k)); groups],
+                vec![Array1::<f64>::zeros(k); groups],
+                vec![0usize; groups],
+            )
+        };
+        let parts: Vec<_> = (0..n.div_ceil(block))
+            .into_par_iter()
+            .map(|blk| {
+                let (mut m, mut b, mut rows) = empty();
+                for i in (blk * block)..((blk + 1) * block).min(n) {
+                    let g = cluster[i];
+                    let wi = w.map_or(1.0, |w| w[i]);
+                    let row = ArrayView1::from(&flat[i * k..(i + 1) * k]);
+                    add_outer(&mut m[g], &mut b[g], row, wi, wi * y[i]);
+                    rows[g] += 1;
+                }
+                (m, b, rows)
+            })
+            .collect();
+        let (mut m, mut b, mut rows) = empty();
+        for (pm, pb, pr) in parts {
+            for g in 0..groups {
+                m[g] += &pm[g];
+                b[g] += &pb[g];
+                rows[g] += pr[g];
+            }
+        }
+        m.iter_mut().for_each(symmetrise);
+        LinearSums { m, b, rows }
+    }
+
+    /// The sums under weights `factor[g]` times the base weights; clusters whose factor is
+    /// not positive (or not a number) are left out, as rows without weight are.
+    pub fn scaled(&self, factor: &[f64]) -> LinearSums {
+        let keep = |g: usize| factor.get(g).is_some_and(|f| *f > 0.0);
+        LinearSums {
+            m: (0..self.m.len())
+                .map(|g| {
+                    if keep(g) {
+                        &self.m[g] * factor[g]
+                    } else {
+                        self.m[g].clone() * 0.0
+                    }
+                })
+                .collect(),
+            b: (0..self.b.len())
+                .map(|g| {
+                    if keep(g) {
+                        &self.b[g] * factor[g]
+                    } else {
+                        self.b[g].clone() * 0.0
+                    }
+                })
+                .collect(),
+            rows: (0..self.rows.len())
+                .map(|g| if keep(g) { self.rows[g] } else { 0 })
+                .collect(),
+        }
+    }
+
+    /// The sums of the model with the first column only (the intercept: a weighted mean).
+    pub fn first_column(&self) -> LinearSums {
+        LinearSums {
+            m: self
+                .m
+                .iter()
+                .map(|m| m.slice(ndarray::s![..1, ..1]).to_owned())
+                .collect(),
+            b: self
+                .b
+                .iter()
+                .map(|b| b.slice(ndarray::s![..1]).to_owned())
+                .collect(),
+            rows: self.rows.clone(),
+        }
+    }
+
+    /// Weighted least squares from the normal equations (sum M) beta = sum b, with CR1
+    /// standard errors from the cluster scores u_g = b_g - M_g beta (Cameron & Miller 2015,
+    /// eq. 11 and section VI.B, as [`fit`]); G counts clusters up to the last one with
+    /// rows, as [`fit`] does.
+    pub fn fit(&self) -> Result<RegressionFit, RegressionError> {
+        let k = self.b.first().map_or(0, |b| b.len());
+        let n: usize = self.rows.iter().sum();
+        if n <= k {
+            return Err(RegressionError::TooFew { n, k });
+        }
+        let present: Vec<usize> = (0..self.rows.len()).filter(|&g| self.rows[g] > 0).collect();
+        if present.len() < 2 {
+            return Err(RegressionError::OneCluster(present.len()));
+        }
+        let groups = present.last().map_or(0, |g| g + 1);
+        let total_m = present
+            .iter()
+            .fold(Array2::<f64>::zeros((k, k)), |a, &g| a + &self.m[g]);
+        let total_b = present
+            .iter()
+            .fold(Array1::<f64>::zeros(k), |a, &g| a + &self.b[g]);
+        let beta = linalg::solve_spd(total_m.view(), total_b.view())
+            .map_err(|_| RegressionError::Singular)?;
+        let bread = linalg::inverse_spd(total_m.view()).map_err(|_| RegressionError::Singular)?;
+        let mut u = Array2::<f64>::zeros((groups, k));
+        for &g in &present {
+            u.row_mut(g).assign(&(&self.b[g] - &self.m[g].dot(&beta)));
+        }
+        let cov = cluster_covariance(&bread, &u, n);
+        Ok(RegressionFit {
+            coef: beta.to_vec(),
+            se: cov.diag().iter().map(|v| v.max(0.0).sqrt()).collect(),
+            cov,
+            bread,
+            n,
+            clusters: present.len(),
+            converged: true,
+            iterations: 1,
+        })
+    }
+
+    /// [`wild_cluster_bootstrap_terms`] from the sums, with their fit.
+    pub fn wild_bootstrap_terms(
+        &self,
+        full: &RegressionFit,
+        replicates: usize,
+        seed: u64,
+    ) -> Result<Vec<f64>, RegressionError> {
+        let k = full.coef.len();
+        let present: Vec<usize> = (0..self.rows.len())
+            .filter(|&g| self.m[g][[0, 0]] != 0.0 || self.b[g].iter().any(|v| *v != 0.0))
+            .collect();
+        let sums = ClusterSums {
+            full: full.clone(),
+            m: self.m.clone(),
+            b: self.b.clone(),
+            present,
+            n: full.n,
+            k,
+        };
+        (0..k).map(|j| sums.wild_p(j, replicates, seed)).collect()
+    }
+}
+
 /// Bootstrap p-value (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley 1997, eq. 4.11):
 /// the observed statistic counts as one of the B + 1 draws, so it is never 0.
 pub fn bootstrap_p(exceed: usize, replicates: usize) -> f64 {
@@ -1041,5 +1205,63 @@ mod tests {
         }
         // df 1 is the Cauchy distribution: P(|T| >= 1) = 1/2 exactly.
         assert!((student::two_sided_p(1.0, 1.0) - 0.5).abs() < 1e-14);
+    }
+
+    #[test]
+    fn per_cluster_sums_give_the_respondent_fit() {
+        use super::{fit, wild_cluster_bootstrap_terms, Kind, LinearSums, RegressionError};
+        // Common practice: weights that are a per-cluster factor times base weights only
+        // rescale each cluster's sums, so the fit from sums equals the fit on the rows (QR)
+        // to rounding, the intercept-only sums give the weighted mean, and a cluster whose
+        // factor is 0 is left out as its rows would be.
+        let mut rng = crate::stats::random::Rng::new(12);
+        let n = 600;
+        let x = ndarray::Array2::from_shape_fn(
+            (n, 3),
+            |(_, c)| {
+                if c == 0 {
+                    1.0
+                } else {
+                    rng.normal()
+                }
+            },
+        );
+        let cluster: Vec<usize> = (0..n).map(|i| i % 10).collect();
+        let y: Vec<f64> = (0..n)
+            .map(|i| 1.0 + 0.5 * x[[i, 1]] + rng.normal() + (cluster[i] as f64) * 0.1)
+            .collect();
+        let base: Vec<f64> = (0..n).map(|i| 0.5 + (i % 4) as f64).collect();
+        let mut factor: Vec<f64> = (0..10).map(|g| 0.2 + g as f64 / 7.0).collect();
+        factor[9] = 0.0;
+        let keep: Vec<usize> = (0..n).filter(|&i| cluster[i] != 9).collect();
+        let xs = x.select(ndarray::Axis(0), &keep);
+        let ys: Vec<f64> = keep.iter().map(|&i| y[i]).collect();
+        let ws: Vec<f64> = keep.iter().map(|&i| factor[cluster[i]] * base[i]).collect();
+        let cs: Vec<usize> = keep.iter().map(|&i| cluster[i]).collect();
+        let rows = fit(xs.view(), &ys, Some(&ws), &cs, Kind::Linear).unwrap();
+        let sums = LinearSums::new(x.view(), &y, Some(&base), &cluster).scaled(&factor);
+        let from_sums = sums.fit().unwrap();
+        assert_eq!((from_sums.n, from_sums.clusters), (540, 9));
+        assert_eq!(from_sums.coef.len(), 3);
+        for j in 0..3 {
+            assert!((from_sums.coef[j] - rows.coef[j]).abs() < 1e-10, "coef {j}");
+            assert!((from_sums.se[j] - rows.se[j]).abs() < 1e-10, "se {j}");
+        }
+        let mean = ys.iter().zip(&ws).map(|(a, b)| a * b).sum::<f64>() / ws.iter().sum::<f64>();
+        assert!((sums.first_column().fit().unwrap().coef[0] - mean).abs() < 1e-12);
+        let p_rows = wild_cluster_bootstrap_terms(xs.view(), &ys, Some(&ws), &cs, 99, 3).unwrap();
+        let p_sums = sums.wild_bootstrap_terms(&from_sums, 99, 3).unwrap();
+        assert_eq!(p_rows.len(), p_sums.len());
+        for (a, b) in p_rows.iter().zip(&p_sums) {
+            assert!((a - b).abs() <= 1.0 / 100.0 + 1e-12, "{a} vs {b}");
+        }
+        // One cluster with weight left is not enough for clustered errors.
+        let one: Vec<f64> = (0..10).map(|g| if g == 0 { 1.0 } else { 0.0 }).collect();
+        assert!(matches!(
+            LinearSums::new(x.view(), &y, Some(&base), &cluster)
+                .scaled(&one)
+                .fit(),
+            Err(RegressionError::OneCluster(1))
+        ));
     }
 }
