@@ -179,7 +179,14 @@ pub fn impact(
         .collect();
 
     // Respondents of this wave's participants with complete values.
-    let countries = micro.texts(&roles.country);
+    // Country codes as level indices (no text copied per respondent), with each level's
+    // participant index, if it is one.
+    let (country_codes, country_levels) = micro.factorise(&roles.country);
+    let participant_of_level: Vec<Option<usize>> = country_levels
+        .iter()
+        .map(|c| country_index.get(c.as_str()).copied())
+        .collect();
+    let level_of = |i: usize| country_codes.get(i).copied().flatten();
     let waves = micro.integers(&roles.wave);
     let design_weight = micro.numbers(&roles.design_weight);
     let outcome = micro.numbers(&imp.outcome);
@@ -195,10 +202,13 @@ pub fn impact(
                 .map(String::as_str)
                 .zip(ind.values.iter().copied())
                 .collect();
+            let by_level: Vec<Option<f64>> = country_levels
+                .iter()
+                .map(|c| by_code.get(c.as_str()).copied().flatten())
+                .collect();
             predictor_values.push(
-                countries
-                    .iter()
-                    .map(|c| c.as_deref().and_then(|c| by_code.get(c).copied().flatten()))
+                (0..micro.height())
+                    .map(|i| level_of(i).and_then(|l| by_level[l]))
                     .collect(),
             );
         } else {
@@ -210,11 +220,7 @@ pub fn impact(
     }
     let rows: Vec<usize> = (0..micro.height())
         .filter(|&i| waves[i] == Some(view.wave))
-        .filter(|&i| {
-            countries[i]
-                .as_deref()
-                .is_some_and(|c| country_index.contains_key(c))
-        })
+        .filter(|&i| level_of(i).is_some_and(|l| participant_of_level[l].is_some()))
         .filter(|&i| {
             outcome[i].is_some()
                 && design_weight[i].is_some()
@@ -229,7 +235,11 @@ pub fn impact(
     }
     let unit_of: Vec<usize> = rows
         .iter()
-        .map(|&i| country_index[countries[i].as_deref().unwrap_or("")])
+        .map(|&i| {
+            level_of(i)
+                .and_then(|l| participant_of_level[l])
+                .unwrap_or(0)
+        })
         .collect();
     let mut cluster_ids: HashMap<usize, usize> = HashMap::new();
     let cluster: Vec<usize> = unit_of
