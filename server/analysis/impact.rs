@@ -179,7 +179,14 @@ pub fn impact(
         .collect();
 
     // Respondents of this wave's participants with complete values.
-    let countries = micro.texts(&roles.country);
+    // Country codes as level indices (no text copied per respondent), with each level's
+    // participant index, if it is one.
+    let (country_codes, country_levels) = micro.factorise(&roles.country);
+    let participant_of_level: Vec<Option<usize>> = country_levels
+        .iter()
+        .map(|c| country_index.get(c.as_str()).copied())
+        .collect();
+    let level_of = |i: usize| country_codes.get(i).copied().flatten();
     let waves = micro.integers(&roles.wave);
     let design_weight = micro.numbers(&roles.design_weight);
     let outcome = micro.numbers(&imp.outcome);
@@ -195,10 +202,13 @@ pub fn impact(
                 .map(String::as_str)
                 .zip(ind.values.iter().copied())
                 .collect();
+            let by_level: Vec<Option<f64>> = country_levels
+                .iter()
+                .map(|c| by_code.get(c.as_str()).copied().flatten())
+                .collect();
             predictor_values.push(
-                countries
-                    .iter()
-                    .map(|c| c.as_deref().and_then(|c| by_code.get(c).copied().flatten()))
+                (0..micro.height())
+                    .map(|i| level_of(i).and_then(|l| by_level[l]))
                     .collect(),
             );
         } else {
@@ -210,11 +220,7 @@ pub fn impact(
     }
     let rows: Vec<usize> = (0..micro.height())
         .filter(|&i| waves[i] == Some(view.wave))
-        .filter(|&i| {
-            countries[i]
-                .as_deref()
-                .is_some_and(|c| country_index.contains_key(c))
-        })
+        .filter(|&i| level_of(i).is_some_and(|l| participant_of_level[l].is_some()))
         .filter(|&i| {
             outcome[i].is_some()
                 && design_weight[i].is_some()
@@ -229,7 +235,11 @@ pub fn impact(
     }
     let unit_of: Vec<usize> = rows
         .iter()
-        .map(|&i| country_index[countries[i].as_deref().unwrap_or("")])
+        .map(|&i| {
+            level_of(i)
+                .and_then(|l| participant_of_level[l])
+                .unwrap_or(0)
+        })
         .collect();
     let mut cluster_ids: HashMap<usize, usize> = HashMap::new();
     let cluster: Vec<usize> = unit_of
@@ -323,12 +333,35 @@ pub fn impact(
     terms.extend(imp.predictors.iter().cloned());
     let mut variants = Vec::new();
     let seed = settings.seed;
+    let d_rows: Vec<f64> = rows
+        .iter()
+        .map(|&i| design_weight[i].unwrap_or(0.0))
+        .collect();
+    // A linear model's every weighting from per-country sums of the design-weighted
+    // respondents: a weighting only rescales each country's sums by share / design total.
+    let linear_sums = (imp.kind == Kind::Linear)
+        .then(|| regression::LinearSums::new(x.view(), &y, Some(&d_rows), &cluster));
+    let mut unit_of_cluster = vec![0; cluster_ids.len()];
+    for (&u, &g) in &cluster_ids {
+        unit_of_cluster[g] = u;
+    }
     let run = |key: &str, label: &str, share: Result<Vec<f64>, String>, se_kind: &str| -> Variant {
         match share {
             Err(e) => failed(key, label, e, x.ncols()),
             Ok(share) => {
-                let w = respondent_weights(&|u| share[u]);
-                let mut v = estimate(key, label, &x, &y, &w, &cluster, imp, seed, df);
+                let mut v = match &linear_sums {
+                    Some(sums) => {
+                        let factor: Vec<f64> = unit_of_cluster
+                            .iter()
+                            .map(|&u| share[u] / design_total[&u])
+                            .collect();
+                        estimate_linear(key, label, &sums.scaled(&factor), imp, seed, df)
+                    }
+                    None => {
+                        let w = respondent_weights(&|u| share[u]);
+                        estimate(key, label, &x, &y, &w, &cluster, imp, seed, df)
+                    }
+                };
                 v.smd = smd_of(&|u| share[u]);
                 v.max_abs_smd = v
                     .smd
@@ -409,10 +442,6 @@ pub fn impact(
     for (r, &u) in unit_of.iter().enumerate() {
         by_unit[u].push(r);
     }
-    let d_rows: Vec<f64> = rows
-        .iter()
-        .map(|&i| design_weight[i].unwrap_or(0.0))
-        .collect();
     let stats: Vec<Option<CountryStats>> = by_unit
         .iter()
         .map(|r| {
@@ -849,6 +878,59 @@ fn failed(key: &str, label: &str, error: String, k: usize) -> Variant {
         worse_than_none: false,
         se_kind: String::new(),
         bootstrap: TermsBootstrap::default(),
+    }
+}
+
+/// [`estimate`] of a linear model from its per-country sums (the same estimates, from the
+/// normal equations instead of a QR decomposition of the respondents).
+fn estimate_linear(
+    key: &str,
+    label: &str,
+    sums: &regression::LinearSums,
+    imp: &ImpactSettings,
+    seed: u64,
+    df: usize,
+) -> Variant {
+    let q975 = regression::student::upper_quantile(0.975, df as f64);
+    let pooled = sums.first_column().fit().ok().map(|f| Pooled {
+        estimate: f.coef[0],
+        se: f.se[0],
+        low: f.coef[0] - q975 * f.se[0],
+        high: f.coef[0] + q975 * f.se[0],
+        bootstrap: PooledBootstrap::default(),
+    });
+    let k = imp.predictors.len() + 1;
+    match sums.fit() {
+        Err(e) => failed(key, label, e.to_string(), k),
+        Ok(f) => {
+            let p_cluster: Vec<f64> = f
+                .coef
+                .iter()
+                .zip(&f.se)
+                .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
+                .collect();
+            let p_bootstrap = (imp.wild_replicates > 0).then(|| {
+                sums.wild_bootstrap_terms(&f, imp.wild_replicates, seed)
+                    .unwrap_or_else(|_| vec![f64::NAN; k])
+            });
+            Variant {
+                key: key.to_string(),
+                label: label.to_string(),
+                error: None,
+                pooled,
+                sign_changed: vec![false; f.coef.len()],
+                verdict_changed: vec![false; f.coef.len()],
+                coef: f.coef,
+                se: f.se,
+                p_cluster,
+                p_bootstrap,
+                smd: Vec::new(),
+                max_abs_smd: None,
+                worse_than_none: false,
+                se_kind: String::new(),
+                bootstrap: TermsBootstrap::default(),
+            }
+        }
     }
 }
 

@@ -7,7 +7,8 @@ use std::path::Path;
 use ndarray::Array2;
 use serde::Serialize;
 
-use crate::project::table::{load_table, ColumnKind, ColumnSpec};
+use crate::project::table::clean_csv::{read_clean_csv, CleanRequest, Target};
+use crate::project::table::{load_table, load_table_bytes, read_stable, ColumnKind, ColumnSpec};
 use crate::project::Problem;
 use crate::stats::regression::{self, Kind, TwoStepInput};
 
@@ -45,6 +46,7 @@ pub enum MicrodataError {
 }
 
 /// Columns of a respondent file ready for a regression: complete cases only.
+#[derive(Debug)]
 pub struct RegressionData {
     pub x: Array2<f64>,
     pub y: Vec<f64>,
@@ -55,7 +57,9 @@ pub struct RegressionData {
     pub dropped: usize,
 }
 
-/// Reads the needed columns of a CSV or Parquet file and keeps the complete rows.
+/// Reads the needed columns of a CSV or Parquet file and keeps the complete rows. A clean
+/// CSV (no missing values, nothing to report) is read in one quick pass straight into the
+/// design matrix; any other file takes the careful read, which names each bad cell.
 pub fn read_regression_file(
     path: &Path,
     outcome: &str,
@@ -79,7 +83,16 @@ pub fn read_regression_file(
     if let Some(w) = weight {
         specs.push(ColumnSpec::new(w, ColumnKind::Number, "--design-weight"));
     }
-    let table = load_table(path, &label, &specs).map_err(MicrodataError::Input)?;
+    let bytes = read_stable(path, &label).map_err(|p| MicrodataError::Input(vec![p]))?;
+    let is_parquet = path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("parquet"));
+    if !is_parquet {
+        if let Some(data) = quick_regression_data(&bytes, outcome, predictors, cluster, weight) {
+            return Ok(data);
+        }
+    }
+    let table = load_table_bytes(path, bytes, &label, &specs).map_err(MicrodataError::Input)?;
     if let Some(data) = dense_regression_data(&table, outcome, predictors, cluster, weight) {
         return data.map_err(|(row, message)| {
             MicrodataError::Input(vec![Problem::at(
@@ -139,6 +152,67 @@ pub fn read_regression_file(
         cluster: cluster_of,
         clusters,
         dropped: n_all - keep.len(),
+    })
+}
+
+/// A clean CSV's columns read straight into the design matrix (intercept first), the
+/// outcome and the weights; `None` when the careful read is needed (a missing or bad
+/// cell, a weight that is not positive: it names the row).
+fn quick_regression_data(
+    bytes: &[u8],
+    outcome: &str,
+    predictors: &[String],
+    cluster: &str,
+    weight: Option<&str>,
+) -> Option<RegressionData> {
+    let k = predictors.len() + 1;
+    let mut numbers = vec![(
+        outcome,
+        Target {
+            output: 1,
+            column: 0,
+        },
+    )];
+    numbers.extend(predictors.iter().enumerate().map(|(j, p)| {
+        (
+            p.as_str(),
+            Target {
+                output: 0,
+                column: j + 1,
+            },
+        )
+    }));
+    if let Some(w) = weight {
+        numbers.push((
+            w,
+            Target {
+                output: 2,
+                column: 0,
+            },
+        ));
+    }
+    let read = read_clean_csv(
+        bytes,
+        &CleanRequest {
+            numbers,
+            widths: vec![k, 1, usize::from(weight.is_some())],
+            codes: Some(cluster),
+        },
+    )?;
+    let mut outputs = read.outputs.into_iter();
+    let x = Array2::from_shape_vec((read.rows, k), outputs.next()?).ok()?;
+    let y = outputs.next()?;
+    let weight = weight.and(outputs.next());
+    if weight.as_ref().is_some_and(|w| w.iter().any(|v| *v <= 0.0)) {
+        return None;
+    }
+    Some(RegressionData {
+        x,
+        y,
+        weight,
+        cluster: read.codes,
+        clusters: read.levels,
+        dropped: 0,
     })
 }
 
@@ -448,4 +522,63 @@ pub fn two_step_file(path: &Path, cols: &TwoStepColumns) -> Result<TwoStepReport
         dropped: n_all - n,
         notes,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn write(name: &str, text: &str) -> std::path::PathBuf {
+        let dir = std::env::temp_dir().join(format!("gapwise-micro-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join(name);
+        std::fs::write(&path, text).unwrap();
+        path
+    }
+
+    fn read(path: &Path) -> Result<RegressionData, MicrodataError> {
+        let predictors = vec!["a".to_string(), "b".to_string()];
+        read_regression_file(path, "y", &predictors, "c", Some("w"))
+    }
+
+    #[test]
+    fn quick_and_careful_reads_agree() {
+        // Common practice: the same cells read by the quick pass and (forced by quoting a
+        // header name) by the careful read give the same matrix, weights and clusters.
+        let rows = "XB,1.5,-2,1,0.75,t\nXA,0.25,3,0,1.25,u\nXB,7,0.1,1,2,v\nXC,123456789.0123456789,-0,0,0.5,w\n";
+        let clean = read(&write("clean.csv", &format!("c,a,b,y,w,note\n{rows}"))).unwrap();
+        let quoted = read(&write("quoted.csv", &format!("c,a,b,y,w,\"note\"\n{rows}"))).unwrap();
+        let predictors = vec!["a".to_string(), "b".to_string()];
+        let quick = |text: String| {
+            quick_regression_data(text.as_bytes(), "y", &predictors, "c", Some("w")).is_some()
+        };
+        assert!(
+            quick(format!("c,a,b,y,w,note\n{rows}")),
+            "the clean file takes the quick pass"
+        );
+        assert!(!quick(format!("c,a,b,y,w,\"note\"\n{rows}")));
+        assert_eq!(clean.x.dim(), (4, 3));
+        assert_eq!(clean.x, quoted.x);
+        assert_eq!(clean.x.row(0).to_vec(), vec![1.0, 1.5, -2.0]);
+        assert_eq!(clean.y, quoted.y);
+        assert_eq!(clean.weight, quoted.weight);
+        assert_eq!(clean.cluster, vec![0, 1, 0, 2]);
+        assert_eq!(clean.cluster, quoted.cluster);
+        assert_eq!(clean.clusters, quoted.clusters);
+        assert_eq!((clean.dropped, quoted.dropped), (0, 0));
+    }
+
+    #[test]
+    fn problems_found_after_the_quick_pass_keep_their_row_and_column() {
+        let zero = read(&write("zero.csv", "c,a,b,y,w\nXA,1,2,1,1\nXB,1,2,0,0\n")).unwrap_err();
+        assert!(zero.to_string().starts_with("zero.csv:3:w:"), "{zero}");
+        let text = read(&write("text.csv", "c,a,b,y,w\nXA,1,2,1,1\nXB,1,many,0,1\n")).unwrap_err();
+        assert!(text.to_string().starts_with("text.csv:3:b:"), "{text}");
+        let missing = read(&write(
+            "missing.csv",
+            "c,a,b,y,w\nXA,1,2,1,1\nXB,NA,2,0,1\nXA,3,1,0,1\n",
+        ))
+        .unwrap();
+        assert_eq!((missing.x.nrows(), missing.dropped), (2, 1));
+    }
 }

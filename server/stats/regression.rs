@@ -69,11 +69,11 @@ pub struct RegressionFit {
 }
 
 /// Sums, over rows i, w_i x_i x_i' (lower triangle), v_i x_i and a scalar s_i, split across
-/// rayon's pool; `weights(i)` gives (w_i, v_i, s_i). Works on the contiguous rows of `x` directly, since this
-/// is the inner loop of every fit on millions of respondents.
+/// rayon's pool; `weights(i, x_i)` gives (w_i, v_i, s_i). Works on the contiguous rows of
+/// `x` directly, since this is the inner loop of every fit on millions of respondents.
 fn accumulate<F>(x: ArrayView2<f64>, weights: F) -> (Array2<f64>, Array1<f64>, f64)
 where
-    F: Fn(usize) -> (f64, f64, f64) + Sync,
+    F: Fn(usize, &[f64]) -> (f64, f64, f64) + Sync,
 {
     let (n, k) = x.dim();
     let owned;
@@ -96,7 +96,7 @@ where
             let mut total = 0.0;
             for i in (b * block)..((b + 1) * block).min(n) {
                 let row = &flat[i * k..(i + 1) * k];
-                let (w, wy, extra) = weights(i);
+                let (w, wy, extra) = weights(i, row);
                 total += extra;
                 for a in 0..k {
                     let wa = w * row[a];
@@ -237,19 +237,57 @@ pub fn cluster_covariance(bread: &Array2<f64>, scores: &Array2<f64>, n: usize) -
     bread.dot(&meat).dot(bread) * c
 }
 
-/// Summed score contributions s_i x_i per cluster.
-fn cluster_scores(x: ArrayView2<f64>, s: &[f64], cluster: &[usize], groups: usize) -> Array2<f64> {
-    let k = x.ncols();
-    let mut u = vec![0.0; groups * k];
+/// Summed score contributions s_i x_i per cluster, with `score(i, x_i)` giving s_i: one
+/// pass over the rows in blocks on rayon's pool, each block with its own per-cluster sums,
+/// added up in a fixed order (the same result on every run).
+fn cluster_scores<F>(x: ArrayView2<f64>, cluster: &[usize], groups: usize, score: F) -> Array2<f64>
+where
+    F: Fn(usize, &[f64]) -> f64 + Sync,
+{
+    use rayon::prelude::*;
+    let (n, k) = x.dim();
     let standard = x.as_standard_layout();
     let flat = standard.as_slice().unwrap_or(&[]);
-    for (i, row) in flat.chunks_exact(k.max(1)).enumerate() {
-        let ug = &mut u[cluster[i] * k..(cluster[i] + 1) * k];
-        for (a, v) in ug.iter_mut().zip(row) {
-            *a += s[i] * v;
-        }
+    let block = if n < 20_000 { n.max(1) } else { 16_384 };
+    let parts: Vec<Vec<f64>> = (0..n.div_ceil(block))
+        .into_par_iter()
+        .map(|b| {
+            let mut u = vec![0.0; groups * k];
+            for i in (b * block)..((b + 1) * block).min(n) {
+                let row = &flat[i * k..(i + 1) * k];
+                let s = score(i, row);
+                let ug = &mut u[cluster[i] * k..(cluster[i] + 1) * k];
+                for (a, v) in ug.iter_mut().zip(row) {
+                    *a += s * v;
+                }
+            }
+            u
+        })
+        .collect();
+    let mut u = vec![0.0; groups * k];
+    for part in parts {
+        u.iter_mut().zip(part).for_each(|(a, b)| *a += b);
     }
     Array2::from_shape_vec((groups, k), u).unwrap_or_else(|_| Array2::zeros((groups, k)))
+}
+
+/// x_i' beta for one row.
+#[inline]
+fn row_dot(row: &[f64], beta: &[f64]) -> f64 {
+    row.iter().zip(beta).map(|(a, b)| a * b).sum()
+}
+
+/// The logistic function and log(1 + exp(eta)) from one exponential, exp(-|eta|), with the
+/// same branches as [`logistic`] and the log-likelihood's softplus.
+#[inline]
+fn logistic_and_softplus(eta: f64) -> (f64, f64) {
+    if eta >= 0.0 {
+        let t = (-eta).exp();
+        (1.0 / (1.0 + t), eta + t.ln_1p())
+    } else {
+        let t = eta.exp();
+        (t / (1.0 + t), t.ln_1p())
+    }
 }
 
 /// Fits the model with clustered standard errors. `cluster[i]` is respondent i's cluster
@@ -281,26 +319,27 @@ pub fn fit(
         return Err(RegressionError::OneCluster(distinct));
     }
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
-    let (beta, bread, scores, converged, iterations) = match kind {
+    let (beta, bread, u, converged, iterations) = match kind {
         Kind::Linear => {
             let (beta, bread) = weighted_least_squares(x, y, w)?;
-            let fitted = x.dot(&beta);
-            let s: Vec<f64> = (0..n).map(|i| weight(i) * (y[i] - fitted[i])).collect();
-            (beta, bread, s, true, 1)
+            let b = beta.to_vec();
+            let u = cluster_scores(x, cluster, groups, |i, row| {
+                weight(i) * (y[i] - row_dot(row, &b))
+            });
+            (beta, bread, u, true, 1)
         }
         Kind::Logistic => {
             if let Some(bad) = y.iter().find(|v| **v != 0.0 && **v != 1.0) {
                 return Err(RegressionError::NotBinary(*bad));
             }
             let (beta, bread, converged, iterations) = logistic_newton(x, y, w)?;
-            let eta = x.dot(&beta);
-            let s: Vec<f64> = (0..n)
-                .map(|i| weight(i) * (y[i] - logistic(eta[i])))
-                .collect();
-            (beta, bread, s, converged, iterations)
+            let b = beta.to_vec();
+            let u = cluster_scores(x, cluster, groups, |i, row| {
+                weight(i) * (y[i] - logistic(row_dot(row, &b)))
+            });
+            (beta, bread, u, converged, iterations)
         }
     };
-    let u = cluster_scores(x, &scores, cluster, groups);
     let cov = cluster_covariance(&bread, &u, n);
     Ok(RegressionFit {
         coef: beta.to_vec(),
@@ -326,16 +365,11 @@ fn logistic_newton(
     // One pass over the respondents gives the information, the score and the
     // log-likelihood at beta.
     let pass = |beta: &Array1<f64>| -> (Array2<f64>, Array1<f64>, f64) {
-        let eta = x.dot(beta);
-        let (mut m, g, ll) = accumulate(x, |i| {
-            let e = eta[i];
-            let p = logistic(e);
+        let b = beta.to_vec();
+        let (mut m, g, ll) = accumulate(x, |i, row| {
+            let e = row_dot(row, &b);
+            let (p, softplus) = logistic_and_softplus(e);
             let wi = weight(i);
-            let softplus = if e > 0.0 {
-                e + (-e).exp().ln_1p()
-            } else {
-                e.exp().ln_1p()
-            };
             (
                 wi * p * (1.0 - p),
                 wi * (y[i] - p),
@@ -435,12 +469,11 @@ pub fn score_cluster_bootstrap(
     let eta = restricted_x.dot(&restricted);
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
     let p: Vec<f64> = eta.iter().map(|&e| logistic(e)).collect();
-    let (mut h, _, _) = accumulate(x, |i| (weight(i) * p[i] * (1.0 - p[i]), 0.0, 0.0));
+    let (mut h, _, _) = accumulate(x, |i, _| (weight(i) * p[i] * (1.0 - p[i]), 0.0, 0.0));
     symmetrise(&mut h);
     let h_inv = linalg::inverse_spd(h.view()).map_err(|_| RegressionError::Singular)?;
     let groups = cluster.iter().max().map_or(0, |m| m + 1);
-    let s: Vec<f64> = (0..n).map(|i| weight(i) * (y[i] - p[i])).collect();
-    let scores = cluster_scores(x, &s, cluster, groups);
+    let scores = cluster_scores(x, cluster, groups, |i, _| weight(i) * (y[i] - p[i]));
     let present: Vec<usize> = (0..groups)
         .filter(|&g| scores.row(g).iter().any(|v| *v != 0.0))
         .collect();
@@ -611,6 +644,170 @@ impl ClusterSums {
             }
         }
         Ok(bootstrap_p(exceed, replicates))
+    }
+}
+
+/// A weighted linear model's respondents as per-cluster sufficient statistics: M_g =
+/// X_g'W_g X_g, b_g = X_g'W_g y_g and the row count n_g. Weights that are a per-cluster
+/// factor times fixed base weights (country weights spread over design weights) only
+/// rescale M_g and b_g, so every weighting's fit, CR1 errors and wild cluster bootstrap
+/// follow from one pass over the respondents ([`LinearSums::scaled`]).
+#[derive(Debug, Clone)]
+pub struct LinearSums {
+    m: Vec<Array2<f64>>,
+    b: Vec<Array1<f64>>,
+    rows: Vec<usize>,
+}
+
+impl LinearSums {
+    /// One parallel pass over the rows (in blocks summed in a fixed order).
+    pub fn new(x: ArrayView2<f64>, y: &[f64], w: Option<&[f64]>, cluster: &[usize]) -> Self {
+        use rayon::prelude::*;
+        let (n, k) = x.dim();
+        let groups = cluster.iter().max().map_or(0, |m| m + 1);
+        let standard = x.as_standard_layout();
+        let flat = standard.as_slice().unwrap_or(&[]);
+        let block = if n < 20_000 { n.max(1) } else { 16_384 };
+        let empty = || {
+            (
+                vec![Array2::<f64>::zeros((k, k)); groups],
+                vec![Array1::<f64>::zeros(k); groups],
+                vec![0usize; groups],
+            )
+        };
+        let parts: Vec<_> = (0..n.div_ceil(block))
+            .into_par_iter()
+            .map(|blk| {
+                let (mut m, mut b, mut rows) = empty();
+                for i in (blk * block)..((blk + 1) * block).min(n) {
+                    let g = cluster[i];
+                    let wi = w.map_or(1.0, |w| w[i]);
+                    let row = ArrayView1::from(&flat[i * k..(i + 1) * k]);
+                    add_outer(&mut m[g], &mut b[g], row, wi, wi * y[i]);
+                    rows[g] += 1;
+                }
+                (m, b, rows)
+            })
+            .collect();
+        let (mut m, mut b, mut rows) = empty();
+        for (pm, pb, pr) in parts {
+            for g in 0..groups {
+                m[g] += &pm[g];
+                b[g] += &pb[g];
+                rows[g] += pr[g];
+            }
+        }
+        m.iter_mut().for_each(symmetrise);
+        LinearSums { m, b, rows }
+    }
+
+    /// The sums under weights `factor[g]` times the base weights; clusters whose factor is
+    /// not positive (or not a number) are left out, as rows without weight are.
+    pub fn scaled(&self, factor: &[f64]) -> LinearSums {
+        let keep = |g: usize| factor.get(g).is_some_and(|f| *f > 0.0);
+        LinearSums {
+            m: (0..self.m.len())
+                .map(|g| {
+                    if keep(g) {
+                        &self.m[g] * factor[g]
+                    } else {
+                        self.m[g].clone() * 0.0
+                    }
+                })
+                .collect(),
+            b: (0..self.b.len())
+                .map(|g| {
+                    if keep(g) {
+                        &self.b[g] * factor[g]
+                    } else {
+                        self.b[g].clone() * 0.0
+                    }
+                })
+                .collect(),
+            rows: (0..self.rows.len())
+                .map(|g| if keep(g) { self.rows[g] } else { 0 })
+                .collect(),
+        }
+    }
+
+    /// The sums of the model with the first column only (the intercept: a weighted mean).
+    pub fn first_column(&self) -> LinearSums {
+        LinearSums {
+            m: self
+                .m
+                .iter()
+                .map(|m| m.slice(ndarray::s![..1, ..1]).to_owned())
+                .collect(),
+            b: self
+                .b
+                .iter()
+                .map(|b| b.slice(ndarray::s![..1]).to_owned())
+                .collect(),
+            rows: self.rows.clone(),
+        }
+    }
+
+    /// Weighted least squares from the normal equations (sum M) beta = sum b, with CR1
+    /// standard errors from the cluster scores u_g = b_g - M_g beta (Cameron & Miller 2015,
+    /// eq. 11 and section VI.B, as [`fit`]); G counts clusters up to the last one with
+    /// rows, as [`fit`] does.
+    pub fn fit(&self) -> Result<RegressionFit, RegressionError> {
+        let k = self.b.first().map_or(0, |b| b.len());
+        let n: usize = self.rows.iter().sum();
+        if n <= k {
+            return Err(RegressionError::TooFew { n, k });
+        }
+        let present: Vec<usize> = (0..self.rows.len()).filter(|&g| self.rows[g] > 0).collect();
+        if present.len() < 2 {
+            return Err(RegressionError::OneCluster(present.len()));
+        }
+        let groups = present.last().map_or(0, |g| g + 1);
+        let total_m = present
+            .iter()
+            .fold(Array2::<f64>::zeros((k, k)), |a, &g| a + &self.m[g]);
+        let total_b = present
+            .iter()
+            .fold(Array1::<f64>::zeros(k), |a, &g| a + &self.b[g]);
+        let beta = linalg::solve_spd(total_m.view(), total_b.view())
+            .map_err(|_| RegressionError::Singular)?;
+        let bread = linalg::inverse_spd(total_m.view()).map_err(|_| RegressionError::Singular)?;
+        let mut u = Array2::<f64>::zeros((groups, k));
+        for &g in &present {
+            u.row_mut(g).assign(&(&self.b[g] - &self.m[g].dot(&beta)));
+        }
+        let cov = cluster_covariance(&bread, &u, n);
+        Ok(RegressionFit {
+            coef: beta.to_vec(),
+            se: cov.diag().iter().map(|v| v.max(0.0).sqrt()).collect(),
+            cov,
+            bread,
+            n,
+            clusters: present.len(),
+            converged: true,
+            iterations: 1,
+        })
+    }
+
+    /// [`wild_cluster_bootstrap_terms`] from the sums, with their fit.
+    pub fn wild_bootstrap_terms(
+        &self,
+        full: &RegressionFit,
+        replicates: usize,
+        seed: u64,
+    ) -> Result<Vec<f64>, RegressionError> {
+        let k = full.coef.len();
+        let present: Vec<usize> = (0..self.rows.len())
+            .filter(|&g| self.m[g][[0, 0]] != 0.0 || self.b[g].iter().any(|v| *v != 0.0))
+            .collect();
+        let sums = ClusterSums {
+            full: full.clone(),
+            m: self.m.clone(),
+            b: self.b.clone(),
+            present,
+            n: full.n,
+            k,
+        };
+        (0..k).map(|j| sums.wild_p(j, replicates, seed)).collect()
     }
 }
 
@@ -1008,5 +1205,63 @@ mod tests {
         }
         // df 1 is the Cauchy distribution: P(|T| >= 1) = 1/2 exactly.
         assert!((student::two_sided_p(1.0, 1.0) - 0.5).abs() < 1e-14);
+    }
+
+    #[test]
+    fn per_cluster_sums_give_the_respondent_fit() {
+        use super::{fit, wild_cluster_bootstrap_terms, Kind, LinearSums, RegressionError};
+        // Common practice: weights that are a per-cluster factor times base weights only
+        // rescale each cluster's sums, so the fit from sums equals the fit on the rows (QR)
+        // to rounding, the intercept-only sums give the weighted mean, and a cluster whose
+        // factor is 0 is left out as its rows would be.
+        let mut rng = crate::stats::random::Rng::new(12);
+        let n = 600;
+        let x = ndarray::Array2::from_shape_fn(
+            (n, 3),
+            |(_, c)| {
+                if c == 0 {
+                    1.0
+                } else {
+                    rng.normal()
+                }
+            },
+        );
+        let cluster: Vec<usize> = (0..n).map(|i| i % 10).collect();
+        let y: Vec<f64> = (0..n)
+            .map(|i| 1.0 + 0.5 * x[[i, 1]] + rng.normal() + (cluster[i] as f64) * 0.1)
+            .collect();
+        let base: Vec<f64> = (0..n).map(|i| 0.5 + (i % 4) as f64).collect();
+        let mut factor: Vec<f64> = (0..10).map(|g| 0.2 + g as f64 / 7.0).collect();
+        factor[9] = 0.0;
+        let keep: Vec<usize> = (0..n).filter(|&i| cluster[i] != 9).collect();
+        let xs = x.select(ndarray::Axis(0), &keep);
+        let ys: Vec<f64> = keep.iter().map(|&i| y[i]).collect();
+        let ws: Vec<f64> = keep.iter().map(|&i| factor[cluster[i]] * base[i]).collect();
+        let cs: Vec<usize> = keep.iter().map(|&i| cluster[i]).collect();
+        let rows = fit(xs.view(), &ys, Some(&ws), &cs, Kind::Linear).unwrap();
+        let sums = LinearSums::new(x.view(), &y, Some(&base), &cluster).scaled(&factor);
+        let from_sums = sums.fit().unwrap();
+        assert_eq!((from_sums.n, from_sums.clusters), (540, 9));
+        assert_eq!(from_sums.coef.len(), 3);
+        for j in 0..3 {
+            assert!((from_sums.coef[j] - rows.coef[j]).abs() < 1e-10, "coef {j}");
+            assert!((from_sums.se[j] - rows.se[j]).abs() < 1e-10, "se {j}");
+        }
+        let mean = ys.iter().zip(&ws).map(|(a, b)| a * b).sum::<f64>() / ws.iter().sum::<f64>();
+        assert!((sums.first_column().fit().unwrap().coef[0] - mean).abs() < 1e-12);
+        let p_rows = wild_cluster_bootstrap_terms(xs.view(), &ys, Some(&ws), &cs, 99, 3).unwrap();
+        let p_sums = sums.wild_bootstrap_terms(&from_sums, 99, 3).unwrap();
+        assert_eq!(p_rows.len(), p_sums.len());
+        for (a, b) in p_rows.iter().zip(&p_sums) {
+            assert!((a - b).abs() <= 1.0 / 100.0 + 1e-12, "{a} vs {b}");
+        }
+        // One cluster with weight left is not enough for clustered errors.
+        let one: Vec<f64> = (0..10).map(|g| if g == 0 { 1.0 } else { 0.0 }).collect();
+        assert!(matches!(
+            LinearSums::new(x.view(), &y, Some(&base), &cluster)
+                .scaled(&one)
+                .fit(),
+            Err(RegressionError::OneCluster(1))
+        ));
     }
 }
