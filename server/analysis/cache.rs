@@ -129,7 +129,13 @@ impl ResultCache {
     }
 
     /// The cached result for `key`, or the result of `compute` (stored when it succeeds).
-    /// Concurrent callers with the same key share one computation.
+    /// Concurrent callers with the same key share one computation, except on a rayon
+    /// worker thread: there a caller whose key another caller is computing computes it
+    /// too instead of waiting. A worker waiting inside a parallel loop runs other jobs on
+    /// its own stack, so the computation it would wait for can sit below it on that stack
+    /// (or need its thread), and blocking there deadlocks the pool; this happened under
+    /// the load benchmark when two reports shared a plan. Identical page requests still
+    /// share one computation: they wait outside the pool (`web::work`).
     pub fn get_or_compute<T, E>(
         &self,
         key: &CacheKey,
@@ -152,6 +158,10 @@ impl ResultCache {
                 };
                 match found {
                     Some(Ok(v)) => return Ok(v),
+                    Some(Err(_)) if rayon::current_thread_index().is_some() => {
+                        drop(inner);
+                        return compute().map(Arc::new);
+                    }
                     Some(Err(f)) => f,
                     None => {
                         inner.misses += 1;
@@ -313,6 +323,34 @@ fn json_size<T: Serialize>(value: &T) -> usize {
 mod tests {
     use super::*;
     use std::sync::atomic::{AtomicUsize, Ordering};
+
+    /// A rayon worker asking for a key that is being computed lower on its own stack (as
+    /// when a worker waiting in a parallel loop picks up another request's job that needs
+    /// the same part) computes it instead of waiting for itself. Before, this waited
+    /// forever; the channel's timeout turns a hang into a failure (common practice).
+    #[test]
+    fn a_worker_never_waits_for_a_computation_below_it() {
+        let (sender, receiver) = std::sync::mpsc::channel();
+        std::thread::spawn(move || {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(1)
+                .build()
+                .unwrap();
+            let cache = ResultCache::default();
+            let key = CacheKey::new(1, "plan", "a=1");
+            let outer: Result<Arc<u32>, ()> = pool.install(|| {
+                cache.get_or_compute(&key, || {
+                    let inner: Result<Arc<u32>, ()> = cache.get_or_compute(&key, || Ok(7));
+                    inner.map(|v| *v + 1)
+                })
+            });
+            let _ = sender.send(outer.map(|v| *v));
+        });
+        let got = receiver
+            .recv_timeout(std::time::Duration::from_secs(20))
+            .expect("the worker waited for itself (deadlock)");
+        assert_eq!(got, Ok(8));
+    }
 
     #[test]
     fn computes_once_and_reuses() {

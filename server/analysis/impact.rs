@@ -812,7 +812,7 @@ fn projection_variant(
                 p.method,
                 p.draws,
                 p.seed,
-                if ps.predictors.is_empty() { "none".to_string() } else { ps.predictors.join(", ") },
+                if p.predictor_labels.is_empty() { "none".to_string() } else { p.predictor_labels.join(", ") },
                 if p.at_boundary { "; the country SD is estimated at its boundary, 0, so the interval leaves out variation between countries" } else { "" }
             ),
             bootstrap: TermsBootstrap {
