@@ -13,14 +13,10 @@ use std::fmt::Write as _;
 use std::path::PathBuf;
 use std::time::Instant;
 
-use std::sync::Arc;
-
-use axum::body::Body;
 use gapwise::analysis::multilevel::{multilevel_file, Kind, Request};
-use gapwise::project::Project;
 use gapwise::stats::random::Rng;
-use gapwise::web::{self, AppState};
-use tower::ServiceExt;
+#[path = "common/serve.rs"]
+mod serve;
 
 const RESPONDENTS: usize = 2_000_000;
 const COUNTRIES: usize = 60;
@@ -88,32 +84,8 @@ fn main() {
     projection_page();
 }
 
-/// Milliseconds to answer `uri` through the router; panics unless the answer is 200.
-fn answer(runtime: &tokio::runtime::Runtime, state: &Arc<AppState>, uri: &str) -> f64 {
-    let start = Instant::now();
-    let status = runtime.block_on(async {
-        let response = web::router(Arc::clone(state))
-            .oneshot(
-                axum::http::Request::get(uri)
-                    .body(Body::empty())
-                    .expect("request"),
-            )
-            .await
-            .expect("router answers");
-        let status = response.status();
-        let _ = axum::body::to_bytes(response.into_body(), usize::MAX).await;
-        status
-    });
-    assert!(status.is_success(), "{uri} answered {status}");
-    start.elapsed().as_secs_f64() * 1000.0
-}
-
 fn projection_page() {
-    let runtime = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .expect("runtime");
+    let runtime = serve::runtime();
     for (what, uri) in [
         (
             "linear (trust in parliament)",
@@ -127,17 +99,14 @@ fn projection_page() {
         let mut cold = Vec::new();
         let mut cached = Vec::new();
         for _ in 0..5 {
-            let state = Arc::new(AppState::new(
-                Project::load(&gapwise::demo_dir()).expect("demo loads"),
-            ));
-            cold.push(answer(&runtime, &state, uri));
-            cached.push(answer(&runtime, &state, uri));
+            let state = serve::fresh_state(&gapwise::demo_dir());
+            cold.push(serve::time(&runtime, &state, uri));
+            cached.push(serve::time(&runtime, &state, uri));
         }
-        cold.sort_by(f64::total_cmp);
-        cached.sort_by(f64::total_cmp);
         println!(
             "projection page, {what}: {:.0} ms cold (median of 5; target < 300 ms), {:.1} ms cached",
-            cold[2], cached[2]
+            serve::median(cold),
+            serve::median(cached)
         );
     }
 }

@@ -6,52 +6,16 @@
 //!
 //!     cargo bench --bench pages
 
-use std::sync::Arc;
-use std::time::Instant;
-
-use axum::body::Body;
-use axum::http::Request;
-use gapwise::project::Project;
-use gapwise::web::{self, AppState};
-use tower::ServiceExt;
+#[path = "common/serve.rs"]
+mod serve;
+use serve::{median, time};
 
 #[path = "common/routes.rs"]
 mod routes;
 use routes::ROUTES;
 
-fn fresh_state() -> Arc<AppState> {
-    Arc::new(AppState::new(
-        Project::load(&gapwise::demo_dir()).expect("demo loads"),
-    ))
-}
-
-/// Milliseconds to answer `uri`; panics unless the answer is 200.
-fn time(runtime: &tokio::runtime::Runtime, state: &Arc<AppState>, uri: &str) -> f64 {
-    let start = Instant::now();
-    let status = runtime.block_on(async {
-        let response = web::router(Arc::clone(state))
-            .oneshot(Request::get(uri).body(Body::empty()).expect("request"))
-            .await
-            .expect("router answers");
-        let status = response.status();
-        let _ = axum::body::to_bytes(response.into_body(), usize::MAX).await;
-        status
-    });
-    assert!(status.is_success(), "{uri} answered {status}");
-    start.elapsed().as_secs_f64() * 1000.0
-}
-
-fn median(mut v: Vec<f64>) -> f64 {
-    v.sort_by(f64::total_cmp);
-    v[v.len() / 2]
-}
-
 fn main() {
-    let runtime = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .expect("runtime");
+    let runtime = serve::runtime();
     println!(
         "{:<64} {:>10} {:>10} {:>11}",
         "route", "cold ms", "max ms", "cached ms"
@@ -61,7 +25,7 @@ fn main() {
         let mut cold = Vec::new();
         let mut cached = Vec::new();
         for _ in 0..5 {
-            let state = fresh_state();
+            let state = serve::fresh_state(&gapwise::demo_dir());
             cold.push(time(&runtime, &state, uri));
             for _ in 0..4 {
                 cached.push(time(&runtime, &state, uri));
