@@ -112,6 +112,38 @@ pub struct Variant {
     pub bootstrap: TermsBootstrap,
 }
 
+impl Variant {
+    /// A variant whose model was fitted: its estimates, standard errors and p-values,
+    /// with the change flags, balance and bootstrap filled in later by the caller.
+    fn fitted(
+        key: &str,
+        label: &str,
+        pooled: Option<Pooled>,
+        coef: Vec<f64>,
+        se: Vec<f64>,
+        p_cluster: Vec<f64>,
+        p_bootstrap: Option<Vec<f64>>,
+    ) -> Variant {
+        Variant {
+            key: key.to_string(),
+            label: label.to_string(),
+            error: None,
+            pooled,
+            sign_changed: vec![false; coef.len()],
+            verdict_changed: vec![false; coef.len()],
+            coef,
+            se,
+            p_cluster,
+            p_bootstrap,
+            smd: Vec::new(),
+            max_abs_smd: None,
+            worse_than_none: false,
+            se_kind: String::new(),
+            bootstrap: TermsBootstrap::default(),
+        }
+    }
+}
+
 #[derive(Debug, Clone, Serialize)]
 pub struct ImpactReport {
     pub wave: i64,
@@ -913,23 +945,7 @@ fn estimate_linear(
                 sums.wild_bootstrap_terms(&f, imp.wild_replicates, seed)
                     .unwrap_or_else(|_| vec![f64::NAN; k])
             });
-            Variant {
-                key: key.to_string(),
-                label: label.to_string(),
-                error: None,
-                pooled,
-                sign_changed: vec![false; f.coef.len()],
-                verdict_changed: vec![false; f.coef.len()],
-                coef: f.coef,
-                se: f.se,
-                p_cluster,
-                p_bootstrap,
-                smd: Vec::new(),
-                max_abs_smd: None,
-                worse_than_none: false,
-                se_kind: String::new(),
-                bootstrap: TermsBootstrap::default(),
-            }
+            Variant::fitted(key, label, pooled, f.coef, f.se, p_cluster, p_bootstrap)
         }
     }
 }
@@ -999,23 +1015,7 @@ fn estimate(
                     })
                     .collect(),
             });
-            Variant {
-                key: key.to_string(),
-                label: label.to_string(),
-                error: None,
-                pooled,
-                sign_changed: vec![false; f.coef.len()],
-                verdict_changed: vec![false; f.coef.len()],
-                coef: f.coef,
-                se: f.se,
-                p_cluster,
-                p_bootstrap,
-                smd: Vec::new(),
-                max_abs_smd: None,
-                worse_than_none: false,
-                se_kind: String::new(),
-                bootstrap: TermsBootstrap::default(),
-            }
+            Variant::fitted(key, label, pooled, f.coef, f.se, p_cluster, p_bootstrap)
         }
     }
 }

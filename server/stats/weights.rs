@@ -390,13 +390,9 @@ fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
         // its rounding. Close to a strict minimum Q changes by less than its own rounding
         // (S is nearly singular, so Q carries far more than one unit of rounding), and the
         // full step of the accurate gradient is taken unless Q rises clearly.
-        let near = positive_definite && largest < GMM_NEAR;
-        let slack = if near { 1e-10 } else { 1e-14 };
-        let floor = -(q + slack * q.abs());
-        let Some((candidate, (qc, gc), _)) = newton::halving_step(&b, &step, floor, |c| {
-            let (qc, gc) = gmm_objective(x, t, c);
-            qc.is_finite().then_some(((qc, gc), -qc))
-        }) else {
+        let Some((candidate, qc, gc)) =
+            gmm_halving(x, t, &b, &step, q, positive_definite && largest < GMM_NEAR)
+        else {
             break;
         };
         b = candidate;
@@ -406,6 +402,27 @@ fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
     }
     out.coef = b;
     out
+}
+
+/// One step of either descent, halved until the criterion Q does not rise beyond its
+/// rounding (a maximisation of -Q); `near` a strict minimum, where Q changes by less than
+/// its own rounding, the allowance is wider. The new point, Q and its gradient, or `None`
+/// when no halving is accepted.
+fn gmm_halving(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    b: &Array1<f64>,
+    step: &Array1<f64>,
+    q: f64,
+    near: bool,
+) -> Option<(Array1<f64>, f64, Array1<f64>)> {
+    let slack = if near { 1e-10 } else { 1e-14 };
+    let floor = -(q + slack * q.abs());
+    newton::halving_step(b, step, floor, |c| {
+        let (qc, gc) = gmm_objective(x, t, c);
+        qc.is_finite().then_some(((qc, gc), -qc))
+    })
+    .map(|(candidate, (qc, gc), _)| (candidate, qc, gc))
 }
 
 fn gmm_bfgs(
@@ -437,12 +454,7 @@ fn gmm_bfgs(
             out.converged = true;
             break;
         }
-        let slack = if largest < GMM_NEAR { 1e-10 } else { 1e-14 };
-        let floor = -(q + slack * q.abs());
-        let Some((candidate, (qc, gc), _)) = newton::halving_step(&b, &step, floor, |c| {
-            let (qc, gc) = gmm_objective(x, t, c);
-            qc.is_finite().then_some(((qc, gc), -qc))
-        }) else {
+        let Some((candidate, qc, gc)) = gmm_halving(x, t, &b, &step, q, largest < GMM_NEAR) else {
             break;
         };
         let s = &candidate - &b;
