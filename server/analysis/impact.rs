@@ -422,34 +422,42 @@ pub fn impact(
         },
         cr1,
     ));
-    for kind in WeightingKind::ALL {
-        let s = Settings {
-            weighting: kind,
-            ..settings.clone()
-        };
-        let share = if !population_ok {
-            Err("a country's population is missing or not positive".to_string())
-        } else if kind == WeightingKind::Entropy && population.is_some() {
-            population_entropy(&design, &q, &moments, settings.match_variances)
-        } else {
-            participation::weigh(&design, &s, &model)
-                .map(|w| (0..n_units).map(|u| w.weights[u] * base(u)).collect())
-                .map_err(|e| e.to_string())
-        };
-        let label = if kind == WeightingKind::Entropy && population.is_some() {
-            "Entropy balancing to the population-weighted universe (population as base weights)"
-                .to_string()
-        } else if population.is_some() {
-            format!("{} × population", kind.label())
-        } else {
-            kind.label().to_string()
-        };
-        variants.push(run(kind.as_str(), &label, share, cr1));
-    }
+    // The weightings are independent of each other and of the two-step: fitted side by
+    // side, kept in order.
+    use rayon::prelude::*;
+    let weightings = || -> Vec<Variant> {
+        WeightingKind::ALL
+        .par_iter()
+        .map(|&kind| {
+            let s = Settings {
+                weighting: kind,
+                ..settings.clone()
+            };
+            let share = if !population_ok {
+                Err("a country's population is missing or not positive".to_string())
+            } else if kind == WeightingKind::Entropy && population.is_some() {
+                population_entropy(&design, &q, &moments, settings.match_variances)
+            } else {
+                participation::weigh(&design, &s, &model)
+                    .map(|w| (0..n_units).map(|u| w.weights[u] * base(u)).collect())
+                    .map_err(|e| e.to_string())
+            };
+            let label = if kind == WeightingKind::Entropy && population.is_some() {
+                "Entropy balancing to the population-weighted universe (population as base weights)"
+                    .to_string()
+            } else if population.is_some() {
+                format!("{} × population", kind.label())
+            } else {
+                kind.label().to_string()
+            };
+            run(kind.as_str(), &label, share, cr1)
+        })
+        .collect()
+    };
     // Heckman-type: the two-step with the country-level probit.
-    let mut notes_extra = Vec::new();
-    variants.push(
-        mills_variant(
+    let two_step = || {
+        let mut notes = Vec::new();
+        let variant = mills_variant(
             &MillsInput {
                 design: &design,
                 view,
@@ -461,10 +469,14 @@ pub fn impact(
                 df,
             },
             imp,
-            &mut notes_extra,
+            &mut notes,
         )
-        .unwrap_or_else(|e| failed("mills-ratio", MILLS_LABEL, e, k + 1)),
-    );
+        .unwrap_or_else(|e| failed("mills-ratio", MILLS_LABEL, e, k + 1));
+        (variant, notes)
+    };
+    let (weighted, (mills, notes_extra)) = rayon::join(weightings, two_step);
+    variants.extend(weighted);
+    variants.push(mills);
 
     flag_changes(&mut variants, k);
     flag_worse_than_none(&mut variants);
@@ -483,27 +495,34 @@ pub fn impact(
         })
         .collect();
     let mills_c = mills_indicators(&design, view, imp);
-    let boot = if population_ok {
-        impact_bootstrap::run(&impact_bootstrap::Input {
-            design: &design,
-            settings,
-            stats: &stats,
-            population: population.as_deref(),
-            mills_indicators: mills_c.as_deref().map_err(|_| ()),
-            kind: imp.kind,
-            k,
-            replicates: imp.replicates,
-            seed,
-        })
-    } else {
-        None
-    };
+    // The projection does not depend on the bootstrap: fit it while the replicates run
+    // (the bootstrap's parallel loop takes the other thread back when the projection ends).
+    let (boot, projection) = rayon::join(
+        || {
+            population_ok
+                .then(|| {
+                    impact_bootstrap::run(&impact_bootstrap::Input {
+                        design: &design,
+                        settings,
+                        stats: &stats,
+                        population: population.as_deref(),
+                        mills_indicators: mills_c.as_deref().map_err(|_| ()),
+                        kind: imp.kind,
+                        k,
+                        replicates: imp.replicates,
+                        seed,
+                    })
+                })
+                .flatten()
+        },
+        || projection_variant(project, view, settings, imp, variables),
+    );
     if let Some(boot) = &boot {
         for (v, b) in variants.iter_mut().zip(boot) {
             attach_bootstrap(v, b, imp.replicates, seed);
         }
     }
-    variants.push(projection_variant(project, view, settings, imp, variables));
+    variants.push(projection);
     let mut notes = vec![
         "Unweighted: design weights rescaled so that every participating country counts the same. Weighted: so that each country counts by its country weight.".to_string(),
         format!("Confidence intervals and p-values use standard errors clustered by country (CR1) with t on {df} degrees of freedom (countries - 1); with few countries the wild cluster bootstrap p-values are the safer guide."),
