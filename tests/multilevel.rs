@@ -317,22 +317,85 @@ fn bad_requests_get_a_message_not_a_panic() {
     assert!(out.stderr.contains("nothing"), "{}", out.stderr);
 }
 
-/// A known universe: 80 countries, true country means 5 + 0.8 z_j + u_j (u_j ~ N(0, 0.3^2)),
-/// participation more likely for high z (logit 1.2 z), 60 respondents per participant with
-/// unit-variance noise. The target is the mean of the 80 true country means. Over 200
-/// universes (seeded) the projection's 95% interval should cover it at close to 95%
-/// (binomial SD 1.5 points; accepted 90-99%, about three SDs), and its mean absolute error should be below
-/// that of the participants' unweighted mean (common practice for a simulation check).
-#[test]
-fn projection_recovers_a_known_universe() {
+/// One simulated universe for the known-universe checks: 80 countries with indicator
+/// z ~ N(0, 1), a true country value `truth_of(z)` (drawing its own country effect),
+/// participation more likely for high z (logit 1.2 z), a pure-noise indicator, and 60
+/// respondents per participant whose answers `answer(value)` gives as text. Writes the
+/// project into `dir`, projects it with `seed` and returns the projection, the universe's
+/// true mean and the participants' own means. The draws keep one fixed order per country.
+fn project_simulated_universe(
+    dir: &TempDir,
+    rng: &mut gapwise::stats::random::Rng,
+    seed: u64,
+    truth_of: &dyn Fn(&mut gapwise::stats::random::Rng, f64) -> f64,
+    answer: &dyn Fn(&mut gapwise::stats::random::Rng, f64) -> (f64, String),
+) -> (
+    gapwise::analysis::projection::ProjectionReport,
+    f64,
+    Vec<f64>,
+) {
     use gapwise::analysis::projection::{projection, ProjectionSettings};
     use gapwise::analysis::Settings;
     use gapwise::project::{Project, WaveView};
-    use gapwise::stats::random::Rng;
     use std::fmt::Write as _;
 
-    let manifest = r#"
-title = "Simulated universe"
+    let mut frame = String::from("iso,name,wave,took_part,z,noise\n");
+    let mut micro = String::from("iso,wave,dweight,y\n");
+    let mut truth = 0.0;
+    let mut own_means = Vec::new();
+    for j in 0..80 {
+        let z = rng.normal();
+        let value = truth_of(rng, z);
+        truth += value / 80.0;
+        let took_part = rng.bernoulli(1.0 / (1.0 + (-1.2 * z).exp()));
+        let code = format!(
+            "X{}{}",
+            (b'A' + (j / 26) as u8) as char,
+            (b'A' + (j % 26) as u8) as char
+        );
+        let _ = writeln!(
+            frame,
+            "{code},Country {j},1,{},{z:.6},{:.6}",
+            u8::from(took_part),
+            rng.normal()
+        );
+        if took_part {
+            let mut sum = 0.0;
+            for _ in 0..60 {
+                let (y, text) = answer(rng, value);
+                sum += y;
+                let _ = writeln!(micro, "{code},1,1.0,{text}");
+            }
+            own_means.push(sum / 60.0);
+        }
+    }
+    dir.write("frame.csv", &frame);
+    dir.write("microdata.csv", &micro);
+    let project = Project::load(dir.path()).unwrap_or_else(|p| panic!("{p:?}"));
+    let view = WaveView::new(&project, 1).unwrap();
+    let settings = Settings {
+        wave: Some(1),
+        seed,
+        ..Settings::default()
+    };
+    let report = projection(
+        &project,
+        &view,
+        &settings,
+        &ProjectionSettings {
+            outcome: "y".into(),
+            predictors: vec![],
+        },
+    )
+    .unwrap();
+    (report, truth, own_means)
+}
+
+/// The manifest of the simulated universes.
+fn simulated_manifest(title: &str) -> String {
+    format!(
+        r#"
+title = "{title}"
 [columns]
 code = "iso"
 name = "name"
@@ -345,64 +408,38 @@ country = "iso"
 wave = "wave"
 design_weight = "dweight"
 variables = ["y"]
-"#;
+"#
+    )
+}
+
+/// A known universe: 80 countries, true country means 5 + 0.8 z_j + u_j (u_j ~ N(0, 0.3^2)),
+/// participation more likely for high z (logit 1.2 z), 60 respondents per participant with
+/// unit-variance noise. The target is the mean of the 80 true country means. Over 200
+/// universes (seeded) the projection's 95% interval should cover it at close to 95%
+/// (binomial SD 1.5 points; accepted 90-99%, about three SDs), and its mean absolute error should be below
+/// that of the participants' unweighted mean (common practice for a simulation check).
+#[test]
+fn projection_recovers_a_known_universe() {
+    use gapwise::stats::random::Rng;
+
     let replicates = 200;
     let mut covered = 0;
     let mut error_projection = 0.0;
     let mut error_participants = 0.0;
     let dir = TempDir::new("known-universe");
-    dir.write("project.toml", manifest);
+    dir.write("project.toml", simulated_manifest("Simulated universe"));
     for rep in 0..replicates {
         let mut rng = Rng::stream(17, rep);
-        let mut frame = String::from("iso,name,wave,took_part,z,noise\n");
-        let mut micro = String::from("iso,wave,dweight,y\n");
-        let mut truth = 0.0;
-        let mut part_means = Vec::new();
-        for j in 0..80 {
-            let z = rng.normal();
-            let mu = 5.0 + 0.8 * z + 0.3 * rng.normal();
-            truth += mu / 80.0;
-            let took_part = rng.bernoulli(1.0 / (1.0 + (-1.2 * z).exp()));
-            let code = format!(
-                "X{}{}",
-                (b'A' + (j / 26) as u8) as char,
-                (b'A' + (j % 26) as u8) as char
-            );
-            let _ = writeln!(
-                frame,
-                "{code},Country {j},1,{},{z:.6},{:.6}",
-                u8::from(took_part),
-                rng.normal()
-            );
-            if took_part {
-                let mut s = 0.0;
-                for _ in 0..60 {
-                    let y = mu + rng.normal();
-                    s += y;
-                    let _ = writeln!(micro, "{code},1,1.0,{y:.6}");
-                }
-                part_means.push(s / 60.0);
-            }
-        }
-        dir.write("frame.csv", &frame);
-        dir.write("microdata.csv", &micro);
-        let project = Project::load(dir.path()).unwrap_or_else(|p| panic!("{p:?}"));
-        let view = WaveView::new(&project, 1).unwrap();
-        let settings = Settings {
-            wave: Some(1),
-            seed: 1000 + rep,
-            ..Settings::default()
-        };
-        let r = projection(
-            &project,
-            &view,
-            &settings,
-            &ProjectionSettings {
-                outcome: "y".into(),
-                predictors: vec![],
+        let (r, truth, part_means) = project_simulated_universe(
+            &dir,
+            &mut rng,
+            1000 + rep,
+            &|rng, z| 5.0 + 0.8 * z + 0.3 * rng.normal(),
+            &|rng, mu| {
+                let y = mu + rng.normal();
+                (y, format!("{y:.6}"))
             },
-        )
-        .unwrap();
+        );
         assert_eq!(r.countries.len(), 80);
         assert_eq!(r.n_participants, part_means.len());
         if r.universe_low <= truth && truth <= r.universe_high {
@@ -912,86 +949,33 @@ fn report_carries_the_projection_map() {
 /// check). Measured: 94.25%, errors 0.013 against 0.086.
 #[test]
 fn logistic_projection_recovers_a_known_universe() {
-    use gapwise::analysis::projection::{projection, ProjectionSettings};
-    use gapwise::analysis::Settings;
-    use gapwise::project::{Project, WaveView};
     use gapwise::stats::random::Rng;
-    use std::fmt::Write as _;
 
-    let manifest = r#"
-title = "Simulated universe, binary outcome"
-[columns]
-code = "iso"
-name = "name"
-wave = "wave"
-participation = "took_part"
-[indicators]
-numeric = ["z", "noise"]
-[microdata]
-country = "iso"
-wave = "wave"
-design_weight = "dweight"
-variables = ["y"]
-"#;
     let replicates = 400;
     let mut covered = 0;
     let mut boundary = 0;
     let mut error_projection = 0.0;
     let mut error_participants = 0.0;
     let dir = TempDir::new("known-universe-logistic");
-    dir.write("project.toml", manifest);
+    dir.write(
+        "project.toml",
+        simulated_manifest("Simulated universe, binary outcome"),
+    );
     for rep in 0..replicates {
         let mut rng = Rng::stream(29, rep);
-        let mut frame = String::from("iso,name,wave,took_part,z,noise\n");
-        let mut micro = String::from("iso,wave,dweight,y\n");
-        let mut truth = 0.0;
-        let mut part_shares = Vec::new();
-        for j in 0..80 {
-            let z = rng.normal();
-            let eta: f64 = -0.3 + 0.9 * z + 0.5 * rng.normal();
-            let p = 1.0 / (1.0 + (-eta).exp());
-            truth += p / 80.0;
-            let took_part = rng.bernoulli(1.0 / (1.0 + (-1.2 * z).exp()));
-            let code = format!(
-                "X{}{}",
-                (b'A' + (j / 26) as u8) as char,
-                (b'A' + (j % 26) as u8) as char
-            );
-            let _ = writeln!(
-                frame,
-                "{code},Country {j},1,{},{z:.6},{:.6}",
-                u8::from(took_part),
-                rng.normal()
-            );
-            if took_part {
-                let mut ones = 0;
-                for _ in 0..60 {
-                    let y = u8::from(rng.bernoulli(p));
-                    ones += usize::from(y);
-                    let _ = writeln!(micro, "{code},1,1.0,{y}");
-                }
-                part_shares.push(ones as f64 / 60.0);
-            }
-        }
-        dir.write("frame.csv", &frame);
-        dir.write("microdata.csv", &micro);
-        let project = Project::load(dir.path()).unwrap_or_else(|p| panic!("{p:?}"));
-        let view = WaveView::new(&project, 1).unwrap();
-        let settings = Settings {
-            wave: Some(1),
-            seed: 5000 + rep,
-            ..Settings::default()
-        };
-        let r = projection(
-            &project,
-            &view,
-            &settings,
-            &ProjectionSettings {
-                outcome: "y".into(),
-                predictors: vec![],
+        let (r, truth, part_shares) = project_simulated_universe(
+            &dir,
+            &mut rng,
+            5000 + rep,
+            &|rng, z| {
+                let eta: f64 = -0.3 + 0.9 * z + 0.5 * rng.normal();
+                1.0 / (1.0 + (-eta).exp())
             },
-        )
-        .unwrap();
+            &|rng, p| {
+                let y = u8::from(rng.bernoulli(p));
+                (f64::from(y), y.to_string())
+            },
+        );
         assert_eq!(r.kind, "logistic");
         if !r.converged {
             println!(
