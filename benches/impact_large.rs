@@ -14,12 +14,11 @@ use std::path::PathBuf;
 use std::sync::Arc;
 use std::time::Instant;
 
-use axum::body::Body;
-use axum::http::Request;
 use gapwise::project::Project;
 use gapwise::stats::random::Rng;
-use gapwise::web::{self, AppState};
-use tower::ServiceExt;
+use gapwise::web::AppState;
+#[path = "common/serve.rs"]
+mod serve;
 
 const ROUTES: [&str; 3] = [
     "/impact",
@@ -83,18 +82,8 @@ fn cpu_ms() -> f64 {
 /// Milliseconds to answer `uri` (wall clock, processor); panics unless the answer is 200.
 fn time(runtime: &tokio::runtime::Runtime, state: &Arc<AppState>, uri: &str) -> (f64, f64) {
     let cpu = cpu_ms();
-    let start = Instant::now();
-    let status = runtime.block_on(async {
-        let response = web::router(Arc::clone(state))
-            .oneshot(Request::get(uri).body(Body::empty()).expect("request"))
-            .await
-            .expect("router answers");
-        let status = response.status();
-        let _ = axum::body::to_bytes(response.into_body(), usize::MAX).await;
-        status
-    });
-    assert!(status.is_success(), "{uri} answered {status}");
-    (start.elapsed().as_secs_f64() * 1000.0, cpu_ms() - cpu)
+    let wall = serve::time(runtime, state, uri);
+    (wall, cpu_ms() - cpu)
 }
 
 fn main() {
@@ -105,11 +94,7 @@ fn main() {
     let respondents = project.microdata.as_ref().map_or(0, |m| m.height());
     println!("{respondents} respondents; project load {load_ms:.0} ms (not counted below)");
     drop(project);
-    let runtime = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .expect("runtime");
+    let runtime = serve::runtime();
     println!(
         "{:<56} {:>10} {:>10} {:>13} {:>11}",
         "route", "cold ms", "max ms", "processor ms", "cached ms"
@@ -130,7 +115,7 @@ fn main() {
         let mut cpu = Vec::new();
         let mut cached = Vec::new();
         for _ in 0..3 {
-            let state = Arc::new(AppState::new(Project::load(&dir).expect("loads")));
+            let state = serve::fresh_state(&dir);
             let (wall, processor) = time(&runtime, &state, uri);
             cold.push(wall);
             cpu.push(processor);
