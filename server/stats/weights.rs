@@ -359,16 +359,23 @@ struct GmmDescent {
     curvature: Option<Array2<f64>>,
 }
 
+impl GmmDescent {
+    /// Not yet moved from `start`.
+    fn at(start: &Array1<f64>) -> GmmDescent {
+        GmmDescent {
+            coef: start.clone(),
+            converged: false,
+            iterations: 0,
+            moved: false,
+            curvature: None,
+        }
+    }
+}
+
 fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
     let mut b = b0.clone();
     let (mut q, mut grad) = gmm_objective(x, t, &b);
-    let mut out = GmmDescent {
-        coef: b.clone(),
-        converged: false,
-        iterations: 0,
-        moved: false,
-        curvature: None,
-    };
+    let mut out = GmmDescent::at(&b);
     if !q.is_finite() {
         return out;
     }
@@ -432,13 +439,7 @@ fn gmm_bfgs(
     curvature: &Array2<f64>,
 ) -> GmmDescent {
     let mut b = b0.clone();
-    let mut out = GmmDescent {
-        coef: b.clone(),
-        converged: false,
-        iterations: 0,
-        moved: false,
-        curvature: None,
-    };
+    let mut out = GmmDescent::at(&b);
     let (mut q, mut grad) = gmm_objective(x, t, &b);
     if !q.is_finite() {
         return out;
