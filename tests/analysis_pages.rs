@@ -7,7 +7,7 @@ use common::*;
 use serde_json::Value;
 
 fn get_json(addr: std::net::SocketAddr, path: &str) -> Value {
-    let r = http(addr, "GET", path, &[]);
+    let r = get(addr, path);
     assert_eq!(r.status, 200, "{path}: {}", r.body);
     serde_json::from_str(&r.body).unwrap()
 }
@@ -40,7 +40,7 @@ fn every_page_answers_with_tables_charts_and_downloads() {
     ];
     for (page, items) in pages {
         for query in ["", "?wave=2&model=firth&weighting=raking&trim=0.95"] {
-            let r = http(addr, "GET", &format!("{page}{query}"), &[]);
+            let r = get(addr, &format!("{page}{query}"));
             assert_eq!(r.status, 200, "{page}{query}: {}", r.body);
             assert!(r.body.contains("<table"), "{page} has no table");
             assert!(r.body.contains("<svg"), "{page} has no chart");
@@ -52,7 +52,7 @@ fn every_page_answers_with_tables_charts_and_downloads() {
             assert!(!r.body.contains("NaN"), "{page}{query} shows NaN");
             get_json(addr, &format!("/api{page}{query}"));
             for item in items {
-                let a = http(addr, "GET", &format!("{page}/{item}{query}"), &[]);
+                let a = get(addr, &format!("{page}/{item}{query}"));
                 assert_eq!(a.status, 200, "{page}/{item}");
                 if item.ends_with(".svg") {
                     assert_eq!(a.header("content-type"), Some("image/svg+xml"));
@@ -70,17 +70,17 @@ fn every_page_answers_with_tables_charts_and_downloads() {
             }
         }
     }
-    assert_eq!(http(addr, "GET", "/balance/nothing.txt", &[]).status, 404);
-    let bad = http(addr, "GET", "/balance?weighting=magic", &[]);
+    assert_eq!(get(addr, "/balance/nothing.txt").status, 404);
+    let bad = get(addr, "/balance?weighting=magic");
     assert_eq!(bad.status, 400);
     assert!(bad.body.contains("weighting must be one of"));
-    assert_eq!(http(addr, "GET", "/model?wave=17", &[]).status, 404);
-    assert_eq!(http(addr, "GET", "/api/balance?wave=17", &[]).status, 404);
+    assert_eq!(get(addr, "/model?wave=17").status, 404);
+    assert_eq!(get(addr, "/api/balance?wave=17").status, 404);
     // A submitted form with no indicator ticked: well-formed settings that the data cannot
     // answer (no participation model without indicators) are 422 (RFC 9110), on the page,
     // its twin and its downloads alike.
     for route in ["/model", "/api/model", "/balance/table.csv", "/sensitivity"] {
-        let r = http(addr, "GET", &format!("{route}?form=1"), &[]);
+        let r = get(addr, &format!("{route}?form=1"));
         assert_eq!(r.status, 422, "{route}: {}", r.body);
         assert!(r.body.contains("choose at least one indicator"), "{route}");
     }
@@ -216,7 +216,7 @@ fn components_agree_with_numpy_up_to_sign() {
 fn model_terms_are_named_by_their_labels() {
     let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/real_frame");
     let addr = start_server(&dir);
-    let page = http(addr, "GET", "/model", &[]);
+    let page = get(addr, "/model");
     assert_eq!(page.status, 200, "{}", page.body);
     let rows: Vec<&str> = page
         .body
@@ -244,7 +244,7 @@ fn model_terms_are_named_by_their_labels() {
         .find(|c| c["term"] == "log_gdp_pc")
         .expect("log_gdp_pc term");
     assert_eq!(gdp["label"], "GDP per head (log 2005 US$ PPP)");
-    let csv = http(addr, "GET", "/model/coefficients.csv", &[]);
+    let csv = get(addr, "/model/coefficients.csv");
     assert!(csv.body.starts_with("term,label,"), "{}", &csv.body[..60]);
     assert!(csv
         .body

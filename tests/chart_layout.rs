@@ -263,7 +263,7 @@ fn waves_that_are_years_are_ticked_at_the_waves() {
 fn impact_rows_are_all_labelled() {
     let addr = common::start_server(&real_frame());
     let json: serde_json::Value =
-        serde_json::from_str(&common::http(addr, "GET", "/api/impact?bootstrap=0", &[]).body)
+        serde_json::from_str(&common::get(addr, "/api/impact?bootstrap=0").body)
             .expect("impact JSON");
     let terms: Vec<String> = json["terms"]
         .as_array()
@@ -273,7 +273,7 @@ fn impact_rows_are_all_labelled() {
         .collect();
     // The first term is the intercept and the last the Mills ratio: neither is a row.
     assert!(terms.len() > 3, "{terms:?}");
-    let svg = common::http(addr, "GET", "/impact/coefficients.svg?bootstrap=0", &[]).body;
+    let svg = common::get(addr, "/impact/coefficients.svg?bootstrap=0").body;
     assert!(svg.starts_with("<svg"), "{}", &svg[..svg.len().min(200)]);
     let shown: Vec<String> = texts(&svg).into_iter().map(|t| t.text).collect();
     for t in &terms[1..terms.len() - 1] {
@@ -291,7 +291,7 @@ fn impact_rows_are_all_labelled() {
         );
     }
     assert_inside(&svg, "coefficients");
-    let pooled = common::http(addr, "GET", "/impact/pooled.svg?bootstrap=0", &[]).body;
+    let pooled = common::get(addr, "/impact/pooled.svg?bootstrap=0").body;
     for v in json["variants"].as_array().expect("variants") {
         if v["pooled"].is_null() {
             continue;

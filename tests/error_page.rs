@@ -21,14 +21,14 @@ fn links(body: &str) -> Vec<String> {
 fn the_error_pages_links_lead_somewhere() {
     let addr = start_server(&demo_dir());
     // Bad settings: back to the overview, or the same page with its defaults.
-    let r = http(addr, "GET", "/balance?wave=99", &[]);
+    let r = get(addr, "/balance?wave=99");
     assert_eq!(r.status, 404);
     assert_eq!(links(&r.body), ["/", "/balance"], "{}", r.body);
     for link in links(&r.body) {
-        assert_eq!(http(addr, "GET", &link, &[]).status, 200, "{link}");
+        assert_eq!(get(addr, &link).status, 200, "{link}");
     }
     // A page that does not exist: only the overview, never the missing page again.
-    let r = http(addr, "GET", "/no/such/page", &[]);
+    let r = get(addr, "/no/such/page");
     assert_eq!(r.status, 404);
     assert_eq!(links(&r.body), ["/"], "{}", r.body);
     // A form's post that fails: no link to GET the form's address.

@@ -7,7 +7,7 @@ use common::*;
 #[test]
 fn overview_page_and_json_twin_agree() {
     let addr = start_server(&demo_dir());
-    let page = http(addr, "GET", "/", &[]);
+    let page = get(addr, "/");
     assert_eq!(page.status, 200);
     assert!(page
         .header("content-type")
@@ -22,7 +22,7 @@ fn overview_page_and_json_twin_agree() {
     ] {
         assert!(page.body.contains(needle), "page lacks {needle}");
     }
-    let api = http(addr, "GET", "/api/overview", &[]);
+    let api = get(addr, "/api/overview");
     assert_eq!(api.status, 200);
     let v: serde_json::Value = serde_json::from_str(&api.body).unwrap();
     for w in v["waves"].as_array().unwrap() {
@@ -32,13 +32,13 @@ fn overview_page_and_json_twin_agree() {
         );
         assert!(page.body.contains(&row), "page lacks {row}");
     }
-    let svg = http(addr, "GET", "/charts/coverage.svg", &[]);
+    let svg = get(addr, "/charts/coverage.svg");
     assert_eq!(svg.status, 200);
     assert_eq!(svg.header("content-type"), Some("image/svg+xml"));
     assert!(svg.body.contains("Savanna Belt"));
-    let css = http(addr, "GET", "/static/gapwise.css", &[]);
+    let css = get(addr, "/static/gapwise.css");
     assert_eq!(css.status, 200);
-    assert_eq!(http(addr, "GET", "/nowhere", &[]).status, 404);
+    assert_eq!(get(addr, "/nowhere").status, 404);
 }
 
 #[test]
@@ -58,8 +58,7 @@ fn reload_swaps_project_and_keeps_old_on_error() {
         403
     );
     let auth = [("x-gapwise-key", token.as_str())];
-    let before: serde_json::Value =
-        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    let before: serde_json::Value = get_json(addr, "/api/overview");
     assert_eq!(before["title"], "Test programme");
 
     dir.write(
@@ -68,8 +67,7 @@ fn reload_swaps_project_and_keeps_old_on_error() {
     );
     let r = http(addr, "POST", "/api/reload", &auth);
     assert_eq!(r.status, 200, "{}", r.body);
-    let after: serde_json::Value =
-        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    let after: serde_json::Value = get_json(addr, "/api/overview");
     assert_eq!(after["title"], "Renamed programme");
 
     dir.write("frame.csv", "");
@@ -81,8 +79,7 @@ fn reload_swaps_project_and_keeps_old_on_error() {
         "{}",
         r.body
     );
-    let kept: serde_json::Value =
-        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    let kept: serde_json::Value = get_json(addr, "/api/overview");
     assert_eq!(kept["title"], "Renamed programme");
 }
 
@@ -90,7 +87,7 @@ fn reload_swaps_project_and_keeps_old_on_error() {
 fn page_errors_show_in_the_layout_while_twins_and_downloads_stay_plain_text() {
     // Common practice: people get a page with a way back; programs get a status and text.
     let addr = start_server(&demo_dir());
-    let page = http(addr, "GET", "/balance?wave=99", &[]);
+    let page = get(addr, "/balance?wave=99");
     assert_eq!(page.status, 404, "no such wave: {}", page.body);
     assert!(page
         .header("content-type")
@@ -103,7 +100,7 @@ fn page_errors_show_in_the_layout_while_twins_and_downloads_stay_plain_text() {
         page.body
     );
     for path in ["/api/balance?wave=99", "/balance/balance.csv?wave=99"] {
-        let r = http(addr, "GET", path, &[]);
+        let r = get(addr, path);
         assert_eq!(r.status, 404, "{path}: {}", r.body);
         let kind = r.header("content-type").unwrap_or("");
         assert!(kind.starts_with("text/plain"), "{path}: {kind}");
@@ -111,7 +108,7 @@ fn page_errors_show_in_the_layout_while_twins_and_downloads_stay_plain_text() {
         assert!(r.body.contains("99"), "{path}: {}", r.body);
     }
     // A page that does not exist: 404 in the layout too.
-    let missing = http(addr, "GET", "/no-such-page", &[]);
+    let missing = get(addr, "/no-such-page");
     assert_eq!(missing.status, 404);
 }
 
@@ -130,7 +127,7 @@ fn every_page_title_is_plain_text() {
         "/projection",
         "/sensitivity",
     ] {
-        let r = http(addr, "GET", page, &[]);
+        let r = get(addr, page);
         assert_eq!(r.status, 200, "{page}");
         let title = r
             .body
@@ -207,12 +204,7 @@ fn raw_column_names_never_reach_the_missing_note_or_the_predictor_list() {
     let mut notes_with_indicators = 0;
     for wave in 1..=4 {
         for missing in ["complete-cases", "median-fill", "fill-and-balance"] {
-            let page = http(
-                addr,
-                "GET",
-                &format!("/balance?wave={wave}&missing={missing}"),
-                &[],
-            );
+            let page = get(addr, &format!("/balance?wave={wave}&missing={missing}"));
             assert_eq!(page.status, 200, "wave {wave} {missing}");
             let note = shown_text(fragment(&page.body, "<p class=\"lead\">", "</p>"));
             assert!(raw_in(&note).is_empty(), "wave {wave} {missing}: {note}");
@@ -223,7 +215,7 @@ fn raw_column_names_never_reach_the_missing_note_or_the_predictor_list() {
     }
     // The check can fail: some notes name indicators (the demo has missing values).
     assert!(notes_with_indicators > 0);
-    let page = http(addr, "GET", "/impact?wave=4&bootstrap=0", &[]);
+    let page = get(addr, "/impact?wave=4&bootstrap=0");
     assert_eq!(page.status, 200);
     let form = fragment(&page.body, "aria-label=\"Model settings\"", "</form>");
     let predictors = fragment(form, "<legend>Predictors</legend>", "</fieldset>");
@@ -287,7 +279,7 @@ fn the_benchmarks_request_every_route_of_the_router() {
     }
     let addr = start_server(&demo_dir());
     for route in routes::ROUTES {
-        let r = http(addr, "GET", route, &[]);
+        let r = get(addr, route);
         assert_eq!(r.status, 200, "{route}: {}", r.body);
     }
 }

@@ -14,7 +14,7 @@ fn corrections_move_the_pooled_estimate_toward_the_truth() {
         serde_json::from_str(&std::fs::read_to_string(demo_dir().join("truth.json")).unwrap())
             .unwrap();
     for wave in [2, 4] {
-        let r = http(addr, "GET", &format!("/api/impact?wave={wave}&outcome=trust_parliament&predictor=age&predictor=education&bootstrap=99"), &[]);
+        let r = get(addr, &format!("/api/impact?wave={wave}&outcome=trust_parliament&predictor=age&predictor=education&bootstrap=99"));
         assert_eq!(r.status, 200, "{}", r.body);
         let v: Value = serde_json::from_str(&r.body).unwrap();
         let variants = v["variants"].as_array().unwrap();
@@ -56,22 +56,22 @@ fn corrections_move_the_pooled_estimate_toward_the_truth() {
         }
     }
     // Population-proportional country shares (log population taken as a logarithm).
-    let pop: Value = serde_json::from_str(&http(addr, "GET", "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0&shares=population:log_population", &[]).body).unwrap();
+    let pop: Value = get_json(addr, "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0&shares=population:log_population");
     assert_eq!(pop["impact"]["shares"]["population"], "log_population");
     assert!(pop["notes"]
         .to_string()
         .contains("proportional to population"));
-    let page = http(addr, "GET", "/impact?bootstrap=49", &[]);
+    let page = get(addr, "/impact?bootstrap=49");
     assert_eq!(page.status, 200);
     assert!(page.body.matches("<svg").count() >= 2);
     for item in ["pooled.svg", "coefficients.svg", "table.csv"] {
         assert_eq!(
-            http(addr, "GET", &format!("/impact/{item}?bootstrap=0"), &[]).status,
+            get(addr, &format!("/impact/{item}?bootstrap=0")).status,
             200,
             "{item}"
         );
     }
-    let bad = http(addr, "GET", "/impact?outcome=shoe_size", &[]);
+    let bad = get(addr, "/impact?outcome=shoe_size");
     assert_eq!(bad.status, 400);
     assert!(bad.body.contains("not a survey variable"));
 }
@@ -88,16 +88,7 @@ fn variant<'a>(r: &'a Value, key: &str) -> &'a Value {
 #[test]
 fn impact_command_prints_what_the_api_serves() {
     let addr = start_server(&demo_dir());
-    let api: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/impact?wave=4&outcome=trust_parliament&predictor=age&predictor=education&country_indicator=log_gdp_pc&bootstrap=19",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let api: Value = get_json(addr, "/api/impact?wave=4&outcome=trust_parliament&predictor=age&predictor=education&country_indicator=log_gdp_pc&bootstrap=19");
     let dir = demo_dir();
     let out = gapwise(&[
         "impact",
@@ -131,16 +122,10 @@ fn two_step_variant_reports_the_universe_mean_with_first_step_errors() {
     // intercept of y = a + theta lambda. The check: it is not the unweighted mean, its
     // standard error differs from the uncorrected one, and p-values use t(G - 1).
     let addr = start_server(&demo_dir());
-    let r: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let r: Value = get_json(
+        addr,
+        "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0",
+    );
     let mills = variant(&r, "mills-ratio");
     assert!(mills["error"].is_null(), "{}", mills["error"]);
     let unweighted = variant(&r, "unweighted");
@@ -178,16 +163,7 @@ fn population_entropy_balances_to_the_population_weighted_universe() {
     // (the demo's wave 4, every indicator; tests/fixtures/make_twostep_fixtures.py checks
     // with scipy's linprog that an exact balance exists).
     let addr = start_server(&demo_dir());
-    let r: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0&shares=population:log_population",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let r: Value = get_json(addr, "/api/impact?wave=4&outcome=trust_parliament&predictor=age&bootstrap=0&shares=population:log_population");
     assert!(r["balance_reference"]
         .as_str()
         .unwrap()

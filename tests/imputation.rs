@@ -366,7 +366,7 @@ mod common;
 fn pages_accept_imputation() {
     let addr = common::start_server(&common::demo_dir());
     let q = "missing=impute&imputations=5&wave=4";
-    let r = common::http(addr, "GET", &format!("/?{q}"), &[]);
+    let r = common::get(addr, &format!("/?{q}"));
     assert_eq!(r.status, 200, "{}", r.body);
     assert!(
         r.body.contains("id=\"imputation\""),
@@ -375,14 +375,14 @@ fn pages_accept_imputation() {
     assert!(r.body.contains("id=\"filled-cells\""));
     assert!(r.body.contains("missing at random"));
     assert!(r.body.matches("<svg").count() >= 3);
-    let j = common::http(addr, "GET", &format!("/api/imputation?{q}"), &[]);
+    let j = common::get(addr, &format!("/api/imputation?{q}"));
     assert_eq!(j.status, 200, "{}", j.body);
     let v: Value = serde_json::from_str(&j.body).unwrap();
     assert_eq!(v["imputations"], 5);
     assert!(!v["cells"].as_array().unwrap().is_empty());
     assert_eq!(v["traces"][0]["means"].as_array().unwrap().len(), 5);
 
-    let b = common::http(addr, "GET", &format!("/api/balance?{q}"), &[]);
+    let b = common::get(addr, &format!("/api/balance?{q}"));
     assert_eq!(b.status, 200, "{}", b.body);
     let v: Value = serde_json::from_str(&b.body).unwrap();
     assert!(v["missing_note"]
@@ -394,11 +394,11 @@ fn pages_accept_imputation() {
         v["methods"].as_array().unwrap().len()
     );
     for page in ["/balance", "/model", "/coverage", "/sensitivity"] {
-        let r = common::http(addr, "GET", &format!("{page}?{q}"), &[]);
+        let r = common::get(addr, &format!("{page}?{q}"));
         assert_eq!(r.status, 200, "{page}: {}", r.body);
         assert!(r.body.contains("imputation"), "{page} does not say it");
     }
-    let c = common::http(addr, "GET", &format!("/coverage?{q}"), &[]);
+    let c = common::get(addr, &format!("/coverage?{q}"));
     assert!(c.body.contains("single completed frame"));
     assert!(c.body.contains("Has filled (imputed) values"));
 }
@@ -660,25 +660,25 @@ fn plan_json_carries_the_imputations() {
 fn plan_and_impact_pages_carry_the_imputations() {
     let addr = common::start_server(&common::demo_dir());
     let q = "missing=impute&imputations=3&wave=4&seed=8";
-    let j = common::http(addr, "GET", &format!("/api/plan?{q}&replicates=0"), &[]);
+    let j = common::get(addr, &format!("/api/plan?{q}&replicates=0"));
     assert_eq!(j.status, 200, "{}", j.body);
     let v: Value = serde_json::from_str(&j.body).unwrap();
     assert_eq!(v["objective_by_imputation"].as_array().unwrap().len(), 3);
     assert!(v["objective_combined"]["estimate"].is_number());
     assert!(v["steps"].as_array().is_some_and(|s| !s.is_empty()));
-    let page = common::http(addr, "GET", &format!("/plan?{q}&replicates=0"), &[]);
+    let page = common::get(addr, &format!("/plan?{q}&replicates=0"));
     assert_eq!(page.status, 200, "{}", page.body);
     assert!(page.body.contains("id=\"plan-imputations\""));
     // The map is the completed frame's, with the filled countries crossed.
     assert!(page.body.contains("Has filled (imputed) values"));
     assert!(page.body.contains("Rubin's rules"));
     // Without imputation the twin is the plain plan.
-    let plain = common::http(addr, "GET", "/api/plan?wave=4&replicates=0", &[]);
+    let plain = common::get(addr, "/api/plan?wave=4&replicates=0");
     let v: Value = serde_json::from_str(&plain.body).unwrap();
     assert!(v.get("objective_by_imputation").is_none());
 
     let iq = format!("{q}&replicates=0&wild_replicates=0");
-    let j = common::http(addr, "GET", &format!("/api/impact?{iq}"), &[]);
+    let j = common::get(addr, &format!("/api/impact?{iq}"));
     assert_eq!(j.status, 200, "{}", j.body);
     let v: Value = serde_json::from_str(&j.body).unwrap();
     let combination = v["combination"].as_array().unwrap();
@@ -686,7 +686,7 @@ fn plan_and_impact_pages_carry_the_imputations() {
     assert!(combination
         .iter()
         .all(|c| c["imputations"].as_array().unwrap().len() == 3));
-    let page = common::http(addr, "GET", &format!("/impact?{iq}"), &[]);
+    let page = common::get(addr, &format!("/impact?{iq}"));
     assert_eq!(page.status, 200, "{}", page.body);
     assert!(page.body.contains("id=\"imputations\""));
     assert!(page.body.contains("id=\"imputation-pooled\""));
@@ -694,12 +694,7 @@ fn plan_and_impact_pages_carry_the_imputations() {
     let table = &page.body[page.body.find("id=\"imputation-pooled\"").unwrap()..];
     let head = &table[..table.find("</thead>").unwrap()];
     assert_eq!(head.matches("Imputation ").count(), 3);
-    let plain = common::http(
-        addr,
-        "GET",
-        "/api/impact?wave=4&replicates=0&wild_replicates=0",
-        &[],
-    );
+    let plain = common::get(addr, "/api/impact?wave=4&replicates=0&wild_replicates=0");
     let v: Value = serde_json::from_str(&plain.body).unwrap();
     assert!(v.get("combination").is_none());
 }
@@ -720,11 +715,9 @@ fn report_coverage_uses_the_imputed_frame() {
     let expected = imputed::coverage(Some(&project), &view, &settings).unwrap();
     assert!(!expected.filled.is_empty());
     let addr = common::start_server(&common::demo_dir());
-    let r = common::http(
+    let r = common::get(
         addr,
-        "GET",
         "/report?wave=4&missing=impute&imputations=2&replicates=0&bootstrap=0",
-        &[],
     );
     assert_eq!(r.status, 200, "{}", r.body);
     let section = &r.body[r.body.find("id=\"missing-4\"").unwrap()..];
@@ -739,12 +732,7 @@ fn report_coverage_uses_the_imputed_frame() {
         assert!(section.contains(code.as_str()), "{code} not named");
     }
     // The map's positions are those of the coverage page's completed frame.
-    let c = common::http(
-        addr,
-        "GET",
-        "/api/coverage?wave=4&missing=impute&imputations=2",
-        &[],
-    );
+    let c = common::get(addr, "/api/coverage?wave=4&missing=impute&imputations=2");
     let v: Value = serde_json::from_str(&c.body).unwrap();
     let filled: Vec<&str> = v["filled"]
         .as_array()
@@ -757,7 +745,7 @@ fn report_coverage_uses_the_imputed_frame() {
         v["points"].as_array().unwrap().len(),
         expected.coverage.points.len()
     );
-    let plain = common::http(addr, "GET", "/report?wave=4&replicates=0&bootstrap=0", &[]);
+    let plain = common::get(addr, "/report?wave=4&replicates=0&bootstrap=0");
     let section = &plain.body[plain.body.find("id=\"missing-4\"").unwrap()..];
     let section = &section[..section.find("</section>").unwrap()];
     assert!(!section.contains("Has filled (imputed) values"));

@@ -88,31 +88,52 @@ fn f(v: &Value) -> f64 {
     v.as_f64().unwrap_or(f64::NAN)
 }
 
+/// How near a fitted figure must be to its reference.
+#[derive(Clone, Copy)]
+enum Tol {
+    Abs(f64),
+    Rel(f64),
+}
+use Tol::{Abs, Rel};
+
+/// A number, or an array of numbers, as a list.
+fn numbers(v: &Value) -> Vec<f64> {
+    if v.is_array() {
+        floats(v)
+    } else {
+        vec![f(v)]
+    }
+}
+
+/// Checks a fit against a reference, one row a figure: the field of `got`, the field of
+/// `want` it must match and the tolerance; a failure names `label`, the field and the index.
+fn check_fields(label: &str, got: &Value, want: &Value, rows: &[(&str, &str, Tol)]) {
+    for &(field, reference, tol) in rows {
+        let what = if field == reference {
+            format!("{label}: {field}")
+        } else {
+            format!("{label}: {field} vs {reference}")
+        };
+        let (g, w) = (numbers(&got[field]), numbers(&want[reference]));
+        match tol {
+            Abs(t) => close_abs(&what, &g, &w, t),
+            Rel(t) => close_rel(&what, &g, &w, t),
+        }
+    }
+}
+
 fn check_linear(got: &Value, want: &Value, tol_abs: f64, tol_se: f64) {
-    close_abs(
-        "coef",
-        &floats(&got["coef"]),
-        &floats(&want["coef"]),
-        tol_abs,
-    );
-    close_rel("se", &floats(&got["se"]), &floats(&want["se"]), tol_se);
-    close_abs(
-        "country_sd",
-        &[f(&got["country_sd"])],
-        &[f(&want["country_sd"])],
-        tol_abs,
-    );
-    close_abs(
-        "residual_sd",
-        &[f(&got["residual_sd"])],
-        &[f(&want["residual_sd"])],
-        tol_abs,
-    );
-    close_abs(
-        "log_likelihood",
-        &[f(&got["log_likelihood"])],
-        &[f(&want["log_likelihood"])],
-        1e-4,
+    check_fields(
+        "linear",
+        got,
+        want,
+        &[
+            ("coef", "coef", Abs(tol_abs)),
+            ("se", "se", Rel(tol_se)),
+            ("country_sd", "country_sd", Abs(tol_abs)),
+            ("residual_sd", "residual_sd", Abs(tol_abs)),
+            ("log_likelihood", "log_likelihood", Abs(1e-4)),
+        ],
     );
 }
 
@@ -130,17 +151,14 @@ fn sleepstudy_reml_matches_lme4() {
     check_linear(&got, want, 1e-4, 1e-3);
     // Conditional modes and variances (lme4's ranef with condVar), subjects in file order.
     assert_eq!(got["country_codes"], reference["sleepstudy_subjects"]);
-    close_abs(
-        "modes",
-        &floats(&got["modes"]),
-        &floats(&want["modes"]),
-        1e-4,
-    );
-    close_rel(
-        "mode_variance",
-        &floats(&got["mode_variance"]),
-        &floats(&want["mode_variance"]),
-        1e-4,
+    check_fields(
+        "sleepstudy REML",
+        &got,
+        want,
+        &[
+            ("modes", "modes", Abs(1e-4)),
+            ("mode_variance", "mode_variance", Rel(1e-4)),
+        ],
     );
     // Intraclass correlation from the same fit (definition: tau^2 / (tau^2 + sigma^2)).
     let (tau, sigma) = (f(&want["country_sd"]), f(&want["residual_sd"]));
@@ -156,11 +174,11 @@ fn sleepstudy_ml_matches_lme4() {
     let got = sleepstudy(&["--ml"]);
     assert_eq!(got["method"], "ML");
     check_linear(&got, want, 1e-4, 1e-3);
-    close_abs(
-        "modes",
-        &floats(&got["modes"]),
-        &floats(&want["modes"]),
-        1e-4,
+    check_fields(
+        "sleepstudy ML",
+        &got,
+        want,
+        &[("modes", "modes", Abs(1e-4))],
     );
 }
 
@@ -170,21 +188,17 @@ fn sleepstudy_matches_statsmodels_mixedlm() {
     // so the variance components agree to about 2e-5 relative; checked to 1e-4 relative.
     let reference = load("mixedlm_reference.json");
     for (name, extra) in [("reml", vec![]), ("ml", vec!["--ml"])] {
-        let want = &reference[name];
-        let got = sleepstudy(&extra);
-        close_rel("coef", &floats(&got["coef"]), &floats(&want["coef"]), 1e-6);
-        close_rel("se", &floats(&got["se"]), &floats(&want["se"]), 1e-3);
-        close_rel(
-            "sds",
-            &[f(&got["country_sd"]), f(&got["residual_sd"])],
-            &[f(&want["country_sd"]), f(&want["residual_sd"])],
-            1e-4,
-        );
-        close_abs(
-            "log_likelihood",
-            &[f(&got["log_likelihood"])],
-            &[f(&want["log_likelihood"])],
-            1e-4,
+        check_fields(
+            &format!("MixedLM {name}"),
+            &sleepstudy(&extra),
+            &reference[name],
+            &[
+                ("coef", "coef", Rel(1e-6)),
+                ("se", "se", Rel(1e-3)),
+                ("country_sd", "country_sd", Rel(1e-4)),
+                ("residual_sd", "residual_sd", Rel(1e-4)),
+                ("log_likelihood", "log_likelihood", Abs(1e-4)),
+            ],
         );
     }
 }
@@ -207,52 +221,39 @@ fn cbpp_laplace_matches_lme4_and_the_exact_laplace_optimum() {
     assert_eq!(got["converged"], true);
     assert!(got["residual_sd"].is_null());
     assert!(got["icc"].is_null());
-    close_abs("coef", &floats(&got["coef"]), &floats(&exact["coef"]), 1e-4);
-    close_abs(
-        "country_sd",
-        &[f(&got["country_sd"])],
-        &[f(&exact["country_sd"])],
-        1e-4,
+    check_fields(
+        "exact Laplace",
+        &got,
+        exact,
+        &[
+            ("coef", "coef", Abs(1e-4)),
+            ("country_sd", "country_sd", Abs(1e-4)),
+            ("log_likelihood", "log_likelihood", Abs(1e-6)),
+            // Standard errors: inverse Hessian over (beta, tau), as lme4's
+            // vcov(use.hessian = TRUE).
+            ("se", "se", Rel(1e-3)),
+        ],
     );
-    close_abs(
-        "log_likelihood",
-        &[f(&got["log_likelihood"])],
-        &[f(&exact["log_likelihood"])],
-        1e-6,
-    );
-    close_abs(
-        "coef vs lme4",
-        &floats(&got["coef"]),
-        &floats(&want["coef"]),
-        1e-3,
-    );
-    close_abs(
-        "country_sd vs lme4",
-        &[f(&got["country_sd"])],
-        &[f(&want["country_sd"])],
-        1e-3,
-    );
-    // Standard errors: inverse Hessian over (beta, tau), as lme4's vcov(use.hessian = TRUE);
-    // lme4 differentiates its IRLS-based deviance numerically, about 1.2% off here.
-    close_rel("se", &floats(&got["se"]), &floats(&exact["se"]), 1e-3);
-    close_rel(
-        "se vs lme4",
-        &floats(&got["se"]),
-        &floats(&want["se"]),
-        2e-2,
+    check_fields(
+        "lme4",
+        &got,
+        want,
+        &[
+            ("coef", "coef", Abs(1e-3)),
+            ("country_sd", "country_sd", Abs(1e-3)),
+            // lme4 differentiates its IRLS-based deviance numerically, about 1.2% off here.
+            ("se", "se", Rel(2e-2)),
+        ],
     );
     assert_eq!(got["country_codes"], reference["cbpp_herds"]);
-    close_abs(
-        "modes",
-        &floats(&got["modes"]),
-        &floats(&want["modes"]),
-        2e-3,
-    );
-    close_rel(
-        "mode_variance",
-        &floats(&got["mode_variance"]),
-        &floats(&want["mode_variance"]),
-        1e-2,
+    check_fields(
+        "lme4",
+        &got,
+        want,
+        &[
+            ("modes", "modes", Abs(2e-3)),
+            ("mode_variance", "mode_variance", Rel(1e-2)),
+        ],
     );
 }
 
@@ -263,25 +264,17 @@ fn cbpp_adaptive_quadrature_matches_lme4() {
     let want = &reference["cbpp_agq9"];
     let got = cbpp(&["--nodes", "9"]);
     assert_eq!(got["converged"], true);
-    close_abs("coef", &floats(&got["coef"]), &floats(&want["coef"]), 1e-4);
-    close_abs(
-        "country_sd",
-        &[f(&got["country_sd"])],
-        &[f(&want["country_sd"])],
-        1e-4,
-    );
-    close_rel("se", &floats(&got["se"]), &floats(&want["se"]), 1e-3);
-    close_abs(
-        "log_likelihood",
-        &[f(&got["log_likelihood"])],
-        &[f(&want["log_likelihood"])],
-        1e-4,
-    );
-    close_abs(
-        "modes",
-        &floats(&got["modes"]),
-        &floats(&want["modes"]),
-        1e-4,
+    check_fields(
+        "lme4 nAGQ 9",
+        &got,
+        want,
+        &[
+            ("coef", "coef", Abs(1e-4)),
+            ("country_sd", "country_sd", Abs(1e-4)),
+            ("se", "se", Rel(1e-3)),
+            ("log_likelihood", "log_likelihood", Abs(1e-4)),
+            ("modes", "modes", Abs(1e-4)),
+        ],
     );
 }
 
@@ -470,12 +463,12 @@ fn projection_page_twin_and_download_agree() {
     // Common practice: the page, its JSON twin and the CSV render one result.
     let addr = start_server(&demo_dir());
     let query = "outcome=trust_parliament&predictor=age";
-    let page = http(addr, "GET", &format!("/projection?{query}"), &[]);
+    let page = get(addr, &format!("/projection?{query}"));
     assert_eq!(page.status, 200, "{}", page.body);
     assert!(page
         .body
         .contains("What would the whole eligible universe say?"));
-    let twin = http(addr, "GET", &format!("/api/projection?{query}"), &[]);
+    let twin = get(addr, &format!("/api/projection?{query}"));
     assert_eq!(twin.status, 200);
     let r: Value = serde_json::from_str(&twin.body).unwrap();
     let estimate = f(&r["universe_estimate"]);
@@ -484,14 +477,14 @@ fn projection_page_twin_and_download_agree() {
     assert!(page.body.contains(&format!("{estimate:.3}")));
     assert!(page.body.contains(&format!("seed {}", r["seed"])));
     let countries = r["countries"].as_array().unwrap();
-    let csv = http(addr, "GET", &format!("/projection/table.csv?{query}"), &[]);
+    let csv = get(addr, &format!("/projection/table.csv?{query}"));
     assert_eq!(csv.status, 200);
     assert_eq!(csv.body.lines().count(), countries.len() + 1);
     assert!(!r["regions"].as_array().unwrap().is_empty());
     // The map: on the page and as a download.
     assert!(page.body.contains("Did not take part (projected)"));
     assert!(page.body.contains("/projection/map.svg?"));
-    let map = http(addr, "GET", &format!("/projection/map.svg?{query}"), &[]);
+    let map = get(addr, &format!("/projection/map.svg?{query}"));
     assert_eq!(map.status, 200);
     assert!(
         map.body.contains("<svg"),
@@ -500,29 +493,14 @@ fn projection_page_twin_and_download_agree() {
     );
     // Counting countries by population (the demo declares log_population): a different
     // universe estimate, said on the page.
-    let by_pop = http(
-        addr,
-        "GET",
-        &format!("/api/projection?{query}&shares=population"),
-        &[],
-    );
+    let by_pop = get(addr, &format!("/api/projection?{query}&shares=population"));
     assert_eq!(by_pop.status, 200, "{}", by_pop.body);
     let p: Value = serde_json::from_str(&by_pop.body).unwrap();
     assert_eq!(p["shares"], "population");
     assert!((f(&p["universe_estimate"]) - estimate).abs() > 1e-9);
-    let page_pop = http(
-        addr,
-        "GET",
-        &format!("/projection?{query}&shares=population"),
-        &[],
-    );
+    let page_pop = get(addr, &format!("/projection?{query}&shares=population"));
     assert!(page_pop.body.contains("Countries count by population"));
-    let bad = http(
-        addr,
-        "GET",
-        &format!("/api/projection?{query}&shares=people"),
-        &[],
-    );
+    let bad = get(addr, &format!("/api/projection?{query}&shares=people"));
     assert_eq!(bad.status, 400);
     // Countries with a missing indicator are not estimable: null, never 0.
     for c in countries {
@@ -699,25 +677,17 @@ fn logistic_fit_at_the_boundary_stops_there_and_matches_glmer() {
             "{}",
             got["note"]
         );
-        close_abs("coef", &floats(&got["coef"]), &floats(&want["coef"]), 1e-6);
-        close_abs(
-            "coef vs glm",
-            &floats(&got["coef"]),
-            &floats(&want["glm_coef"]),
-            1e-6,
-        );
-        close_rel("se", &floats(&got["se"]), &floats(&want["se"]), 1e-4);
-        close_rel(
-            "se vs glm",
-            &floats(&got["se"]),
-            &floats(&want["glm_se"]),
-            1e-4,
-        );
-        close_abs(
-            "log_likelihood",
-            &[f(&got["log_likelihood"])],
-            &[f(&want["log_likelihood"])],
-            1e-6,
+        check_fields(
+            &format!("boundary, nodes {nodes}"),
+            &got,
+            want,
+            &[
+                ("coef", "coef", Abs(1e-6)),
+                ("coef", "glm_coef", Abs(1e-6)),
+                ("se", "se", Rel(1e-4)),
+                ("se", "glm_se", Rel(1e-4)),
+                ("log_likelihood", "log_likelihood", Abs(1e-6)),
+            ],
         );
         let modes = floats(&got["modes"]);
         assert_eq!(modes.len(), 40);
@@ -776,12 +746,7 @@ fn projection_page_shows_readable_labels_not_column_names() {
     // the map's title and hover texts use the manifest's labels or ones derived from the
     // column names.
     let addr = start_server(&demo_dir());
-    let page = http(
-        addr,
-        "GET",
-        "/projection?outcome=trust_parliament&predictor=age&predictor=income_decile&shares=population",
-        &[],
-    );
+    let page = get(addr, "/projection?outcome=trust_parliament&predictor=age&predictor=income_decile&shares=population");
     assert_eq!(page.status, 200, "{}", page.body);
     // The raw names are there, but only in links and form values.
     assert!(page.body.contains("value=\"trust_parliament\""));
@@ -801,16 +766,10 @@ fn projection_page_shows_readable_labels_not_column_names() {
     assert!(seen.contains("Projected Trust parliament on the map of the eligible universe"));
     assert!(seen.contains("GDP per head (log US$) (standardised)"));
     // The JSON twin keeps the column names and carries the labels beside them.
-    let twin: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/projection?outcome=trust_parliament&predictor=age&predictor=income_decile",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let twin: Value = get_json(
+        addr,
+        "/api/projection?outcome=trust_parliament&predictor=age&predictor=income_decile",
+    );
     assert_eq!(twin["outcome"], "trust_parliament");
     assert_eq!(twin["outcome_label"], "Trust parliament");
     assert_eq!(
@@ -826,7 +785,7 @@ fn projection_page_shows_readable_labels_not_column_names() {
 fn logistic_projection_of_the_demo_reports_the_boundary() {
     let addr = start_server(&demo_dir());
     let query = "outcome=turnout&predictor=age&predictor=female";
-    let twin = http(addr, "GET", &format!("/api/projection?{query}"), &[]);
+    let twin = get(addr, &format!("/api/projection?{query}"));
     assert_eq!(twin.status, 200, "{}", twin.body);
     let r: Value = serde_json::from_str(&twin.body).unwrap();
     assert_eq!(r["kind"], "logistic");
@@ -844,7 +803,7 @@ fn logistic_projection_of_the_demo_reports_the_boundary() {
         "{notes:?}"
     );
     assert!(!notes.iter().any(|n| n.contains("did not converge")));
-    let page = http(addr, "GET", &format!("/projection?{query}"), &[]);
+    let page = get(addr, &format!("/projection?{query}"));
     assert_eq!(page.status, 200);
     assert!(page
         .body
@@ -855,11 +814,9 @@ fn logistic_projection_of_the_demo_reports_the_boundary() {
     let estimate = f(&r["universe_estimate"]);
     assert!(0.0 < low && low < estimate && estimate < high && high < 1.0);
     // The impact view's projection variant says it too.
-    let impact = http(
+    let impact = get(
         addr,
-        "GET",
         &format!("/api/impact?{query}&kind=logistic&replicates=0&wild_replicates=0"),
-        &[],
     );
     assert_eq!(impact.status, 200, "{}", impact.body);
     let i: Value = serde_json::from_str(&impact.body).unwrap();

@@ -332,28 +332,20 @@ fn bad_requests_get_clear_messages() {
 #[test]
 fn plan_page_and_twin() {
     let addr = start_server(&demo_dir());
-    let page = http(addr, "GET", "/plan?budget=3&replicates=10&joiner=XHW", &[]);
+    let page = get(addr, "/plan?budget=3&replicates=10&joiner=XHW");
     assert_eq!(page.status, 200, "{}", page.body);
     assert!(page.body.contains("What if XHW joined"));
     assert!(page.body.matches("<svg").count() >= 2);
-    let twin: Value =
-        serde_json::from_str(&http(addr, "GET", "/api/plan?budget=3&replicates=10", &[]).body)
-            .unwrap();
+    let twin: Value = get_json(addr, "/api/plan?budget=3&replicates=10");
     assert_eq!(twin["steps"].as_array().unwrap().len(), 3);
     for item in ["paths.svg", "map.svg", "plan.csv", "candidates.csv"] {
         assert_eq!(
-            http(
-                addr,
-                "GET",
-                &format!("/plan/{item}?budget=3&replicates=0"),
-                &[]
-            )
-            .status,
+            get(addr, &format!("/plan/{item}?budget=3&replicates=0")).status,
             200,
             "{item}"
         );
     }
-    assert_eq!(http(addr, "GET", "/plan?budget=0", &[]).status, 400);
+    assert_eq!(get(addr, "/plan?budget=0").status, 400);
 }
 
 /// Reads a committed fixture of tests/fixtures.
@@ -831,12 +823,7 @@ fn history_chances_on_the_page_and_their_limits() {
     assert!(out.stderr.contains("project folder"), "{}", out.stderr);
     // The page shows the check's calibration table.
     let addr = start_server(&demo);
-    let page = http(
-        addr,
-        "GET",
-        "/plan?wave=4&feasibility=history&replicates=0",
-        &[],
-    );
+    let page = get(addr, "/plan?wave=4&feasibility=history&replicates=0");
     assert_eq!(page.status, 200, "{}", page.body);
     assert!(page.body.contains("Can the history forecast be believed?"));
     let table = page.body.split("Share that took part").nth(1).unwrap();

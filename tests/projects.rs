@@ -76,12 +76,7 @@ fn upload_map_save_and_keep_previous_version() {
     assert_eq!(r.status, 303, "{}", r.body);
     let id = upload_id(&r);
     assert_eq!(id.len(), 16, "{:?}", r.header("location"));
-    let form = http(
-        addr,
-        "GET",
-        &format!("/projects/map?name=p1&upload={id}"),
-        &[],
-    );
+    let form = get(addr, &format!("/projects/map?name=p1&upload={id}"));
     assert_eq!(form.status, 200);
     assert!(
         form.body
@@ -97,8 +92,7 @@ fn upload_map_save_and_keep_previous_version() {
     assert_eq!(saved.status, 303, "{}", saved.body);
     let p1 = projects.path().join("p1");
     assert!(Project::load(&p1).is_ok());
-    let overview: serde_json::Value =
-        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap();
+    let overview: serde_json::Value = get_json(addr, "/api/overview");
     assert_eq!(overview["title"], "Browser programme");
     assert_eq!(store::list(projects.path()), vec!["p1".to_string()]);
 
@@ -124,7 +118,7 @@ fn upload_map_save_and_keep_previous_version() {
         .any(|e| e.file_name().to_string_lossy().starts_with(".staging-")));
 
     // The projects page lists it, and opening it works.
-    let list = http(addr, "GET", "/projects", &[]);
+    let list = get(addr, "/projects");
     assert!(list.body.contains("p1"));
     let open = http_body(
         addr,
@@ -548,7 +542,7 @@ fn a_name_column_ticked_as_an_indicator_is_refused_by_the_form_and_by_check() {
         assert!(out.stderr.contains(expected), "{tag}: {}", out.stderr);
     }
     // Pages still answer (the open project is untouched).
-    assert_eq!(http(addr, "GET", "/", &[]).status, 200);
+    assert_eq!(get(addr, "/").status, 200);
 }
 
 /// A small seeded generator for the property test (xorshift64*, Vigna 2016).
@@ -877,7 +871,7 @@ fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
     assert_eq!(r.status, 303, "{}", r.body);
     let location = r.header("location").unwrap_or_default().to_string();
     assert!(location.contains("kept=1"), "{location}");
-    let form = http(addr, "GET", &location, &[]);
+    let form = get(addr, &location);
     assert_eq!(form.status, 200, "{}", form.body);
     for prefilled in [
         r#"id="from-previous""#,
@@ -926,7 +920,7 @@ fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
     let list = store::versions(projects.path(), "p1");
     assert_eq!(list.len(), 3, "{list:?}");
     assert!(list[0].current && !list[2].current);
-    let page = http(addr, "GET", "/projects", &[]);
+    let page = get(addr, "/projects");
     assert!(
         page.body
             .contains(&format!(r#"name="version" value="{}""#, list[2].id)),
@@ -970,7 +964,7 @@ fn separators_decimal_commas_and_code_case_get_hints() {
     let origin = format!("http://{addr}");
     let semicolons = "iso;name;wave;took_part;gdp\nXAA;Aland;1;1;9,5\nXAB;Bland;1;0;8,1\n";
     let r = upload_with(addr, &origin, "semi", semicolons.as_bytes(), None, &[]);
-    let form = http(addr, "GET", r.header("location").unwrap_or_default(), &[]);
+    let form = get(addr, r.header("location").unwrap_or_default());
     assert!(
         form.body
             .contains("seems to use &#39;;&#39; between fields")

@@ -839,33 +839,23 @@ fn a_dummy_only_one_participant_has_is_not_estimable_and_its_refit_is_counted() 
     // The page offers the same view with the Firth model, and says "not estimable";
     // the CSV says it too.
     let addr = start_server(&demo);
-    let page = http(addr, "GET", "/model?wave=4&missing=median-fill", &[]);
+    let page = get(addr, "/model?wave=4&missing=median-fill");
     assert_eq!(page.status, 200);
     assert!(page.body.contains("not estimable"));
     assert!(page.body.contains("id=\"firth-link\""));
     assert!(page.body.contains("model=firth"));
     assert!(!page.body.contains("13.569 to 13.569"));
-    let csv = http(
-        addr,
-        "GET",
-        "/model/coefficients.csv?wave=4&missing=median-fill",
-        &[],
-    );
+    let csv = get(addr, "/model/coefficients.csv?wave=4&missing=median-fill");
     let line = csv
         .body
         .lines()
         .find(|l| l.starts_with("internet_use missing"))
         .unwrap();
     assert!(line.contains("not estimable"), "{line}");
-    let api = http(addr, "GET", "/api/model?wave=4&missing=median-fill", &[]);
+    let api = get(addr, "/api/model?wave=4&missing=median-fill");
     let json: Value = serde_json::from_str(&api.body).unwrap();
     assert!(json["model"]["se"][j].is_null());
-    let firth = http(
-        addr,
-        "GET",
-        "/model?wave=4&missing=median-fill&model=firth",
-        &[],
-    );
+    let firth = get(addr, "/model?wave=4&missing=median-fill&model=firth");
     assert!(!firth.body.contains("firth-link"));
 }
 
@@ -1010,8 +1000,7 @@ fn weights_worse_than_none_are_flagged_wherever_they_appear() {
     let entropy = fit_json(&[demo.to_str().unwrap(), "--wave", "4"]);
     assert_eq!(entropy["weighting"]["worse_than_none"], false);
     let addr = start_server(&demo);
-    let balance: Value =
-        serde_json::from_str(&http(addr, "GET", "/api/balance?wave=4", &[]).body).unwrap();
+    let balance: Value = get_json(addr, "/api/balance?wave=4");
     let ipw = balance["methods"]
         .as_array()
         .unwrap()
@@ -1025,7 +1014,7 @@ fn weights_worse_than_none_are_flagged_wherever_they_appear() {
         "/model?wave=4&weighting=inverse-probability",
         "/report?wave=4",
     ] {
-        let body = http(addr, "GET", page, &[]).body;
+        let body = get(addr, page).body;
         assert!(
             body.to_lowercase().contains("worse than no weighting"),
             "{page}"
@@ -1051,14 +1040,14 @@ fn incomplete_countries_are_warned_about_and_can_be_kept() {
         "/sensitivity?wave=4",
         "/report?wave=4",
     ] {
-        let body = http(addr, "GET", page, &[]).body;
+        let body = get(addr, page).body;
         assert!(
             body.contains("Leaving out incomplete countries dropped 5 of 145"),
             "{page}"
         );
     }
     for api in ["/api/balance?wave=4", "/api/sensitivity?wave=4"] {
-        let json: Value = serde_json::from_str(&http(addr, "GET", api, &[]).body).unwrap();
+        let json: Value = get_json(addr, api);
         assert_eq!(json["incomplete"]["dropped_participants"], 4, "{api}");
     }
     // Kept: filled, the missingness flags balanced too (entropy weights match their
@@ -1086,6 +1075,6 @@ fn incomplete_countries_are_warned_about_and_can_be_kept() {
     for f in flags {
         assert!(f["smd_after"].as_f64().unwrap().abs() < 1e-8, "{f}");
     }
-    let page = http(addr, "GET", "/model?wave=4&missing=fill-and-balance", &[]).body;
+    let page = get(addr, "/model?wave=4&missing=fill-and-balance").body;
     assert!(page.contains("id=\"missing-caveat\""));
 }

@@ -52,8 +52,7 @@ fn report_has_every_section_and_the_pages_numbers() {
     assert!(!html.contains("NaN"));
     // Numbers equal the pages' (same analysis results, same formatting).
     let addr = start_server(&demo_dir());
-    let balance: Value =
-        serde_json::from_str(&http(addr, "GET", "/api/balance?wave=3", &[]).body).unwrap();
+    let balance: Value = get_json(addr, "/api/balance?wave=3");
     let entropy = balance["methods"]
         .as_array()
         .unwrap()
@@ -62,8 +61,7 @@ fn report_has_every_section_and_the_pages_numbers() {
         .unwrap();
     let ess = format!("<td>{:.1}</td>", entropy["effective_n"].as_f64().unwrap());
     assert!(html.contains(&ess), "report lacks the balance page's {ess}");
-    let model: Value =
-        serde_json::from_str(&http(addr, "GET", "/api/model?wave=3", &[]).body).unwrap();
+    let model: Value = get_json(addr, "/api/model?wave=3");
     let auc = format!(
         "AUC {:.3} in sample",
         model["model"]["auc"].as_f64().unwrap()
@@ -77,7 +75,7 @@ fn report_has_every_section_and_the_pages_numbers() {
         .collect();
     assert!(leftovers.is_empty());
     // The button in the app serves the same document, named by its wave.
-    let r = http(addr, "GET", "/report?wave=3", &[]);
+    let r = get(addr, "/report?wave=3");
     assert_eq!(r.status, 200);
     assert_eq!(
         r.header("content-disposition"),
@@ -205,16 +203,7 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
     assert!(!html.contains("model of left_right"));
     assert!(html.contains("What if XAB joined"));
     let addr = start_server(&demo_dir());
-    let impact: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/impact?wave=3&weighting=raking&outcome=left_right&predictor=age&predictor=education&bootstrap=0",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let impact: Value = get_json(addr, "/api/impact?wave=3&weighting=raking&outcome=left_right&predictor=age&predictor=education&bootstrap=0");
     let variants = impact["variants"].as_array().unwrap();
     assert!(!variants.is_empty());
     for v in variants {
@@ -223,16 +212,10 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
             assert!(html.contains(&cell), "report lacks {} {cell}", v["key"]);
         }
     }
-    let plan: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/plan?wave=3&weighting=raking&budget=3&feasibility=model&joiner=XAB&replicates=5",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let plan: Value = get_json(
+        addr,
+        "/api/plan?wave=3&weighting=raking&budget=3&feasibility=model&joiner=XAB&replicates=5",
+    );
     let steps = plan["steps"].as_array().unwrap();
     assert_eq!(steps.len(), 3);
     for s in steps {
@@ -242,16 +225,7 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
             "report lacks step {id}"
         );
     }
-    let projection: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/projection?wave=3&weighting=raking&outcome=left_right&predictor=age&predictor=education",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let projection: Value = get_json(addr, "/api/projection?wave=3&weighting=raking&outcome=left_right&predictor=age&predictor=education");
     let universe = format!("{:.3}", projection["universe_estimate"].as_f64().unwrap());
     assert!(
         html.contains(&format!(
@@ -311,12 +285,7 @@ fn report_covers_several_waves_on_request() {
     assert!(bad.stderr.contains("there is no wave 9"), "{}", bad.stderr);
     // The button: all waves, named by them.
     let addr = start_server(&demo_dir());
-    let r = http(
-        addr,
-        "GET",
-        "/report?waves=all&bootstrap=0&replicates=0",
-        &[],
-    );
+    let r = get(addr, "/report?waves=all&bootstrap=0&replicates=0");
     assert_eq!(r.status, 200, "{}", r.body);
     assert_eq!(
         r.header("content-disposition"),
@@ -340,11 +309,9 @@ fn href_of(html: &str, class: &str) -> String {
 #[test]
 fn the_report_button_carries_the_page_settings() {
     let addr = start_server(&demo_dir());
-    let page = http(
+    let page = get(
         addr,
-        "GET",
         "/impact?wave=3&weighting=raking&trim=0.9&outcome=left_right&predictor=age&bootstrap=0",
-        &[],
     );
     assert_eq!(page.status, 200, "{}", page.body);
     let link = href_of(&page.body, "report-button");
@@ -363,19 +330,14 @@ fn the_report_button_carries_the_page_settings() {
             "the report button drops {kept}: {link}"
         );
     }
-    let report = http(addr, "GET", &link, &[]);
+    let report = get(addr, &link);
     assert_eq!(report.status, 200);
     let block = reproducibility(&report.body).to_string();
     assert!(block.contains("Raking to category shares"));
     assert!(block.contains("<th scope=\"row\">Outcome</th><td class=\"text\">left_right</td>"));
     assert!(block.contains("weights capped at the 90th percentile"));
     // From the planner: its budget and joiners.
-    let plan = http(
-        addr,
-        "GET",
-        "/plan?wave=2&budget=2&joiner=XAB&replicates=3",
-        &[],
-    );
+    let plan = get(addr, "/plan?wave=2&budget=2&joiner=XAB&replicates=3");
     assert_eq!(plan.status, 200, "{}", plan.body);
     let link = href_of(&plan.body, "report-button");
     for kept in ["wave=2", "budget=2", "joiner=XAB", "replicates=3"] {
@@ -384,7 +346,7 @@ fn the_report_button_carries_the_page_settings() {
             "the report button drops {kept}: {link}"
         );
     }
-    let report = http(addr, "GET", &link, &[]);
+    let report = get(addr, &link);
     assert!(reproducibility(&report.body)
         .contains("<th scope=\"row\">Recruitment budget</th><td class=\"text\">2 countries</td>"));
 }
@@ -536,12 +498,7 @@ fn check_json_prints_json_when_the_project_fails() {
 #[test]
 fn downloads_carry_their_wave_and_settings() {
     let addr = start_server(&demo_dir());
-    let csv = http(
-        addr,
-        "GET",
-        "/balance/table.csv?wave=4&weighting=raking",
-        &[],
-    );
+    let csv = get(addr, "/balance/table.csv?wave=4&weighting=raking");
     assert_eq!(csv.status, 200);
     assert_eq!(
         csv.header("content-disposition"),
@@ -558,46 +515,23 @@ fn downloads_carry_their_wave_and_settings() {
         link.starts_with("<table.csv.json?wave=4&weighting=raking>; rel=\"describedby\""),
         "{link}"
     );
-    let sidecar: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/balance/table.csv.json?wave=4&weighting=raking",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let sidecar: Value = get_json(addr, "/balance/table.csv.json?wave=4&weighting=raking");
     assert_eq!(sidecar["file"], "balance-wave4.csv");
     assert_eq!(sidecar["wave"], 4);
     assert_eq!(sidecar["settings"]["weighting"], "raking");
     assert!(sidecar["inputs"].as_array().unwrap().len() >= 2);
     // Without a wave: the latest, said so in the name.
-    let latest = http(addr, "GET", "/model/weights.csv", &[]);
+    let latest = get(addr, "/model/weights.csv");
     assert_eq!(
         latest.header("content-disposition"),
         Some("attachment; filename=\"country-weights-wave4.csv\"")
     );
     // The plan's sidecar carries the planner's settings.
-    let plan: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/plan/plan.csv.json?wave=2&budget=2&replicates=0",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let plan: Value = get_json(addr, "/plan/plan.csv.json?wave=2&budget=2&replicates=0");
     assert_eq!(plan["plan"]["budget"], 2);
     assert_eq!(plan["file"], "recruitment-plan-wave2.csv");
     // Charts: named by wave, with a footnote stating the settings.
-    let svg = http(
-        addr,
-        "GET",
-        "/balance/smd.svg?wave=3&weighting=raking&trim=0.9",
-        &[],
-    );
+    let svg = get(addr, "/balance/smd.svg?wave=3&weighting=raking&trim=0.9");
     assert_eq!(svg.status, 200);
     assert_eq!(
         svg.header("content-disposition"),
@@ -613,17 +547,12 @@ fn downloads_carry_their_wave_and_settings() {
         assert!(svg.body.contains(said), "the footnote lacks {said}");
     }
     assert!(svg.body.trim_end().ends_with("</svg>"));
-    let plan_svg = http(
-        addr,
-        "GET",
-        "/plan/paths.svg?wave=2&budget=2&replicates=0",
-        &[],
-    );
+    let plan_svg = get(addr, "/plan/paths.svg?wave=2&budget=2&replicates=0");
     assert!(
         plan_svg.body.contains("budget 2"),
         "the plan chart's footnote lacks its budget"
     );
-    let overview = http(addr, "GET", "/charts/coverage.svg", &[]);
+    let overview = get(addr, "/charts/coverage.svg");
     assert_eq!(
         overview.header("content-disposition"),
         Some("inline; filename=\"coverage-by-region-all-waves.svg\"")
@@ -652,12 +581,7 @@ fn hidden_inputs(html: &str, label: &str) -> Vec<(String, String)> {
 #[test]
 fn the_impact_model_form_keeps_every_setting() {
     let addr = start_server(&demo_dir());
-    let page = http(
-        addr,
-        "GET",
-        "/impact?form=1&wave=2&model=probit&weighting=raking&trim=0.95&missing=median-fill&covariate=log_gdp_pc&factor=region&outcome=left_right&bootstrap=0",
-        &[],
-    );
+    let page = get(addr, "/impact?form=1&wave=2&model=probit&weighting=raking&trim=0.95&missing=median-fill&covariate=log_gdp_pc&factor=region&outcome=left_right&bootstrap=0");
     assert_eq!(page.status, 200, "{}", page.body);
     let hidden = hidden_inputs(&page.body, "Model settings");
     for (k, v) in [
@@ -691,7 +615,7 @@ fn incomplete_countries_are_warned_about_on_every_page() {
         "/plan?wave=4&replicates=0",
         "/impact?wave=4&bootstrap=0",
     ] {
-        let r = http(addr, "GET", page, &[]);
+        let r = get(addr, page);
         assert_eq!(r.status, 200, "{page}");
         assert!(r.body.contains("id=\"incomplete\""), "{page}");
         assert!(
@@ -701,14 +625,14 @@ fn incomplete_countries_are_warned_about_on_every_page() {
         );
     }
     // Filled, nobody is left out: no warning.
-    let r = http(addr, "GET", "/coverage?wave=4&missing=median-fill", &[]);
+    let r = get(addr, "/coverage?wave=4&missing=median-fill");
     assert!(!r.body.contains("id=\"incomplete\""));
 }
 
 #[test]
 fn the_reload_button_reloads_and_returns_to_the_page() {
     let addr = start_server(&demo_dir());
-    let page = http(addr, "GET", "/balance?wave=3", &[]);
+    let page = get(addr, "/balance?wave=3");
     assert!(page.body.contains("action=\"/reload\""));
     let origin = format!("http://{addr}");
     let r = http_body(

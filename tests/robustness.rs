@@ -401,7 +401,7 @@ fn pages_of_a_tiny_project_answer_with_messages_not_failures() {
         "/api/model",
         "/api/plan",
     ] {
-        let r = http(addr, "GET", page, &[]);
+        let r = get(addr, page);
         assert!(
             matches!(r.status, 200 | 400 | 404 | 422),
             "{page}: {} {}",

@@ -8,7 +8,7 @@ use common::*;
 #[test]
 fn requests_for_another_host_are_refused() {
     let addr = start_server(&demo_dir());
-    assert_eq!(http(addr, "GET", "/", &[]).status, 200);
+    assert_eq!(get(addr, "/").status, 200);
     for host in ["evil.example", "evil.example:7878", "127.0.0.1.nip.io", ""] {
         let r = http(addr, "GET", "/api/overview", &[("Host", host)]);
         assert_eq!(r.status, 421, "Host {host:?} got {}", r.status);
@@ -37,7 +37,7 @@ fn no_path_leaves_the_static_folder() {
         "/balance/..%2f..%2fCargo.toml",
     ];
     for path in attempts {
-        let r = http(addr, "GET", path, &[]);
+        let r = get(addr, path);
         assert_ne!(r.status, 200, "{path} answered 200");
         assert!(
             !r.body.contains("[package]") && !r.body.contains("root:"),
@@ -70,7 +70,7 @@ fn fifty_clients_two_thousand_requests() {
     };
     // Warm up, then measure memory across the load.
     for p in paths {
-        assert_eq!(http(addr, "GET", p, &[]).status, 200, "{p}");
+        assert_eq!(get(addr, p).status, 200, "{p}");
     }
     let before = rss();
     let started = std::time::Instant::now();
@@ -80,7 +80,7 @@ fn fifty_clients_two_thousand_requests() {
                 let mut failures = Vec::new();
                 for r in 0..40 {
                     let p = paths[(c + r) % paths.len()];
-                    let resp = http(addr, "GET", p, &[]);
+                    let resp = get(addr, p);
                     if resp.status != 200 {
                         failures.push(format!("{p}: {}", resp.status));
                     }
@@ -290,7 +290,7 @@ fn protective_headers_on_every_response() {
         ("/nowhere", true),
         ("/static/gapwise.css", false),
     ] {
-        let r = http(addr, "GET", path, &[]);
+        let r = get(addr, path);
         let csp = r.header("content-security-policy").unwrap_or_default();
         assert!(csp.contains("frame-ancestors 'none'"), "{path}: {csp}");
         assert!(
@@ -322,7 +322,7 @@ fn protective_headers_on_every_response() {
         "/sensitivity",
         "/projects",
     ] {
-        let body = http(addr, "GET", path, &[]).body;
+        let body = get(addr, path).body;
         assert!(
             !body.contains("<script>") && !body.contains("<style"),
             "{path}"
@@ -392,7 +392,7 @@ fn csv_exports_neutralise_formulas_and_keep_numbers() {
             .replace("Zelleth", "@SUM(1+1)"),
     );
     let addr = start_server(dir.path());
-    let r = http(addr, "GET", "/coverage/points.csv?wave=1", &[]);
+    let r = get(addr, "/coverage/points.csv?wave=1");
     assert_eq!(r.status, 200, "{}", r.body);
     assert!(r.body.contains("\"'=HYPERLINK("), "{}", r.body);
     assert!(r.body.contains("'@SUM(1+1)"), "{}", r.body);
@@ -420,9 +420,7 @@ fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
     let dir = valid_project("halfwritten");
     let (addr, key) = start_server_with_token(dir.path());
     let auth = [("x-gapwise-key", key.as_str())];
-    let overview = |addr| -> serde_json::Value {
-        serde_json::from_str(&http(addr, "GET", "/api/overview", &[]).body).unwrap()
-    };
+    let overview = |addr| -> serde_json::Value { get_json(addr, "/api/overview") };
     let before = overview(addr);
     let loaded = before["loaded"].as_array().expect("loaded files");
     assert_eq!(loaded.len(), 3);
@@ -437,7 +435,7 @@ fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
         .map(|b| format!("{b:02x}"))
         .collect();
     assert_eq!(loaded[1]["sha256"], digest.as_str());
-    let page = http(addr, "GET", "/", &[]).body;
+    let page = get(addr, "/").body;
     assert!(
         page.contains("Files loaded") && page.contains(&digest),
         "overview shows the files"

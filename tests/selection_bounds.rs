@@ -439,7 +439,7 @@ fn fit_command_prints_the_outcome_bounds() {
 #[test]
 fn the_impact_page_shows_the_bounds() {
     let addr = start_server(&demo_dir());
-    let r = http(addr, "GET", "/impact?bootstrap=0&bounds_bootstrap=49", &[]);
+    let r = get(addr, "/impact?bootstrap=0&bounds_bootstrap=49");
     assert_eq!(r.status, 200, "{}", r.body);
     assert!(r.body.contains("id=\"selection-bounds\""));
     assert!(r
@@ -455,11 +455,9 @@ fn the_impact_page_shows_the_bounds() {
         6,
         "one row per Λ"
     );
-    let twin = http(
+    let twin = get(
         addr,
-        "GET",
         "/api/impact/bounds?bootstrap=0&bounds_bootstrap=49&reference=zero",
-        &[],
     );
     assert_eq!(twin.status, 200, "{}", twin.body);
     let v: Value = serde_json::from_str(&twin.body).unwrap();
@@ -470,25 +468,21 @@ fn the_impact_page_shows_the_bounds() {
         assert!(row["lower"].is_f64() && row["upper"].is_f64());
     }
     for item in ["bounds.svg", "bounds.csv"] {
-        let a = http(
+        let a = get(
             addr,
-            "GET",
             &format!("/impact/bounds/{item}?bootstrap=0&bounds_bootstrap=49"),
-            &[],
         );
         assert_eq!(a.status, 200, "{item}");
         assert!(a.body.len() > 100);
     }
-    let bad = http(addr, "GET", "/impact?bootstrap=0&reference=abc", &[]);
+    let bad = get(addr, "/impact?bootstrap=0&reference=abc");
     assert_eq!(bad.status, 200, "the page still answers");
     assert!(bad
         .body
         .contains("the reference must be zero, unweighted or a number"));
-    let number = http(
+    let number = get(
         addr,
-        "GET",
         "/api/impact/bounds?bootstrap=0&bounds_bootstrap=0&reference=&reference=4.5",
-        &[],
     );
     let v: Value = serde_json::from_str(&number.body).unwrap();
     assert_eq!(v["reference_value"], 4.5);
@@ -498,26 +492,12 @@ fn the_impact_page_shows_the_bounds() {
 #[test]
 fn the_sensitivity_page_shows_the_model_draws() {
     let addr = start_server(&demo_dir());
-    let r = http(
-        addr,
-        "GET",
-        "/sensitivity?weighting=inverse-probability",
-        &[],
-    );
+    let r = get(addr, "/sensitivity?weighting=inverse-probability");
     assert_eq!(r.status, 200, "{}", r.body);
     assert!(r.body.contains("id=\"model-uncertainty\""));
     assert!(r.body.contains("500 times (seed"));
     assert!(!r.body.contains("NaN"));
-    let v: Value = serde_json::from_str(
-        &http(
-            addr,
-            "GET",
-            "/api/sensitivity?weighting=inverse-probability",
-            &[],
-        )
-        .body,
-    )
-    .unwrap();
+    let v: Value = get_json(addr, "/api/sensitivity?weighting=inverse-probability");
     let m = &v["model_uncertainty"];
     assert_eq!(m["draws"], 500);
     assert!(m["not_estimable"].is_null());
@@ -534,7 +514,7 @@ fn the_sensitivity_page_shows_the_model_draws() {
         );
     }
     for item in ["model-draws.svg", "model-draws.csv"] {
-        let a = http(addr, "GET", &format!("/sensitivity/{item}"), &[]);
+        let a = get(addr, &format!("/sensitivity/{item}"));
         assert_eq!(a.status, 200, "{item}");
     }
 }

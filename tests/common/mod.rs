@@ -333,3 +333,52 @@ pub fn multipart(fields: &[(&str, &str)], files: &[(&str, &str, &[u8])]) -> (Str
     body.extend_from_slice(format!("--{boundary}--\r\n").as_bytes());
     (format!("multipart/form-data; boundary={boundary}"), body)
 }
+
+/// A GET without extra headers (with the server's key in its cookie).
+pub fn get(addr: std::net::SocketAddr, path: &str) -> Response {
+    http(addr, "GET", path, &[])
+}
+
+/// A GET whose body must be JSON: parsed, or a failure naming the path and the body.
+pub fn get_json(addr: std::net::SocketAddr, path: &str) -> serde_json::Value {
+    let r = get(addr, path);
+    serde_json::from_str(&r.body)
+        .unwrap_or_else(|e| panic!("{path} ({}) is not JSON: {e}\n{}", r.status, r.body))
+}
+
+/// The folder of committed fixtures, tests/fixtures.
+pub fn fixtures() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
+}
+
+/// A committed JSON fixture of tests/fixtures, parsed.
+pub fn fixture_json(name: &str) -> serde_json::Value {
+    let path = fixtures().join(name);
+    let text =
+        std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("read {}: {e}", path.display()));
+    serde_json::from_str(&text).unwrap_or_else(|e| panic!("parse {}: {e}", path.display()))
+}
+
+/// A JSON array of numbers as floats (a failure names `what`).
+pub fn floats(v: &serde_json::Value, what: &str) -> Vec<f64> {
+    v.as_array()
+        .unwrap_or_else(|| panic!("{what} is not an array: {v}"))
+        .iter()
+        .map(|x| {
+            x.as_f64()
+                .unwrap_or_else(|| panic!("{what} holds a non-number: {x}"))
+        })
+        .collect()
+}
+
+/// Asserts that `got` has the length of `want` and each entry lies within `tol` of it;
+/// a failure names `what` and the index.
+pub fn assert_all_close(what: &str, got: &[f64], want: &[f64], tol: f64) {
+    assert_eq!(got.len(), want.len(), "{what}: length");
+    for (i, (g, w)) in got.iter().zip(want).enumerate() {
+        assert!(
+            (g - w).abs() < tol,
+            "{what}[{i}]: {g} vs {w} (tolerance {tol})"
+        );
+    }
+}
