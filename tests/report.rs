@@ -6,38 +6,53 @@ use common::*;
 
 use serde_json::Value;
 
-#[test]
-fn report_has_every_section_and_the_pages_numbers() {
-    let dir = TempDir::new("report");
-    let out = dir.path().join("meeting.html");
-    let run = gapwise(&[
-        "report",
-        demo_dir().to_str().unwrap(),
-        "--wave",
-        "3",
-        "--out",
-        out.to_str().unwrap(),
-    ]);
+/// Runs `gapwise COMMAND <demo project> OPTIONS... --out OUT`.
+fn on_demo(command: &str, options: &[&str], out: &std::path::Path) -> Output {
+    let demo = demo_dir();
+    let mut args = vec![command, demo.to_str().unwrap()];
+    args.extend_from_slice(options);
+    args.extend(["--out", out.to_str().unwrap()]);
+    gapwise(&args)
+}
+
+/// The same, which must succeed: the text it wrote to OUT.
+fn written_on_demo(command: &str, options: &[&str], out: &std::path::Path) -> String {
+    let run = on_demo(command, options, out);
     assert_eq!(run.code, 0, "{}", run.stderr);
-    let html = std::fs::read_to_string(&out).unwrap();
-    for id in [
-        "settings",
-        "coverage",
-        "wave-3",
-        "missing-3",
-        "model-3",
-        "balance-3",
-        "plan-3",
-        "impact-3",
-        "projection-3",
-        "cautions",
-        "reproducibility",
-    ] {
+    std::fs::read_to_string(out).unwrap()
+}
+
+/// Asserts that the report has a section with each id.
+fn assert_sections(html: &str, ids: &[&str]) {
+    for id in ids {
         assert!(
             html.contains(&format!("id=\"{id}\"")),
             "section {id} missing"
         );
     }
+}
+
+#[test]
+fn report_has_every_section_and_the_pages_numbers() {
+    let dir = TempDir::new("report");
+    let out = dir.path().join("meeting.html");
+    let html = written_on_demo("report", &["--wave", "3"], &out);
+    assert_sections(
+        &html,
+        &[
+            "settings",
+            "coverage",
+            "wave-3",
+            "missing-3",
+            "model-3",
+            "balance-3",
+            "plan-3",
+            "impact-3",
+            "projection-3",
+            "cautions",
+            "reproducibility",
+        ],
+    );
     // Self-contained: no scripts, no stylesheet or image links, no external address (the
     // SVG namespace names an address but fetches nothing).
     let fetched = html
@@ -88,14 +103,7 @@ fn report_has_every_section_and_the_pages_numbers() {
 fn weights_export_with_sidecar() {
     let dir = TempDir::new("weights");
     let out = dir.path().join("w.csv");
-    let run = gapwise(&[
-        "weights",
-        demo_dir().to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    assert_eq!(run.code, 0, "{}", run.stderr);
-    let csv = std::fs::read_to_string(&out).unwrap();
+    let csv = written_on_demo("weights", &[], &out);
     assert!(csv.starts_with("wave,code,name,took_part,propensity,weight,reason\n"));
     let sidecar: Value =
         serde_json::from_str(&std::fs::read_to_string(dir.path().join("w.csv.json")).unwrap())
@@ -141,32 +149,30 @@ fn csv_rows(text: &str) -> Vec<Vec<String>> {
 fn report_uses_and_states_the_settings_it_was_asked_with() {
     let dir = TempDir::new("report-settings");
     let out = dir.path().join("r.html");
-    let run = gapwise(&[
+    let html = written_on_demo(
         "report",
-        demo_dir().to_str().unwrap(),
-        "--wave",
-        "3",
-        "--outcome",
-        "left_right",
-        "--predictors",
-        "age,education",
-        "--weighting",
-        "raking",
-        "--budget",
-        "3",
-        "--feasibility",
-        "model",
-        "--joiners",
-        "XAB",
-        "--bootstrap",
-        "0",
-        "--replicates",
-        "5",
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    assert_eq!(run.code, 0, "{}", run.stderr);
-    let html = std::fs::read_to_string(&out).unwrap();
+        &[
+            "--wave",
+            "3",
+            "--outcome",
+            "left_right",
+            "--predictors",
+            "age,education",
+            "--weighting",
+            "raking",
+            "--budget",
+            "3",
+            "--feasibility",
+            "model",
+            "--joiners",
+            "XAB",
+            "--bootstrap",
+            "0",
+            "--replicates",
+            "5",
+        ],
+        &out,
+    );
     let block = reproducibility(&html);
     for stated in [
         "<th scope=\"row\">Wave</th><td class=\"text\">3</td>",
@@ -239,48 +245,30 @@ fn report_uses_and_states_the_settings_it_was_asked_with() {
 fn report_covers_several_waves_on_request() {
     let dir = TempDir::new("report-waves");
     let out = dir.path().join("r.html");
-    let run = gapwise(&[
+    let html = written_on_demo(
         "report",
-        demo_dir().to_str().unwrap(),
-        "--waves",
-        "3,4",
-        "--bootstrap",
-        "0",
-        "--replicates",
-        "0",
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    assert_eq!(run.code, 0, "{}", run.stderr);
-    let html = std::fs::read_to_string(&out).unwrap();
-    for id in [
-        "wave-3",
-        "wave-4",
-        "model-3",
-        "model-4",
-        "plan-3",
-        "plan-4",
-        "projection-4",
-    ] {
-        assert!(
-            html.contains(&format!("id=\"{id}\"")),
-            "section {id} missing"
-        );
-    }
+        &["--waves", "3,4", "--bootstrap", "0", "--replicates", "0"],
+        &out,
+    );
+    assert_sections(
+        &html,
+        &[
+            "wave-3",
+            "wave-4",
+            "model-3",
+            "model-4",
+            "plan-3",
+            "plan-4",
+            "projection-4",
+        ],
+    );
     assert!(!html.contains("id=\"wave-2\""));
     assert!(
         reproducibility(&html).contains("<th scope=\"row\">Waves</th><td class=\"text\">3, 4</td>")
     );
     assert!(reproducibility(&html).contains("waves=3%2C4"));
     // A wave the project lacks is refused with the waves it has.
-    let bad = gapwise(&[
-        "report",
-        demo_dir().to_str().unwrap(),
-        "--waves",
-        "3,9",
-        "--out",
-        out.to_str().unwrap(),
-    ]);
+    let bad = on_demo("report", &["--waves", "3,9"], &out);
     assert_ne!(bad.code, 0);
     assert!(bad.stderr.contains("there is no wave 9"), "{}", bad.stderr);
     // The button: all waves, named by them.
@@ -355,14 +343,7 @@ fn the_report_button_carries_the_page_settings() {
 fn weights_export_keeps_every_eligible_country_with_a_reason() {
     let dir = TempDir::new("weights-all");
     let out = dir.path().join("w.csv");
-    let run = gapwise(&[
-        "weights",
-        demo_dir().to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-    ]);
-    assert_eq!(run.code, 0, "{}", run.stderr);
-    let rows = csv_rows(&std::fs::read_to_string(&out).unwrap());
+    let rows = csv_rows(&written_on_demo("weights", &[], &out));
     assert_eq!(rows[0].last().map(String::as_str), Some("reason"));
     let check = gapwise(&["check", demo_dir().to_str().unwrap(), "--json"]);
     let overview: Value = serde_json::from_str(&check.stdout).unwrap();
