@@ -7,6 +7,28 @@ use common::*;
 
 use serde_json::Value;
 
+/// `gapwise plan FOLDER-OR-FILE OPTIONS...`.
+fn plan_on(source: impl AsRef<std::path::Path>, options: &[&str]) -> Output {
+    let source = source.as_ref().to_str().unwrap().to_string();
+    let mut args = vec!["plan", source.as_str()];
+    args.extend_from_slice(options);
+    gapwise(&args)
+}
+
+/// The same, which must succeed: its JSON (the options ask for `--json`).
+fn plan_on_json(source: impl AsRef<std::path::Path>, options: &[&str]) -> Value {
+    let out = plan_on(source, options);
+    assert_eq!(out.code, 0, "{}", out.stderr);
+    serde_json::from_str(&out.stdout).unwrap()
+}
+
+/// `gapwise plan FILE` on a bare frame with its id, flag and two covariates named.
+fn plan_bare(file: impl AsRef<std::path::Path>, options: &[&str]) -> Output {
+    let mut all = vec!["--id", "id", "--flag", "took_part", "--covariates", "x,y"];
+    all.extend_from_slice(options);
+    plan_on(file, &all)
+}
+
 /// A universe with two clusters: A around (0, 0), well covered; B around (4, 4), with one
 /// participant only. `certain` gives every country a chance of joining of 1.
 fn clustered_frame() -> String {
@@ -121,27 +143,26 @@ fn a_candidate_that_makes_balance_feasible_comes_first() {
     }
     dir.write("frame.csv", frame);
     let path = dir.path().join("frame.csv");
-    let out = gapwise(&[
-        "plan",
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
-        "took_part",
-        "--covariates",
-        "x",
-        "--categorical",
-        "region",
-        "--feasibility",
-        "chance",
-        "--budget",
-        "2",
-        "--replicates",
-        "0",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    let p = plan_on_json(
+        &path,
+        &[
+            "--id",
+            "id",
+            "--flag",
+            "took_part",
+            "--covariates",
+            "x",
+            "--categorical",
+            "region",
+            "--feasibility",
+            "chance",
+            "--budget",
+            "2",
+            "--replicates",
+            "0",
+            "--json",
+        ],
+    );
     assert_eq!(p["current"]["feasible"], false);
     assert_eq!(p["current"]["effective_n"], 0.0);
     let first = &p["steps"][0];
@@ -261,67 +282,32 @@ fn bad_requests_get_clear_messages() {
     dir.write("everyone.csv", clustered_frame().replace(",0,1,", ",1,1,"));
     let path = dir.path().join("frame.csv");
     let p = path.to_str().unwrap();
-    let run = |args: &[&str]| {
-        let mut all = vec!["plan"];
-        all.extend_from_slice(args);
-        gapwise(&all)
-    };
     let everyone = dir.path().join("everyone.csv");
-    let out = run(&[
-        everyone.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
-        "took_part",
-        "--covariates",
-        "x,y",
-        "--feasibility",
-        "chance",
-    ]);
+    let out = plan_bare(&everyone, &["--feasibility", "chance"]);
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("nobody to recruit"), "{}", out.stderr);
-    let out = run(&[
-        p,
-        "--id",
-        "id",
-        "--flag",
-        "took_part",
-        "--covariates",
-        "x,y",
-        "--budget",
-        "50",
-    ]);
+    let out = plan_bare(p, &["--budget", "50"]);
     assert!(
         out.stderr
             .contains("exceeds the 15 eligible countries that do not take part"),
         "{}",
         out.stderr
     );
-    let out = run(&[
-        p,
-        "--id",
-        "id",
-        "--flag",
-        "took_part",
-        "--covariates",
-        "x,y",
-        "--cost-column",
-        "price",
-        "--cost-budget",
-        "20",
-    ]);
+    let out = plan_bare(p, &["--cost-column", "price", "--cost-budget", "20"]);
     assert_ne!(out.code, 0);
     assert!(out.stderr.contains("price"), "{}", out.stderr);
     let demo = demo_dir();
-    let out = run(&[
-        demo.to_str().unwrap(),
-        "--cost-column",
-        "price",
-        "--cost-budget",
-        "20",
-        "--replicates",
-        "0",
-    ]);
+    let out = plan_on(
+        &demo,
+        &[
+            "--cost-column",
+            "price",
+            "--cost-budget",
+            "20",
+            "--replicates",
+            "0",
+        ],
+    );
     assert!(
         out.stderr.contains("unknown cost column 'price'"),
         "{}",
@@ -478,17 +464,10 @@ fn the_plan_beats_95_percent_of_random_plans_on_the_demo_and_real_indicators() {
         (&real, "auto"),
         (&real, "model"),
     ] {
-        let out = gapwise(&[
-            "plan",
-            dir.to_str().unwrap(),
-            "--feasibility",
-            source,
-            "--replicates",
-            "0",
-            "--json",
-        ]);
-        assert_eq!(out.code, 0, "{}", out.stderr);
-        let p: Value = serde_json::from_str(&out.stdout).unwrap();
+        let p = plan_on_json(
+            &dir,
+            &["--feasibility", source, "--replicates", "0", "--json"],
+        );
         let o = &p["optimality"];
         assert!(o["random_plans"].as_u64().unwrap() >= 1000);
         let pct = o["plan_percentile_among_random"].as_f64().unwrap();
@@ -514,17 +493,10 @@ fn chances_and_costs_default_to_the_manifest() {
     let demo = demo_dir();
     // The demo names [recruitment] cost = "recruitment_cost" and feasibility =
     // "has_study_team".
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--cost-budget",
-        "300",
-        "--replicates",
-        "0",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    let p = plan_on_json(
+        &demo,
+        &["--cost-budget", "300", "--replicates", "0", "--json"],
+    );
     assert_eq!(p["plan"]["cost_column"], "recruitment_cost");
     assert_eq!(p["chances"]["column"], "has_study_team");
     let steps = p["steps"].as_array().unwrap();
@@ -532,26 +504,13 @@ fn chances_and_costs_default_to_the_manifest() {
     let total = steps.last().unwrap()["cumulative_cost"].as_f64().unwrap();
     assert!(total <= 300.0 + 1e-9, "{total}");
     // The model's chances are leave-one-out ones.
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--feasibility",
-        "model",
-        "--replicates",
-        "0",
-        "--json",
-    ]);
-    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    let p = plan_on_json(
+        &demo,
+        &["--feasibility", "model", "--replicates", "0", "--json"],
+    );
     assert_eq!(p["chances"]["source"], "model-leave-one-out");
     // Both budgets at once: one or the other.
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--budget",
-        "3",
-        "--cost-budget",
-        "300",
-    ]);
+    let out = plan_on(&demo, &["--budget", "3", "--cost-budget", "300"]);
     assert_ne!(out.code, 0);
 }
 
@@ -579,17 +538,10 @@ fn support_choices_respect_the_budget() {
     let demo = demo_dir();
     let rows = demo_rows();
     for budget in ["150", "300", "600"] {
-        let out = gapwise(&[
-            "plan",
-            demo.to_str().unwrap(),
-            "--cost-budget",
-            budget,
-            "--replicates",
-            "0",
-            "--json",
-        ]);
-        assert_eq!(out.code, 0, "{}", out.stderr);
-        let p: Value = serde_json::from_str(&out.stdout).unwrap();
+        let p = plan_on_json(
+            &demo,
+            &["--cost-budget", budget, "--replicates", "0", "--json"],
+        );
         let wave = p["wave"].to_string();
         let steps = p["steps"].as_array().unwrap();
         assert!(!steps.is_empty());
@@ -621,39 +573,28 @@ fn support_choices_respect_the_budget() {
         if budget == "300" {
             // Countries without a study team cannot join plain (chance 0) but can with
             // support: with 300 to spend the plan buys some support.
-            assert!(
-                steps.iter().any(|s| s["supported"] == true),
-                "{}",
-                out.stdout
-            );
+            assert!(steps.iter().any(|s| s["supported"] == true), "{p}");
         }
     }
     // Invitations only when asked.
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--cost-budget",
-        "300",
-        "--without-support",
-        "--replicates",
-        "0",
-        "--json",
-    ]);
-    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    let p = plan_on_json(
+        &demo,
+        &[
+            "--cost-budget",
+            "300",
+            "--without-support",
+            "--replicates",
+            "0",
+            "--json",
+        ],
+    );
     assert!(p["steps"]
         .as_array()
         .unwrap()
         .iter()
         .all(|s| s["supported"] == false));
     // A count budget never buys support (it costs money, not a place) and says so.
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--replicates",
-        "0",
-        "--json",
-    ]);
-    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    let p = plan_on_json(&demo, &["--replicates", "0", "--json"]);
     assert!(p["steps"]
         .as_array()
         .unwrap()
@@ -771,17 +712,10 @@ fn history_chances_match_statsmodels() {
 #[test]
 fn history_chances_on_the_page_and_their_limits() {
     let demo = demo_dir();
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--feasibility",
-        "history",
-        "--replicates",
-        "5",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let p: Value = serde_json::from_str(&out.stdout).unwrap();
+    let p = plan_on_json(
+        &demo,
+        &["--feasibility", "history", "--replicates", "5", "--json"],
+    );
     assert_eq!(p["chances"]["source"], "history");
     assert_eq!(
         p["chances"]["history"]["trained_on"],
@@ -789,14 +723,7 @@ fn history_chances_on_the_page_and_their_limits() {
     );
     assert_eq!(p["chances"]["history"]["check"]["wave"], 3);
     // Wave 2 has only wave 1 before it, which has no wave before it: nothing to learn from.
-    let out = gapwise(&[
-        "plan",
-        demo.to_str().unwrap(),
-        "--wave",
-        "2",
-        "--feasibility",
-        "history",
-    ]);
+    let out = plan_on(&demo, &["--wave", "2", "--feasibility", "history"]);
     assert_ne!(out.code, 0);
     assert!(
         out.stderr.contains("at least two waves before wave 2"),
@@ -807,18 +734,7 @@ fn history_chances_on_the_page_and_their_limits() {
     let dir = TempDir::new("nohistory");
     dir.write("frame.csv", clustered_frame());
     let path = dir.path().join("frame.csv");
-    let out = gapwise(&[
-        "plan",
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
-        "took_part",
-        "--covariates",
-        "x,y",
-        "--feasibility",
-        "history",
-    ]);
+    let out = plan_bare(&path, &["--feasibility", "history"]);
     assert_ne!(out.code, 0);
     assert!(out.stderr.contains("project folder"), "{}", out.stderr);
     // The page shows the check's calibration table.
