@@ -103,6 +103,14 @@ fn pooled(args: &[&str]) -> Value {
     serde_json::from_str(&out.stdout).unwrap()
 }
 
+/// Checks JSON arrays of figures against their references, one row a figure: the label
+/// a failure names, the figures, the reference and the relative tolerance.
+fn assert_fields_close(rows: &[(&str, &Value, &Value, f64)]) {
+    for &(what, got, want, rel) in rows {
+        assert_close(&floats(got), &floats(want), rel, what);
+    }
+}
+
 fn assert_close(a: &[f64], e: &[f64], rel: f64, what: &str) {
     assert_eq!(
         a.len(),
@@ -127,13 +135,10 @@ fn cluster_robust_errors_match_statsmodels() {
     let predictors = "educ,black,hisp,exper,married";
     // statsmodels OLS(...).fit(cov_type="cluster"), Wooldridge's wagepan, clusters = men.
     let ols = pooled(&["lwage", "--predictors", predictors, "--country", "nr"]);
-    assert_close(
-        &floats(&ols["coef"]),
-        &floats(&fx["ols_coef"]),
-        1e-9,
-        "OLS coef",
-    );
-    assert_close(&floats(&ols["se"]), &floats(&fx["ols_se"]), 1e-6, "OLS se");
+    assert_fields_close(&[
+        ("OLS coef", &ols["coef"], &fx["ols_coef"], 1e-9),
+        ("OLS se", &ols["se"], &fx["ols_se"], 1e-6),
+    ]);
     assert_eq!(ols["clusters"], fx["clusters"]);
     assert_eq!(ols["n"], fx["n"]);
     // statsmodels WLS(weights=w) with cluster errors.
@@ -146,13 +151,10 @@ fn cluster_robust_errors_match_statsmodels() {
         "--design-weight",
         "w",
     ]);
-    assert_close(
-        &floats(&wls["coef"]),
-        &floats(&fx["wls_coef"]),
-        1e-9,
-        "WLS coef",
-    );
-    assert_close(&floats(&wls["se"]), &floats(&fx["wls_se"]), 1e-6, "WLS se");
+    assert_fields_close(&[
+        ("WLS coef", &wls["coef"], &fx["wls_coef"], 1e-9),
+        ("WLS se", &wls["se"], &fx["wls_se"], 1e-6),
+    ]);
     // statsmodels Logit(...).fit(cov_type="cluster").
     let logit = pooled(&[
         "union",
@@ -163,18 +165,10 @@ fn cluster_robust_errors_match_statsmodels() {
         "--kind",
         "logistic",
     ]);
-    assert_close(
-        &floats(&logit["coef"]),
-        &floats(&fx["logit_coef"]),
-        1e-6,
-        "Logit coef",
-    );
-    assert_close(
-        &floats(&logit["se"]),
-        &floats(&fx["logit_se"]),
-        1e-6,
-        "Logit se",
-    );
+    assert_fields_close(&[
+        ("Logit coef", &logit["coef"], &fx["logit_coef"], 1e-6),
+        ("Logit se", &logit["se"], &fx["logit_se"], 1e-6),
+    ]);
 }
 
 /// The first `g` men of wagepan: design (intercept, educ, exper, married), the outcome,
@@ -266,12 +260,12 @@ fn heckman_two_step_matches_wooldridge_example() {
         .collect();
     assert_eq!(terms, ["intercept", "educ", "exper", "expersq", "lambda"]);
     // The coefficients also agree with the older statsmodels fixture (Probit + OLS).
-    assert_close(
-        &floats(&r["outcome"]["coef"]),
-        &floats(&reference()["mroz_heckman"]["coef"]),
-        1e-6,
+    assert_fields_close(&[(
         "Heckman coef (reference.json)",
-    );
+        &r["outcome"]["coef"],
+        &reference()["mroz_heckman"]["coef"],
+        1e-6,
+    )]);
     // Offline numpy/statsmodels reference (tests/fixtures/make_twostep_fixtures.py):
     // Heckman's (1979) covariance as Greene writes it.
     for (key, rel) in [("coef", 1e-6), ("se", 1e-6), ("se_uncorrected", 1e-6)] {
@@ -282,18 +276,20 @@ fn heckman_two_step_matches_wooldridge_example() {
             &format!("outcome {key}"),
         );
     }
-    assert_close(
-        &floats(&r["selection"]["coef"]),
-        &floats(&fx["selection_coef"]),
-        1e-6,
-        "probit coef",
-    );
-    assert_close(
-        &floats(&r["selection"]["se"]),
-        &floats(&fx["selection_se"]),
-        1e-6,
-        "probit se",
-    );
+    assert_fields_close(&[
+        (
+            "probit coef",
+            &r["selection"]["coef"],
+            &fx["selection_coef"],
+            1e-6,
+        ),
+        (
+            "probit se",
+            &r["selection"]["se"],
+            &fx["selection_se"],
+            1e-6,
+        ),
+    ]);
     for key in ["rho", "sigma"] {
         let (a, e) = (r[key].as_f64().unwrap(), fx[key].as_f64().unwrap());
         assert!((a - e).abs() < 1e-6 * e.abs(), "{key}: {a} vs {e}");
@@ -334,24 +330,21 @@ fn clustered_two_step_matches_murphy_topel_reference() {
     let fx = &twostep_reference()["mroz_two_step_by_age"];
     assert_eq!(r["clusters"], fx["clusters"]);
     assert_eq!(r["standard_errors"], "murphy-topel-cluster");
-    assert_close(
-        &floats(&r["outcome"]["se"]),
-        &floats(&fx["se"]),
-        1e-6,
-        "M-T se",
-    );
-    assert_close(
-        &floats(&r["outcome"]["se_uncorrected"]),
-        &floats(&fx["se_uncorrected"]),
-        1e-6,
-        "clustered OLS se",
-    );
-    assert_close(
-        &floats(&r["selection"]["se"]),
-        &floats(&fx["selection_se"]),
-        1e-6,
-        "clustered probit se",
-    );
+    assert_fields_close(&[
+        ("M-T se", &r["outcome"]["se"], &fx["se"], 1e-6),
+        (
+            "clustered OLS se",
+            &r["outcome"]["se_uncorrected"],
+            &fx["se_uncorrected"],
+            1e-6,
+        ),
+        (
+            "clustered probit se",
+            &r["selection"]["se"],
+            &fx["selection_se"],
+            1e-6,
+        ),
+    ]);
 }
 
 #[test]
@@ -429,13 +422,10 @@ fn few_country_inference_uses_t_with_g_minus_one_df() {
     ]);
     let case = &twostep_reference()["t_inference"][1];
     assert_eq!(r["df"], case["df"]);
-    assert_close(&floats(&r["p"]), &floats(&case["p"]), 1e-6, "command p");
-    assert_close(
-        &floats(&r["ci95_low"]),
-        &floats(&case["ci95_low"]),
-        1e-6,
-        "command low",
-    );
+    assert_fields_close(&[
+        ("command p", &r["p"], &case["p"], 1e-6),
+        ("command low", &r["ci95_low"], &case["ci95_low"], 1e-6),
+    ]);
 }
 
 #[test]
