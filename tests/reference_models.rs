@@ -25,12 +25,45 @@ fn fit_json(args: &[&str]) -> Value {
     serde_json::from_str(&out.stdout).unwrap()
 }
 
+/// `gapwise fit FILE --id id --flag FLAG --covariates COVARIATES OPTIONS... --json`.
+fn fit_file(path: &std::path::Path, flag: &str, covariates: &str, options: &[&str]) -> Value {
+    let mut args = vec![
+        path.to_str().unwrap(),
+        "--id",
+        "id",
+        "--flag",
+        flag,
+        "--covariates",
+        covariates,
+    ];
+    args.extend_from_slice(options);
+    fit_json(&args)
+}
+
+/// Asserts that every weighted participant mean equals its universe mean to 1e-8 of its
+/// scale (the universe mean, at least 1); a failure names `what` and the covariate.
+fn assert_balanced(r: &Value, what: &str) {
+    for b in r["balance"].as_array().unwrap() {
+        let gap = b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
+        let scale = b["universe_mean"].as_f64().unwrap().abs().max(1.0);
+        assert!(gap.abs() < 1e-8 * scale, "{what} {}: {gap}", b["covariate"]);
+    }
+}
+
 fn floats(v: &Value) -> Vec<f64> {
     v.as_array()
         .unwrap()
         .iter()
         .map(|x| x.as_f64().unwrap_or(f64::NAN))
         .collect()
+}
+
+/// Checks JSON arrays of figures against their references, one row a figure: the label
+/// a failure names, the figures, the reference and the relative tolerance.
+fn assert_fields_close(rows: &[(&str, &Value, &Value, f64)]) {
+    for &(what, got, want, rel) in rows {
+        assert_close(&floats(got), &floats(want), rel, what);
+    }
 }
 
 fn assert_close(actual: &[f64], expected: &[f64], rel: f64, what: &str) {
@@ -71,17 +104,7 @@ fn significant(x: f64, digits: i32) -> f64 {
 
 fn spector(model: &str) -> Value {
     let path = fixtures().join("spector.csv");
-    fit_json(&[
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
-        "GRADE",
-        "--covariates",
-        "GPA,TUCE,PSI",
-        "--model",
-        model,
-    ])
+    fit_file(&path, "GRADE", "GPA,TUCE,PSI", &["--model", model])
 }
 
 #[test]
@@ -125,17 +148,12 @@ fn spector_probit_matches_statsmodels_and_greene() {
 #[test]
 fn mroz_participation_probit_matches_wooldridge_example() {
     let path = fixtures().join("mroz.csv");
-    let r = fit_json(&[
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
+    let r = fit_file(
+        &path,
         "inlf",
-        "--covariates",
         "nwifeinc,educ,exper,expersq,age,kidslt6,kidsge6",
-        "--model",
-        "probit",
-    ]);
+        &["--model", "probit"],
+    );
     let reference = reference();
     let sm = &reference["mroz"]["probit"];
     assert_model_matches(&r, sm, 1e-6, "mroz probit");
@@ -184,12 +202,7 @@ fn firth_is_finite_under_separation_and_matches_scipy() {
     assert!(coef.iter().all(|c| c.is_finite()));
     // scipy BFGS on the penalised likelihood plus Newton polish, offline fixture.
     assert_close(&coef, &floats(&fx["coef"]), 1e-6, "firth coef");
-    assert_close(
-        &floats(&firth["model"]["se"]),
-        &floats(&fx["se"]),
-        1e-6,
-        "firth se",
-    );
+    assert_fields_close(&[("firth se", &firth["model"]["se"], &fx["se"], 1e-6)]);
 
     // The penalised score equations (Firth 1993) hold at the estimate to 1e-8.
     let text = std::fs::read_to_string(&path).unwrap();
@@ -247,17 +260,12 @@ fn invert3(m: [[f64; 3]; 3]) -> [[f64; 3]; 3] {
 
 fn nsw(weighting: &str) -> Value {
     let path = fixtures().join("nsw.csv");
-    fit_json(&[
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
+    fit_file(
+        &path,
         "treat",
-        "--covariates",
         "age,educ,black,hisp,marr,nodegree,re74,re75",
-        "--weighting",
-        weighting,
-    ])
+        &["--weighting", weighting],
+    )
 }
 
 fn unit_weights(r: &Value) -> Vec<f64> {
@@ -281,15 +289,7 @@ fn covariate_balancing_and_entropy_weights_match_scipy_and_balance_exactly() {
         // scipy.optimize.root / BFGS solutions of the same equations, offline fixture.
         assert_close(&w, &floats(&reference["nsw"][key]), 1e-6, method);
         // Weighted participant means equal universe means to 1e-8 (relative to the scale).
-        for b in r["balance"].as_array().unwrap() {
-            let gap = b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
-            let scale = b["universe_mean"].as_f64().unwrap().abs().max(1.0);
-            assert!(
-                gap.abs() < 1e-8 * scale,
-                "{method} {}: {gap}",
-                b["covariate"]
-            );
-        }
+        assert_balanced(&r, method);
     }
 }
 
@@ -319,15 +319,7 @@ fn demo_weights_balance_exactly_and_are_normalised() {
             assert_eq!(u["participated"].as_bool().unwrap(), *wi > 0.0, "{method}");
         }
         if method == "entropy" {
-            for b in r["balance"].as_array().unwrap() {
-                let gap =
-                    b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
-                assert!(
-                    gap.abs() < 1e-8 * b["universe_mean"].as_f64().unwrap().abs().max(1.0),
-                    "{}",
-                    b["covariate"]
-                );
-            }
+            assert_balanced(&r, "demo entropy");
         }
     }
     // The exact covariate-balancing weights on a smaller set of indicators, where a solution
@@ -343,14 +335,7 @@ fn demo_weights_balance_exactly_and_are_normalised() {
         "--categorical",
         "",
     ]);
-    for b in r["balance"].as_array().unwrap() {
-        let gap = b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
-        assert!(
-            gap.abs() < 1e-8 * b["universe_mean"].as_f64().unwrap().abs().max(1.0),
-            "{}",
-            b["covariate"]
-        );
-    }
+    assert_balanced(&r, "demo covariate-balancing");
 }
 
 #[test]
@@ -396,17 +381,12 @@ fn invariant_to_row_order_and_rescaling() {
         let expected = weights_by_id(&base);
         for file in ["reversed.csv", "rescaled.csv"] {
             let path = dir.path().join(file);
-            let r = fit_json(&[
-                path.to_str().unwrap(),
-                "--id",
-                "id",
-                "--flag",
+            let r = fit_file(
+                &path,
                 "treat",
-                "--covariates",
                 "age,educ,black,hisp,marr,nodegree,re74,re75",
-                "--weighting",
-                method,
-            ]);
+                &["--weighting", method],
+            );
             for (id, w) in weights_by_id(&r) {
                 assert!(
                     (w - expected[&id]).abs() < 1e-7 * expected[&id].max(1.0),
@@ -422,59 +402,43 @@ fn invariant_to_row_order_and_rescaling() {
 fn bad_requests_get_clear_messages() {
     let path = fixtures().join("spector.csv");
     let p = path.to_str().unwrap();
-    let out = gapwise(&[
-        "fit",
-        p,
-        "--id",
-        "id",
-        "--flag",
-        "GRADE",
-        "--covariates",
-        "GPA,NOPE",
-    ]);
-    assert_eq!(out.code, 1);
-    assert!(out.stderr.contains("spector.csv:1:NOPE:"), "{}", out.stderr);
-    let out = gapwise(&[
-        "fit",
-        p,
-        "--id",
-        "id",
-        "--flag",
-        "GRADE",
-        "--covariates",
-        "GPA",
-        "--weighting",
-        "magic",
-    ]);
-    assert_ne!(out.code, 0);
-    assert!(
-        out.stderr.contains("weighting must be one of"),
-        "{}",
-        out.stderr
-    );
-    let out = gapwise(&["fit", p, "--flag", "GRADE", "--covariates", "GPA"]);
-    assert!(out.stderr.contains("needs --id"), "{}", out.stderr);
-    let out = gapwise(&[
-        "fit",
-        p,
-        "--id",
-        "id",
-        "--flag",
-        "GRADE",
-        "--covariates",
-        "GPA",
-        "--weighting",
-        "raking",
-    ]);
-    assert!(
-        out.stderr
-            .contains("raking needs at least one categorical indicator"),
-        "{}",
-        out.stderr
-    );
     let demo = demo_dir();
-    let out = gapwise(&["fit", demo.to_str().unwrap(), "--wave", "9"]);
-    assert!(out.stderr.contains("no wave 9"), "{}", out.stderr);
+    let named = ["--id", "id", "--flag", "GRADE", "--covariates"];
+    // (source, options, what the message must say); every one is refused.
+    let cases: [(&str, Vec<&str>, &str); 5] = [
+        (
+            p,
+            [&named[..], &["GPA,NOPE"]].concat(),
+            "spector.csv:1:NOPE:",
+        ),
+        (
+            p,
+            [&named[..], &["GPA", "--weighting", "magic"]].concat(),
+            "weighting must be one of",
+        ),
+        (
+            p,
+            vec!["--flag", "GRADE", "--covariates", "GPA"],
+            "needs --id",
+        ),
+        (
+            p,
+            [&named[..], &["GPA", "--weighting", "raking"]].concat(),
+            "raking needs at least one categorical indicator",
+        ),
+        (demo.to_str().unwrap(), vec!["--wave", "9"], "no wave 9"),
+    ];
+    for (k, (source, options, said)) in cases.iter().enumerate() {
+        let mut args = vec!["fit", source];
+        args.extend_from_slice(options);
+        let out = gapwise(&args);
+        assert_ne!(out.code, 0, "case {k} ({said}) was not refused");
+        assert!(out.stderr.contains(said), "case {k}: {}", out.stderr);
+        if k == 0 {
+            // An unknown column is a problem with the input: exit code 1.
+            assert_eq!(out.code, 1);
+        }
+    }
 }
 
 #[test]
@@ -587,9 +551,8 @@ fn entropy_balancing_can_also_match_variances() {
     for b in with["balance"].as_array().unwrap() {
         let ratio = b["variance_ratio_after"].as_f64().unwrap();
         assert!((ratio - 1.0).abs() < 0.03, "{}: {ratio}", b["covariate"]);
-        let gap = b["weighted_mean"].as_f64().unwrap() - b["universe_mean"].as_f64().unwrap();
-        assert!(gap.abs() < 1e-8 * b["universe_mean"].as_f64().unwrap().abs().max(1.0));
     }
+    assert_balanced(&with, "with variances");
 }
 
 fn model_checks() -> Value {
@@ -883,19 +846,12 @@ fn auc_and_leave_one_out_auc_match_scikit_learn() {
 fn firth_on_a_quasi_separated_frame_converges_and_matches_scipy() {
     // model_checks.json: scipy BFGS on the penalised likelihood (make_model_checks.py).
     let path = fixtures().join("firth_quasi.csv");
-    let r = fit_json(&[
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
+    let r = fit_file(
+        &path,
         "y",
-        "--covariates",
         "x1,x2",
-        "--model",
-        "firth",
-        "--weighting",
-        "inverse-probability",
-    ]);
+        &["--model", "firth", "--weighting", "inverse-probability"],
+    );
     let checks = model_checks();
     let fx = &checks["firth_quasi"];
     assert_eq!(r["model"]["converged"], true);
@@ -905,18 +861,10 @@ fn firth_on_a_quasi_separated_frame_converges_and_matches_scipy() {
         r["model"]["warnings"]
     );
     assert!(r["model"]["max_score"].as_f64().unwrap() < 1e-8);
-    assert_close(
-        &floats(&r["model"]["coef"]),
-        &floats(&fx["coef"]),
-        1e-6,
-        "firth coef",
-    );
-    assert_close(
-        &floats(&r["model"]["se"]),
-        &floats(&fx["se"]),
-        1e-6,
-        "firth se",
-    );
+    assert_fields_close(&[
+        ("firth coef", &r["model"]["coef"], &fx["coef"], 1e-6),
+        ("firth se", &r["model"]["se"], &fx["se"], 1e-6),
+    ]);
     assert_honest_coefficients(&r, "firth");
 }
 
