@@ -89,7 +89,6 @@ fn every_page_answers_with_tables_charts_and_downloads() {
 #[test]
 fn page_numbers_equal_the_command_line() {
     let addr = start_server(&demo_dir());
-    let demo = demo_dir();
     for (wave, model, weighting) in [
         ("4", "logit", "entropy"),
         ("2", "firth", "covariate-balancing-gmm"),
@@ -99,19 +98,18 @@ fn page_numbers_equal_the_command_line() {
             addr,
             &format!("/api/balance?wave={wave}&model={model}&weighting={weighting}"),
         );
-        let out = gapwise(&[
+        let cli = demo_json(
             "fit",
-            demo.to_str().unwrap(),
-            "--wave",
-            wave,
-            "--model",
-            model,
-            "--weighting",
-            weighting,
-            "--json",
-        ]);
-        assert_eq!(out.code, 0, "{}", out.stderr);
-        let cli: Value = serde_json::from_str(&out.stdout).unwrap();
+            &[
+                "--wave",
+                wave,
+                "--model",
+                model,
+                "--weighting",
+                weighting,
+                "--json",
+            ],
+        );
         let page_rows = page["rows"].as_array().unwrap();
         let cli_rows = cli["balance"].as_array().unwrap();
         assert_eq!(page_rows.len(), cli_rows.len());

@@ -408,21 +408,20 @@ fn pages_accept_imputation() {
 /// the printed combination (the check anyone can make; common practice).
 #[test]
 fn fit_json_carries_the_imputations() {
-    let out = common::gapwise(&[
+    let v = common::demo_json(
         "fit",
-        common::demo_dir().to_str().unwrap(),
-        "--wave",
-        "4",
-        "--missing",
-        "impute",
-        "--imputations",
-        "6",
-        "--seed",
-        "11",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let v: Value = serde_json::from_str(&out.stdout).unwrap();
+        &[
+            "--wave",
+            "4",
+            "--missing",
+            "impute",
+            "--imputations",
+            "6",
+            "--seed",
+            "11",
+            "--json",
+        ],
+    );
     let imps = v["imputations"].as_array().unwrap();
     assert_eq!(imps.len(), 6);
     let k = v["coef"].as_array().unwrap().len();
@@ -490,29 +489,28 @@ fn check_recombined(what: &str, each: &[(f64, f64)], dfcom: f64, combined: &Valu
 #[test]
 fn impact_json_carries_the_imputations() {
     let m = 4;
-    let out = common::gapwise(&[
+    let v = common::demo_json(
         "impact",
-        common::demo_dir().to_str().unwrap(),
-        "--wave",
-        "4",
-        "--outcome",
-        "trust_parliament",
-        "--predictors",
-        "age,education",
-        "--missing",
-        "impute",
-        "--imputations",
-        &m.to_string(),
-        "--seed",
-        "21",
-        "--replicates",
-        "0",
-        "--wild-replicates",
-        "0",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let v: Value = serde_json::from_str(&out.stdout).unwrap();
+        &[
+            "--wave",
+            "4",
+            "--outcome",
+            "trust_parliament",
+            "--predictors",
+            "age,education",
+            "--missing",
+            "impute",
+            "--imputations",
+            &m.to_string(),
+            "--seed",
+            "21",
+            "--replicates",
+            "0",
+            "--wild-replicates",
+            "0",
+            "--json",
+        ],
+    );
     assert_eq!(v["imputation"]["imputations"], m);
     let variants = v["variants"].as_array().unwrap();
     let combination = v["combination"].as_array().unwrap();
@@ -584,23 +582,22 @@ fn impact_json_carries_the_imputations() {
 #[test]
 fn plan_json_carries_the_imputations() {
     let m = 3;
-    let out = common::gapwise(&[
+    let v = common::demo_json(
         "plan",
-        common::demo_dir().to_str().unwrap(),
-        "--wave",
-        "4",
-        "--missing",
-        "impute",
-        "--imputations",
-        &m.to_string(),
-        "--seed",
-        "8",
-        "--replicates",
-        "0",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let v: Value = serde_json::from_str(&out.stdout).unwrap();
+        &[
+            "--wave",
+            "4",
+            "--missing",
+            "impute",
+            "--imputations",
+            &m.to_string(),
+            "--seed",
+            "8",
+            "--replicates",
+            "0",
+            "--json",
+        ],
+    );
     let by = v["objective_by_imputation"].as_array().unwrap();
     assert_eq!(by.len(), m);
     assert!(close(

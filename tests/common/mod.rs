@@ -382,3 +382,15 @@ pub fn assert_all_close(what: &str, got: &[f64], want: &[f64], tol: f64) {
         );
     }
 }
+
+/// `gapwise COMMAND <demo project> OPTIONS...`, which must succeed: its standard output
+/// parsed as JSON (the options ask for `--json`).
+pub fn demo_json(command: &str, options: &[&str]) -> serde_json::Value {
+    let demo = demo_dir();
+    let mut args = vec![command, demo.to_str().unwrap()];
+    args.extend_from_slice(options);
+    let out = gapwise(&args);
+    assert_eq!(out.code, 0, "gapwise {args:?}: {}", out.stderr);
+    serde_json::from_str(&out.stdout)
+        .unwrap_or_else(|e| panic!("gapwise {args:?} printed no JSON: {e}\n{}", out.stdout))
+}
