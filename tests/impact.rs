@@ -89,24 +89,22 @@ fn variant<'a>(r: &'a Value, key: &str) -> &'a Value {
 fn impact_command_prints_what_the_api_serves() {
     let addr = start_server(&demo_dir());
     let api: Value = get_json(addr, "/api/impact?wave=4&outcome=trust_parliament&predictor=age&predictor=education&country_indicator=log_gdp_pc&bootstrap=19");
-    let dir = demo_dir();
-    let out = gapwise(&[
+    let cli = demo_json(
         "impact",
-        dir.to_str().unwrap(),
-        "--wave",
-        "4",
-        "--outcome",
-        "trust_parliament",
-        "--predictors",
-        "age,education",
-        "--country-indicators",
-        "log_gdp_pc",
-        "--bootstrap",
-        "19",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let cli: Value = serde_json::from_str(&out.stdout).unwrap();
+        &[
+            "--wave",
+            "4",
+            "--outcome",
+            "trust_parliament",
+            "--predictors",
+            "age,education",
+            "--country-indicators",
+            "log_gdp_pc",
+            "--bootstrap",
+            "19",
+            "--json",
+        ],
+    );
     assert_eq!(cli["variants"], api["variants"]);
     assert_eq!(cli["impact"], api["impact"]);
     assert_eq!(cli["terms"], api["terms"]);
@@ -202,18 +200,16 @@ fn population_entropy_balances_to_the_population_weighted_universe() {
 /// unweighted, as the balance page reports too); the others are not.
 #[test]
 fn weighting_worse_than_none_is_flagged_on_the_impact_view() {
-    let demo = demo_dir();
-    let out = gapwise(&[
+    let r = demo_json(
         "impact",
-        demo.to_str().expect("path"),
-        "--outcome",
-        "trust_parliament",
-        "--bootstrap",
-        "0",
-        "--json",
-    ]);
-    assert_eq!(out.code, 0, "{}", out.stderr);
-    let r: Value = serde_json::from_str(&out.stdout).expect("json");
+        &[
+            "--outcome",
+            "trust_parliament",
+            "--bootstrap",
+            "0",
+            "--json",
+        ],
+    );
     let before = variant(&r, "unweighted")["max_abs_smd"]
         .as_f64()
         .expect("unweighted |SMD|");
