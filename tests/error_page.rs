@@ -33,14 +33,7 @@ fn the_error_pages_links_lead_somewhere() {
     assert_eq!(links(&r.body), ["/"], "{}", r.body);
     // A form's post that fails: no link to GET the form's address.
     let origin = format!("http://{addr}");
-    let r = http_body(
-        addr,
-        "POST",
-        "/projects/map",
-        &[("Origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
-        b"name=x",
-    );
+    let r = post_form(addr, &origin, "/projects/map", b"name=x");
     assert!(r.status >= 400, "{}", r.status);
     assert_eq!(links(&r.body), ["/"], "{}", r.body);
 }

@@ -9,6 +9,15 @@ use gapwise::project::{store, Project};
 
 const MAPPING: &str = "name=p1&title=Browser+programme&code=iso&country_name=name&wave=wave&participation=took_part&group=region&numeric=gdp&numeric=democracy&categorical=region&rule_indicator=democracy&rule_at_least=lowest-participant&micro_country=iso&micro_wave=wave&micro_weight=dweight&micro_variable=trust";
 
+/// A server on the demo with an empty folder of projects: the folder, the address and
+/// the Origin our pages send.
+fn projects_server(tag: &str) -> (TempDir, std::net::SocketAddr, String) {
+    let projects = TempDir::new(tag);
+    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
+    let origin = format!("http://{addr}");
+    (projects, addr, origin)
+}
+
 fn upload(addr: std::net::SocketAddr, origin: &str, name: &str, frame: &[u8]) -> Response {
     let (ct, body) = multipart(
         &[("name", name), ("title", "Browser programme")],
@@ -17,14 +26,7 @@ fn upload(addr: std::net::SocketAddr, origin: &str, name: &str, frame: &[u8]) ->
             ("microdata", "microdata.csv", MICRODATA.as_bytes()),
         ],
     );
-    http_body(
-        addr,
-        "POST",
-        "/projects/upload",
-        &[("Origin", origin)],
-        &ct,
-        &body,
-    )
+    post_from(addr, origin, "/projects/upload", &ct, &body)
 }
 
 /// The upload id from the redirect to the mapping form.
@@ -37,12 +39,10 @@ fn upload_id(r: &Response) -> String {
 
 /// Posts the mapping form of one upload.
 fn save_mapping(addr: std::net::SocketAddr, origin: &str, mapping: &str, upload: &str) -> Response {
-    http_body(
+    post_form(
         addr,
-        "POST",
+        origin,
         "/projects/map",
-        &[("Origin", origin)],
-        "application/x-www-form-urlencoded",
         format!("{mapping}&upload={upload}").as_bytes(),
     )
 }
@@ -58,9 +58,7 @@ fn versions(projects: &std::path::Path, name: &str) -> Vec<std::path::PathBuf> {
 
 #[test]
 fn upload_map_save_and_keep_previous_version() {
-    let projects = TempDir::new("projects");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("projects");
 
     // Changes need our own origin (or the token).
     let (ct, body) = multipart(
@@ -120,22 +118,13 @@ fn upload_map_save_and_keep_previous_version() {
     // The projects page lists it, and opening it works.
     let list = get(addr, "/projects");
     assert!(list.body.contains("p1"));
-    let open = http_body(
-        addr,
-        "POST",
-        "/projects/open",
-        &[("Origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
-        b"name=p1",
-    );
+    let open = post_form(addr, &origin, "/projects/open", b"name=p1");
     assert_eq!(open.status, 303);
 }
 
 #[test]
 fn bad_uploads_get_the_validators_messages_and_change_nothing() {
-    let projects = TempDir::new("badprojects");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("badprojects");
     let cases: Vec<(&str, String, &str)> = vec![
         (
             "ragged",
@@ -350,9 +339,7 @@ fn an_earlier_releases_interrupted_save_is_restored() {
 
 #[test]
 fn reserved_names_case_clashes_and_symlinks_are_refused() {
-    let projects = TempDir::new("names");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("names");
     for name in ["CON", "nul", "Com1"] {
         let r = upload(addr, &origin, name, FRAME.as_bytes());
         assert_eq!(r.status, 400, "{name}");
@@ -367,12 +354,10 @@ fn reserved_names_case_clashes_and_symlinks_are_refused() {
         "{refused:?}"
     );
     let open = |name: &str| {
-        http_body(
+        post_form(
             addr,
-            "POST",
+            &origin,
             "/projects/open",
-            &[("Origin", origin.as_str())],
-            "application/x-www-form-urlencoded",
             format!("name={name}").as_bytes(),
         )
     };
@@ -393,9 +378,7 @@ fn reserved_names_case_clashes_and_symlinks_are_refused() {
 
 #[test]
 fn uploads_over_the_limits_get_clear_errors() {
-    let projects = TempDir::new("limits");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("limits");
     let mut big = String::from("iso,name,wave,took_part,gdp,democracy,region\n");
     for i in 0..100_001 {
         big.push_str(&format!("X{i},N,1,0,1,1,R\n"));
@@ -419,9 +402,7 @@ fn uploads_over_the_limits_get_clear_errors() {
 #[test]
 fn a_parquet_bomb_is_refused_from_its_metadata() {
     use polars::prelude::*;
-    let projects = TempDir::new("bomb");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("bomb");
     // 3 million identical rows compress to a few kilobytes.
     let n = 3_000_000;
     let mut frame = df!(
@@ -438,14 +419,7 @@ fn a_parquet_bomb_is_refused_from_its_metadata() {
         &[("frame", "frame.parquet", bytes.as_slice())],
     );
     let started = std::time::Instant::now();
-    let r = http_body(
-        addr,
-        "POST",
-        "/projects/upload",
-        &[("Origin", origin.as_str())],
-        &ct,
-        &body,
-    );
+    let r = post_from(addr, &origin, "/projects/upload", &ct, &body);
     assert_eq!(r.status, 400, "{}", r.body);
     assert!(
         r.body
@@ -474,14 +448,7 @@ fn upload_with(
         files.push(("microdata", "microdata.csv", m));
     }
     let (ct, body) = multipart(&fields, &files);
-    http_body(
-        addr,
-        "POST",
-        "/projects/upload",
-        &[("Origin", origin)],
-        &ct,
-        &body,
-    )
+    post_from(addr, origin, "/projects/upload", &ct, &body)
 }
 
 /// The crash of issue 19: the country-name column also ticked as a numeric indicator was
@@ -489,9 +456,7 @@ fn upload_with(
 /// the same message `gapwise check` prints, and neither panics.
 #[test]
 fn a_name_column_ticked_as_an_indicator_is_refused_by_the_form_and_by_check() {
-    let projects = TempDir::new("namecrash");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("namecrash");
     for (tag, mapping, expected) in [
         (
             "numeric",
@@ -787,9 +752,7 @@ fn every_form_either_saves_and_loads_or_is_refused_with_a_message() {
 /// `at_most` rules and rules per wave.
 #[test]
 fn after_an_error_the_form_keeps_every_entry() {
-    let projects = TempDir::new("kept");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("kept");
     let r = upload(addr, &origin, "k1", FRAME.as_bytes());
     let id = upload_id(&r);
     let typed = "name=k1&title=Typed+title&code=iso&country_name=name&wave=wave&participation=took_part&group=region&numeric=gdp&numeric=democracy&label.gdp=GDP+per+head+%28log%29&categorical=region&reference.region=South&rule_indicator=democracy&rule_direction=at_most&rule_cut=abc&rule_waves=2&micro_country=iso&micro_wave=wave&micro_weight=dweight&micro_variable=trust";
@@ -856,9 +819,7 @@ fn after_an_error_the_form_keeps_every_entry() {
 /// is uploaded (unless asked), and earlier versions can be restored.
 #[test]
 fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
-    let projects = TempDir::new("versions");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (projects, addr, origin) = projects_server("versions");
     let r = upload(addr, &origin, "p1", FRAME.as_bytes());
     let mapping = format!("{MAPPING}&label.gdp=GDP+per+head");
     assert_eq!(
@@ -927,12 +888,10 @@ fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
         "{}",
         page.body
     );
-    let restored = http_body(
+    let restored = post_form(
         addr,
-        "POST",
+        &origin,
         "/projects/restore",
-        &[("Origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
         format!("name=p1&version={}", list[2].id).as_bytes(),
     );
     assert_eq!(restored.status, 303, "{}", restored.body);
@@ -943,12 +902,10 @@ fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
     assert!(current.join("microdata.csv").is_file());
     assert_eq!(store::versions(projects.path(), "p1").len(), 4);
     // An unknown version is refused with a message.
-    let bad = http_body(
+    let bad = post_form(
         addr,
-        "POST",
+        &origin,
         "/projects/restore",
-        &[("Origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
         b"name=p1&version=0000000000000-00000000",
     );
     assert_eq!(bad.status, 400);
@@ -959,9 +916,7 @@ fn new_versions_start_from_the_old_mapping_and_old_versions_can_be_restored() {
 /// precise hint on the mapping page.
 #[test]
 fn separators_decimal_commas_and_code_case_get_hints() {
-    let projects = TempDir::new("hints");
-    let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
-    let origin = format!("http://{addr}");
+    let (_projects, addr, origin) = projects_server("hints");
     let semicolons = "iso;name;wave;took_part;gdp\nXAA;Aland;1;1;9,5\nXAB;Bland;1;0;8,1\n";
     let r = upload_with(addr, &origin, "semi", semicolons.as_bytes(), None, &[]);
     let form = get(addr, r.header("location").unwrap_or_default());

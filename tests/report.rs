@@ -616,25 +616,11 @@ fn the_reload_button_reloads_and_returns_to_the_page() {
     let page = get(addr, "/balance?wave=3");
     assert!(page.body.contains("action=\"/reload\""));
     let origin = format!("http://{addr}");
-    let r = http_body(
-        addr,
-        "POST",
-        "/reload",
-        &[("origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
-        b"back=%2Fbalance%3Fwave%3D3",
-    );
+    let r = post_form(addr, &origin, "/reload", b"back=%2Fbalance%3Fwave%3D3");
     assert_eq!(r.status, 303, "{}", r.body);
     assert_eq!(r.header("location"), Some("/balance?wave=3"));
     // Somewhere else than this server: back to the overview.
-    let away = http_body(
-        addr,
-        "POST",
-        "/reload",
-        &[("origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
-        b"back=%2F%2Fexample.org%2F",
-    );
+    let away = post_form(addr, &origin, "/reload", b"back=%2F%2Fexample.org%2F");
     assert_eq!(away.header("location"), Some("/"));
 }
 

@@ -608,14 +608,7 @@ fn a_body_over_the_limit_says_the_limit() {
     let (addr, _) = start_server_full(&demo_dir(), Some(projects.path().to_path_buf()));
     let origin = format!("http://{addr}");
     let big = vec![b'a'; gapwise::web::MAX_BODY_BYTES + 1024];
-    let r = http_body(
-        addr,
-        "POST",
-        "/projects/map",
-        &[("Origin", origin.as_str())],
-        "application/x-www-form-urlencoded",
-        &big,
-    );
+    let r = post_form(addr, &origin, "/projects/map", &big);
     assert_eq!(r.status, 413, "{}", r.body);
     assert!(r.body.contains("limit of 64 MB"), "{}", r.body);
 }

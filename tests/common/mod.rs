@@ -394,3 +394,33 @@ pub fn demo_json(command: &str, options: &[&str]) -> serde_json::Value {
     serde_json::from_str(&out.stdout)
         .unwrap_or_else(|e| panic!("gapwise {args:?} printed no JSON: {e}\n{}", out.stdout))
 }
+
+/// A POST as our own pages send it: the given Origin header and a body of the given
+/// content type (with the server's key in its cookie).
+pub fn post_from(
+    addr: std::net::SocketAddr,
+    origin: &str,
+    path: &str,
+    content_type: &str,
+    body: &[u8],
+) -> Response {
+    http_body(
+        addr,
+        "POST",
+        path,
+        &[("Origin", origin)],
+        content_type,
+        body,
+    )
+}
+
+/// The same with a URL-encoded form.
+pub fn post_form(addr: std::net::SocketAddr, origin: &str, path: &str, form: &[u8]) -> Response {
+    post_from(
+        addr,
+        origin,
+        path,
+        "application/x-www-form-urlencoded",
+        form,
+    )
+}
