@@ -207,17 +207,37 @@ fn assert_within_monte_carlo(p: f64, reference_p: f64, what: &str) {
     );
 }
 
+/// Each case of `key` in reference.json (clusters G, term j, reference p): `p_value` on
+/// the first G men of wagepan with `outcome` agrees within Monte Carlo error; a failure
+/// names the case by `name(G, j)`.
+fn agrees_with_reference_cases(
+    key: &str,
+    outcome: &str,
+    p_value: impl Fn(ndarray::ArrayView2<f64>, &[f64], &[usize], usize) -> f64,
+    name: impl Fn(usize, usize) -> String,
+) {
+    let cases = reference()[key].as_array().unwrap().clone();
+    assert!(!cases.is_empty(), "{key}: no cases");
+    for case in cases {
+        let g = case["clusters"].as_u64().unwrap() as usize;
+        let j = case["term"].as_u64().unwrap() as usize;
+        let (x, y, cluster) = wagepan_first_men(g, outcome);
+        let p = p_value(x.view(), &y, &cluster, j);
+        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &name(g, j));
+    }
+}
+
 #[test]
 fn wild_cluster_bootstrap_agrees_with_reference_within_monte_carlo_error() {
     // Reference: numpy refits with the null imposed (tests/fixtures/make_fixtures.py).
-    for case in reference()["wild_bootstrap"].as_array().unwrap() {
-        let g = case["clusters"].as_u64().unwrap() as usize;
-        let j = case["term"].as_u64().unwrap() as usize;
-        let (x, y, cluster) = wagepan_first_men(g, "lwage");
-        let p =
-            regression::wild_cluster_bootstrap(x.view(), &y, None, &cluster, j, 9999, 7).unwrap();
-        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &format!("G = {g}"));
-    }
+    agrees_with_reference_cases(
+        "wild_bootstrap",
+        "lwage",
+        |x, y, cluster, j| {
+            regression::wild_cluster_bootstrap(x, y, None, cluster, j, 9999, 7).unwrap()
+        },
+        |g, _| format!("G = {g}"),
+    );
 }
 
 fn twostep_reference() -> Value {
@@ -528,12 +548,12 @@ fn score_bootstrap_for_logistic_models_separates_signal_from_noise() {
 fn score_bootstrap_agrees_with_reference_within_monte_carlo_error() {
     // Reference: the same statistic computed in numpy on a statsmodels restricted logit
     // (tests/fixtures/make_fixtures.py), first 40 men of wagepan, B = 9999 each.
-    for case in reference()["score_bootstrap"].as_array().unwrap() {
-        let g = case["clusters"].as_u64().unwrap() as usize;
-        let j = case["term"].as_u64().unwrap() as usize;
-        let (x, y, cluster) = wagepan_first_men(g, "union");
-        let p =
-            regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, j, 9999, 11).unwrap();
-        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &format!("term {j}"));
-    }
+    agrees_with_reference_cases(
+        "score_bootstrap",
+        "union",
+        |x, y, cluster, j| {
+            regression::score_cluster_bootstrap(x, y, None, cluster, j, 9999, 11).unwrap()
+        },
+        |_, j| format!("term {j}"),
+    );
 }
