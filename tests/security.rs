@@ -415,6 +415,19 @@ fn csv_exports_neutralise_formulas_and_keep_numbers() {
     );
 }
 
+/// The first `n` lines of `text`, each ending in a newline.
+fn first_lines(text: &str, n: usize) -> String {
+    text.lines().take(n).map(|l| format!("{l}\n")).collect()
+}
+
+/// A reload the server holds back (409) with a message that says `says`.
+fn reload_is_held(addr: std::net::SocketAddr, auth: &[(&str, &str)], says: &str) -> Response {
+    let r = http(addr, "POST", "/api/reload", auth);
+    assert_eq!(r.status, 409, "{}", r.body);
+    assert!(r.body.contains(says), "not said: {says}\n{}", r.body);
+    r
+}
+
 #[test]
 fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
     let dir = valid_project("halfwritten");
@@ -442,19 +455,12 @@ fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
     );
 
     // The microdata cut at a line end, as while a program rewrites it: valid, but fewer rows.
-    let cut: String = MICRODATA
-        .lines()
-        .take(3)
-        .map(|l| format!("{l}\n"))
-        .collect();
+    let cut: String = first_lines(MICRODATA, 3);
     dir.write("microdata.csv", &cut);
-    let r = http(addr, "POST", "/api/reload", &auth);
-    assert_eq!(r.status, 409, "{}", r.body);
-    assert!(
-        r.body
-            .contains("microdata.csv now has 2 rows instead of 5 (3 fewer)"),
-        "{}",
-        r.body
+    let r = reload_is_held(
+        addr,
+        &auth,
+        "microdata.csv now has 2 rows instead of 5 (3 fewer)",
     );
     assert!(r.body.contains("/api/reload?confirm=1"), "{}", r.body);
     assert_eq!(
@@ -463,21 +469,11 @@ fn a_reload_that_loses_rows_keeps_the_old_project_until_confirmed() {
         "the old project stays"
     );
     // The frame losing its latest wave (and the microdata its respondents of wave 2).
-    let wave_one: String = MICRODATA
-        .lines()
-        .take(4)
-        .map(|l| format!("{l}\n"))
-        .collect();
+    let wave_one: String = first_lines(MICRODATA, 4);
     dir.write("microdata.csv", &wave_one);
-    let one_wave: String = FRAME.lines().take(5).map(|l| format!("{l}\n")).collect();
+    let one_wave: String = first_lines(FRAME, 5);
     dir.write("frame.csv", &one_wave);
-    let r = http(addr, "POST", "/api/reload", &auth);
-    assert_eq!(r.status, 409, "{}", r.body);
-    assert!(
-        r.body.contains("wave 2 no longer in the frame"),
-        "{}",
-        r.body
-    );
+    reload_is_held(addr, &auth, "wave 2 no longer in the frame");
     // Confirmed, the reload goes through and the overview says what changed.
     let r = http(addr, "POST", "/api/reload?confirm=1", &auth);
     assert_eq!(r.status, 200, "{}", r.body);
