@@ -129,8 +129,16 @@ fn start_up_messages() {
     assert!(out.stderr.contains("already in use"), "{}", out.stderr);
 }
 
-#[test]
-fn ctrl_c_stops_the_server_gracefully() {
+/// `gapwise serve <demo> --addr 127.0.0.1:0 EXTRA...` as a child process with its output
+/// streams piped: the process, its standard output (kept open: a server writing to a
+/// closed pipe fails) and the first line it printed.
+fn serve_demo_process(
+    extra: &[&str],
+) -> (
+    std::process::Child,
+    std::io::BufReader<std::process::ChildStdout>,
+    String,
+) {
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
         .args([
             "serve",
@@ -138,13 +146,21 @@ fn ctrl_c_stops_the_server_gracefully() {
             "--addr",
             "127.0.0.1:0",
         ])
+        .args(extra)
         .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
         .spawn()
         .expect("start the server");
-    // Wait for the "serving" line, then send SIGINT as Ctrl-C does.
     let mut stdout = std::io::BufReader::new(child.stdout.take().unwrap());
     let mut line = String::new();
     std::io::BufRead::read_line(&mut stdout, &mut line).unwrap();
+    (child, stdout, line)
+}
+
+#[test]
+fn ctrl_c_stops_the_server_gracefully() {
+    // Wait for the "serving" line, then send SIGINT as Ctrl-C does.
+    let (mut child, _stdout, line) = serve_demo_process(&[]);
     assert!(line.contains("serving"), "{line}");
     let status = std::process::Command::new("kill")
         .args(["-INT", &child.id().to_string()])
@@ -639,21 +655,7 @@ fn a_binary_outcome_that_is_not_0_or_1_is_placed() {
 
 #[test]
 fn no_key_warns_at_start_up() {
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
-        .args([
-            "serve",
-            demo_dir().to_str().unwrap(),
-            "--addr",
-            "127.0.0.1:0",
-            "--no-key",
-        ])
-        .stdout(std::process::Stdio::piped())
-        .stderr(std::process::Stdio::piped())
-        .spawn()
-        .expect("start the server");
-    let mut stdout = std::io::BufReader::new(child.stdout.take().unwrap());
-    let mut line = String::new();
-    std::io::BufRead::read_line(&mut stdout, &mut line).unwrap();
+    let (child, _stdout, line) = serve_demo_process(&["--no-key"]);
     let _ = std::process::Command::new("kill")
         .args(["-TERM", &child.id().to_string()])
         .status();
