@@ -424,3 +424,19 @@ pub fn post_form(addr: std::net::SocketAddr, origin: &str, path: &str, form: &[u
         form,
     )
 }
+
+/// Runs the binary once per case (its arguments, what standard error must say) and
+/// asserts that each is refused (a non-zero exit) with that message; a failure names the
+/// case by its number. Returns the outputs, in order.
+pub fn assert_refused(cases: &[(Vec<&str>, &str)]) -> Vec<Output> {
+    cases
+        .iter()
+        .enumerate()
+        .map(|(k, (args, said))| {
+            let out = gapwise(args);
+            assert_ne!(out.code, 0, "case {k} ({said}) was not refused");
+            assert!(out.stderr.contains(said), "case {k}: {}", out.stderr);
+            out
+        })
+        .collect()
+}
