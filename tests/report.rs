@@ -629,26 +629,11 @@ fn the_reload_button_reloads_and_returns_to_the_page() {
 /// report itself.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_report_reuses_what_the_pages_computed() {
-    use axum::body::Body;
-    use axum::http::{Request, StatusCode};
+    use axum::http::StatusCode;
     use std::sync::Arc;
-    use tower::ServiceExt;
     let project = gapwise::project::Project::load(&demo_dir()).expect("demo loads");
     let state = Arc::new(gapwise::web::AppState::new(project));
-    let get = |uri: &'static str| {
-        let state = Arc::clone(&state);
-        async move {
-            let response = gapwise::web::router(state)
-                .oneshot(Request::get(uri).body(Body::empty()).unwrap())
-                .await
-                .unwrap();
-            let status = response.status();
-            let body = axum::body::to_bytes(response.into_body(), usize::MAX)
-                .await
-                .unwrap();
-            (status, String::from_utf8_lossy(&body).to_string())
-        }
-    };
+    let get = |uri: &'static str| route(&state, uri);
     for page in [
         "/plan?wave=3&replicates=3",
         // The settings the report's impact section asks for, written out (49 pipeline

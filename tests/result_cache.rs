@@ -2,22 +2,18 @@
 //! and shared: a second request with the same settings (in any spelling of the query)
 //! is answered from the cache; a reload computes afresh.
 
+mod common;
+use common::route;
+
 use std::sync::Arc;
 
-use axum::body::Body;
-use axum::http::{Request, StatusCode};
+use axum::http::StatusCode;
 use gapwise::project::Project;
-use gapwise::web::{self, AppState};
-use tower::ServiceExt;
+use gapwise::web::AppState;
 
+/// The status of a GET answered in this process.
 async fn get(state: &Arc<AppState>, uri: &str) -> StatusCode {
-    let response = web::router(Arc::clone(state))
-        .oneshot(Request::get(uri).body(Body::empty()).expect("request"))
-        .await
-        .expect("router answers");
-    let status = response.status();
-    let _ = axum::body::to_bytes(response.into_body(), usize::MAX).await;
-    status
+    route(state, uri).await.0
 }
 
 const ROUTES: [&str; 12] = [

@@ -7,7 +7,7 @@ use common::*;
 
 use gapwise::analysis::participation::fit;
 use gapwise::analysis::planner::{plan, PlanSettings};
-use gapwise::analysis::settings::{ModelKind, Settings, WeightingKind};
+use gapwise::analysis::settings::Settings;
 use gapwise::project::wave::ExtraColumns;
 use gapwise::project::{Project, WaveView};
 use gapwise::stats::random::Rng;
@@ -320,43 +320,37 @@ fn awkward_universes_get_finite_numbers_or_clear_messages() {
     ];
     for (name, csv) in cases {
         let view = universe(&dir, &csv, &["a", "b"], &["g"]);
-        for model in [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit] {
-            for weighting in WeightingKind::ALL {
-                let settings = Settings {
-                    model,
-                    weighting,
-                    ..Settings::default()
-                };
-                match fit(&view, &settings) {
-                    Ok(r) => {
-                        // serde_json writes NaN and infinities as null: a null is only
-                        // allowed where the result says "none" on purpose.
-                        let json = serde_json::to_value(&r).unwrap();
-                        let what = format!("{name} / {model:?} / {weighting:?}");
-                        assert_no_stray_nulls(&json, "", &what);
-                        assert_estimable_or_marked(&json, &what);
-                        if name == "exactly collinear indicators" {
-                            // b = 2a + 1: a, b and the intercept are not estimable.
-                            for j in 0..3 {
-                                assert!(
-                                    json["model"]["se"][j].is_null(),
-                                    "{what}: {}",
-                                    json["model"]["se"]
-                                );
-                            }
-                        }
-                        for u in &r.units {
+        for settings in every_model_and_weighting() {
+            let (model, weighting) = (settings.model, settings.weighting);
+            match fit(&view, &settings) {
+                Ok(r) => {
+                    // serde_json writes NaN and infinities as null: a null is only
+                    // allowed where the result says "none" on purpose.
+                    let json = serde_json::to_value(&r).unwrap();
+                    let what = format!("{name} / {model:?} / {weighting:?}");
+                    assert_no_stray_nulls(&json, "", &what);
+                    assert_estimable_or_marked(&json, &what);
+                    if name == "exactly collinear indicators" {
+                        // b = 2a + 1: a, b and the intercept are not estimable.
+                        for j in 0..3 {
                             assert!(
-                                u.weight.is_finite() && u.propensity.is_finite(),
-                                "{name}: non-finite unit values"
+                                json["model"]["se"][j].is_null(),
+                                "{what}: {}",
+                                json["model"]["se"]
                             );
                         }
                     }
-                    Err(e) => assert!(
-                        e.to_string().len() > 20,
-                        "{name} / {model:?} / {weighting:?}: unclear message {e}"
-                    ),
+                    for u in &r.units {
+                        assert!(
+                            u.weight.is_finite() && u.propensity.is_finite(),
+                            "{name}: non-finite unit values"
+                        );
+                    }
                 }
+                Err(e) => assert!(
+                    e.to_string().len() > 20,
+                    "{name} / {model:?} / {weighting:?}: unclear message {e}"
+                ),
             }
         }
         // The planner too.

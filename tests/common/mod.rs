@@ -440,3 +440,41 @@ pub fn assert_refused(cases: &[(Vec<&str>, &str)]) -> Vec<Output> {
         })
         .collect()
 }
+
+/// A GET answered by the router in this process (no socket, no key): status and body.
+pub async fn route(
+    state: &std::sync::Arc<gapwise::web::AppState>,
+    uri: &str,
+) -> (axum::http::StatusCode, String) {
+    use tower::ServiceExt;
+    let request = axum::http::Request::get(uri)
+        .body(axum::body::Body::empty())
+        .expect("request");
+    let response = gapwise::web::router(std::sync::Arc::clone(state))
+        .oneshot(request)
+        .await
+        .expect("router answers");
+    let status = response.status();
+    let body = axum::body::to_bytes(response.into_body(), usize::MAX)
+        .await
+        .expect("body");
+    (status, String::from_utf8_lossy(&body).to_string())
+}
+
+/// The default settings with each participation model and each weighting, every pairing
+/// once (models in the order logit, Firth, probit).
+pub fn every_model_and_weighting() -> Vec<gapwise::analysis::settings::Settings> {
+    use gapwise::analysis::settings::{ModelKind, Settings, WeightingKind};
+    [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit]
+        .into_iter()
+        .flat_map(|model| {
+            WeightingKind::ALL
+                .into_iter()
+                .map(move |weighting| Settings {
+                    model,
+                    weighting,
+                    ..Settings::default()
+                })
+        })
+        .collect()
+}
