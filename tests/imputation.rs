@@ -492,24 +492,22 @@ fn impact_json_carries_the_imputations() {
     let v = common::demo_json(
         "impact",
         &[
-            "--wave",
-            "4",
-            "--outcome",
-            "trust_parliament",
-            "--predictors",
-            "age,education",
-            "--missing",
-            "impute",
-            "--imputations",
-            &m.to_string(),
-            "--seed",
-            "21",
-            "--replicates",
-            "0",
-            "--wild-replicates",
-            "0",
-            "--json",
-        ],
+            &common::DEMO_TRUST_QUESTION[..],
+            &[
+                "--missing",
+                "impute",
+                "--imputations",
+                &m.to_string(),
+                "--seed",
+                "21",
+                "--replicates",
+                "0",
+                "--wild-replicates",
+                "0",
+                "--json",
+            ],
+        ]
+        .concat(),
     );
     assert_eq!(v["imputation"]["imputations"], m);
     let variants = v["variants"].as_array().unwrap();
