@@ -92,16 +92,18 @@ fn impact_command_prints_what_the_api_serves() {
     let cli = demo_json(
         "impact",
         &[
-            &DEMO_TRUST_QUESTION[..],
-            &[
-                "--country-indicators",
-                "log_gdp_pc",
-                "--bootstrap",
-                "19",
-                "--json",
-            ],
-        ]
-        .concat(),
+            "--wave",
+            "4",
+            "--outcome",
+            "trust_parliament",
+            "--predictors",
+            "age,education",
+            "--country-indicators",
+            "log_gdp_pc",
+            "--bootstrap",
+            "19",
+            "--json",
+        ],
     );
     assert_eq!(cli["variants"], api["variants"]);
     assert_eq!(cli["impact"], api["impact"]);

@@ -403,25 +403,31 @@ fn pages_accept_imputation() {
     assert!(c.body.contains("Has filled (imputed) values"));
 }
 
+/// `gapwise COMMAND <demo> --wave 4 --missing impute --imputations M --seed SEED MORE...
+/// --json`, which must succeed: its JSON.
+fn imputed_demo_json(command: &str, m: usize, seed: u64, more: &[&str]) -> Value {
+    let (m, seed) = (m.to_string(), seed.to_string());
+    let mut options = vec![
+        "--wave",
+        "4",
+        "--missing",
+        "impute",
+        "--imputations",
+        &m,
+        "--seed",
+        &seed,
+        "--json",
+    ];
+    options.extend_from_slice(more);
+    common::demo_json(command, &options)
+}
+
 /// `gapwise fit --missing impute --json` prints each imputation's coefficients and
 /// standard errors beside the combined ones, and recombining them by Rubin's rules gives
 /// the printed combination (the check anyone can make; common practice).
 #[test]
 fn fit_json_carries_the_imputations() {
-    let v = common::demo_json(
-        "fit",
-        &[
-            "--wave",
-            "4",
-            "--missing",
-            "impute",
-            "--imputations",
-            "6",
-            "--seed",
-            "11",
-            "--json",
-        ],
-    );
+    let v = imputed_demo_json("fit", 6, 11, &[]);
     let imps = v["imputations"].as_array().unwrap();
     assert_eq!(imps.len(), 6);
     let k = v["coef"].as_array().unwrap().len();
@@ -489,25 +495,20 @@ fn check_recombined(what: &str, each: &[(f64, f64)], dfcom: f64, combined: &Valu
 #[test]
 fn impact_json_carries_the_imputations() {
     let m = 4;
-    let v = common::demo_json(
+    let v = imputed_demo_json(
         "impact",
+        m,
+        21,
         &[
-            &common::DEMO_TRUST_QUESTION[..],
-            &[
-                "--missing",
-                "impute",
-                "--imputations",
-                &m.to_string(),
-                "--seed",
-                "21",
-                "--replicates",
-                "0",
-                "--wild-replicates",
-                "0",
-                "--json",
-            ],
-        ]
-        .concat(),
+            "--outcome",
+            "trust_parliament",
+            "--predictors",
+            "age,education",
+            "--replicates",
+            "0",
+            "--wild-replicates",
+            "0",
+        ],
     );
     assert_eq!(v["imputation"]["imputations"], m);
     let variants = v["variants"].as_array().unwrap();
@@ -580,22 +581,7 @@ fn impact_json_carries_the_imputations() {
 #[test]
 fn plan_json_carries_the_imputations() {
     let m = 3;
-    let v = common::demo_json(
-        "plan",
-        &[
-            "--wave",
-            "4",
-            "--missing",
-            "impute",
-            "--imputations",
-            &m.to_string(),
-            "--seed",
-            "8",
-            "--replicates",
-            "0",
-            "--json",
-        ],
-    );
+    let v = imputed_demo_json("plan", m, 8, &["--replicates", "0"]);
     let by = v["objective_by_imputation"].as_array().unwrap();
     assert_eq!(by.len(), m);
     assert!(close(

@@ -478,14 +478,3 @@ pub fn every_model_and_weighting() -> Vec<gapwise::analysis::settings::Settings>
         })
         .collect()
 }
-
-/// The question several tests put to the demo's impact view, as command options: trust
-/// in parliament on age and education, wave 4.
-pub const DEMO_TRUST_QUESTION: [&str; 6] = [
-    "--wave",
-    "4",
-    "--outcome",
-    "trust_parliament",
-    "--predictors",
-    "age,education",
-];
