@@ -465,7 +465,7 @@ fn the_plan_beats_95_percent_of_random_plans_on_the_demo_and_real_indicators() {
         (&real, "model"),
     ] {
         let p = plan_on_json(
-            &dir,
+            dir,
             &["--feasibility", source, "--replicates", "0", "--json"],
         );
         let o = &p["optimality"];
