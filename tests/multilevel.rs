@@ -9,10 +9,6 @@ use common::*;
 
 use serde_json::Value;
 
-fn fixtures() -> std::path::PathBuf {
-    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
-}
-
 fn load(name: &str) -> Value {
     serde_json::from_str(&std::fs::read_to_string(fixtures().join(name)).unwrap()).unwrap()
 }

@@ -7,10 +7,6 @@ use common::*;
 
 use serde_json::Value;
 
-fn fixtures() -> std::path::PathBuf {
-    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
-}
-
 fn reference() -> Value {
     serde_json::from_str(&std::fs::read_to_string(fixtures().join("reference.json")).unwrap())
         .unwrap()

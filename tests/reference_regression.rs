@@ -10,10 +10,6 @@ use gapwise::stats::regression;
 use ndarray::Array2;
 use serde_json::Value;
 
-fn fixtures() -> std::path::PathBuf {
-    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
-}
-
 fn reference() -> Value {
     serde_json::from_str(&std::fs::read_to_string(fixtures().join("reference.json")).unwrap())
         .unwrap()

@@ -351,38 +351,6 @@ pub fn fixtures() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures")
 }
 
-/// A committed JSON fixture of tests/fixtures, parsed.
-pub fn fixture_json(name: &str) -> serde_json::Value {
-    let path = fixtures().join(name);
-    let text =
-        std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("read {}: {e}", path.display()));
-    serde_json::from_str(&text).unwrap_or_else(|e| panic!("parse {}: {e}", path.display()))
-}
-
-/// A JSON array of numbers as floats (a failure names `what`).
-pub fn floats(v: &serde_json::Value, what: &str) -> Vec<f64> {
-    v.as_array()
-        .unwrap_or_else(|| panic!("{what} is not an array: {v}"))
-        .iter()
-        .map(|x| {
-            x.as_f64()
-                .unwrap_or_else(|| panic!("{what} holds a non-number: {x}"))
-        })
-        .collect()
-}
-
-/// Asserts that `got` has the length of `want` and each entry lies within `tol` of it;
-/// a failure names `what` and the index.
-pub fn assert_all_close(what: &str, got: &[f64], want: &[f64], tol: f64) {
-    assert_eq!(got.len(), want.len(), "{what}: length");
-    for (i, (g, w)) in got.iter().zip(want).enumerate() {
-        assert!(
-            (g - w).abs() < tol,
-            "{what}[{i}]: {g} vs {w} (tolerance {tol})"
-        );
-    }
-}
-
 /// `gapwise COMMAND <demo project> OPTIONS...`, which must succeed: its standard output
 /// parsed as JSON (the options ask for `--json`).
 pub fn demo_json(command: &str, options: &[&str]) -> serde_json::Value {
