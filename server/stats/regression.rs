@@ -704,28 +704,23 @@ impl LinearSums {
     /// The sums under weights `factor[g]` times the base weights; clusters whose factor is
     /// not positive (or not a number) are left out, as rows without weight are.
     pub fn scaled(&self, factor: &[f64]) -> LinearSums {
-        let keep = |g: usize| factor.get(g).is_some_and(|f| *f > 0.0);
+        let kept = |g: usize| factor.get(g).copied().filter(|f| *f > 0.0);
+        let scale = |g: usize| kept(g).unwrap_or(0.0);
         LinearSums {
-            m: (0..self.m.len())
-                .map(|g| {
-                    if keep(g) {
-                        &self.m[g] * factor[g]
-                    } else {
-                        self.m[g].clone() * 0.0
-                    }
-                })
+            m: self
+                .m
+                .iter()
+                .enumerate()
+                .map(|(g, m)| m * scale(g))
                 .collect(),
-            b: (0..self.b.len())
-                .map(|g| {
-                    if keep(g) {
-                        &self.b[g] * factor[g]
-                    } else {
-                        self.b[g].clone() * 0.0
-                    }
-                })
+            b: self
+                .b
+                .iter()
+                .enumerate()
+                .map(|(g, b)| b * scale(g))
                 .collect(),
             rows: (0..self.rows.len())
-                .map(|g| if keep(g) { self.rows[g] } else { 0 })
+                .map(|g| if kept(g).is_some() { self.rows[g] } else { 0 })
                 .collect(),
         }
     }
