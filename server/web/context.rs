@@ -415,6 +415,34 @@ where
     run(Lane::Heavy, state, query, compute).await
 }
 
+/// The future a JSON twin handler answers with (see `json_twin`).
+pub type TwinAnswer<J> =
+    std::pin::Pin<Box<dyn std::future::Future<Output = AppResult<axum::Json<J>>> + Send>>;
+
+/// The handler of a page's JSON twin: the page's own computation on `lane`, through the
+/// same result cache as the page, answering the part `result` picks from it. One handler
+/// for the pages whose twin is their result as it stands.
+pub fn json_twin<T, J>(
+    lane: Lane,
+    compute: fn(&AppState, &Query) -> AppResult<T>,
+    result: fn(T) -> J,
+) -> impl Fn(axum::extract::State<Arc<AppState>>, axum::extract::Query<Query>) -> TwinAnswer<J>
+       + Clone
+       + Send
+       + Sync
+       + 'static
+where
+    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
+    J: Serialize + Send + 'static,
+{
+    move |axum::extract::State(state), axum::extract::Query(query)| {
+        Box::pin(async move {
+            let answer = run(lane, &state, &query, compute).await?;
+            Ok(axum::Json(result(answer)))
+        })
+    }
+}
+
 async fn run<T>(
     lane: Lane,
     state: &Arc<AppState>,
