@@ -847,28 +847,21 @@ pub mod student {
         for m in 1..=10_000 {
             let m = f64::from(m);
             let m2 = 2.0 * m;
-            let aa = m * (b - m) * x / ((qam + m2) * (a + m2));
-            d = 1.0 + aa * d;
-            if d.abs() < TINY {
-                d = TINY;
-            }
-            c = 1.0 + aa / c;
-            if c.abs() < TINY {
-                c = TINY;
-            }
-            d = 1.0 / d;
-            h *= d * c;
-            let aa = -(a + m) * (qab + m) * x / ((a + m2) * (qap + m2));
-            d = 1.0 + aa * d;
-            if d.abs() < TINY {
-                d = TINY;
-            }
-            c = 1.0 + aa / c;
-            if c.abs() < TINY {
-                c = TINY;
-            }
-            d = 1.0 / d;
-            let delta = d * c;
+            // One step of the modified Lentz recurrence: the factor it multiplies h by.
+            let mut lentz = |aa: f64| {
+                d = 1.0 + aa * d;
+                if d.abs() < TINY {
+                    d = TINY;
+                }
+                c = 1.0 + aa / c;
+                if c.abs() < TINY {
+                    c = TINY;
+                }
+                d = 1.0 / d;
+                d * c
+            };
+            h *= lentz(m * (b - m) * x / ((qam + m2) * (a + m2)));
+            let delta = lentz(-(a + m) * (qab + m) * x / ((a + m2) * (qap + m2)));
             h *= delta;
             if (delta - 1.0).abs() < 1e-16 {
                 break;
