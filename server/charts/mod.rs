@@ -356,6 +356,25 @@ pub fn headed<'b>(
     Ok(body)
 }
 
+/// The builder of a chart in the area `headed` leaves: the margins every slide chart
+/// shares (16 px, 4 px under the legend, `right` px on the right for the last tick label),
+/// `x_area` px for the x axis labels and `y_area` px for the y axis labels.
+pub fn body_chart<'a, 'b, 'c>(
+    body: &'a Area<'c>,
+    right: u32,
+    x_area: u32,
+    y_area: u32,
+) -> ChartBuilder<'a, 'b, SVGBackend<'c>> {
+    let mut builder = ChartBuilder::on(body);
+    builder
+        .margin(16)
+        .margin_top(4)
+        .margin_right(right)
+        .x_label_area_size(x_area)
+        .y_label_area_size(y_area);
+    builder
+}
+
 /// A box in pixels: left, top, right, bottom.
 pub type PixelBox = (i32, i32, i32, i32);
 

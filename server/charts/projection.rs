@@ -106,12 +106,7 @@ pub fn component_map(r: &ProjectionReport) -> String {
             Glyph::Square(ramp(1.0)),
         ));
         let body = headed(root, &title, &keys)?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(24)
-            .x_label_area_size(56)
-            .y_label_area_size(76)
+        let mut chart = super::body_chart(&body, 24, 56, 76)
             .build_cartesian_2d(span(&|s| s.1), span(&|s| s.2))?;
         let share = |k: usize| r.map_explained.get(k).map_or(0.0, |x| 100.0 * x);
         chart
