@@ -96,6 +96,16 @@ pub fn normalised_settings(project: &Project, query: &Query) -> AppResult<Settin
         .with_indicators_in_order(&indicators.numeric, &indicators.categorical))
 }
 
+/// The respondent variables the project's microdata declares (none without microdata).
+pub fn microdata_variables(project: &Project) -> Vec<String> {
+    project
+        .manifest
+        .microdata
+        .as_ref()
+        .map(|m| m.variables.clone())
+        .unwrap_or_default()
+}
+
 /// The project, the settings (normalised; wave filled in: the latest when not given) and
 /// the view.
 pub fn resolve(state: &AppState, query: &Query) -> AppResult<(Arc<Project>, Settings, WaveView)> {

@@ -100,12 +100,7 @@ pub(crate) fn compute(
     } else {
         projection_with(&project, &view, &settings, &ps, &options)?
     };
-    let variables = project
-        .manifest
-        .microdata
-        .as_ref()
-        .map(|m| m.variables.clone())
-        .unwrap_or_default();
+    let variables = super::context::microdata_variables(&project);
     Ok((form, r, variables))
 }
 
