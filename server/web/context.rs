@@ -156,8 +156,16 @@ pub fn presenting(query: &Query) -> bool {
 impl SettingsForm {
     pub fn new(action: &'static str, project: &Project, settings: &Settings) -> Self {
         let m = &project.manifest;
-        let chosen = |list: &Option<Vec<String>>, column: &String| {
-            list.as_ref().is_none_or(|l| l.contains(column))
+        // The indicators offered, each ticked when the list names it (all when it is None).
+        let indicator_choices = |columns: &[String], list: &Option<Vec<String>>| {
+            columns
+                .iter()
+                .map(|c| Choice {
+                    value: c.clone(),
+                    label: m.label(c).to_string(),
+                    selected: list.as_ref().is_none_or(|l| l.contains(c)),
+                })
+                .collect()
         };
         SettingsForm {
             action,
@@ -220,26 +228,8 @@ impl SettingsForm {
             .collect(),
             imputations: settings.imputations,
             seed: settings.seed,
-            covariates: m
-                .indicators
-                .numeric
-                .iter()
-                .map(|c| Choice {
-                    value: c.clone(),
-                    label: m.label(c).to_string(),
-                    selected: chosen(&settings.covariates, c),
-                })
-                .collect(),
-            factors: m
-                .indicators
-                .categorical
-                .iter()
-                .map(|c| Choice {
-                    value: c.clone(),
-                    label: m.label(c).to_string(),
-                    selected: chosen(&settings.factors, c),
-                })
-                .collect(),
+            covariates: indicator_choices(&m.indicators.numeric, &settings.covariates),
+            factors: indicator_choices(&m.indicators.categorical, &settings.factors),
             query: settings.to_query(),
             present: false,
         }
