@@ -10,7 +10,6 @@
 
 #[path = "common/serve.rs"]
 mod serve;
-use serve::{median, time};
 
 const ROUTES: &[&str] = &[
     "/impact?wave=4",
@@ -21,26 +20,10 @@ const ROUTES: &[&str] = &[
 
 fn main() {
     let runtime = serve::runtime();
-    println!(
-        "{:<64} {:>10} {:>10} {:>11}",
-        "route", "cold ms", "max ms", "cached ms"
-    );
+    serve::print_route_header();
     for uri in ROUTES {
-        let mut cold = Vec::new();
-        let mut cached = Vec::new();
-        for _ in 0..5 {
-            let state = serve::fresh_state(&gapwise::demo_dir());
-            cold.push(time(&runtime, &state, uri));
-            for _ in 0..4 {
-                cached.push(time(&runtime, &state, uri));
-            }
-        }
-        let max = cold.iter().copied().fold(0.0, f64::max);
-        println!(
-            "{uri:<64} {:>10.1} {max:>10.1} {:>11.2}",
-            median(cold),
-            median(cached)
-        );
+        let (cold, max, cached) = serve::cold_and_cached(&runtime, uri);
+        println!("{uri:<64} {cold:>10.1} {max:>10.1} {cached:>11.2}");
     }
     println!("targets: 199 replicates under 1,000 ms cold, under 5 ms cached");
 }

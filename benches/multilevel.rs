@@ -7,57 +7,36 @@
 //!
 //!     cargo bench --bench multilevel
 //!
-//! The data are generated here (seeded) into the target directory on first run.
+//! The data are generated (seeded) into the target directory on first run by
+//! benches/common/respondents.rs.
 
 use std::fmt::Write as _;
 use std::path::PathBuf;
 use std::time::Instant;
 
 use gapwise::analysis::multilevel::{multilevel_file, Kind, Request};
-use gapwise::stats::random::Rng;
+#[path = "common/respondents.rs"]
+mod respondents;
+use respondents::{respondent_file, PREDICTORS};
 #[path = "common/serve.rs"]
 mod serve;
 
-const RESPONDENTS: usize = 2_000_000;
-const COUNTRIES: usize = 60;
-const PREDICTORS: [&str; 6] = ["age", "female", "education", "income", "urban", "interest"];
-
 fn data_file() -> PathBuf {
-    let dir = std::env::var("CARGO_TARGET_DIR")
-        .map(PathBuf::from)
-        .unwrap_or_else(|_| PathBuf::from("target"));
-    let path = dir.join("bench-multilevel-2m.csv");
-    if path.exists() {
-        return path;
-    }
-    std::fs::create_dir_all(&dir).expect("target dir");
-    let mut rng = Rng::new(6_000_000);
-    let country_effect: Vec<f64> = (0..COUNTRIES).map(|_| 0.5 * rng.normal()).collect();
-    let mut out = String::with_capacity(RESPONDENTS * 56);
-    out.push_str("country,age,female,education,income,urban,interest,trust,voted\n");
-    for i in 0..RESPONDENTS {
-        let c = i % COUNTRIES;
-        let age = 18 + rng.below(73);
-        let female = u8::from(rng.bernoulli(0.5));
-        let education = 1 + rng.below(3);
-        let income = 1 + rng.below(10);
-        let urban = u8::from(rng.bernoulli(0.6));
-        let interest = rng.below(5);
-        let eta = -1.0
-            + 0.02 * (age as f64 - 45.0)
-            + 0.3 * education as f64
-            + 0.05 * income as f64
-            + 0.2 * interest as f64
-            + country_effect[c];
-        let trust = 5.0 + 2.0 * eta + 1.5 * rng.normal();
-        let voted = u8::from(rng.bernoulli(1.0 / (1.0 + (-eta).exp())));
-        let _ = writeln!(
-            out,
-            "X{c:02},{age},{female},{education},{income},{urban},{interest},{trust:.3},{voted}"
-        );
-    }
-    std::fs::write(&path, out).expect("write bench data");
-    path
+    respondent_file(
+        "bench-multilevel-2m.csv",
+        6_000_000,
+        56,
+        "country,age,female,education,income,urban,interest,trust,voted\n",
+        |rng, r, out| {
+            let trust = 5.0 + 2.0 * r.eta + 1.5 * rng.normal();
+            let voted = u8::from(rng.bernoulli(1.0 / (1.0 + (-r.eta).exp())));
+            let _ = writeln!(
+                out,
+                "X{:02},{},{},{},{},{},{},{trust:.3},{voted}",
+                r.country, r.age, r.female, r.education, r.income, r.urban, r.interest
+            );
+        },
+    )
 }
 
 fn main() {

@@ -8,7 +8,6 @@
 
 #[path = "common/serve.rs"]
 mod serve;
-use serve::{median, time};
 
 #[path = "common/routes.rs"]
 mod routes;
@@ -16,23 +15,10 @@ use routes::ROUTES;
 
 fn main() {
     let runtime = serve::runtime();
-    println!(
-        "{:<64} {:>10} {:>10} {:>11}",
-        "route", "cold ms", "max ms", "cached ms"
-    );
+    serve::print_route_header();
     let (mut worst_cold, mut worst_cached, mut worst_report) = (0.0f64, 0.0f64, 0.0f64);
     for uri in ROUTES {
-        let mut cold = Vec::new();
-        let mut cached = Vec::new();
-        for _ in 0..5 {
-            let state = serve::fresh_state(&gapwise::demo_dir());
-            cold.push(time(&runtime, &state, uri));
-            for _ in 0..4 {
-                cached.push(time(&runtime, &state, uri));
-            }
-        }
-        let max = cold.iter().copied().fold(0.0, f64::max);
-        let (c, h) = (median(cold), median(cached));
+        let (c, max, h) = serve::cold_and_cached(&runtime, uri);
         if uri.starts_with("/report") {
             worst_report = worst_report.max(c);
         } else {

@@ -47,3 +47,29 @@ pub fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(f64::total_cmp);
     v[v.len() / 2]
 }
+
+/// The header of the route tables `cold_and_cached` fills.
+#[allow(dead_code)]
+pub fn print_route_header() {
+    println!(
+        "{:<64} {:>10} {:>10} {:>11}",
+        "route", "cold ms", "max ms", "cached ms"
+    );
+}
+
+/// `uri` on the demo: the first request on each of five fresh servers (cold) and four
+/// more on each (cached). Returns the cold median, the cold maximum and the cached median.
+#[allow(dead_code)]
+pub fn cold_and_cached(runtime: &tokio::runtime::Runtime, uri: &str) -> (f64, f64, f64) {
+    let mut cold = Vec::new();
+    let mut cached = Vec::new();
+    for _ in 0..5 {
+        let state = fresh_state(&gapwise::demo_dir());
+        cold.push(time(runtime, &state, uri));
+        for _ in 0..4 {
+            cached.push(time(runtime, &state, uri));
+        }
+    }
+    let max = cold.iter().copied().fold(0.0, f64::max);
+    (median(cold), max, median(cached))
+}

@@ -61,29 +61,38 @@ pub struct DesignError(pub String);
 
 pub const INTERCEPT: &str = "intercept";
 
-/// Builds the design for the settings' covariates and factors.
-pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError> {
-    let covariates: Vec<usize> = match &settings.covariates {
-        None => (0..view.numeric.len()).collect(),
+/// The positions in `view.numeric` of the settings' covariates (every numeric indicator
+/// when none are named); the first name that is not a numeric indicator as the error.
+pub fn covariate_positions<'a>(
+    view: &WaveView,
+    settings: &'a Settings,
+) -> Result<Vec<usize>, &'a str> {
+    match &settings.covariates {
+        None => Ok((0..view.numeric.len()).collect()),
         Some(names) => names
             .iter()
             .map(|n| {
                 view.numeric
                     .iter()
                     .position(|c| &c.column == n)
-                    .ok_or_else(|| {
-                        DesignError(format!(
-                            "'{n}' is not a numeric indicator; the numeric indicators are: {}",
-                            view.numeric
-                                .iter()
-                                .map(|c| c.column.as_str())
-                                .collect::<Vec<_>>()
-                                .join(", ")
-                        ))
-                    })
+                    .ok_or(n.as_str())
             })
-            .collect::<Result<_, _>>()?,
-    };
+            .collect(),
+    }
+}
+
+/// Builds the design for the settings' covariates and factors.
+pub fn build(view: &WaveView, settings: &Settings) -> Result<Design, DesignError> {
+    let covariates = covariate_positions(view, settings).map_err(|n| {
+        DesignError(format!(
+            "'{n}' is not a numeric indicator; the numeric indicators are: {}",
+            view.numeric
+                .iter()
+                .map(|c| c.column.as_str())
+                .collect::<Vec<_>>()
+                .join(", ")
+        ))
+    })?;
     let factors: Vec<usize> = match &settings.factors {
         None => (0..view.categorical.len()).collect(),
         Some(names) => names

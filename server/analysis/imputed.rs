@@ -122,6 +122,31 @@ pub fn other_waves(project: &Project, wave: i64) -> Vec<WaveView> {
         .collect()
 }
 
+/// The filled cells of one indicator of `view`: one a row in `missing`, with what `fill`
+/// gives for that row (the numeric values or the levels over the imputations).
+fn filled_cells(
+    view: &WaveView,
+    column: &str,
+    label: &str,
+    missing: &[usize],
+    fill: impl Fn(usize) -> (Option<Vec<f64>>, Option<Vec<String>>),
+) -> Vec<FilledCell> {
+    missing
+        .iter()
+        .map(|&i| {
+            let (values, levels) = fill(i);
+            FilledCell {
+                code: view.codes[i].clone(),
+                name: view.names[i].clone(),
+                indicator: column.to_string(),
+                label: label.to_string(),
+                values,
+                levels,
+            }
+        })
+        .collect()
+}
+
 /// Imputes the wave `view` jointly with `others` (the same project's other waves, whose
 /// values of a country are its first predictors) and returns M completed copies of `view`.
 pub fn complete(
@@ -246,17 +271,11 @@ pub fn complete(
             continue;
         }
         indicators_filled.push((ind.column.clone(), missing.len()));
-        for &i in &missing {
-            countries.push(view.codes[i].clone());
-            cells.push(FilledCell {
-                code: view.codes[i].clone(),
-                name: view.names[i].clone(),
-                indicator: ind.column.clone(),
-                label: ind.label.clone(),
-                values: Some(result.completed.iter().map(|c| c.numeric[k][i]).collect()),
-                levels: None,
-            });
-        }
+        countries.extend(missing.iter().map(|&i| view.codes[i].clone()));
+        cells.extend(filled_cells(view, &ind.column, &ind.label, &missing, |i| {
+            let values = result.completed.iter().map(|c| c.numeric[k][i]).collect();
+            (Some(values), None)
+        }));
         observed_vs_imputed.push(ObservedImputed {
             indicator: ind.column.clone(),
             label: ind.label.clone(),
@@ -275,23 +294,12 @@ pub fn complete(
             continue;
         }
         indicators_filled.push((ind.column.clone(), missing.len()));
-        for &i in &missing {
-            countries.push(view.codes[i].clone());
-            cells.push(FilledCell {
-                code: view.codes[i].clone(),
-                name: view.names[i].clone(),
-                indicator: ind.column.clone(),
-                label: ind.label.clone(),
-                values: None,
-                levels: Some(
-                    result
-                        .completed
-                        .iter()
-                        .map(|c| ind.levels[c.categorical[k][i]].clone())
-                        .collect(),
-                ),
-            });
-        }
+        countries.extend(missing.iter().map(|&i| view.codes[i].clone()));
+        cells.extend(filled_cells(view, &ind.column, &ind.label, &missing, |i| {
+            let levels = result.completed.iter();
+            let levels = levels.map(|c| ind.levels[c.categorical[k][i]].clone());
+            (None, Some(levels.collect()))
+        }));
         let mut observed = vec![0; ind.levels.len()];
         for &l in ind.values.iter().flatten() {
             if let Some(n) = observed.get_mut(l) {

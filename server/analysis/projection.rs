@@ -346,18 +346,8 @@ pub fn projection_with(
             )));
         }
     }
-    let indicators: Vec<usize> = match &settings.covariates {
-        None => (0..view.numeric.len()).collect(),
-        Some(names) => names
-            .iter()
-            .map(|n| {
-                view.numeric
-                    .iter()
-                    .position(|c| &c.column == n)
-                    .ok_or_else(|| req(format!("'{n}' is not a numeric indicator")))
-            })
-            .collect::<Result<_, _>>()?,
-    };
+    let indicators = super::design::covariate_positions(view, settings)
+        .map_err(|n| req(format!("'{n}' is not a numeric indicator")))?;
     let countries_col = micro.texts(&roles.country);
     let waves = micro.integers(&roles.wave);
     let outcome = micro.numbers(&ps.outcome);

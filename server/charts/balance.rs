@@ -44,12 +44,7 @@ fn draw(b: &BalanceComparison, root: &Area<'_>) -> DrawResult {
     ];
     let body = headed(root, TITLE, &keys)?;
     {
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(28)
-            .x_label_area_size(56)
-            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+        let mut chart = super::body_chart(&body, 28, 56, label_area(&labels, LABEL_FONT, 160))
             .build_cartesian_2d(-extent..extent, -0.6..(n as f64 - 0.4))?;
         chart
             .configure_mesh()

@@ -42,12 +42,7 @@ fn draw(overview: &Overview, root: &Area<'_>) -> DrawResult {
         .map(|(i, g)| Key::new(g.group.clone(), Glyph::LineMarker(i, colour(i))))
         .collect();
     let body = headed(root, &title, &keys)?;
-    let mut chart = ChartBuilder::on(&body)
-        .margin(16)
-        .margin_top(4)
-        .margin_right(28)
-        .x_label_area_size(60)
-        .y_label_area_size(76)
+    let mut chart = super::body_chart(&body, 28, 60, 76)
         .build_cartesian_2d((first - pad)..(last + pad), -2.0..104.0)?;
     chart
         .configure_mesh()

@@ -37,12 +37,7 @@ pub fn pooled(r: &ImpactReport) -> String {
         let pad = 0.1 * (hi - lo).max(1e-9);
         let labels: Vec<String> = rows.iter().map(|r| r.0.to_string()).collect();
         let body = headed(root, &title, &[])?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(40)
-            .x_label_area_size(56)
-            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+        let mut chart = super::body_chart(&body, 40, 56, label_area(&labels, LABEL_FONT, 160))
             .build_cartesian_2d((lo - pad)..(hi + pad), -0.5..(n as f64 - 0.5))?;
         chart
             .configure_mesh()
@@ -116,12 +111,7 @@ pub fn coefficients(r: &ImpactReport) -> String {
             .map(|(vi, v)| Key::new(v.label.clone(), Glyph::Marker(vi, colour(vi))))
             .collect();
         let body = headed(root, TITLE, &keys)?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(40)
-            .x_label_area_size(56)
-            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+        let mut chart = super::body_chart(&body, 40, 56, label_area(&labels, LABEL_FONT, 160))
             .build_cartesian_2d(-extent * 1.1..extent * 1.1, -0.5..(nt as f64 - 0.5))?;
         chart
             .configure_mesh()

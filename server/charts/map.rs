@@ -95,24 +95,10 @@ fn map_with(
             "Eligible countries on the first two components",
             &keys,
         )?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(24)
-            .x_label_area_size(56)
-            .y_label_area_size(76)
+        let mut chart = super::body_chart(&body, 24, 56, 76)
             .build_cartesian_2d(span(&|p| p.pc1), span(&|p| p.pc2))?;
         let share = |k: usize| c.components.get(k).map_or(0.0, |x| 100.0 * x.explained);
-        chart
-            .configure_mesh()
-            .light_line_style(WHITE.mix(0.0))
-            .x_desc(format!("Component 1 ({:.0}% of variance)", share(0)))
-            .y_desc(format!("Component 2 ({:.0}% of variance)", share(1)))
-            .x_label_formatter(&|x| super::tick(*x, 1))
-            .y_label_formatter(&|y| super::tick(*y, 1))
-            .label_style(font(LABEL_FONT))
-            .axis_desc_style(font(LABEL_FONT))
-            .draw()?;
+        super::component_axes(&mut chart, share(0), share(1), LABEL_FONT)?;
         chart.draw_series(
             c.points
                 .iter()
@@ -235,12 +221,7 @@ pub fn spreads(c: &CoverageReport) -> String {
             Key::new("Participants (lower bar)", Glyph::Bar(p_colour)),
         ];
         let body = headed(root, TITLE, &keys)?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(28)
-            .x_label_area_size(56)
-            .y_label_area_size(label_area(&labels, LABEL_FONT, 160))
+        let mut chart = super::body_chart(&body, 28, 56, label_area(&labels, LABEL_FONT, 160))
             .build_cartesian_2d(-extent..extent, -0.5..(n as f64 - 0.5))?;
         chart
             .configure_mesh()

@@ -356,6 +356,46 @@ pub fn headed<'b>(
     Ok(body)
 }
 
+/// The builder of a chart in the area `headed` leaves: the margins every slide chart
+/// shares (16 px, 4 px under the legend, `right` px on the right for the last tick label),
+/// `x_area` px for the x axis labels and `y_area` px for the y axis labels.
+pub fn body_chart<'a, 'b, 'c>(
+    body: &'a Area<'c>,
+    right: u32,
+    x_area: u32,
+    y_area: u32,
+) -> ChartBuilder<'a, 'b, SVGBackend<'c>> {
+    let mut builder = ChartBuilder::on(body);
+    builder
+        .margin(16)
+        .margin_top(4)
+        .margin_right(right)
+        .x_label_area_size(x_area)
+        .y_label_area_size(y_area);
+    builder
+}
+
+/// The axes of a map on the first two principal components: no grid, each axis named
+/// with the share of variance (in percent) its component explains.
+pub fn component_axes(
+    chart: &mut Chart<'_, '_>,
+    share_1: f64,
+    share_2: f64,
+    label_font: u32,
+) -> DrawResult {
+    chart
+        .configure_mesh()
+        .light_line_style(WHITE.mix(0.0))
+        .x_desc(format!("Component 1 ({share_1:.0}% of variance)"))
+        .y_desc(format!("Component 2 ({share_2:.0}% of variance)"))
+        .x_label_formatter(&|x| tick(*x, 1))
+        .y_label_formatter(&|y| tick(*y, 1))
+        .label_style(font(label_font))
+        .axis_desc_style(font(label_font))
+        .draw()?;
+    Ok(())
+}
+
 /// A box in pixels: left, top, right, bottom.
 pub type PixelBox = (i32, i32, i32, i32);
 

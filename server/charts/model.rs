@@ -28,12 +28,7 @@ pub fn propensity_vs_weight(r: &FitReport) -> String {
             Key::new("Did not take part (no weight)", Glyph::Cross(GREY)),
         ];
         let body = headed(root, TITLE, &keys)?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(28)
-            .x_label_area_size(56)
-            .y_label_area_size(76)
+        let mut chart = super::body_chart(&body, 28, 56, 76)
             .build_cartesian_2d(0.0..1.0, -0.04 * max_weight..max_weight)?;
         chart
             .configure_mesh()
@@ -116,13 +111,8 @@ pub fn overlap(r: &FitReport) -> String {
             ),
         ];
         let body = headed(root, TITLE, &keys)?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(28)
-            .x_label_area_size(56)
-            .y_label_area_size(76)
-            .build_cartesian_2d(0.0..1.0, -top..top)?;
+        let mut chart =
+            super::body_chart(&body, 28, 56, 76).build_cartesian_2d(0.0..1.0, -top..top)?;
         chart
             .configure_mesh()
             .light_line_style(WHITE.mix(0.0))

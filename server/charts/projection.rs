@@ -106,24 +106,10 @@ pub fn component_map(r: &ProjectionReport) -> String {
             Glyph::Square(ramp(1.0)),
         ));
         let body = headed(root, &title, &keys)?;
-        let mut chart = ChartBuilder::on(&body)
-            .margin(16)
-            .margin_top(4)
-            .margin_right(24)
-            .x_label_area_size(56)
-            .y_label_area_size(76)
+        let mut chart = super::body_chart(&body, 24, 56, 76)
             .build_cartesian_2d(span(&|s| s.1), span(&|s| s.2))?;
         let share = |k: usize| r.map_explained.get(k).map_or(0.0, |x| 100.0 * x);
-        chart
-            .configure_mesh()
-            .light_line_style(WHITE.mix(0.0))
-            .x_desc(format!("Component 1 ({:.0}% of variance)", share(0)))
-            .y_desc(format!("Component 2 ({:.0}% of variance)", share(1)))
-            .x_label_formatter(&|x| super::tick(*x, 1))
-            .y_label_formatter(&|y| super::tick(*y, 1))
-            .label_style(font(LABEL_FONT))
-            .axis_desc_style(font(LABEL_FONT))
-            .draw()?;
+        super::component_axes(&mut chart, share(0), share(1), LABEL_FONT)?;
         let outline = BLACK.mix(0.6).stroke_width(1);
         for &(c, x, y, v) in &shown {
             let fill = shade(v).filled();

@@ -962,16 +962,7 @@ fn finish(
             }
         }
     };
-    let se = (0..p)
-        .map(|k| {
-            let v = cov[[k, k]];
-            if v.is_finite() && v >= 0.0 {
-                v.sqrt()
-            } else {
-                f64::NAN
-            }
-        })
-        .collect();
+    let se = standard_errors(&cov);
     let tau2 = tau * tau;
     let mut mode_variance = vec![tau2; data.n_groups];
     for j in 0..data.n_groups {
@@ -1119,6 +1110,21 @@ fn at_zero(d: &Grouped) -> AtZero {
     }
 }
 
+/// Standard errors from the diagonal of a covariance: NaN where a variance is negative
+/// or not a number (the covariance was not estimable there).
+fn standard_errors(cov: &Array2<f64>) -> Vec<f64> {
+    (0..cov.nrows())
+        .map(|k| {
+            let v = cov[[k, k]];
+            if v.is_finite() && v >= 0.0 {
+                v.sqrt()
+            } else {
+                f64::NAN
+            }
+        })
+        .collect()
+}
+
 /// The fit at the boundary tau = 0: the ordinary logistic regression, whose information is
 /// the Laplace approximation's in b there (its cross terms with tau vanish, the
 /// likelihood being even in tau); every country's mode and conditional variance 0.
@@ -1132,16 +1138,7 @@ fn boundary_fit(
     let p = grouped.p;
     let cov = linalg::inverse_spd(zero.info.view())
         .unwrap_or_else(|_| Array2::from_elem((p, p), f64::NAN));
-    let se = (0..p)
-        .map(|k| {
-            let v = cov[[k, k]];
-            if v.is_finite() && v >= 0.0 {
-                v.sqrt()
-            } else {
-                f64::NAN
-            }
-        })
-        .collect();
+    let se = standard_errors(&cov);
     MultilevelFit {
         coef: zero.beta.to_vec(),
         se,

@@ -704,28 +704,23 @@ impl LinearSums {
     /// The sums under weights `factor[g]` times the base weights; clusters whose factor is
     /// not positive (or not a number) are left out, as rows without weight are.
     pub fn scaled(&self, factor: &[f64]) -> LinearSums {
-        let keep = |g: usize| factor.get(g).is_some_and(|f| *f > 0.0);
+        let kept = |g: usize| factor.get(g).copied().filter(|f| *f > 0.0);
+        let scale = |g: usize| kept(g).unwrap_or(0.0);
         LinearSums {
-            m: (0..self.m.len())
-                .map(|g| {
-                    if keep(g) {
-                        &self.m[g] * factor[g]
-                    } else {
-                        self.m[g].clone() * 0.0
-                    }
-                })
+            m: self
+                .m
+                .iter()
+                .enumerate()
+                .map(|(g, m)| m * scale(g))
                 .collect(),
-            b: (0..self.b.len())
-                .map(|g| {
-                    if keep(g) {
-                        &self.b[g] * factor[g]
-                    } else {
-                        self.b[g].clone() * 0.0
-                    }
-                })
+            b: self
+                .b
+                .iter()
+                .enumerate()
+                .map(|(g, b)| b * scale(g))
                 .collect(),
             rows: (0..self.rows.len())
-                .map(|g| if keep(g) { self.rows[g] } else { 0 })
+                .map(|g| if kept(g).is_some() { self.rows[g] } else { 0 })
                 .collect(),
         }
     }
@@ -852,28 +847,21 @@ pub mod student {
         for m in 1..=10_000 {
             let m = f64::from(m);
             let m2 = 2.0 * m;
-            let aa = m * (b - m) * x / ((qam + m2) * (a + m2));
-            d = 1.0 + aa * d;
-            if d.abs() < TINY {
-                d = TINY;
-            }
-            c = 1.0 + aa / c;
-            if c.abs() < TINY {
-                c = TINY;
-            }
-            d = 1.0 / d;
-            h *= d * c;
-            let aa = -(a + m) * (qab + m) * x / ((a + m2) * (qap + m2));
-            d = 1.0 + aa * d;
-            if d.abs() < TINY {
-                d = TINY;
-            }
-            c = 1.0 + aa / c;
-            if c.abs() < TINY {
-                c = TINY;
-            }
-            d = 1.0 / d;
-            let delta = d * c;
+            // One step of the modified Lentz recurrence: the factor it multiplies h by.
+            let mut lentz = |aa: f64| {
+                d = 1.0 + aa * d;
+                if d.abs() < TINY {
+                    d = TINY;
+                }
+                c = 1.0 + aa / c;
+                if c.abs() < TINY {
+                    c = TINY;
+                }
+                d = 1.0 / d;
+                d * c
+            };
+            h *= lentz(m * (b - m) * x / ((qam + m2) * (a + m2)));
+            let delta = lentz(-(a + m) * (qab + m) * x / ((a + m2) * (qap + m2)));
             h *= delta;
             if (delta - 1.0).abs() < 1e-16 {
                 break;

@@ -5,7 +5,6 @@ use std::sync::Arc;
 use askama::Template;
 use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
-use axum::Json;
 
 use super::context::{off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
@@ -59,7 +58,7 @@ impl BalancePage<'_> {
     }
 }
 
-fn compute(
+pub(super) fn compute(
     state: &AppState,
     query: &super::context::Query,
 ) -> AppResult<(SettingsForm, BalanceResult)> {
@@ -118,13 +117,6 @@ pub async fn page(
     }
     .render()?;
     Ok(Html(html))
-}
-
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Json<BalanceResult>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(

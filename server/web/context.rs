@@ -96,6 +96,16 @@ pub fn normalised_settings(project: &Project, query: &Query) -> AppResult<Settin
         .with_indicators_in_order(&indicators.numeric, &indicators.categorical))
 }
 
+/// The respondent variables the project's microdata declares (none without microdata).
+pub fn microdata_variables(project: &Project) -> Vec<String> {
+    project
+        .manifest
+        .microdata
+        .as_ref()
+        .map(|m| m.variables.clone())
+        .unwrap_or_default()
+}
+
 /// The project, the settings (normalised; wave filled in: the latest when not given) and
 /// the view.
 pub fn resolve(state: &AppState, query: &Query) -> AppResult<(Arc<Project>, Settings, WaveView)> {
@@ -146,8 +156,16 @@ pub fn presenting(query: &Query) -> bool {
 impl SettingsForm {
     pub fn new(action: &'static str, project: &Project, settings: &Settings) -> Self {
         let m = &project.manifest;
-        let chosen = |list: &Option<Vec<String>>, column: &String| {
-            list.as_ref().is_none_or(|l| l.contains(column))
+        // The indicators offered, each ticked when the list names it (all when it is None).
+        let indicator_choices = |columns: &[String], list: &Option<Vec<String>>| {
+            columns
+                .iter()
+                .map(|c| Choice {
+                    value: c.clone(),
+                    label: m.label(c).to_string(),
+                    selected: list.as_ref().is_none_or(|l| l.contains(c)),
+                })
+                .collect()
         };
         SettingsForm {
             action,
@@ -210,26 +228,8 @@ impl SettingsForm {
             .collect(),
             imputations: settings.imputations,
             seed: settings.seed,
-            covariates: m
-                .indicators
-                .numeric
-                .iter()
-                .map(|c| Choice {
-                    value: c.clone(),
-                    label: m.label(c).to_string(),
-                    selected: chosen(&settings.covariates, c),
-                })
-                .collect(),
-            factors: m
-                .indicators
-                .categorical
-                .iter()
-                .map(|c| Choice {
-                    value: c.clone(),
-                    label: m.label(c).to_string(),
-                    selected: chosen(&settings.factors, c),
-                })
-                .collect(),
+            covariates: indicator_choices(&m.indicators.numeric, &settings.covariates),
+            factors: indicator_choices(&m.indicators.categorical, &settings.factors),
             query: settings.to_query(),
             present: false,
         }
@@ -415,6 +415,34 @@ where
     run(Lane::Heavy, state, query, compute).await
 }
 
+/// The future a JSON twin handler answers with (see `json_twin`).
+pub type TwinAnswer<J> =
+    std::pin::Pin<Box<dyn std::future::Future<Output = AppResult<axum::Json<J>>> + Send>>;
+
+/// The handler of a page's JSON twin: the page's own computation on `lane`, through the
+/// same result cache as the page, answering the part `result` picks from it. One handler
+/// for the pages whose twin is their result as it stands.
+pub fn json_twin<T, J>(
+    lane: Lane,
+    compute: fn(&AppState, &Query) -> AppResult<T>,
+    result: fn(T) -> J,
+) -> impl Fn(axum::extract::State<Arc<AppState>>, axum::extract::Query<Query>) -> TwinAnswer<J>
+       + Clone
+       + Send
+       + Sync
+       + 'static
+where
+    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
+    J: Serialize + Send + 'static,
+{
+    move |axum::extract::State(state), axum::extract::Query(query)| {
+        Box::pin(async move {
+            let answer = run(lane, &state, &query, compute).await?;
+            Ok(axum::Json(result(answer)))
+        })
+    }
+}
+
 async fn run<T>(
     lane: Lane,
     state: &Arc<AppState>,
@@ -532,6 +560,8 @@ mod cache_key_tests {
 
     /// Every field of every page's typed settings, with a change of it in the query (the
     /// base query first); fields no query key sets are listed in `FIXED`.
+    // One change a line: a table reads best unwrapped.
+    #[rustfmt::skip]
     const CHANGES: [(&str, &str, &str, &str); 37] = [
         ("settings", "wave", "", "wave=3"),
         ("settings", "model", "", "model=probit"),
@@ -542,12 +572,7 @@ mod cache_key_tests {
         ("settings", "missing", "", "missing=median-fill"),
         ("settings", "match_variances", "", "variances=1"),
         ("settings", "seed", "", "seed=5"),
-        (
-            "settings",
-            "imputations",
-            "missing=impute",
-            "missing=impute&imputations=5",
-        ),
+        ("settings", "imputations", "missing=impute", "missing=impute&imputations=5"),
         ("plan", "budget", "", "budget=3"),
         ("plan", "cost_budget", "", "cost_budget=1000"),
         ("plan", "cost_column", "", "cost_column=support_cost"),
@@ -557,34 +582,14 @@ mod cache_key_tests {
         ("plan", "joiners", "joiner=XAB", "joiner=XAC"),
         ("plan", "support", "", "support=none"),
         ("impact", "outcome", "", "outcome=left_right"),
-        (
-            "impact",
-            "predictors",
-            "predictor=age",
-            "predictor=age&predictor=female",
-        ),
+        ("impact", "predictors", "predictor=age", "predictor=age&predictor=female"),
         ("impact", "kind", "", "kind=logistic"),
-        (
-            "impact",
-            "country_indicators",
-            "",
-            "country_indicator=log_gdp_pc",
-        ),
-        (
-            "impact",
-            "shares",
-            "",
-            "shares=population&population=log_population",
-        ),
+        ("impact", "country_indicators", "", "country_indicator=log_gdp_pc"),
+        ("impact", "shares", "", "shares=population&population=log_population"),
         ("impact", "replicates", "", "replicates=49"),
         ("impact", "wild_replicates", "", "wild_replicates=19"),
         ("bounds", "outcome", "", "outcome=left_right"),
-        (
-            "bounds",
-            "shares",
-            "",
-            "shares=population&population=log_population",
-        ),
+        ("bounds", "shares", "", "shares=population&population=log_population"),
         ("bounds", "reference", "", "reference=zero"),
         ("bounds", "replicates", "", "bounds_bootstrap=49"),
         ("projection", "outcome", "", "outcome=age"),

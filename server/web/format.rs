@@ -8,16 +8,8 @@ fn fixed(x: f64, decimals: usize) -> String {
     if !x.is_finite() {
         return "–".to_string();
     }
-    let s = format!("{x:.decimals$}");
-    // Negative zero reads as a difference that is not there.
-    if s.trim_start_matches('-')
-        .chars()
-        .all(|c| c == '0' || c == '.')
-    {
-        s.trim_start_matches('-').to_string()
-    } else {
-        s.replace('-', "−")
-    }
+    // Negative zero reads as a difference that is not there: the tick labels drop it too.
+    crate::charts::tick(x, decimals).replace('-', "−")
 }
 
 impl Fmt {

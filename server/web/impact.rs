@@ -371,12 +371,7 @@ pub async fn page(
     let form = form.presenting(&query);
     let bounds = super::impact_bounds::section(&state, &query).await;
     let project = state.project();
-    let variables = project
-        .manifest
-        .microdata
-        .as_ref()
-        .map(|m| m.variables.clone())
-        .unwrap_or_default();
+    let variables = super::context::microdata_variables(&project);
     let indicators = &project.manifest.indicators.numeric;
     let html = ImpactPage {
         page: "impact",

@@ -6,7 +6,6 @@ use std::sync::Arc;
 
 use axum::extract::{Path, Query, State};
 use axum::response::Response;
-use axum::Json;
 
 use super::context::{off_thread_heavy, resolve, Query as PageQuery, BOUNDS_KEYS};
 use super::error::{AppError, AppResult};
@@ -61,7 +60,7 @@ pub fn bounds_settings(
     })
 }
 
-fn compute(state: &AppState, query: &PageQuery) -> AppResult<SelectionBounds> {
+pub(super) fn compute(state: &AppState, query: &PageQuery) -> AppResult<SelectionBounds> {
     let (project, settings, view) = resolve(state, query)?;
     let bs = bounds_settings(&project, query)?;
     Ok(selection_bounds(Some(&project), &view, &settings, &bs)?)
@@ -111,13 +110,6 @@ pub async fn section(state: &Arc<AppState>, query: &PageQuery) -> Section {
         reference_kind,
         reference_number,
     }
-}
-
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Json<SelectionBounds>> {
-    Ok(Json(off_thread_heavy(&state, &query, compute).await?))
 }
 
 pub async fn artifact(

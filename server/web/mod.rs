@@ -28,8 +28,10 @@ use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
 use axum::{Json, Router};
 
+use context::json_twin;
 use error::{AppError, AppResult};
 pub use state::AppState;
+use work::Lane;
 
 /// Our stylesheet and icon, compiled into the binary so that an installed `gapwise`
 /// needs no checkout.
@@ -68,11 +70,17 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/api/imputation", get(overview::imputation_json))
         // Balance
         .route("/balance", get(balance::page))
-        .route("/api/balance", get(balance::json))
+        .route(
+            "/api/balance",
+            get(json_twin(Lane::Light, balance::compute, |(_, b)| b)),
+        )
         .route("/balance/{item}", get(balance::artifact))
         // Participation model
         .route("/model", get(model::page))
-        .route("/api/model", get(model::json))
+        .route(
+            "/api/model",
+            get(json_twin(Lane::Light, model::compute, |(_, r)| r)),
+        )
         .route("/model/{item}", get(model::artifact))
         // Coverage
         .route("/coverage", get(coverage::page))
@@ -86,17 +94,26 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/impact", get(impact::page))
         .route("/api/impact", get(impact::json))
         .route("/impact/{item}", get(impact::artifact))
-        .route("/api/impact/bounds", get(impact_bounds::json))
+        .route(
+            "/api/impact/bounds",
+            get(json_twin(Lane::Heavy, impact_bounds::compute, |b| b)),
+        )
         .route("/impact/bounds/{item}", get(impact_bounds::artifact))
         // Projection to the whole eligible universe
         .route("/projection", get(projection::page))
-        .route("/api/projection", get(projection::json))
+        .route(
+            "/api/projection",
+            get(json_twin(Lane::Light, projection::compute, |(_, r, _)| r)),
+        )
         .route("/projection/{item}", get(projection::artifact))
         // Meeting report
         .route("/report", get(report::download))
         // Sensitivity
         .route("/sensitivity", get(sensitivity::page))
-        .route("/api/sensitivity", get(sensitivity::json))
+        .route(
+            "/api/sensitivity",
+            get(json_twin(Lane::Heavy, sensitivity::compute, |(_, s)| s)),
+        )
         .route("/sensitivity/{item}", get(sensitivity::artifact))
         // Projects
         .route("/api/reload", post(reload))

@@ -6,7 +6,6 @@ use std::sync::Arc;
 use askama::Template;
 use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
-use axum::Json;
 
 use super::context::{off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
@@ -35,7 +34,7 @@ struct ModelPage<'a> {
     cautions: &'a [Caution],
 }
 
-fn compute(
+pub(super) fn compute(
     state: &AppState,
     query: &super::context::Query,
 ) -> AppResult<(SettingsForm, FitReport)> {
@@ -93,13 +92,6 @@ pub async fn page(
     }
     .render()?;
     Ok(Html(html))
-}
-
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Json<FitReport>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(

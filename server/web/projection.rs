@@ -6,7 +6,6 @@ use std::sync::Arc;
 use askama::Template;
 use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
-use axum::Json;
 
 use super::context::{off_thread, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
@@ -101,12 +100,7 @@ pub(crate) fn compute(
     } else {
         projection_with(&project, &view, &settings, &ps, &options)?
     };
-    let variables = project
-        .manifest
-        .microdata
-        .as_ref()
-        .map(|m| m.variables.clone())
-        .unwrap_or_default();
+    let variables = super::context::microdata_variables(&project);
     Ok((form, r, variables))
 }
 
@@ -157,13 +151,6 @@ pub async fn page(
     }
     .render()?;
     Ok(Html(html))
-}
-
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Json<ProjectionReport>> {
-    Ok(Json(off_thread(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(

@@ -5,7 +5,6 @@ use std::sync::Arc;
 use askama::Template;
 use axum::extract::{Path, Query, State};
 use axum::response::{Html, Response};
-use axum::Json;
 
 use super::context::{off_thread_heavy, resolve, SettingsForm};
 use super::error::{AppError, AppResult};
@@ -30,7 +29,7 @@ struct SensitivityPage<'a> {
     cautions: &'a [Caution],
 }
 
-fn compute(
+pub(super) fn compute(
     state: &AppState,
     query: &super::context::Query,
 ) -> AppResult<(SettingsForm, Sensitivity)> {
@@ -67,13 +66,6 @@ pub async fn page(
     }
     .render()?;
     Ok(Html(html))
-}
-
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Json<Sensitivity>> {
-    Ok(Json(off_thread_heavy(&state, &query, compute).await?.1))
 }
 
 pub async fn artifact(
