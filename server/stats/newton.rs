@@ -23,10 +23,22 @@ pub fn halving_step<S>(
     from: &Array1<f64>,
     step: &Array1<f64>,
     floor: f64,
+    evaluate: impl FnMut(&Array1<f64>) -> Option<(S, f64)>,
+) -> Option<(Array1<f64>, S, f64)> {
+    halving_step_to(from, step, floor, MAX_HALVINGS, evaluate)
+}
+
+/// [`halving_step`] with at most `halvings` tries (a fit whose moves below some size no
+/// longer count gives up sooner instead of evaluating steps that change nothing).
+pub fn halving_step_to<S>(
+    from: &Array1<f64>,
+    step: &Array1<f64>,
+    floor: f64,
+    halvings: usize,
     mut evaluate: impl FnMut(&Array1<f64>) -> Option<(S, f64)>,
 ) -> Option<(Array1<f64>, S, f64)> {
     let mut t = 1.0;
-    for _ in 0..MAX_HALVINGS {
+    for _ in 0..halvings {
         let candidate = from + &(step * t);
         if let Some((state, objective)) = evaluate(&candidate) {
             if objective.is_finite() && objective >= floor {
