@@ -621,24 +621,50 @@ impl ClusterSums {
             .present
             .iter()
             .fold(Array1::<f64>::zeros(k), |a, &g| a + &c[g]);
+        // Only the t of term j is needed: with e_j'B the bread's row j, cluster g's score
+        // u_g = c_g + v_g d_g - M_g beta enters the CR1 variance of b_j through
+        // e_j'B u_g = alpha_g + v_g delta_g - rho_g'beta, with alpha_g = e_j'B c_g,
+        // delta_g = e_j'B d_g and rho_g = M_g B e_j fixed across replicates, so a replicate
+        // costs O(G k) rather than the full covariance's O(G k^2) with its temporaries.
         let bread = &full.bread;
+        let row_j = bread.row(j);
+        let present = &self.present;
+        let alpha: Vec<f64> = present.iter().map(|&g| row_j.dot(&c[g])).collect();
+        let delta: Vec<f64> = present.iter().map(|&g| row_j.dot(&d[g])).collect();
+        let rho: Vec<f64> = present
+            .iter()
+            .flat_map(|&g| self.m[g].dot(&row_j).to_vec())
+            .collect();
+        let d_flat: Vec<f64> = present.iter().flat_map(|&g| d[g].to_vec()).collect();
+        let bread_flat: Vec<f64> = bread.iter().copied().collect();
+        let (gf, nf) = (present.len() as f64, self.n as f64);
+        let cr1 = (gf / (gf - 1.0)) * ((nf - 1.0) / (nf - k as f64));
         let mut rng = crate::stats::random::Rng::new(seed);
         let mut exceed = 0usize;
+        let (mut rhs, mut beta) = (vec![0.0; k], vec![0.0; k]);
         for _ in 0..replicates {
-            let v = cluster_multipliers(&mut rng, self.present.len());
-            let rhs = self
-                .present
-                .iter()
-                .zip(&v)
-                .fold(sum_c.clone(), |a, (&g, &vg)| a + &(&d[g] * vg));
-            let beta = bread.dot(&rhs);
-            let mut scores = Array2::<f64>::zeros((self.present.len(), k));
-            for (r, (&g, &vg)) in self.present.iter().zip(&v).enumerate() {
-                let u = &c[g] + &(&d[g] * vg) - self.m[g].dot(&beta);
-                scores.row_mut(r).assign(&u);
+            let v = cluster_multipliers(&mut rng, present.len());
+            rhs.copy_from_slice(sum_c.as_slice().unwrap_or(&[]));
+            for (dg, &vg) in d_flat.chunks_exact(k).zip(&v) {
+                for (r, dv) in rhs.iter_mut().zip(dg) {
+                    *r += vg * dv;
+                }
             }
-            let cov = cluster_covariance(bread, &scores, self.n);
-            let t = beta[j] / cov[[j, j]].max(0.0).sqrt();
+            for (b, bread_row) in beta.iter_mut().zip(bread_flat.chunks_exact(k)) {
+                *b = bread_row.iter().zip(&rhs).map(|(p, q)| p * q).sum();
+            }
+            let meat_jj: f64 = (0..present.len())
+                .map(|r| {
+                    let rho_beta: f64 = rho[r * k..(r + 1) * k]
+                        .iter()
+                        .zip(&beta)
+                        .map(|(p, q)| p * q)
+                        .sum();
+                    let score = alpha[r] + v[r] * delta[r] - rho_beta;
+                    score * score
+                })
+                .sum();
+            let t = beta[j] / (meat_jj * cr1).max(0.0).sqrt();
             if t.abs() >= t_observed.abs() - 1e-12 {
                 exceed += 1;
             }
