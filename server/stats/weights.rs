@@ -332,15 +332,16 @@ impl GmmDescent {
 }
 
 fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
+    let problem = GmmProblem::new(x.view(), t);
     let mut b = b0.clone();
     let mut out = GmmDescent::at(&b);
-    let Some(mut point) = gmm_point(x, t, &b).filter(|p| p.q.is_finite()) else {
+    let Some(mut point) = gmm_point(&problem, &b).filter(|p| p.q.is_finite()) else {
         return out;
     };
     for iteration in 1..=GMM_MAX_ITERATIONS {
         out.iterations = iteration;
-        let grad = gmm_gradient(x, t, &point);
-        let hessian = gmm_hessian(x, t, &point);
+        let grad = gmm_gradient(&problem, &point);
+        let hessian = gmm_hessian(&problem, &point);
         let Some((step, positive_definite)) = modified_newton_step(&hessian, &grad) else {
             break;
         };
@@ -354,8 +355,7 @@ fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
         // (S is nearly singular, so Q carries far more than one unit of rounding), and the
         // full step of the accurate gradient is taken unless Q rises clearly.
         let Some((candidate, next)) = gmm_halving(
-            x,
-            t,
+            &problem,
             &b,
             &step,
             point.q,
@@ -377,8 +377,7 @@ fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
 /// judges a halving; the gradient waits for the accepted one), or `None` when no halving
 /// is accepted.
 fn gmm_halving(
-    x: ArrayView2<f64>,
-    t: &[bool],
+    problem: &GmmProblem,
     b: &Array1<f64>,
     step: &Array1<f64>,
     q: f64,
@@ -396,7 +395,7 @@ fn gmm_halving(
         1
     };
     newton::halving_step_to(b, step, floor, halvings, |c| {
-        let point = gmm_point(x, t, c).filter(|p| p.q.is_finite())?;
+        let point = gmm_point(problem, c).filter(|p| p.q.is_finite())?;
         let minus_q = -point.q;
         Some((point, minus_q))
     })
@@ -465,7 +464,26 @@ impl UnitDerivatives {
     }
 }
 
-fn gmm_point(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> Option<GmmPoint> {
+/// The data of one over-identified fit, with its rows' pair products (the criterion forms
+/// three weighted cross-products of X per evaluation and the Hessian three more).
+struct GmmProblem<'a> {
+    x: ArrayView2<'a, f64>,
+    t: &'a [bool],
+    pairs: linalg::RowPairs,
+}
+
+impl<'a> GmmProblem<'a> {
+    fn new(x: ArrayView2<'a, f64>, t: &'a [bool]) -> Self {
+        GmmProblem {
+            x,
+            t,
+            pairs: linalg::RowPairs::new(x),
+        }
+    }
+}
+
+fn gmm_point(problem: &GmmProblem, b: &Array1<f64>) -> Option<GmmPoint> {
+    let (x, t) = (problem.x, problem.t);
     let n = t.len();
     let k = x.ncols();
     let nf = n as f64;
@@ -480,14 +498,17 @@ fn gmm_point(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> Option<GmmPoint
     let mut g = Array1::<f64>::zeros(2 * k);
     g.slice_mut(ndarray::s![..k]).assign(&x.t().dot(&score));
     g.slice_mut(ndarray::s![k..]).assign(&x.t().dot(&balance));
-    let v11: Array1<f64> = p.iter().map(|p| p * (1.0 - p) / nf).collect();
-    let v12: Array1<f64> = p.iter().map(|p| (1.0 - p) / nf).collect();
-    let v22: Array1<f64> = p.iter().map(|p| (1.0 - p) / p / nf).collect();
-    let s = stacked_blocks(
-        &linalg::weighted_cross_product(x, v11.view()),
-        &linalg::weighted_cross_product(x, v12.view()),
-        &linalg::weighted_cross_product(x, v22.view()),
-    );
+    // Columns v11, v12, v22 of S's blocks.
+    let v = Array2::from_shape_fn((n, 3), |(i, c)| {
+        let p = p[i];
+        match c {
+            0 => p * (1.0 - p) / nf,
+            1 => (1.0 - p) / nf,
+            _ => (1.0 - p) / p / nf,
+        }
+    });
+    let blocks = problem.pairs.weighted(v.view());
+    let s = stacked_blocks(&blocks[0], &blocks[1], &blocks[2]);
     let s_factor = linalg::cholesky(s.view()).ok()?;
     let a = linalg::cholesky_solve(&s_factor, g.view());
     let q = g.dot(&a);
@@ -519,14 +540,16 @@ fn stacked_blocks(m11: &Array2<f64>, m12: &Array2<f64>, m22: &Array2<f64>) -> Ar
 /// S is singular.
 #[cfg(test)]
 fn gmm_objective(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> (f64, Array1<f64>) {
-    match gmm_point(x, t, b) {
-        Some(point) => (point.q, gmm_gradient(x, t, &point)),
+    let problem = GmmProblem::new(x.view(), t);
+    match gmm_point(&problem, b) {
+        Some(point) => (point.q, gmm_gradient(&problem, &point)),
         None => (f64::INFINITY, Array1::zeros(x.ncols())),
     }
 }
 
 /// The gradient of [`gmm_objective`] at a point.
-fn gmm_gradient(x: ArrayView2<f64>, t: &[bool], point: &GmmPoint) -> Array1<f64> {
+fn gmm_gradient(problem: &GmmProblem, point: &GmmPoint) -> Array1<f64> {
+    let (x, t) = (problem.x, problem.t);
     let nf = t.len() as f64;
     let per_unit: Array1<f64> = (0..t.len())
         .map(|i| {
@@ -551,18 +574,18 @@ fn gmm_gradient(x: ArrayView2<f64>, t: &[bool], point: &GmmPoint) -> Array1<f64>
 /// second derivatives with respect to eta: d2psi1 = -p(1-p)(1-2p), d2psi2 = t(1-p)/p,
 /// d2v11 = p(1-p)(1-6p+6p^2), d2v12 = -p(1-p)(1-2p), d2v22 = (1-p)/p. It costs about two
 /// evaluations of the criterion where forward differences cost k + 1.
-fn gmm_hessian(x: ArrayView2<f64>, t: &[bool], point: &GmmPoint) -> Array2<f64> {
+fn gmm_hessian(problem: &GmmProblem, point: &GmmPoint) -> Array2<f64> {
+    let (x, t) = (problem.x, problem.t);
     let (n, k) = (t.len(), x.ncols());
     let nf = n as f64;
-    let mut m1 = Array1::<f64>::zeros(n);
-    let mut m2 = Array1::<f64>::zeros(n);
-    let mut c = Array1::<f64>::zeros(n);
+    // Columns: the weights of M's two blocks and of the second-derivative term c.
+    let mut weights = Array2::<f64>::zeros((n, 3));
     for i in 0..n {
         let (p, ti) = (point.p[i], f64::from(u8::from(t[i])));
         let d = UnitDerivatives::at(p, ti);
         let (u, r) = (point.u[i], point.r[i]);
-        m1[i] = (d.dpsi1 - d.dv11 * u - d.dv12 * r) / nf;
-        m2[i] = (d.dpsi2 - d.dv12 * u - d.dv22 * r) / nf;
+        weights[[i, 0]] = (d.dpsi1 - d.dv11 * u - d.dv12 * r) / nf;
+        weights[[i, 1]] = (d.dpsi2 - d.dv12 * u - d.dv22 * r) / nf;
         let dp = p * (1.0 - p);
         let (d2psi1, d2psi2) = (-dp * (1.0 - 2.0 * p), ti * (1.0 - p) / p);
         let (d2v11, d2v12, d2v22) = (
@@ -570,22 +593,21 @@ fn gmm_hessian(x: ArrayView2<f64>, t: &[bool], point: &GmmPoint) -> Array2<f64> 
             -dp * (1.0 - 2.0 * p),
             (1.0 - p) / p,
         );
-        c[i] = (2.0 * (u * d2psi1 + r * d2psi2)
+        weights[[i, 2]] = (2.0 * (u * d2psi1 + r * d2psi2)
             - (d2v11 * u * u + 2.0 * d2v12 * u * r + d2v22 * r * r))
             / nf;
     }
+    let sums = problem.pairs.weighted(weights.view());
     let mut m = Array2::<f64>::zeros((2 * k, k));
-    m.slice_mut(ndarray::s![..k, ..])
-        .assign(&linalg::weighted_cross_product(x, m1.view()));
-    m.slice_mut(ndarray::s![k.., ..])
-        .assign(&linalg::weighted_cross_product(x, m2.view()));
+    m.slice_mut(ndarray::s![..k, ..]).assign(&sums[0]);
+    m.slice_mut(ndarray::s![k.., ..]).assign(&sums[1]);
     let mut s_inv_m = Array2::<f64>::zeros((2 * k, k));
     for j in 0..k {
         s_inv_m
             .column_mut(j)
             .assign(&linalg::cholesky_solve(&point.s_factor, m.column(j)));
     }
-    let h = 2.0 * m.t().dot(&s_inv_m) + linalg::weighted_cross_product(x, c.view());
+    let h = 2.0 * m.t().dot(&s_inv_m) + &sums[2];
     let ht = h.t().to_owned();
     (h + ht) * 0.5
 }
@@ -958,11 +980,8 @@ mod tests {
             .map(|i| rng.bernoulli(logistic(-0.2 + 0.9 * x[[i, 1]] - 0.5 * x[[i, 3]])))
             .collect();
         for b in [array![0.1, 0.6, -0.2, 0.3], array![-0.4, 1.2, 0.5, -0.8]] {
-            let h = gmm_hessian(
-                x.view(),
-                &t,
-                &gmm_point(x.view(), &t, &b).expect("S regular"),
-            );
+            let problem = GmmProblem::new(x.view(), &t);
+            let h = gmm_hessian(&problem, &gmm_point(&problem, &b).expect("S regular"));
             assert_eq!(h.dim(), (4, 4));
             for j in 0..4 {
                 let step = 1e-5;
