@@ -601,13 +601,9 @@ fn gmm_hessian(problem: &GmmProblem, point: &GmmPoint) -> Array2<f64> {
     let mut m = Array2::<f64>::zeros((2 * k, k));
     m.slice_mut(ndarray::s![..k, ..]).assign(&sums[0]);
     m.slice_mut(ndarray::s![k.., ..]).assign(&sums[1]);
-    let mut s_inv_m = Array2::<f64>::zeros((2 * k, k));
-    for j in 0..k {
-        s_inv_m
-            .column_mut(j)
-            .assign(&linalg::cholesky_solve(&point.s_factor, m.column(j)));
-    }
-    let h = 2.0 * m.t().dot(&s_inv_m) + &sums[2];
+    // M'S^-1 M = (L^-1 M)'(L^-1 M) with S = L L'.
+    let half = linalg::forward_substitute(&point.s_factor, m.view());
+    let h = 2.0 * half.t().dot(&half) + &sums[2];
     let ht = h.t().to_owned();
     (h + ht) * 0.5
 }
