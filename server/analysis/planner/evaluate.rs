@@ -5,7 +5,7 @@
 
 use std::sync::Mutex;
 
-use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 use serde::Serialize;
 
 use crate::analysis::design::{self, Design};
@@ -126,17 +126,18 @@ impl Evaluator {
             0.0
         };
         // Feasibility: every target (0 after centring) strictly inside the members' range.
-        let mut d = Array2::<f64>::zeros((members.len(), k));
-        for (r, &i) in members.iter().enumerate() {
-            d.row_mut(r).assign(&self.moments.row(i));
+        let d = self.moments.select(Axis(0), members);
+        // Each moment's range over the members in one pass along the rows (as they lie
+        // in memory; the evaluation is the search's inner loop).
+        let mut lo = vec![f64::INFINITY; k];
+        let mut hi = vec![f64::NEG_INFINITY; k];
+        for row in d.outer_iter() {
+            for ((l, h), &v) in lo.iter_mut().zip(hi.iter_mut()).zip(row.iter()) {
+                *l = l.min(v);
+                *h = h.max(v);
+            }
         }
-        let inside = (0..k).all(|j| {
-            let column = d.column(j);
-            let (lo, hi) = column
-                .iter()
-                .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
-                    (l.min(v), h.max(v))
-                });
+        let inside = lo.iter().zip(&hi).all(|(&lo, &hi)| {
             lo < -1e-9 && hi > 1e-9 || (hi - lo).abs() < 1e-12 && lo.abs() < 1e-9
         });
         let infeasible = SetMetrics {
