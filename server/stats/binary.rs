@@ -466,15 +466,16 @@ fn newton(
             w[i] = unit_terms(kind, eta[i], y[i]).2;
         }
     }
-    let information = if extreme_units > 0 {
-        linalg::weighted_cross_product(x, w.view())
+    // One eigendecomposition of the information at the estimate gives its scale and, unless
+    // extreme units are left out of it, its inverse on the determined directions too.
+    let eigen = symmetric_eigen(&current.information);
+    let largest = largest_eigenvalue(eigen.as_ref());
+    let eigen = if extreme_units > 0 {
+        symmetric_eigen(&linalg::weighted_cross_product(x, w.view()))
     } else {
-        current.information.clone()
+        eigen
     };
-    let largest = symmetric_eigen(&current.information)
-        .map(|(values, _)| values.iter().fold(0.0f64, |m, &v| m.max(v)))
-        .unwrap_or(0.0);
-    let (cov, weak_directions) = determined_inverse(&information, largest);
+    let (cov, weak_directions) = inverse_on_determined(k, eigen, largest);
     Ok(BinaryFit {
         coef: beta,
         cov,
@@ -502,11 +503,22 @@ fn symmetric_eigen(a: &Array2<f64>) -> Option<(Array1<f64>, Array2<f64>)> {
     a.eigh().ok()
 }
 
-/// The Moore-Penrose inverse of the information on the directions whose eigenvalue is at
-/// least [`WEAK_TOLERANCE`] times `largest`, and the unit eigenvectors of the others.
-fn determined_inverse(information: &Array2<f64>, largest: f64) -> (Array2<f64>, Vec<Array1<f64>>) {
-    let k = information.nrows();
-    let Some((values, vectors)) = symmetric_eigen(information) else {
+/// The largest eigenvalue (0 when there is none or the decomposition failed).
+fn largest_eigenvalue(eigen: Option<&(Array1<f64>, Array2<f64>)>) -> f64 {
+    eigen
+        .map(|(values, _)| values.iter().fold(0.0f64, |m, &v| m.max(v)))
+        .unwrap_or(0.0)
+}
+
+/// The Moore-Penrose inverse of a k × k information matrix, from its eigendecomposition
+/// `eigen` (None when it failed), on the directions whose eigenvalue is at least
+/// [`WEAK_TOLERANCE`] times `largest`, and the unit eigenvectors of the others.
+fn inverse_on_determined(
+    k: usize,
+    eigen: Option<(Array1<f64>, Array2<f64>)>,
+    largest: f64,
+) -> (Array2<f64>, Vec<Array1<f64>>) {
+    let Some((values, vectors)) = eigen else {
         return (
             Array2::from_elem((k, k), f64::NAN),
             (0..k)
@@ -539,10 +551,9 @@ fn determined_inverse(information: &Array2<f64>, largest: f64) -> (Array2<f64>, 
 /// Solves H s = g on the directions H determines (eigenvalues above [`WEAK_TOLERANCE`]
 /// times the largest), leaving the others unchanged.
 fn pseudo_solve(h: &Array2<f64>, g: &Array1<f64>) -> Array1<f64> {
-    let largest = symmetric_eigen(h)
-        .map(|(values, _)| values.iter().fold(0.0f64, |m, &v| m.max(v)))
-        .unwrap_or(0.0);
-    let (inverse, _) = determined_inverse(h, largest);
+    let eigen = symmetric_eigen(h);
+    let largest = largest_eigenvalue(eigen.as_ref());
+    let (inverse, _) = inverse_on_determined(h.nrows(), eigen, largest);
     if inverse.iter().any(|v| !v.is_finite()) {
         return Array1::zeros(g.len());
     }

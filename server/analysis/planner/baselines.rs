@@ -150,32 +150,70 @@ pub fn baselines(
     let most_different = deterministic("most-different", memo, draws, &different, ids);
 
     let draws_n = random_draws.max(1);
-    let memo_ref: &Memo = memo;
-    // Each random plan: its path (means over its join draws) and its expected score.
-    let results: Vec<(Vec<Offer>, Vec<[f64; 4]>, f64)> = (0..draws_n)
+    let r_count = OUTCOMES_PER_RANDOM_PLAN;
+    // Each random plan and the join outcomes it is judged on: draw r of the common random
+    // numbers, offset per plan so that the random plans do not all share the same few
+    // outcomes. Plans share many outcomes (every plan whose invitees all decline gives
+    // the current set; with 0/1 chances all draws of a plan give the same one), so the
+    // distinct sets are balanced once, in parallel, before the plans are scored.
+    let plans: Vec<(Vec<Offer>, Vec<Vec<usize>>)> = (0..draws_n)
         .into_par_iter()
         .map(|d| {
             let mut rng = Rng::stream(seed ^ 0xBA5E_11AE, d as u64);
             let mut order = plain.to_vec();
             rng.shuffle(&mut order);
             let plan = within_budget(&order, budget);
+            let joined: Vec<Vec<usize>> = (0..r_count)
+                .map(|r| {
+                    let row = (d * r_count + r) % REPORT_DRAWS;
+                    let mut joined: Vec<usize> = plan
+                        .iter()
+                        .filter(|o| draws.joins(row, o))
+                        .map(|o| o.unit)
+                        .collect();
+                    joined.sort_unstable();
+                    joined
+                })
+                .collect();
+            (plan, joined)
+        })
+        .collect();
+    // The sets on the first draw's path (after each recruit) and every draw's final set.
+    let mut needed: Vec<Vec<usize>> = Vec::new();
+    for (d, (plan, joined)) in plans.iter().enumerate() {
+        let row = (d * r_count) % REPORT_DRAWS;
+        let mut path_set: Vec<usize> = Vec::new();
+        for o in plan {
+            if draws.joins(row, o) {
+                path_set.push(o.unit);
+                path_set.sort_unstable();
+                needed.push(path_set.clone());
+            }
+        }
+        needed.extend(joined.iter().skip(1).cloned());
+    }
+    needed.push(Vec::new());
+    memo.fill(needed.iter());
+    let memo_ref: &Memo = memo;
+    let look = |joined: &[usize]| {
+        memo_ref
+            .known(joined)
+            .unwrap_or_else(|| memo_ref.compute(joined))
+    };
+    // Each random plan: its path (means over its join draws) and its expected score.
+    let results: Vec<(Vec<Offer>, Vec<[f64; 4]>, f64)> = plans
+        .into_iter()
+        .enumerate()
+        .map(|(d, (plan, joined_sets))| {
             // The path after each recruit from the plan's first join draw; its expected
             // score from all its draws (only the final set is needed for those).
             let mut path = vec![[0.0; 4]; plan.len()];
             let mut score = 0.0;
-            let r_count = OUTCOMES_PER_RANDOM_PLAN;
             let mut last_effective_n = 0.0;
-            for r in 0..r_count {
-                // Draw r of the common random numbers, offset per plan so that the random
-                // plans do not all share the same few outcomes.
-                let row = (d * r_count + r) % REPORT_DRAWS;
-                let mut joined: Vec<usize> = Vec::new();
-                let look = |joined: &[usize]| {
-                    memo_ref
-                        .known(joined)
-                        .unwrap_or_else(|| memo_ref.compute(joined))
-                };
+            for (r, final_set) in joined_sets.iter().enumerate() {
                 if r == 0 {
+                    let row = (d * r_count) % REPORT_DRAWS;
+                    let mut joined: Vec<usize> = Vec::new();
                     let mut m = look(&joined);
                     for (j, o) in plan.iter().enumerate() {
                         if draws.joins(row, o) {
@@ -193,9 +231,7 @@ pub fn baselines(
                     score += memo_ref.kind.score(&m) / r_count as f64;
                     last_effective_n += m.effective_n / r_count as f64;
                 } else {
-                    joined.extend(plan.iter().filter(|o| draws.joins(row, o)).map(|o| o.unit));
-                    joined.sort_unstable();
-                    let m = look(&joined);
+                    let m = look(final_set);
                     score += memo_ref.kind.score(&m) / r_count as f64;
                     last_effective_n += m.effective_n / r_count as f64;
                 }

@@ -3,7 +3,9 @@
 //! set reach them: "infeasible"), and the set's unweighted imbalance (mean and largest
 //! |SMD| over the chosen indicators).
 
-use ndarray::{Array1, Array2};
+use std::sync::Mutex;
+
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 use serde::Serialize;
 
 use crate::analysis::design::{self, Design};
@@ -26,6 +28,30 @@ pub struct Evaluator {
     pub moments: Array2<f64>,
     /// Balance columns for |SMD| (all levels): values, universe mean, universe sd.
     pub smd_columns: Vec<(Vec<f64>, f64, f64)>,
+    /// Directions v that separated an infeasible set strictly from the targets (see
+    /// [`separates`]), kept to recognise other sets as infeasible without a solve.
+    separations: Mutex<Vec<Array1<f64>>>,
+}
+
+/// Separating directions kept per evaluator (the search meets few distinct ones).
+const KEPT_SEPARATIONS: usize = 16;
+
+/// A set counts as strictly separated by v when every member's row r has r'v above this
+/// share of |v|: then every mean of positive weights lies at least that far from the
+/// targets (0 after centring), above the 1e-10 per moment that the dual solver's
+/// convergence test allows, so the solver could not have converged.
+const SEPARATION_MARGIN: f64 = 1e-8;
+
+/// Whether every row of `d` lies strictly on the positive side of the direction `v`, by
+/// [`SEPARATION_MARGIN`]: the targets (0) are outside the rows' convex hull, so no
+/// positive weights reproduce them (Farkas' lemma; e.g. Boyd & Vandenberghe 2004, Convex
+/// Optimization, section 2.5.1, from memory).
+fn separates(d: ArrayView2<f64>, v: ArrayView1<f64>) -> bool {
+    let size = v.dot(&v).sqrt();
+    size.is_finite()
+        && size > 0.0
+        && d.outer_iter()
+            .all(|row| row.dot(&v) > SEPARATION_MARGIN * size)
 }
 
 impl Evaluator {
@@ -69,6 +95,7 @@ impl Evaluator {
         Evaluator {
             moments,
             smd_columns,
+            separations: Mutex::new(Vec::new()),
         }
     }
 
@@ -99,17 +126,18 @@ impl Evaluator {
             0.0
         };
         // Feasibility: every target (0 after centring) strictly inside the members' range.
-        let mut d = Array2::<f64>::zeros((members.len(), k));
-        for (r, &i) in members.iter().enumerate() {
-            d.row_mut(r).assign(&self.moments.row(i));
+        let d = self.moments.select(Axis(0), members);
+        // Each moment's range over the members in one pass along the rows (as they lie
+        // in memory; the evaluation is the search's inner loop).
+        let mut lo = vec![f64::INFINITY; k];
+        let mut hi = vec![f64::NEG_INFINITY; k];
+        for row in d.outer_iter() {
+            for ((l, h), &v) in lo.iter_mut().zip(hi.iter_mut()).zip(row.iter()) {
+                *l = l.min(v);
+                *h = h.max(v);
+            }
         }
-        let inside = (0..k).all(|j| {
-            let column = d.column(j);
-            let (lo, hi) = column
-                .iter()
-                .fold((f64::INFINITY, f64::NEG_INFINITY), |(l, h), &v| {
-                    (l.min(v), h.max(v))
-                });
+        let inside = lo.iter().zip(&hi).all(|(&lo, &hi)| {
             lo < -1e-9 && hi > 1e-9 || (hi - lo).abs() < 1e-12 && lo.abs() < 1e-9
         });
         let infeasible = SetMetrics {
@@ -121,9 +149,34 @@ impl Evaluator {
         if !inside || members.is_empty() {
             return (infeasible, None);
         }
+        // A direction that separated another set may separate this one too: then the
+        // solve could only fail, and is skipped (the figures are the same).
+        let known: Vec<Array1<f64>> = self
+            .separations
+            .lock()
+            .map(|s| s.clone())
+            .unwrap_or_default();
+        if known.iter().any(|v| separates(d.view(), v.view())) {
+            return (infeasible, None);
+        }
         let q = vec![1.0; members.len()];
         let solution = weights::entropy_dual(d.view(), &q, start, 60);
         if !solution.converged {
+            // Where the targets lie outside the hull, the dual's minimiser runs off along
+            // a separating direction, and the weighted mean approaches the hull's point
+            // nearest the targets: either can separate; kept when it does, strictly.
+            let w = Array1::from(solution.weights.clone());
+            let nearest = d.t().dot(&w);
+            for v in [solution.lambda, nearest] {
+                if separates(d.view(), v.view()) {
+                    if let Ok(mut kept) = self.separations.lock() {
+                        if kept.len() < KEPT_SEPARATIONS {
+                            kept.push(v);
+                        }
+                    }
+                    break;
+                }
+            }
             return (infeasible, None);
         }
         let metrics = SetMetrics {
@@ -150,5 +203,28 @@ impl Evaluator {
                 }
             })
             .collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::array;
+
+    #[test]
+    fn separation_needs_every_row_strictly_on_one_side() {
+        // Hand check: three points in the positive quadrant are cut off from the origin
+        // by v = (1, 1); the corners of a square around the origin are not, whatever v.
+        let outside = array![[1.0, 1.0], [2.0, 0.5], [0.5, 2.0]];
+        assert!(separates(outside.view(), array![1.0, 1.0].view()));
+        assert!(!separates(outside.view(), array![1.0, -1.0].view()));
+        let around = array![[1.0, 1.0], [1.0, -1.0], [-1.0, 1.0], [-1.0, -1.0]];
+        for v in [array![1.0, 1.0], array![1.0, 0.0], array![0.3, -2.0]] {
+            assert!(!separates(around.view(), v.view()));
+        }
+        // A point on the boundary (r'v = 0) is not strict separation; nor is v = 0.
+        let touching = array![[1.0, 0.0], [0.0, 1.0], [1.0, -1.0]];
+        assert!(!separates(touching.view(), array![1.0, 1.0].view()));
+        assert!(!separates(outside.view(), array![0.0, 0.0].view()));
     }
 }
