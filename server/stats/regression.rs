@@ -358,12 +358,14 @@ pub fn fit(
     })
 }
 
+/// What [`logistic_newton`] returns.
+type LogisticNewton = (Array1<f64>, Array2<f64>, Option<Array2<f64>>, bool, usize);
+
 /// Weighted logistic regression by Newton-Raphson from zero, with step halving; returns
 /// the estimate, the inverse information, the per-cluster scores sum_{i in g} w_i (y_i -
 /// p_i) x_i at the estimate (when `clusters` gives each row's cluster and their number),
-/// convergence and iterations.
-type LogisticNewton = (Array1<f64>, Array2<f64>, Option<Array2<f64>>, bool, usize);
-
+/// convergence and iterations. The scores come from the last pass at the estimate, so
+/// the clustered errors (CR1) need no pass of their own.
 fn logistic_newton(
     x: ArrayView2<f64>,
     y: &[f64],
@@ -428,8 +430,9 @@ fn logistic_newton(
 
 /// The information X' diag(w p (1-p)) X, the score X' diag(w) (y - p), the
 /// log-likelihood sum_i w_i (y_i eta_i - log(1 + exp(eta_i))) and, with `clusters`, the
-/// per-cluster scores, all at `beta` (None if it is not k long) in one parallel pass over the rows
-/// (row-major, k wide). Rows go in tasks of 16,384, each with its own per-cluster sums,
+/// per-cluster scores, all at `beta`, in one parallel pass over the rows (row-major, k
+/// wide). A `beta` that is not k long, or rows that do not match, give zeros and a NaN
+/// log-likelihood, which no step accepts. Rows go in tasks of 16,384, each with its own per-cluster sums,
 /// and within a task in blocks of 8,192 with their own information, score and
 /// log-likelihood; tasks and blocks are added up in a fixed order, so the result is the
 /// same on every run (and the same sums in the same order as separate passes for the
