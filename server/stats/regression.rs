@@ -277,16 +277,22 @@ fn row_dot(row: &[f64], beta: &[f64]) -> f64 {
     row.iter().zip(beta).map(|(a, b)| a * b).sum()
 }
 
-/// The logistic function and log(1 + exp(eta)) from one exponential, exp(-|eta|), with the
-/// same branches as [`logistic`] and the log-likelihood's softplus.
+/// The logistic function and log(1 + exp(eta)) from one exponential, t = exp(-|eta|), with
+/// the same branches as [`logistic`] and the log-likelihood's softplus. The softplus takes
+/// the logarithm of the denominator 1 + t that p already needs rather than `ln_1p(t)`:
+/// with t in (0, 1] the two differ by at most an absolute rounding of 1 + t (about 1e-16),
+/// far inside the slack of 1e-12 relative the step halving allows the log-likelihood, and
+/// the logarithm costs about half as much (the log-likelihood is needed only to accept
+/// steps; the estimates, information and scores do not use it).
 #[inline]
 fn logistic_and_softplus(eta: f64) -> (f64, f64) {
     if eta >= 0.0 {
-        let t = (-eta).exp();
-        (1.0 / (1.0 + t), eta + t.ln_1p())
+        let d = 1.0 + (-eta).exp();
+        (1.0 / d, eta + d.ln())
     } else {
         let t = eta.exp();
-        (t / (1.0 + t), t.ln_1p())
+        let d = 1.0 + t;
+        (t / d, d.ln())
     }
 }
 
@@ -332,11 +338,10 @@ pub fn fit(
             if let Some(bad) = y.iter().find(|v| **v != 0.0 && **v != 1.0) {
                 return Err(RegressionError::NotBinary(*bad));
             }
-            let (beta, bread, converged, iterations) = logistic_newton(x, y, w)?;
-            let b = beta.to_vec();
-            let u = cluster_scores(x, cluster, groups, |i, row| {
-                weight(i) * (y[i] - logistic(row_dot(row, &b)))
-            });
+            // The per-cluster scores come from the Newton loop's last pass at the estimate.
+            let (beta, bread, u, converged, iterations) =
+                logistic_newton(x, y, w, Some((cluster, groups)))?;
+            let u = u.unwrap_or_else(|| Array2::zeros((groups, k)));
             (beta, bread, u, converged, iterations)
         }
     };
@@ -353,34 +358,35 @@ pub fn fit(
     })
 }
 
+/// What [`logistic_newton`] returns.
+type LogisticNewton = (Array1<f64>, Array2<f64>, Option<Array2<f64>>, bool, usize);
+
 /// Weighted logistic regression by Newton-Raphson from zero, with step halving; returns
-/// the estimate, the inverse information, convergence and iterations.
+/// the estimate, the inverse information, the per-cluster scores sum_{i in g} w_i (y_i -
+/// p_i) x_i at the estimate (when `clusters` gives each row's cluster and their number),
+/// convergence and iterations. The scores come from the last pass at the estimate, so
+/// the clustered errors (CR1) need no pass of their own.
 fn logistic_newton(
     x: ArrayView2<f64>,
     y: &[f64],
     w: Option<&[f64]>,
-) -> Result<(Array1<f64>, Array2<f64>, bool, usize), RegressionError> {
+    clusters: Option<(&[usize], usize)>,
+) -> Result<LogisticNewton, RegressionError> {
     let k = x.ncols();
-    let weight = |i: usize| w.map_or(1.0, |w| w[i]);
-    // One pass over the respondents gives the information, the score and the
-    // log-likelihood at beta.
-    let pass = |beta: &Array1<f64>| -> (Array2<f64>, Array1<f64>, f64) {
-        let b = beta.to_vec();
-        let (mut m, g, ll) = accumulate(x, |i, row| {
-            let e = row_dot(row, &b);
-            let (p, softplus) = logistic_and_softplus(e);
-            let wi = weight(i);
-            (
-                wi * p * (1.0 - p),
-                wi * (y[i] - p),
-                wi * (y[i] * e - softplus),
-            )
-        });
-        symmetrise(&mut m);
-        (m, g, ll)
+    // The rows as one contiguous row-major slice (copied only if `x` is not laid out so).
+    let owned;
+    let flat: &[f64] = match x.as_slice() {
+        Some(s) => s,
+        None => {
+            owned = x.as_standard_layout().to_owned();
+            owned.as_slice().unwrap_or(&[])
+        }
     };
+    // One pass over the respondents gives the information, the score, the log-likelihood
+    // and the per-cluster scores at beta.
+    let pass = |beta: &Array1<f64>| logistic_sums(flat, k, y, w, beta.as_slice(), clusters);
     let mut beta = Array1::<f64>::zeros(k);
-    let (mut info, mut g, mut ll) = pass(&beta);
+    let (mut info, mut g, mut ll, mut u) = pass(&beta);
     let mut converged = false;
     let mut iterations = 0;
     while iterations < 100 {
@@ -398,16 +404,17 @@ fn logistic_newton(
             linalg::solve_spd(info.view(), g.view()).map_err(|_| RegressionError::Singular)?;
         let floor = ll - 1e-12 * ll.abs();
         let step_taken = super::newton::halving_step(&beta, &step, floor, |candidate| {
-            let (ic, gc, lc) = pass(candidate);
-            Some(((ic, gc, lc), lc))
+            let (ic, gc, lc, uc) = pass(candidate);
+            Some(((ic, gc, lc, uc), lc))
         });
         let moved = step_taken.is_some();
         let t = match step_taken {
-            Some((candidate, (ic, gc, lc), t)) => {
+            Some((candidate, (ic, gc, lc, uc), t)) => {
                 beta = candidate;
                 info = ic;
                 g = gc;
                 ll = lc;
+                u = uc;
                 t
             }
             None => super::newton::exhausted_factor(),
@@ -418,8 +425,190 @@ fn logistic_newton(
         }
     }
     let bread = linalg::inverse_spd(info.view()).map_err(|_| RegressionError::Singular)?;
-    Ok((beta, bread, converged, iterations))
+    Ok((beta, bread, u, converged, iterations))
 }
+
+/// The information X' diag(w p (1-p)) X, the score X' diag(w) (y - p), the
+/// log-likelihood sum_i w_i (y_i eta_i - log(1 + exp(eta_i))) and, with `clusters`, the
+/// per-cluster scores, all at `beta`, in one parallel pass over the rows (row-major, k
+/// wide). A `beta` that is not k long, or rows that do not match, give zeros and a NaN
+/// log-likelihood, which no step accepts. Rows go in tasks of 16,384, each with its own per-cluster sums,
+/// and within a task in blocks of 8,192 with their own information, score and
+/// log-likelihood; tasks and blocks are added up in a fixed order, so the result is the
+/// same on every run (and the same sums in the same order as separate passes for the
+/// information and for the cluster scores would make).
+fn logistic_sums(
+    flat: &[f64],
+    k: usize,
+    y: &[f64],
+    w: Option<&[f64]>,
+    beta: Option<&[f64]>,
+    clusters: Option<(&[usize], usize)>,
+) -> (Array2<f64>, Array1<f64>, f64, Option<Array2<f64>>) {
+    use rayon::prelude::*;
+    let n = y.len();
+    let beta = beta.unwrap_or(&[]);
+    if k == 0 || beta.len() != k || flat.len() != n * k {
+        return (Array2::zeros((k, k)), Array1::zeros(k), f64::NAN, None);
+    }
+    let (block, task) = if n < 20_000 {
+        (n.max(1), n.max(1))
+    } else {
+        (8192, 16_384)
+    };
+    let groups = clusters.map_or(0, |(_, g)| g);
+    let parts: Vec<(Vec<BlockSums>, Vec<f64>)> = (0..n.div_ceil(task))
+        .into_par_iter()
+        .map(|t| {
+            let mut u = vec![0.0; groups * k];
+            let start = t * task;
+            let end = (start + task).min(n);
+            let blocks = (start..end)
+                .step_by(block)
+                .map(|b| {
+                    let rows = b..(b + block).min(end);
+                    let cluster_scores = clusters.map(|(c, _)| (c, u.as_mut_slice()));
+                    logistic_block(flat, k, y, w, beta, rows, cluster_scores)
+                })
+                .collect();
+            (blocks, u)
+        })
+        .collect();
+    let mut m = vec![0.0; k * k];
+    let mut v = vec![0.0; k];
+    let mut ll = 0.0;
+    let mut u = vec![0.0; groups * k];
+    for (blocks, part_u) in parts {
+        for (hm, hv, hl) in blocks {
+            m.iter_mut().zip(hm).for_each(|(a, b)| *a += b);
+            v.iter_mut().zip(hv).for_each(|(a, b)| *a += b);
+            ll += hl;
+        }
+        u.iter_mut().zip(part_u).for_each(|(a, b)| *a += b);
+    }
+    let mut info = Array2::from_shape_vec((k, k), m).unwrap_or_else(|_| Array2::zeros((k, k)));
+    symmetrise(&mut info);
+    let u = clusters.map(|_| {
+        Array2::from_shape_vec((groups, k), u).unwrap_or_else(|_| Array2::zeros((groups, k)))
+    });
+    (info, Array1::from(v), ll, u)
+}
+
+/// One block's information (lower triangle, row-major k x k), score and log-likelihood.
+type BlockSums = (Vec<f64>, Vec<f64>, f64);
+
+/// [`logistic_block_k`] for the common widths, so that the compiler unrolls the loops over
+/// the k columns (the inner loop of every logistic fit on millions of respondents); any
+/// other width takes the same code with k unknown.
+fn logistic_block(
+    flat: &[f64],
+    k: usize,
+    y: &[f64],
+    w: Option<&[f64]>,
+    beta: &[f64],
+    rows: std::ops::Range<usize>,
+    clusters: Option<(&[usize], &mut [f64])>,
+) -> BlockSums {
+    macro_rules! widths {
+        ($($k:literal)*) => {
+            match k {
+                $($k => logistic_block_k::<$k>(flat, y, w, beta, rows, clusters),)*
+                _ => logistic_block_body(flat, k, y, w, beta, rows, clusters),
+            }
+        };
+    }
+    widths!(1 2 3 4 5 6 7 8 9 10 11 12)
+}
+
+fn logistic_block_k<const K: usize>(
+    flat: &[f64],
+    y: &[f64],
+    w: Option<&[f64]>,
+    beta: &[f64],
+    rows: std::ops::Range<usize>,
+    clusters: Option<(&[usize], &mut [f64])>,
+) -> BlockSums {
+    logistic_block_body(flat, K, y, w, beta, rows, clusters)
+}
+
+/// The sums of [`logistic_sums`] over `rows`, adding each row's w_i (y_i - p_i) x_i into
+/// its cluster's row of `clusters.1` as it goes. The same operations in the same order
+/// as [`accumulate`] and [`cluster_scores`] with the weights of the logistic fit, but in
+/// two sweeps over each run of [`RUN`] rows: first every row's linear predictor,
+/// probability and weights (rows independent of each other, so the processor overlaps
+/// their exponentials, logarithms and divisions), then the sums of products.
+#[inline(always)]
+fn logistic_block_body(
+    flat: &[f64],
+    k: usize,
+    y: &[f64],
+    w: Option<&[f64]>,
+    beta: &[f64],
+    rows: std::ops::Range<usize>,
+    mut clusters: Option<(&[usize], &mut [f64])>,
+) -> BlockSums {
+    // On the stack for the unrolled widths, so that the sums can stay in registers.
+    let mut m_stack = [0.0f64; 144];
+    let mut m_heap;
+    let m: &mut [f64] = if k * k <= m_stack.len() {
+        &mut m_stack[..k * k]
+    } else {
+        m_heap = vec![0.0; k * k];
+        &mut m_heap
+    };
+    let mut v = vec![0.0; k];
+    let mut total = 0.0;
+    let beta = &beta[..k];
+    // At beta = 0 (the first pass) every p is 1/2: no exponential or logarithm per row.
+    let at_zero = beta.iter().all(|b| *b == 0.0);
+    let (p0, softplus0) = logistic_and_softplus(0.0);
+    let mut hws = [0.0f64; RUN];
+    let mut wys = [0.0f64; RUN];
+    let mut run_start = rows.start;
+    while run_start < rows.end {
+        let run_end = (run_start + RUN).min(rows.end);
+        let run_rows = &flat[run_start * k..run_end * k];
+        let ys = &y[run_start..run_end];
+        for (r, (row, &yi)) in run_rows.chunks_exact(k).zip(ys).enumerate() {
+            let row = &row[..k];
+            let (e, p, softplus) = if at_zero {
+                (0.0, p0, softplus0)
+            } else {
+                let e = row_dot(row, beta);
+                let (p, softplus) = logistic_and_softplus(e);
+                (e, p, softplus)
+            };
+            let wi = w.map_or(1.0, |w| w[run_start + r]);
+            hws[r] = wi * p * (1.0 - p);
+            wys[r] = wi * (yi - p);
+            total += wi * (yi * e - softplus);
+        }
+        for (r, row) in run_rows.chunks_exact(k).enumerate() {
+            let row = &row[..k];
+            let (hw, wy) = (hws[r], wys[r]);
+            for a in 0..k {
+                let wa = hw * row[a];
+                v[a] += wy * row[a];
+                let m_row = &mut m[a * k..a * k + a + 1];
+                for (b, cell) in m_row.iter_mut().enumerate() {
+                    *cell += wa * row[b];
+                }
+            }
+            if let Some((cluster, u)) = clusters.as_mut() {
+                let c = cluster[run_start + r];
+                let ug = &mut u[c * k..(c + 1) * k];
+                for (a, x) in ug.iter_mut().zip(row) {
+                    *a += wy * x;
+                }
+            }
+        }
+        run_start = run_end;
+    }
+    (m.to_vec(), v, total)
+}
+
+/// Rows per sweep of [`logistic_block_body`]: their weights stay in the first-level cache.
+const RUN: usize = 128;
 
 /// Draws one multiplier per cluster: Rademacher +-1, or Webb's (2014) six-point
 /// distribution when there are fewer than 12 clusters.
@@ -465,7 +654,7 @@ pub fn score_cluster_bootstrap(
     let (n, k) = x.dim();
     let keep: Vec<usize> = (0..k).filter(|&c| c != j).collect();
     let restricted_x = x.select(ndarray::Axis(1), &keep);
-    let (restricted, _, _, _) = logistic_newton(restricted_x.view(), y, w)?;
+    let (restricted, _, _, _, _) = logistic_newton(restricted_x.view(), y, w, None)?;
     let eta = restricted_x.dot(&restricted);
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
     let p: Vec<f64> = eta.iter().map(|&e| logistic(e)).collect();

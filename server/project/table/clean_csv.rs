@@ -52,10 +52,12 @@ enum Role {
 /// Reads `bytes` as described in the module comment; `None` whenever the careful read is
 /// needed.
 pub fn read_clean_csv(bytes: &[u8], request: &CleanRequest) -> Option<CleanRead> {
-    if bytes.contains(&b'"') || bytes.contains(&b'\r') {
+    let header_end = bytes.iter().position(|&b| b == b'\n')?;
+    // Quotes and carriage returns go to the careful read: the header's here, the body's in
+    // the parallel pass below.
+    if unclean(&bytes[..header_end]) {
         return None;
     }
-    let header_end = bytes.iter().position(|&b| b == b'\n')?;
     let header = std::str::from_utf8(&bytes[..header_end]).ok()?;
     let names: Vec<&str> = header.split(',').collect();
     if names
@@ -94,17 +96,35 @@ pub fn read_clean_csv(bytes: &[u8], request: &CleanRequest) -> Option<CleanRead>
         return None;
     }
     let chunks = split_at_lines(body, rayon::current_num_threads().max(1) * 8);
-    // First pass: rows per chunk (and UTF-8, so that codes are text).
+    // First pass: rows per chunk (and UTF-8, so that codes are text; no quotes or carriage
+    // returns).
     let rows_per_chunk: Vec<usize> = chunks
         .par_iter()
         .map(|c| {
-            std::str::from_utf8(c)
-                .ok()
-                .map(|_| c.iter().filter(|&&b| b == b'\n').count() + 1)
+            (std::str::from_utf8(c).is_ok() && !unclean(c))
+                .then(|| c.iter().filter(|&&b| b == b'\n').count() + 1)
         })
         .collect::<Option<_>>()?;
     let rows: usize = rows_per_chunk.iter().sum();
-    let mut outputs: Vec<Vec<f64>> = request.widths.iter().map(|w| vec![1.0; rows * w]).collect();
+    // Zeroed buffers come from the system untouched, so that their pages are first written
+    // by the parallel pass below rather than filled here on one core; the cells no column
+    // is written to get their 1.0 there too.
+    let mut outputs: Vec<Vec<f64>> = request.widths.iter().map(|w| vec![0.0; rows * w]).collect();
+    let ones: Vec<Vec<usize>> = request
+        .widths
+        .iter()
+        .enumerate()
+        .map(|(o, &width)| {
+            (0..width)
+                .filter(|&c| {
+                    !request
+                        .numbers
+                        .iter()
+                        .any(|(_, t)| t.output == o && t.column == c)
+                })
+                .collect()
+        })
+        .collect();
     let mut codes = vec![0usize; if request.codes.is_some() { rows } else { 0 }];
     // Second pass: each chunk fills its own rows of every output.
     let mut pieces: Vec<ChunkOut> = Vec::with_capacity(chunks.len());
@@ -132,7 +152,7 @@ pub fn read_clean_csv(bytes: &[u8], request: &CleanRequest) -> Option<CleanRead>
     }
     let levels_per_chunk: Vec<Vec<&[u8]>> = pieces
         .par_iter_mut()
-        .map(|p| parse_chunk(p, &roles, &request.widths))
+        .map(|p| parse_chunk(p, &roles, &request.widths, &ones))
         .collect::<Option<_>>()?;
     // Levels in order of first appearance: chunk by chunk, each in its own order.
     let mut index: CodeMap<usize> = CodeMap::default();
@@ -188,59 +208,139 @@ fn split_at_lines(body: &[u8], parts: usize) -> Vec<&[u8]> {
     out
 }
 
-/// Parses one chunk's lines into its slices of the outputs; returns the chunk's levels in
-/// order of first appearance (its codes index them). `None` on anything unclean.
+/// Quotes or carriage returns, which only the careful read handles.
+fn unclean(bytes: &[u8]) -> bool {
+    bytes.contains(&b'"') || bytes.contains(&b'\r')
+}
+
+/// Parses one chunk's lines into its slices of the outputs (and 1.0 into each output's
+/// columns in `ones`); returns the chunk's levels in order of first appearance (its codes
+/// index them). `None` on anything unclean. One scan over the bytes: each cell is read
+/// where it starts, up to the comma or line break that ends it.
 fn parse_chunk<'a>(
     piece: &mut ChunkOut<'a, '_>,
     roles: &[Role],
     widths: &[usize],
+    ones: &[Vec<usize>],
 ) -> Option<Vec<&'a [u8]>> {
     let mut levels: Vec<&'a [u8]> = Vec::new();
     let mut index: CodeMap<usize> = CodeMap::default();
-    let mut last: Option<(&'a [u8], usize)> = None;
+    let mut recent = RecentCodes::default();
     let bytes: &'a [u8] = piece.bytes;
-    for (row, line) in bytes.split(|&b| b == b'\n').enumerate() {
-        if line.len() >= MAX_CELL_BYTES.min(MAX_LINE_BYTES) {
-            return None;
-        }
-        let mut fields = 0usize;
-        for (field, cell) in line.split(|&b| b == b',').enumerate() {
-            fields += 1;
-            match roles.get(field)? {
-                Role::Skip => {}
-                Role::Number(t) => {
-                    let value = parse_plain_number(cell)?;
-                    piece.outputs[t.output][row * widths[t.output] + t.column] = value;
-                }
-                Role::Code => {
-                    let (first, end) = (*cell.first()?, *cell.last()?);
-                    if first.is_ascii_whitespace()
-                        || end.is_ascii_whitespace()
-                        || first >= 0x80
-                        || end >= 0x80
-                    {
-                        return None;
-                    }
-                    let code = match last {
-                        Some((text, code)) if text == cell => code,
-                        _ => {
-                            let code = *index.entry(cell).or_insert_with(|| {
-                                levels.push(cell);
-                                levels.len() - 1
-                            });
-                            last = Some((cell, code));
-                            code
-                        }
-                    };
-                    *piece.codes.get_mut(row)? = code;
-                }
+    let limit = MAX_CELL_BYTES.min(MAX_LINE_BYTES);
+    let last_field = roles.len().checked_sub(1)?;
+    let mut pos = 0usize;
+    let mut row = 0usize;
+    loop {
+        let line_start = pos;
+        for (o, columns) in ones.iter().enumerate() {
+            let out = &mut piece.outputs[o];
+            for &c in columns {
+                *out.get_mut(row * widths[o] + c)? = 1.0;
             }
         }
-        if fields != roles.len() {
+        for (field, role) in roles.iter().enumerate() {
+            let cell_start = pos;
+            match role {
+                Role::Number(t) => {
+                    let (value, end) = scan_plain_number(bytes, pos)?;
+                    pos = end;
+                    *piece.outputs[t.output].get_mut(row * widths[t.output] + t.column)? = value;
+                }
+                Role::Skip | Role::Code => {
+                    pos += bytes[pos..]
+                        .iter()
+                        .position(|&b| b == b',' || b == b'\n')
+                        .unwrap_or(bytes.len() - pos);
+                }
+            }
+            if let Role::Code = role {
+                let cell = &bytes[cell_start..pos];
+                let (first, end) = (*cell.first()?, *cell.last()?);
+                if first.is_ascii_whitespace()
+                    || end.is_ascii_whitespace()
+                    || first >= 0x80
+                    || end >= 0x80
+                {
+                    return None;
+                }
+                let code = match recent.get(cell) {
+                    Some(code) => code,
+                    None => {
+                        let code = *index.entry(cell).or_insert_with(|| {
+                            levels.push(cell);
+                            levels.len() - 1
+                        });
+                        recent.put(cell, code);
+                        code
+                    }
+                };
+                *piece.codes.get_mut(row)? = code;
+            }
+            // A comma after every field but the last; a line break or the chunk's end after
+            // the last (a row with fewer or more fields goes to the careful read).
+            let separator = bytes.get(pos).copied();
+            match (field == last_field, separator) {
+                (false, Some(b',')) => pos += 1,
+                (true, Some(b'\n') | None) => {}
+                _ => return None,
+            }
+        }
+        if pos - line_start >= limit {
             return None;
         }
+        row += 1;
+        if pos >= bytes.len() {
+            break;
+        }
+        // Past the line break; a line break at the very end leaves an empty last line,
+        // which the next round refuses (its first cell is empty).
+        pos += 1;
     }
     Some(levels)
+}
+
+/// The codes last seen, by their bytes packed into a number (cells of up to 8 bytes): a
+/// country code is usually found here without hashing it.
+struct RecentCodes {
+    slots: [(u64, u32); 64],
+}
+
+impl Default for RecentCodes {
+    fn default() -> Self {
+        // Length 0 marks an empty slot: code cells are never empty.
+        RecentCodes {
+            slots: [(0, 0); 64],
+        }
+    }
+}
+
+impl RecentCodes {
+    fn key(cell: &[u8]) -> Option<u64> {
+        if cell.is_empty() || cell.len() > 7 {
+            return None;
+        }
+        // The bytes from the lowest up (shifts: no copy through memory) and the length in
+        // the top byte, so that "X" and "X\0" differ.
+        let packed = cell
+            .iter()
+            .rev()
+            .fold(0u64, |word, &b| (word << 8) | u64::from(b));
+        Some(packed | (cell.len() as u64) << 56)
+    }
+    fn slot(key: u64) -> usize {
+        (key.wrapping_mul(0x9E37_79B9_7F4A_7C15) >> 58) as usize
+    }
+    fn get(&self, cell: &[u8]) -> Option<usize> {
+        let key = Self::key(cell)?;
+        let (k, code) = self.slots[Self::slot(key)];
+        (k == key).then_some(code as usize)
+    }
+    fn put(&mut self, cell: &[u8], code: usize) {
+        if let (Some(key), Ok(code)) = (Self::key(cell), u32::try_from(code)) {
+            self.slots[Self::slot(key)] = (key, code);
+        }
+    }
 }
 
 /// Powers of ten that are exact doubles.
@@ -254,23 +354,36 @@ const EXACT_POWERS: [f64; 23] = [
 /// are exact doubles, so one division rounds correctly (Clinger 1990, "How to read
 /// floating point numbers accurately"); longer numbers go to the standard library's
 /// correctly rounded parser.
+#[cfg(test)]
 fn parse_plain_number(cell: &[u8]) -> Option<f64> {
-    let (negative, digits) = match cell.split_first() {
-        Some((b'-', rest)) => (true, rest),
-        _ => (false, cell),
-    };
+    match scan_plain_number(cell, 0)? {
+        (value, end) if end == cell.len() => Some(value),
+        _ => None,
+    }
+}
+
+/// The plain number (as [`parse_plain_number`] reads it) that starts at `start` and ends
+/// at the next comma, line break or the end of `bytes`, and where it ends; `None` if the
+/// cell is anything else.
+#[inline]
+fn scan_plain_number(bytes: &[u8], start: usize) -> Option<(f64, usize)> {
+    let negative = bytes.get(start) == Some(&b'-');
+    let digits_start = start + usize::from(negative);
     let mut mantissa: u64 = 0;
     let mut count = 0usize;
     let mut fraction: Option<usize> = None;
-    for &b in digits {
+    let mut end = digits_start;
+    while let Some(&b) = bytes.get(end) {
         match b {
             b'0'..=b'9' => {
                 mantissa = mantissa.wrapping_mul(10).wrapping_add(u64::from(b - b'0'));
                 count += 1;
             }
             b'.' if fraction.is_none() => fraction = Some(count),
+            b',' | b'\n' => break,
             _ => return None,
         }
+        end += 1;
     }
     let decimals = fraction.map_or(0, |f| count - f);
     // Digits on both sides of a point: "5." and ".5" go to the careful read.
@@ -280,9 +393,12 @@ fn parse_plain_number(cell: &[u8]) -> Option<f64> {
     let magnitude = if count <= 15 {
         mantissa as f64 / EXACT_POWERS[decimals]
     } else {
-        std::str::from_utf8(digits).ok()?.parse::<f64>().ok()?
+        std::str::from_utf8(&bytes[digits_start..end])
+            .ok()?
+            .parse::<f64>()
+            .ok()?
     };
-    Some(if negative { -magnitude } else { magnitude })
+    Some((if negative { -magnitude } else { magnitude }, end))
 }
 
 /// A multiply-and-rotate hash (the one rustc uses, "FxHash") for short codes: the keys are
@@ -404,6 +520,36 @@ mod tests {
         for text in ["", "-", ".5", "5.", "1.2.3", "+1", "1e5", "NA", "inf", "1 "] {
             assert!(parse_plain_number(text.as_bytes()).is_none(), "{text}");
         }
+    }
+
+    #[test]
+    fn codes_that_share_a_slot_of_the_recent_codes_keep_their_own_level() {
+        // Common practice: 300 codes (more than the 64 recent slots, some longer than 7
+        // bytes, one a prefix of another), interleaved, get the indices of first appearance.
+        let names: Vec<String> = (0..300)
+            .map(|i| match i % 3 {
+                0 => format!("X{i}"),
+                1 => format!("X{i}0"),
+                _ => format!("Country{i}"),
+            })
+            .collect();
+        let mut text = String::from("c,a,b,y\n");
+        let mut expected = Vec::new();
+        for r in 0..3000 {
+            let g = (r * 7) % 300;
+            text.push_str(&format!("{},1,2,0\n", names[g]));
+            expected.push(g);
+        }
+        let read = read_clean_csv(text.as_bytes(), &request()).unwrap();
+        let decoded: Vec<&str> = read
+            .codes
+            .iter()
+            .map(|&c| read.levels[c].as_str())
+            .collect();
+        let wanted: Vec<&str> = expected.iter().map(|&g| names[g].as_str()).collect();
+        assert_eq!(decoded, wanted);
+        assert_eq!(read.levels.len(), 300);
+        assert_eq!(read.levels[1], names[7]);
     }
 
     #[test]
