@@ -183,6 +183,30 @@ pub fn impact(
     settings: &Settings,
     imp: &ImpactSettings,
 ) -> Result<ImpactReport, ImpactError> {
+    // The projection needs nothing from the corrections: fitted beside them from the start
+    // (rayon's join gives the other thread back to the bootstrap's loop when it ends).
+    let variables = project
+        .manifest
+        .microdata
+        .as_ref()
+        .map(|m| m.variables.as_slice())
+        .unwrap_or_default();
+    let (report, projection) = rayon::join(
+        || corrections(project, view, settings, imp),
+        || projection_variant(project, view, settings, imp, variables),
+    );
+    let mut report = report?;
+    report.variants.push(projection);
+    Ok(report)
+}
+
+/// Every variant but the projection.
+fn corrections(
+    project: &Project,
+    view: &WaveView,
+    settings: &Settings,
+    imp: &ImpactSettings,
+) -> Result<ImpactReport, ImpactError> {
     let micro = project.microdata.as_ref().ok_or_else(|| {
         ImpactError::Request(
             "the project has no microdata (microdata.csv or microdata.parquet)".to_string(),
@@ -495,34 +519,26 @@ pub fn impact(
         })
         .collect();
     let mills_c = mills_indicators(&design, view, imp);
-    // The projection does not depend on the bootstrap: fit it while the replicates run
-    // (the bootstrap's parallel loop takes the other thread back when the projection ends).
-    let (boot, projection) = rayon::join(
-        || {
-            population_ok
-                .then(|| {
-                    impact_bootstrap::run(&impact_bootstrap::Input {
-                        design: &design,
-                        settings,
-                        stats: &stats,
-                        population: population.as_deref(),
-                        mills_indicators: mills_c.as_deref().map_err(|_| ()),
-                        kind: imp.kind,
-                        k,
-                        replicates: imp.replicates,
-                        seed,
-                    })
-                })
-                .flatten()
-        },
-        || projection_variant(project, view, settings, imp, variables),
-    );
+    let boot = population_ok
+        .then(|| {
+            impact_bootstrap::run(&impact_bootstrap::Input {
+                design: &design,
+                settings,
+                stats: &stats,
+                population: population.as_deref(),
+                mills_indicators: mills_c.as_deref().map_err(|_| ()),
+                kind: imp.kind,
+                k,
+                replicates: imp.replicates,
+                seed,
+            })
+        })
+        .flatten();
     if let Some(boot) = &boot {
         for (v, b) in variants.iter_mut().zip(boot) {
             attach_bootstrap(v, b, imp.replicates, seed);
         }
     }
-    variants.push(projection);
     let mut notes = vec![
         "Unweighted: design weights rescaled so that every participating country counts the same. Weighted: so that each country counts by its country weight.".to_string(),
         format!("Confidence intervals and p-values use standard errors clustered by country (CR1) with t on {df} degrees of freedom (countries - 1); with few countries the wild cluster bootstrap p-values are the safer guide."),

@@ -348,7 +348,8 @@ pub fn projection_with(
     }
     let indicators = super::design::covariate_positions(view, settings)
         .map_err(|n| req(format!("'{n}' is not a numeric indicator")))?;
-    let countries_col = micro.texts(&roles.country);
+    // Country codes as level numbers (no text copy per respondent).
+    let (country_codes, country_levels) = micro.factorise(&roles.country);
     let waves = micro.integers(&roles.wave);
     let outcome = micro.numbers(&ps.outcome);
     let predictor_values: Vec<Vec<Option<f64>>> =
@@ -358,6 +359,10 @@ pub fn projection_with(
         .iter()
         .enumerate()
         .map(|(i, c)| (c.as_str(), i))
+        .collect();
+    let unit_of_level: Vec<Option<usize>> = country_levels
+        .iter()
+        .map(|c| unit_of_code.get(c.as_str()).copied())
         .collect();
     // Standardisation and range over participants with complete indicators.
     let complete = |i: usize| {
@@ -393,19 +398,19 @@ pub fn projection_with(
             .collect()
     };
     // Respondents of participating countries with complete values.
+    let usable_unit: Vec<bool> = (0..view.len())
+        .map(|u| view.participated[u] && complete(u))
+        .collect();
     let mut rows = Vec::new();
     let mut unit_rows: Vec<usize> = Vec::new();
     for i in 0..micro.height() {
         if waves[i] != Some(view.wave) {
             continue;
         }
-        let Some(&u) = countries_col[i]
-            .as_deref()
-            .and_then(|c| unit_of_code.get(c))
-        else {
+        let Some(u) = country_codes[i].and_then(|c| unit_of_level[c]) else {
             continue;
         };
-        if !view.participated[u] || !complete(u) {
+        if !usable_unit[u] {
             continue;
         }
         if outcome[i].is_none() || predictor_values.iter().any(|v| v[i].is_none()) {

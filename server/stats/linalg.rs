@@ -183,14 +183,19 @@ mod tests {
         }
     }
 
-    #[test]
-    fn forward_substitution_inverts_the_lower_factor() {
-        // Common practice: L (L^-1 B) = B on the factor of a known SPD matrix.
-        let a = array![
+    /// A 3x3 SPD matrix, L L' with L = [[2,0,0],[6,1,0],[-8,5,3]].
+    fn example_spd() -> Array2<f64> {
+        array![
             [4.0, 12.0, -16.0],
             [12.0, 37.0, -43.0],
             [-16.0, -43.0, 98.0]
-        ];
+        ]
+    }
+
+    #[test]
+    fn forward_substitution_inverts_the_lower_factor() {
+        // Common practice: L (L^-1 B) = B on the factor of a known SPD matrix.
+        let a = example_spd();
         let l = cholesky(a.view()).unwrap();
         let b = array![[1.0, -2.0], [0.5, 3.0], [2.0, 0.25]];
         let y = forward_substitute(&l, b.view());
@@ -204,11 +209,7 @@ mod tests {
     #[test]
     fn solves_and_inverts() {
         // A 3x3 SPD example; checked by multiplying back (common practice).
-        let a = array![
-            [4.0, 12.0, -16.0],
-            [12.0, 37.0, -43.0],
-            [-16.0, -43.0, 98.0]
-        ];
+        let a = example_spd();
         let x = solve_spd(a.view(), array![1.0, 2.0, 3.0].view()).unwrap();
         let back = a.dot(&x);
         for (u, v) in back.iter().zip([1.0, 2.0, 3.0]) {

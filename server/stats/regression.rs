@@ -76,14 +76,8 @@ where
     F: Fn(usize, &[f64]) -> (f64, f64, f64) + Sync,
 {
     let (n, k) = x.dim();
-    let owned;
-    let flat: &[f64] = match x.as_slice() {
-        Some(s) => s,
-        None => {
-            owned = x.as_standard_layout().to_owned();
-            owned.as_slice().unwrap_or(&[])
-        }
-    };
+    let standard = x.as_standard_layout();
+    let flat = standard.as_slice().unwrap_or(&[]);
     // Rows in blocks: each block sums into its own accumulators on rayon's pool, and the
     // blocks are added up in a fixed order (the same result on every run).
     use rayon::prelude::*;
@@ -374,14 +368,8 @@ fn logistic_newton(
 ) -> Result<LogisticNewton, RegressionError> {
     let k = x.ncols();
     // The rows as one contiguous row-major slice (copied only if `x` is not laid out so).
-    let owned;
-    let flat: &[f64] = match x.as_slice() {
-        Some(s) => s,
-        None => {
-            owned = x.as_standard_layout().to_owned();
-            owned.as_slice().unwrap_or(&[])
-        }
-    };
+    let standard = x.as_standard_layout();
+    let flat = standard.as_slice().unwrap_or(&[]);
     // One pass over the respondents gives the information, the score, the log-likelihood
     // and the per-cluster scores at beta.
     let pass = |beta: &Array1<f64>| logistic_sums(flat, k, y, w, beta.as_slice(), clusters);

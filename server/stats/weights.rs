@@ -939,15 +939,28 @@ mod tests {
         assert!((share(1, &[0, 1, 0, 1, 1]) - 0.7).abs() < 1e-10);
     }
 
+    /// n simulated units: an intercept and k - 1 standard normal columns, taking part with
+    /// probability logistic(index(row)).
+    fn simulated(
+        seed: u64,
+        n: usize,
+        k: usize,
+        index: impl Fn(&[f64]) -> f64,
+    ) -> (Array2<f64>, Vec<bool>) {
+        let mut rng = crate::stats::random::Rng::new(seed);
+        let x = Array2::from_shape_fn((n, k), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
+        let t = x
+            .rows()
+            .into_iter()
+            .map(|r| rng.bernoulli(logistic(index(&r.to_vec()))))
+            .collect();
+        (x, t)
+    }
+
     #[test]
     fn gmm_gradient_matches_central_differences() {
         // Common practice: check an analytic gradient against finite differences.
-        let mut rng = crate::stats::random::Rng::new(3);
-        let n = 40;
-        let x = Array2::from_shape_fn((n, 3), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
-        let t: Vec<bool> = (0..n)
-            .map(|i| rng.bernoulli(logistic(0.3 + 0.8 * x[[i, 1]])))
-            .collect();
+        let (x, t) = simulated(3, 40, 3, |r| 0.3 + 0.8 * r[1]);
         let b = array![0.2, 0.5, -0.3];
         let (_, grad) = gmm_objective(x.view(), &t, &b);
         for j in 0..3 {
@@ -969,12 +982,7 @@ mod tests {
     fn gmm_hessian_matches_differences_of_the_gradient() {
         // Common practice: check an analytic Hessian against central differences of the
         // (already checked) analytic gradient, at points near and away from a minimum.
-        let mut rng = crate::stats::random::Rng::new(5);
-        let n = 60;
-        let x = Array2::from_shape_fn((n, 4), |(_, j)| if j == 0 { 1.0 } else { rng.normal() });
-        let t: Vec<bool> = (0..n)
-            .map(|i| rng.bernoulli(logistic(-0.2 + 0.9 * x[[i, 1]] - 0.5 * x[[i, 3]])))
-            .collect();
+        let (x, t) = simulated(5, 60, 4, |r| -0.2 + 0.9 * r[1] - 0.5 * r[3]);
         for b in [array![0.1, 0.6, -0.2, 0.3], array![-0.4, 1.2, 0.5, -0.8]] {
             let problem = GmmProblem::new(x.view(), &t);
             let h = gmm_hessian(&problem, &gmm_point(&problem, &b).expect("S regular"));

@@ -367,9 +367,13 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Html<String>> {
-    let (form, r, incomplete, imputed) = off_thread_heavy(&state, &query, compute).await?;
+    // The sensitivity bounds are a result of their own: computed beside the corrections.
+    let (result, bounds) = tokio::join!(
+        off_thread_heavy(&state, &query, compute),
+        super::impact_bounds::section(&state, &query)
+    );
+    let (form, r, incomplete, imputed) = result?;
     let form = form.presenting(&query);
-    let bounds = super::impact_bounds::section(&state, &query).await;
     let project = state.project();
     let variables = super::context::microdata_variables(&project);
     let indicators = &project.manifest.indicators.numeric;
