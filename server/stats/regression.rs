@@ -456,7 +456,8 @@ fn logistic_sums(
                 .map(|b| {
                     let rows = b..(b + block).min(end);
                     let cluster_scores = clusters.map(|(c, _)| (c, u.as_mut_slice()));
-                    logistic_block(flat, k, y, w, beta, rows, cluster_scores)
+                    let input = BlockInput { flat, y, w, beta };
+                    logistic_block(&input, k, rows, cluster_scores)
                 })
                 .collect();
             (blocks, u)
@@ -489,34 +490,38 @@ type BlockSums = (Vec<f64>, Vec<f64>, f64);
 /// the k columns (the inner loop of every logistic fit on millions of respondents); any
 /// other width takes the same code with k unknown.
 fn logistic_block(
-    flat: &[f64],
+    input: &BlockInput,
     k: usize,
-    y: &[f64],
-    w: Option<&[f64]>,
-    beta: &[f64],
     rows: std::ops::Range<usize>,
     clusters: Option<(&[usize], &mut [f64])>,
 ) -> BlockSums {
     macro_rules! widths {
         ($($k:literal)*) => {
             match k {
-                $($k => logistic_block_k::<$k>(flat, y, w, beta, rows, clusters),)*
-                _ => logistic_block_body(flat, k, y, w, beta, rows, clusters),
+                $($k => logistic_block_k::<$k>(input, rows, clusters),)*
+                _ => logistic_block_body(input, k, rows, clusters),
             }
         };
     }
     widths!(1 2 3 4 5 6 7 8 9 10 11 12)
 }
 
+/// What every block of one logistic pass reads: the rows (contiguous, row-major), the
+/// outcome, the weights and the coefficients.
+#[derive(Clone, Copy)]
+struct BlockInput<'a> {
+    flat: &'a [f64],
+    y: &'a [f64],
+    w: Option<&'a [f64]>,
+    beta: &'a [f64],
+}
+
 fn logistic_block_k<const K: usize>(
-    flat: &[f64],
-    y: &[f64],
-    w: Option<&[f64]>,
-    beta: &[f64],
+    input: &BlockInput,
     rows: std::ops::Range<usize>,
     clusters: Option<(&[usize], &mut [f64])>,
 ) -> BlockSums {
-    logistic_block_body(flat, K, y, w, beta, rows, clusters)
+    logistic_block_body(input, K, rows, clusters)
 }
 
 /// The sums of [`logistic_sums`] over `rows`, adding each row's w_i (y_i - p_i) x_i into
@@ -527,14 +532,12 @@ fn logistic_block_k<const K: usize>(
 /// their exponentials, logarithms and divisions), then the sums of products.
 #[inline(always)]
 fn logistic_block_body(
-    flat: &[f64],
+    input: &BlockInput,
     k: usize,
-    y: &[f64],
-    w: Option<&[f64]>,
-    beta: &[f64],
     rows: std::ops::Range<usize>,
     mut clusters: Option<(&[usize], &mut [f64])>,
 ) -> BlockSums {
+    let BlockInput { flat, y, w, beta } = *input;
     // On the stack for the unrolled widths, so that the sums can stay in registers.
     let mut m_stack = [0.0f64; 144];
     let mut m_heap;
