@@ -319,8 +319,8 @@ fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec
                         weighting: kind,
                         ..input.settings.clone()
                     };
-                    participation::weigh(&design, &s, model)
-                        .map(|w| w.weights.iter().zip(&base).map(|(a, b)| a * b).collect())
+                    participation::weights_only(&design, &s, model)
+                        .map(|w| w.iter().zip(&base).map(|(a, b)| a * b).collect())
                         .map_err(|_| Failure::Infeasible)
                 }
             }

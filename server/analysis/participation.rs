@@ -197,6 +197,22 @@ pub struct Weighted {
     pub weights: Vec<f64>,
 }
 
+/// The weights of [`weigh`] alone, without its report (the pipeline bootstrap needs only
+/// these on every draw; the balance table and the warnings cost more than the weights of
+/// the cheaper methods).
+pub fn weights_only(
+    design: &Design,
+    settings: &Settings,
+    model: &FittedModel,
+) -> Result<Vec<f64>, AnalysisError> {
+    let raw = compute_weights(design, settings, &model.standardised, &model.propensity)?;
+    let w = match settings.trim {
+        Some(q) => weights::trim(&raw.weights, &design.participated, q),
+        None => raw.weights,
+    };
+    Ok(weights::normalise(&w, design.n() as f64))
+}
+
 /// Weights the participants by the settings' method (and trimming).
 pub fn weigh(
     design: &Design,
