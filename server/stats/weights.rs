@@ -287,12 +287,7 @@ fn gmm_fit(
     let descent = if unreachable.is_empty() {
         descend(b0)
     } else {
-        GmmDescent {
-            coef: b0.clone(),
-            converged: false,
-            iterations: 0,
-            moved: false,
-        }
+        GmmDescent::at(b0)
     };
     let propensity: Vec<f64> = x.dot(&descent.coef).iter().map(|&e| logistic(e)).collect();
     let max_imbalance = balance_conditions(x, t, &propensity)
