@@ -62,6 +62,29 @@ pub struct PooledBootstrap {
     pub bootstrap_ci95_high: Option<f64>,
 }
 
+impl Pooled {
+    /// An estimate with its 95% interval on t with `df` degrees of freedom (countries - 1)
+    /// and no bootstrap yet.
+    fn with_t_interval(estimate: f64, se: f64, df: usize) -> Pooled {
+        let q975 = regression::student::upper_quantile(0.975, df as f64);
+        Pooled {
+            estimate,
+            se,
+            low: estimate - q975 * se,
+            high: estimate + q975 * se,
+            bootstrap: PooledBootstrap::default(),
+        }
+    }
+}
+
+/// Two-sided p-values of coefficient / standard error on t with `df` degrees of freedom.
+fn t_p_values(coef: &[f64], se: &[f64], df: usize) -> Vec<f64> {
+    coef.iter()
+        .zip(se)
+        .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
+        .collect()
+}
+
 /// The pipeline bootstrap of a variant's terms, with its replicates, seed and failures.
 #[derive(Debug, Clone, Default, Serialize)]
 pub struct TermsBootstrap {
@@ -797,7 +820,6 @@ fn mills_variant(
     let ones = Array2::<f64>::ones((m.y.len(), 1));
     let pooled_fit = two_step(&with_indicators(&ones))?;
     let (pm, pse) = universe(&pooled_fit, 1);
-    let q975 = regression::student::upper_quantile(0.975, m.df as f64);
     let fit = two_step(&with_indicators(m.x))?;
     let (b0, se0) = universe(&fit, k);
     let last = fit.coef.len() - 1;
@@ -807,22 +829,12 @@ fn mills_variant(
     se.extend_from_slice(&fit.se[1..k]);
     coef.push(fit.coef[last]);
     se.push(fit.se[last]);
-    let p_cluster = coef
-        .iter()
-        .zip(&se)
-        .map(|(c, s)| regression::student::two_sided_p(c / s, m.df as f64))
-        .collect();
+    let p_cluster = t_p_values(&coef, &se, m.df);
     Ok(Variant {
         key: "mills-ratio".to_string(),
         label: MILLS_LABEL.to_string(),
         error: None,
-        pooled: Some(Pooled {
-            estimate: pm,
-            se: pse,
-            low: pm - q975 * pse,
-            high: pm + q975 * pse,
-            bootstrap: PooledBootstrap::default(),
-        }),
+        pooled: Some(Pooled::with_t_interval(pm, pse, m.df)),
         sign_changed: vec![false; coef.len()],
         verdict_changed: vec![false; coef.len()],
         coef,
@@ -958,24 +970,16 @@ fn estimate_linear(
     seed: u64,
     df: usize,
 ) -> Variant {
-    let q975 = regression::student::upper_quantile(0.975, df as f64);
-    let pooled = sums.first_column().fit().ok().map(|f| Pooled {
-        estimate: f.coef[0],
-        se: f.se[0],
-        low: f.coef[0] - q975 * f.se[0],
-        high: f.coef[0] + q975 * f.se[0],
-        bootstrap: PooledBootstrap::default(),
-    });
+    let pooled = sums
+        .first_column()
+        .fit()
+        .ok()
+        .map(|f| Pooled::with_t_interval(f.coef[0], f.se[0], df));
     let k = imp.predictors.len() + 1;
     match sums.fit() {
         Err(e) => failed(key, label, e.to_string(), k),
         Ok(f) => {
-            let p_cluster: Vec<f64> = f
-                .coef
-                .iter()
-                .zip(&f.se)
-                .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
-                .collect();
+            let p_cluster = t_p_values(&f.coef, &f.se, df);
             let p_bootstrap = (imp.wild_replicates > 0).then(|| {
                 sums.wild_bootstrap_terms(&f, imp.wild_replicates, seed)
                     .unwrap_or_else(|_| vec![f64::NAN; k])
@@ -997,7 +1001,6 @@ fn estimate(
     seed: u64,
     df: usize,
 ) -> Variant {
-    let q975 = regression::student::upper_quantile(0.975, df as f64);
     // Drop respondents of countries without weight (never for participants, but trimming
     // to zero is possible in principle).
     let keep: Vec<usize> = (0..y.len()).filter(|&i| w[i] > 0.0).collect();
@@ -1008,22 +1011,11 @@ fn estimate(
     let ones = Array2::<f64>::ones((keep.len(), 1));
     let pooled = regression::fit(ones.view(), &ys, Some(&ws), &cs, Kind::Linear)
         .ok()
-        .map(|f| Pooled {
-            estimate: f.coef[0],
-            se: f.se[0],
-            low: f.coef[0] - q975 * f.se[0],
-            high: f.coef[0] + q975 * f.se[0],
-            bootstrap: PooledBootstrap::default(),
-        });
+        .map(|f| Pooled::with_t_interval(f.coef[0], f.se[0], df));
     match regression::fit(xs.view(), &ys, Some(&ws), &cs, imp.kind) {
         Err(e) => failed(key, label, e.to_string(), x.ncols()),
         Ok(f) => {
-            let p_cluster: Vec<f64> = f
-                .coef
-                .iter()
-                .zip(&f.se)
-                .map(|(c, s)| regression::student::two_sided_p(c / s, df as f64))
-                .collect();
+            let p_cluster = t_p_values(&f.coef, &f.se, df);
             let p_bootstrap = (imp.wild_replicates > 0).then(|| match imp.kind {
                 // Every term from one pass over the respondents.
                 Kind::Linear => regression::wild_cluster_bootstrap_terms(
