@@ -206,11 +206,16 @@ pub fn weights_only(
     model: &FittedModel,
 ) -> Result<Vec<f64>, AnalysisError> {
     let raw = compute_weights(design, settings, &model.standardised, &model.propensity)?;
+    Ok(trimmed_and_normalised(design, settings, raw.weights))
+}
+
+/// The settings' trimming, then normalisation to the number of eligible units.
+fn trimmed_and_normalised(design: &Design, settings: &Settings, w: Vec<f64>) -> Vec<f64> {
     let w = match settings.trim {
-        Some(q) => weights::trim(&raw.weights, &design.participated, q),
-        None => raw.weights,
+        Some(q) => weights::trim(&w, &design.participated, q),
+        None => w,
     };
-    Ok(weights::normalise(&w, design.n() as f64))
+    weights::normalise(&w, design.n() as f64)
 }
 
 /// Weights the participants by the settings' method (and trimming).
@@ -222,10 +227,8 @@ pub fn weigh(
     let y = &design.participated;
     let raw = compute_weights(design, settings, &model.standardised, &model.propensity)?;
     let (converged, cbps_coef) = (raw.converged, raw.coef);
-    let mut w = raw.weights;
     let mut warnings = raw.warnings;
     if let Some(q) = settings.trim {
-        w = weights::trim(&w, y, q);
         if matches!(
             settings.weighting,
             WeightingKind::Entropy | WeightingKind::Raking | WeightingKind::CovariateBalancing
@@ -233,7 +236,7 @@ pub fn weigh(
             warnings.push(format!("trimming at the {:.0}th percentile undoes part of the exact balance this method achieves", 100.0 * q));
         }
     }
-    let w = weights::normalise(&w, design.n() as f64);
+    let w = trimmed_and_normalised(design, settings, raw.weights);
     let participant_weights: Vec<f64> = w
         .iter()
         .zip(y)

@@ -445,6 +445,7 @@ fn logistic_sums(
         (8192, 16_384)
     };
     let groups = clusters.map_or(0, |(_, g)| g);
+    let input = BlockInput { flat, y, w, beta };
     let parts: Vec<(Vec<BlockSums>, Vec<f64>)> = (0..n.div_ceil(task))
         .into_par_iter()
         .map(|t| {
@@ -456,7 +457,6 @@ fn logistic_sums(
                 .map(|b| {
                     let rows = b..(b + block).min(end);
                     let cluster_scores = clusters.map(|(c, _)| (c, u.as_mut_slice()));
-                    let input = BlockInput { flat, y, w, beta };
                     logistic_block(&input, k, rows, cluster_scores)
                 })
                 .collect();

@@ -3,7 +3,7 @@
 //! set reach them: "infeasible"), and the set's unweighted imbalance (mean and largest
 //! |SMD| over the chosen indicators).
 
-use std::sync::Mutex;
+use std::sync::RwLock;
 
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
 use serde::Serialize;
@@ -30,7 +30,7 @@ pub struct Evaluator {
     pub smd_columns: Vec<(Vec<f64>, f64, f64)>,
     /// Directions v that separated an infeasible set strictly from the targets (see
     /// [`separates`]), kept to recognise other sets as infeasible without a solve.
-    separations: Mutex<Vec<Array1<f64>>>,
+    separations: RwLock<Vec<Array1<f64>>>,
 }
 
 /// Separating directions kept per evaluator (the search meets few distinct ones).
@@ -95,7 +95,7 @@ impl Evaluator {
         Evaluator {
             moments,
             smd_columns,
-            separations: Mutex::new(Vec::new()),
+            separations: RwLock::new(Vec::new()),
         }
     }
 
@@ -151,12 +151,11 @@ impl Evaluator {
         }
         // A direction that separated another set may separate this one too: then the
         // solve could only fail, and is skipped (the figures are the same).
-        let known: Vec<Array1<f64>> = self
+        let separated = self
             .separations
-            .lock()
-            .map(|s| s.clone())
-            .unwrap_or_default();
-        if known.iter().any(|v| separates(d.view(), v.view())) {
+            .read()
+            .is_ok_and(|known| known.iter().any(|v| separates(d.view(), v.view())));
+        if separated {
             return (infeasible, None);
         }
         let q = vec![1.0; members.len()];
@@ -169,7 +168,7 @@ impl Evaluator {
             let nearest = d.t().dot(&w);
             for v in [solution.lambda, nearest] {
                 if separates(d.view(), v.view()) {
-                    if let Ok(mut kept) = self.separations.lock() {
+                    if let Ok(mut kept) = self.separations.write() {
                         if kept.len() < KEPT_SEPARATIONS {
                             kept.push(v);
                         }
