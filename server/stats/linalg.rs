@@ -175,10 +175,18 @@ mod tests {
         let sums = RowPairs::new(x.view()).weighted(w.view());
         assert_eq!(sums.len(), 2);
         for (c, sum) in sums.iter().enumerate() {
+            // The definition, sum_i w_i x_ia x_ib, written out.
+            let definition = Array2::from_shape_fn((3, 3), |(a, b)| {
+                (0..4)
+                    .map(|i| w[[i, c]] * x[[i, a]] * x[[i, b]])
+                    .sum::<f64>()
+            });
             let direct = weighted_cross_product(x.view(), w.column(c));
             assert_eq!(sum.dim(), (3, 3));
-            for (a, b) in sum.iter().zip(direct.iter()) {
-                assert!((a - b).abs() < 1e-12, "{a} vs {b}");
+            assert_eq!(direct.dim(), (3, 3));
+            for ((a, b), d) in sum.iter().zip(direct.iter()).zip(definition.iter()) {
+                assert!((a - d).abs() < 1e-12, "{a} vs {d}");
+                assert!((b - d).abs() < 1e-12, "{b} vs {d}");
             }
         }
     }
