@@ -25,7 +25,7 @@ use super::design::Design;
 use super::participation;
 use super::settings::{Settings, WeightingKind};
 use crate::stats::binary::{self, ModelKind};
-use crate::stats::bootstrap::{self, Summary};
+use crate::stats::bootstrap::{self, DrawCounts, Summary};
 use crate::stats::linalg;
 use crate::stats::normal;
 use crate::stats::regression::Kind;
@@ -244,31 +244,55 @@ fn logit_start(z: &Array2<f64>, t: &[bool]) -> Array1<f64> {
 
 /// The over-identified covariate-balancing shares on a draw: the fit started at the full
 /// sample's solution (so that each draw finds the minimum that corresponds to it; the
-/// criterion has several), then participation::weigh's steps: inverse-probability
-/// weights, the settings' trimming, normalisation to the number of drawn units, times
-/// the base shares. A fit that does not converge (or cannot balance a column) fails.
+/// criterion has several), on the draw's distinct countries weighted by how often each
+/// was drawn (the same criterion as on the draw written out), then participation::weigh's
+/// steps on the draw: inverse-probability weights, the settings' trimming, normalisation
+/// to the number of drawn units, times the base shares. A fit that does not converge (or
+/// cannot balance a column) fails.
 fn gmm_shares(
-    design: &Design,
-    settings: &Settings,
+    input: &Input,
+    draw: &Design,
+    counts: &DrawCounts,
     warm: Option<&GmmStart>,
     base: &[f64],
 ) -> Result<Vec<f64>, Failure> {
-    let z = design.standardised();
-    let t = &design.participated;
+    let z = input
+        .design
+        .standardised()
+        .select(ndarray::Axis(0), &counts.clusters);
+    let t: Vec<bool> = counts
+        .clusters
+        .iter()
+        .map(|&c| input.design.participated[c])
+        .collect();
     let fit = match warm {
-        Some(w) => weights::cbps_over_identified_from(z.view(), t, &w.coef),
-        None => weights::cbps_over_identified(z.view(), t, &logit_start(&z, t)),
+        Some(w) => {
+            weights::cbps_over_identified_counted_from(z.view(), &t, &counts.counts, &w.coef)
+        }
+        None => {
+            let zd = draw.standardised();
+            weights::cbps_over_identified(
+                zd.view(),
+                &draw.participated,
+                &logit_start(&zd, &draw.participated),
+            )
+        }
     }
     .map_err(|_| Failure::Infeasible)?;
     if !fit.converged {
         return Err(Failure::Infeasible);
     }
-    let mut w =
-        weights::inverse_probability(&fit.propensity, t).map_err(|_| Failure::Infeasible)?;
-    if let Some(q) = settings.trim {
+    let propensity = if warm.is_some() {
+        counts.expand(&fit.propensity)
+    } else {
+        fit.propensity
+    };
+    let t = &draw.participated;
+    let mut w = weights::inverse_probability(&propensity, t).map_err(|_| Failure::Infeasible)?;
+    if let Some(q) = input.settings.trim {
         w = weights::trim(&w, t, q);
     }
-    Ok(weights::normalise(&w, design.n() as f64)
+    Ok(weights::normalise(&w, draw.n() as f64)
         .iter()
         .zip(base)
         .map(|(a, b)| a * b)
@@ -279,6 +303,9 @@ fn gmm_shares(
 fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec<Draw> {
     let n_variants = variant_count();
     let design = input.design.subset(rows);
+    let Some(counts) = DrawCounts::of(rows, input.design.n()) else {
+        return vec![Err(Failure::NoParticipant); n_variants];
+    };
     let stats: Vec<Option<&CountryStats>> = rows.iter().map(|&i| input.stats[i].as_ref()).collect();
     if stats.iter().all(Option::is_none) {
         return vec![Err(Failure::NoParticipant); n_variants];
@@ -300,7 +327,7 @@ fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec
         let share: Result<Vec<f64>, Failure> = match &model {
             Err(f) => Err(*f),
             Ok(_) if kind == WeightingKind::CovariateBalancingGmm => {
-                gmm_shares(&design, input.settings, gmm_start, &base)
+                gmm_shares(input, &design, &counts, gmm_start, &base)
             }
             Ok(model) => {
                 if kind == WeightingKind::InverseProbability && !model.report.converged {

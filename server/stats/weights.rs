@@ -24,6 +24,9 @@ pub enum WeightError {
     /// A starting point (or curvature) whose size does not match the design's columns.
     #[error("the fit's start has {given} values but the design has {expected} columns")]
     StartSize { given: usize, expected: usize },
+    /// Unit counts that are not one positive, finite count per unit.
+    #[error("the fit was given {given} unit counts for {expected} units, or a count that is not positive")]
+    CountsSize { given: usize, expected: usize },
 }
 
 /// Inverse-probability weights w_i = T_i / p_i (Horvitz & Thompson 1952; Rosenbaum 1987):
@@ -199,11 +202,21 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
 
 /// Mean balance conditions (1/n) sum_i (T_i/p_i - 1) x_i.
 fn balance_conditions(x: ArrayView2<f64>, t: &[bool], p: &[f64]) -> Array1<f64> {
-    let n = t.len() as f64;
+    counted_balance_conditions(x, t, &vec![1.0; t.len()], p)
+}
+
+/// [`balance_conditions`] over rows standing for `counts` units each (n = sum of counts).
+fn counted_balance_conditions(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    counts: &[f64],
+    p: &[f64],
+) -> Array1<f64> {
+    let n: f64 = counts.iter().sum();
     let mut g = Array1::<f64>::zeros(x.ncols());
     for (i, row) in x.axis_iter(Axis(0)).enumerate() {
         let c = if t[i] { 1.0 / p[i] } else { 0.0 } - 1.0;
-        g.scaled_add(c / n, &row);
+        g.scaled_add(counts[i] * c / n, &row);
     }
     g
 }
@@ -273,24 +286,50 @@ pub fn cbps_over_identified_from(
             expected: x.ncols(),
         });
     }
-    gmm_fit(x, t, b0, |b| gmm_newton(x, t, b))
+    cbps_over_identified_counted_from(x, t, &vec![1.0; t.len()], b0)
 }
 
-/// Runs `descend` from `b0` unless a column cannot be balanced, and reports the fit.
-fn gmm_fit(
+/// [`cbps_over_identified_from`] on units that stand for `counts[i]` identical units each
+/// (a bootstrap draw's distinct countries with how often each was drawn): every sum over
+/// units is a sum over these rows weighted by their counts, n = sum of the counts, so the
+/// criterion, its minimum and the propensities are those of the draw with its repeated
+/// rows written out, at the cost of the distinct rows only.
+pub fn cbps_over_identified_counted_from(
     x: ArrayView2<f64>,
     t: &[bool],
+    counts: &[f64],
     b0: &Array1<f64>,
-    descend: impl FnOnce(&Array1<f64>) -> GmmDescent,
 ) -> Result<CbpsFit, WeightError> {
+    if !t.iter().any(|&v| v) {
+        return Err(WeightError::NoParticipants);
+    }
+    if b0.len() != x.ncols() {
+        return Err(WeightError::StartSize {
+            given: b0.len(),
+            expected: x.ncols(),
+        });
+    }
+    if counts.len() != t.len() || counts.iter().any(|&c| !(c.is_finite() && c > 0.0)) {
+        return Err(WeightError::CountsSize {
+            given: counts.len(),
+            expected: t.len(),
+        });
+    }
+    let problem = GmmProblem::new(x.view(), t, counts);
+    gmm_fit(&problem, b0)
+}
+
+/// Runs Newton's method from `b0` unless a column cannot be balanced, and reports the fit.
+fn gmm_fit(problem: &GmmProblem, b0: &Array1<f64>) -> Result<CbpsFit, WeightError> {
+    let (x, t) = (problem.x, problem.t);
     let unreachable = unreachable_columns(x, t);
     let descent = if unreachable.is_empty() {
-        descend(b0)
+        gmm_newton(problem, b0)
     } else {
         GmmDescent::at(b0)
     };
     let propensity: Vec<f64> = x.dot(&descent.coef).iter().map(|&e| logistic(e)).collect();
-    let max_imbalance = balance_conditions(x, t, &propensity)
+    let max_imbalance = counted_balance_conditions(x, t, &problem.counts, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
     let stayed_at_start = !descent.converged && !descent.moved;
@@ -326,17 +365,16 @@ impl GmmDescent {
     }
 }
 
-fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
-    let problem = GmmProblem::new(x.view(), t);
+fn gmm_newton(problem: &GmmProblem, b0: &Array1<f64>) -> GmmDescent {
     let mut b = b0.clone();
     let mut out = GmmDescent::at(&b);
-    let Some(mut point) = gmm_point(&problem, &b).filter(|p| p.q.is_finite()) else {
+    let Some(mut point) = gmm_point(problem, &b).filter(|p| p.q.is_finite()) else {
         return out;
     };
     for iteration in 1..=GMM_MAX_ITERATIONS {
         out.iterations = iteration;
-        let grad = gmm_gradient(&problem, &point);
-        let hessian = gmm_hessian(&problem, &point);
+        let grad = gmm_gradient(problem, &point);
+        let hessian = gmm_hessian(problem, &point);
         let Some((step, positive_definite)) = modified_newton_step(&hessian, &grad) else {
             break;
         };
@@ -350,7 +388,7 @@ fn gmm_newton(x: ArrayView2<f64>, t: &[bool], b0: &Array1<f64>) -> GmmDescent {
         // (S is nearly singular, so Q carries far more than one unit of rounding), and the
         // full step of the accurate gradient is taken unless Q rises clearly.
         let Some((candidate, next)) = gmm_halving(
-            &problem,
+            problem,
             &b,
             &step,
             point.q,
@@ -460,46 +498,54 @@ impl UnitDerivatives {
 }
 
 /// The data of one over-identified fit, with its rows' pair products (the criterion forms
-/// three weighted cross-products of X per evaluation and the Hessian three more).
+/// three weighted cross-products of X per evaluation and the Hessian three more), and how
+/// many units each row stands for (every sum over units weights its rows by these).
 struct GmmProblem<'a> {
     x: ArrayView2<'a, f64>,
     t: &'a [bool],
+    counts: Vec<f64>,
+    /// The number of units, sum of the counts.
+    n: f64,
     pairs: linalg::RowPairs,
 }
 
 impl<'a> GmmProblem<'a> {
-    fn new(x: ArrayView2<'a, f64>, t: &'a [bool]) -> Self {
+    fn new(x: ArrayView2<'a, f64>, t: &'a [bool], counts: &[f64]) -> Self {
         GmmProblem {
             x,
             t,
+            counts: counts.to_vec(),
+            n: counts.iter().sum(),
             pairs: linalg::RowPairs::new(x),
         }
     }
 }
 
 fn gmm_point(problem: &GmmProblem, b: &Array1<f64>) -> Option<GmmPoint> {
-    let (x, t) = (problem.x, problem.t);
+    let (x, t, counts) = (problem.x, problem.t, &problem.counts);
     let n = t.len();
     let k = x.ncols();
-    let nf = n as f64;
+    let nf = problem.n;
     let p: Vec<f64> = x
         .dot(b)
         .iter()
         .map(|&e| logistic(e).clamp(1e-12, 1.0 - 1e-12))
         .collect();
     let tf = |i: usize| f64::from(u8::from(t[i]));
-    let score: Array1<f64> = (0..n).map(|i| (tf(i) - p[i]) / nf).collect();
-    let balance: Array1<f64> = (0..n).map(|i| (tf(i) / p[i] - 1.0) / nf).collect();
+    let score: Array1<f64> = (0..n).map(|i| counts[i] * (tf(i) - p[i]) / nf).collect();
+    let balance: Array1<f64> = (0..n)
+        .map(|i| counts[i] * (tf(i) / p[i] - 1.0) / nf)
+        .collect();
     let mut g = Array1::<f64>::zeros(2 * k);
     g.slice_mut(ndarray::s![..k]).assign(&x.t().dot(&score));
     g.slice_mut(ndarray::s![k..]).assign(&x.t().dot(&balance));
     // Columns v11, v12, v22 of S's blocks.
     let v = Array2::from_shape_fn((n, 3), |(i, c)| {
-        let p = p[i];
+        let (p, count) = (p[i], counts[i]);
         match c {
-            0 => p * (1.0 - p) / nf,
-            1 => (1.0 - p) / nf,
-            _ => (1.0 - p) / p / nf,
+            0 => count * p * (1.0 - p) / nf,
+            1 => count * (1.0 - p) / nf,
+            _ => count * (1.0 - p) / p / nf,
         }
     });
     let blocks = problem.pairs.weighted(v.view());
@@ -535,7 +581,7 @@ fn stacked_blocks(m11: &Array2<f64>, m12: &Array2<f64>, m22: &Array2<f64>) -> Ar
 /// S is singular.
 #[cfg(test)]
 fn gmm_objective(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> (f64, Array1<f64>) {
-    let problem = GmmProblem::new(x.view(), t);
+    let problem = GmmProblem::new(x.view(), t, &vec![1.0; t.len()]);
     match gmm_point(&problem, b) {
         Some(point) => (point.q, gmm_gradient(&problem, &point)),
         None => (f64::INFINITY, Array1::zeros(x.ncols())),
@@ -545,14 +591,14 @@ fn gmm_objective(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> (f64, Array
 /// The gradient of [`gmm_objective`] at a point.
 fn gmm_gradient(problem: &GmmProblem, point: &GmmPoint) -> Array1<f64> {
     let (x, t) = (problem.x, problem.t);
-    let nf = t.len() as f64;
+    let nf = problem.n;
     let per_unit: Array1<f64> = (0..t.len())
         .map(|i| {
             let d = UnitDerivatives::at(point.p[i], f64::from(u8::from(t[i])));
             let (u, r) = (point.u[i], point.r[i]);
             let j_term = u * d.dpsi1 + r * d.dpsi2;
             let s_term = d.dv11 * u * u + 2.0 * d.dv12 * u * r + d.dv22 * r * r;
-            (2.0 * j_term - s_term) / nf
+            problem.counts[i] * (2.0 * j_term - s_term) / nf
         })
         .collect();
     x.t().dot(&per_unit)
@@ -572,10 +618,10 @@ fn gmm_gradient(problem: &GmmProblem, point: &GmmPoint) -> Array1<f64> {
 fn gmm_hessian(problem: &GmmProblem, point: &GmmPoint) -> Array2<f64> {
     let (x, t) = (problem.x, problem.t);
     let (n, k) = (t.len(), x.ncols());
-    let nf = n as f64;
     // Columns: the weights of M's two blocks and of the second-derivative term c.
     let mut weights = Array2::<f64>::zeros((n, 3));
     for i in 0..n {
+        let nf = problem.n / problem.counts[i];
         let (p, ti) = (point.p[i], f64::from(u8::from(t[i])));
         let d = UnitDerivatives::at(p, ti);
         let (u, r) = (point.u[i], point.r[i]);
@@ -953,6 +999,46 @@ mod tests {
     }
 
     #[test]
+    fn counted_rows_fit_as_the_rows_written_out() {
+        // Common practice: a frequency-weighted criterion equals the criterion on the
+        // repeated rows, so both fits reach the same minimum from the same start.
+        let (x, t) = simulated(11, 60, 3, |r| 0.2 + 0.9 * r[1] - 0.5 * r[2]);
+        let rows: Vec<usize> = (0..60).map(|i| (i * 7 + i / 5) % 60).collect();
+        let draw = crate::stats::bootstrap::DrawCounts::of(&rows, 60).expect("in range");
+        assert!(
+            draw.clusters.len() < rows.len(),
+            "the draw repeats some rows"
+        );
+        let written_out = x.select(Axis(0), &rows);
+        let t_out: Vec<bool> = rows.iter().map(|&r| t[r]).collect();
+        let distinct = x.select(Axis(0), &draw.clusters);
+        let t_distinct: Vec<bool> = draw.clusters.iter().map(|&r| t[r]).collect();
+        let start = cbps_just_identified(written_out.view(), &t_out)
+            .unwrap()
+            .coef;
+        let full = cbps_over_identified_from(written_out.view(), &t_out, &start).unwrap();
+        let counted =
+            cbps_over_identified_counted_from(distinct.view(), &t_distinct, &draw.counts, &start)
+                .unwrap();
+        assert!(full.converged, "{full:?}");
+        assert!(counted.converged);
+        assert_eq!(full.coef.len(), counted.coef.len());
+        for (a, b) in full.coef.iter().zip(counted.coef.iter()) {
+            assert!((a - b).abs() < 1e-7, "{a} vs {b}");
+        }
+        let expanded = draw.expand(&counted.propensity);
+        assert_eq!(expanded.len(), full.propensity.len());
+        for (a, b) in full.propensity.iter().zip(&expanded) {
+            assert!((a - b).abs() < 1e-8);
+        }
+        assert!((full.max_imbalance - counted.max_imbalance).abs() < 1e-8);
+        assert!(
+            cbps_over_identified_counted_from(distinct.view(), &t_distinct, &[1.0], &start)
+                .is_err()
+        );
+    }
+
+    #[test]
     fn gmm_gradient_matches_central_differences() {
         // Common practice: check an analytic gradient against finite differences.
         let (x, t) = simulated(3, 40, 3, |r| 0.3 + 0.8 * r[1]);
@@ -979,7 +1065,7 @@ mod tests {
         // (already checked) analytic gradient, at points near and away from a minimum.
         let (x, t) = simulated(5, 60, 4, |r| -0.2 + 0.9 * r[1] - 0.5 * r[3]);
         for b in [array![0.1, 0.6, -0.2, 0.3], array![-0.4, 1.2, 0.5, -0.8]] {
-            let problem = GmmProblem::new(x.view(), &t);
+            let problem = GmmProblem::new(x.view(), &t, &vec![1.0; t.len()]);
             let h = gmm_hessian(&problem, &gmm_point(&problem, &b).expect("S regular"));
             assert_eq!(h.dim(), (4, 4));
             for j in 0..4 {
