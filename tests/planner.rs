@@ -15,16 +15,21 @@ fn plan_on(source: impl AsRef<std::path::Path>, options: &[&str]) -> Output {
     gapwise(&args)
 }
 
-/// The same, which must succeed: its JSON (the options ask for `--json`).
+/// The same with `--json` last, which must succeed: its JSON.
 fn plan_on_json(source: impl AsRef<std::path::Path>, options: &[&str]) -> Value {
-    let out = plan_on(source, options);
+    let mut options = options.to_vec();
+    options.push("--json");
+    let out = plan_on(source, &options);
     assert_eq!(out.code, 0, "{}", out.stderr);
     serde_json::from_str(&out.stdout).unwrap()
 }
 
+/// The options naming a bare frame's id, flag and two covariates.
+const BARE_COLUMNS: [&str; 6] = ["--id", "id", "--flag", "took_part", "--covariates", "x,y"];
+
 /// `gapwise plan FILE` on a bare frame with its id, flag and two covariates named.
 fn plan_bare(file: impl AsRef<std::path::Path>, options: &[&str]) -> Output {
-    let mut all = vec!["--id", "id", "--flag", "took_part", "--covariates", "x,y"];
+    let mut all = BARE_COLUMNS.to_vec();
     all.extend_from_slice(options);
     plan_on(file, &all)
 }
@@ -58,25 +63,12 @@ fn clustered_frame() -> String {
 }
 
 fn plan_json(dir: &TempDir, file: &str, extra: &[&str]) -> Value {
-    let path = dir.path().join(file);
-    let mut args = vec![
-        "plan",
-        path.to_str().unwrap(),
-        "--id",
-        "id",
-        "--flag",
-        "took_part",
-        "--covariates",
-        "x,y",
-        "--feasibility",
-        "chance",
-        "--json",
-    ];
-    args.extend_from_slice(extra);
+    let mut options = vec!["--feasibility", "chance", "--json"];
+    options.extend_from_slice(extra);
     if !extra.contains(&"--replicates") {
-        args.extend_from_slice(&["--replicates", "20"]);
+        options.extend_from_slice(&["--replicates", "20"]);
     }
-    let out = gapwise(&args);
+    let out = plan_bare(dir.path().join(file), &options);
     assert_eq!(out.code, 0, "{}", out.stderr);
     serde_json::from_str(&out.stdout).unwrap()
 }
@@ -160,7 +152,6 @@ fn a_candidate_that_makes_balance_feasible_comes_first() {
             "2",
             "--replicates",
             "0",
-            "--json",
         ],
     );
     assert_eq!(p["current"]["feasible"], false);
@@ -198,19 +189,10 @@ fn steps_equal_what_fit_reports_for_the_same_set() {
         let name = format!("step{j}.csv");
         dir.write(&name, flipped.join("\n") + "\n");
         let path = dir.path().join(&name);
-        let out = gapwise(&[
-            "fit",
-            path.to_str().unwrap(),
-            "--id",
-            "id",
-            "--flag",
-            "took_part",
-            "--covariates",
-            "x,y",
-            "--weighting",
-            "entropy",
-            "--json",
-        ]);
+        let mut args = vec!["fit", path.to_str().unwrap()];
+        args.extend_from_slice(&BARE_COLUMNS);
+        args.extend_from_slice(&["--weighting", "entropy", "--json"]);
+        let out = gapwise(&args);
         assert_eq!(out.code, 0, "{}", out.stderr);
         let fit: Value = serde_json::from_str(&out.stdout).unwrap();
         let ess = fit["weighting"]["effective_n"].as_f64().unwrap();
@@ -464,10 +446,7 @@ fn the_plan_beats_95_percent_of_random_plans_on_the_demo_and_real_indicators() {
         (&real, "auto"),
         (&real, "model"),
     ] {
-        let p = plan_on_json(
-            dir,
-            &["--feasibility", source, "--replicates", "0", "--json"],
-        );
+        let p = plan_on_json(dir, &["--feasibility", source, "--replicates", "0"]);
         let o = &p["optimality"];
         assert!(o["random_plans"].as_u64().unwrap() >= 1000);
         let pct = o["plan_percentile_among_random"].as_f64().unwrap();
@@ -493,10 +472,7 @@ fn chances_and_costs_default_to_the_manifest() {
     let demo = demo_dir();
     // The demo names [recruitment] cost = "recruitment_cost" and feasibility =
     // "has_study_team".
-    let p = plan_on_json(
-        &demo,
-        &["--cost-budget", "300", "--replicates", "0", "--json"],
-    );
+    let p = plan_on_json(&demo, &["--cost-budget", "300", "--replicates", "0"]);
     assert_eq!(p["plan"]["cost_column"], "recruitment_cost");
     assert_eq!(p["chances"]["column"], "has_study_team");
     let steps = p["steps"].as_array().unwrap();
@@ -504,10 +480,7 @@ fn chances_and_costs_default_to_the_manifest() {
     let total = steps.last().unwrap()["cumulative_cost"].as_f64().unwrap();
     assert!(total <= 300.0 + 1e-9, "{total}");
     // The model's chances are leave-one-out ones.
-    let p = plan_on_json(
-        &demo,
-        &["--feasibility", "model", "--replicates", "0", "--json"],
-    );
+    let p = plan_on_json(&demo, &["--feasibility", "model", "--replicates", "0"]);
     assert_eq!(p["chances"]["source"], "model-leave-one-out");
     // Both budgets at once: one or the other.
     let out = plan_on(&demo, &["--budget", "3", "--cost-budget", "300"]);
@@ -538,10 +511,7 @@ fn support_choices_respect_the_budget() {
     let demo = demo_dir();
     let rows = demo_rows();
     for budget in ["150", "300", "600"] {
-        let p = plan_on_json(
-            &demo,
-            &["--cost-budget", budget, "--replicates", "0", "--json"],
-        );
+        let p = plan_on_json(&demo, &["--cost-budget", budget, "--replicates", "0"]);
         let wave = p["wave"].to_string();
         let steps = p["steps"].as_array().unwrap();
         assert!(!steps.is_empty());
@@ -585,7 +555,6 @@ fn support_choices_respect_the_budget() {
             "--without-support",
             "--replicates",
             "0",
-            "--json",
         ],
     );
     assert!(p["steps"]
@@ -594,7 +563,7 @@ fn support_choices_respect_the_budget() {
         .iter()
         .all(|s| s["supported"] == false));
     // A count budget never buys support (it costs money, not a place) and says so.
-    let p = plan_on_json(&demo, &["--replicates", "0", "--json"]);
+    let p = plan_on_json(&demo, &["--replicates", "0"]);
     assert!(p["steps"]
         .as_array()
         .unwrap()
@@ -712,10 +681,7 @@ fn history_chances_match_statsmodels() {
 #[test]
 fn history_chances_on_the_page_and_their_limits() {
     let demo = demo_dir();
-    let p = plan_on_json(
-        &demo,
-        &["--feasibility", "history", "--replicates", "5", "--json"],
-    );
+    let p = plan_on_json(&demo, &["--feasibility", "history", "--replicates", "5"]);
     assert_eq!(p["chances"]["source"], "history");
     assert_eq!(
         p["chances"]["history"]["trained_on"],

@@ -89,6 +89,14 @@ fn longley_matches_nist_certified_values() {
     }
 }
 
+/// `OUTCOME --predictors PREDICTORS --country nr EXTRA...`: a pooled model on wagepan
+/// clustered by man.
+fn by_man<'a>(outcome: &'a str, predictors: &'a str, extra: &[&'a str]) -> Vec<&'a str> {
+    let mut args = vec![outcome, "--predictors", predictors, "--country", "nr"];
+    args.extend_from_slice(extra);
+    args
+}
+
 fn pooled(args: &[&str]) -> Value {
     let path = fixtures().join("wagepan.csv");
     let mut all = vec!["pooled", path.to_str().unwrap(), "--outcome"];
@@ -130,7 +138,7 @@ fn cluster_robust_errors_match_statsmodels() {
     let fx = &reference["wagepan_cluster"];
     let predictors = "educ,black,hisp,exper,married";
     // statsmodels OLS(...).fit(cov_type="cluster"), Wooldridge's wagepan, clusters = men.
-    let ols = pooled(&["lwage", "--predictors", predictors, "--country", "nr"]);
+    let ols = pooled(&by_man("lwage", predictors, &[]));
     assert_fields_close(&[
         ("OLS coef", &ols["coef"], &fx["ols_coef"], 1e-9),
         ("OLS se", &ols["se"], &fx["ols_se"], 1e-6),
@@ -138,29 +146,13 @@ fn cluster_robust_errors_match_statsmodels() {
     assert_eq!(ols["clusters"], fx["clusters"]);
     assert_eq!(ols["n"], fx["n"]);
     // statsmodels WLS(weights=w) with cluster errors.
-    let wls = pooled(&[
-        "lwage",
-        "--predictors",
-        predictors,
-        "--country",
-        "nr",
-        "--design-weight",
-        "w",
-    ]);
+    let wls = pooled(&by_man("lwage", predictors, &["--design-weight", "w"]));
     assert_fields_close(&[
         ("WLS coef", &wls["coef"], &fx["wls_coef"], 1e-9),
         ("WLS se", &wls["se"], &fx["wls_se"], 1e-6),
     ]);
     // statsmodels Logit(...).fit(cov_type="cluster").
-    let logit = pooled(&[
-        "union",
-        "--predictors",
-        predictors,
-        "--country",
-        "nr",
-        "--kind",
-        "logistic",
-    ]);
+    let logit = pooled(&by_man("union", predictors, &["--kind", "logistic"]));
     assert_fields_close(&[
         ("Logit coef", &logit["coef"], &fx["logit_coef"], 1e-6),
         ("Logit se", &logit["se"], &fx["logit_se"], 1e-6),
@@ -203,23 +195,31 @@ fn assert_within_monte_carlo(p: f64, reference_p: f64, what: &str) {
     );
 }
 
-/// Each case of `key` in reference.json (clusters G, term j, reference p): `p_value` on
-/// the first G men of wagepan with `outcome` agrees within Monte Carlo error; a failure
-/// names the case by `name(G, j)`.
-fn agrees_with_reference_cases(
-    key: &str,
-    outcome: &str,
-    p_value: impl Fn(ndarray::ArrayView2<f64>, &[f64], &[usize], usize) -> f64,
-    name: impl Fn(usize, usize) -> String,
-) {
+/// A bootstrap p-value of [`regression`]: design, outcome, weights, clusters, term,
+/// replicates, seed.
+type BootstrapP = fn(
+    ndarray::ArrayView2<f64>,
+    &[f64],
+    Option<&[f64]>,
+    &[usize],
+    usize,
+    usize,
+    u64,
+) -> Result<f64, regression::RegressionError>;
+
+/// Each case of `key` in reference.json (clusters G, term j, reference p): `bootstrap`
+/// (unweighted, B = 9999, `seed`) on the first G men of wagepan with `outcome` agrees
+/// within Monte Carlo error.
+fn agrees_with_reference_cases(key: &str, outcome: &str, bootstrap: BootstrapP, seed: u64) {
     let cases = reference()[key].as_array().unwrap().clone();
     assert!(!cases.is_empty(), "{key}: no cases");
     for case in cases {
         let g = case["clusters"].as_u64().unwrap() as usize;
         let j = case["term"].as_u64().unwrap() as usize;
         let (x, y, cluster) = wagepan_first_men(g, outcome);
-        let p = p_value(x.view(), &y, &cluster, j);
-        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &name(g, j));
+        let p = bootstrap(x.view(), &y, None, &cluster, j, 9999, seed).unwrap();
+        let name = format!("{key}: G = {g}, term {j}");
+        assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &name);
     }
 }
 
@@ -229,10 +229,8 @@ fn wild_cluster_bootstrap_agrees_with_reference_within_monte_carlo_error() {
     agrees_with_reference_cases(
         "wild_bootstrap",
         "lwage",
-        |x, y, cluster, j| {
-            regression::wild_cluster_bootstrap(x, y, None, cluster, j, 9999, 7).unwrap()
-        },
-        |g, _| format!("G = {g}"),
+        regression::wild_cluster_bootstrap,
+        7,
     );
 }
 
@@ -243,21 +241,33 @@ fn twostep_reference() -> Value {
 
 const MROZ_SELECTION: &str = "nwifeinc,educ,exper,expersq,age,kidslt6,kidsge6";
 
-fn two_step(file: &str, extra: &[&str]) -> Value {
-    let path = fixtures().join(file);
-    let mut args = vec![
+/// `gapwise two-step PATH` of lwage on `predictors`, with `selected` as the selection
+/// flag and `selection` as the selection predictors.
+fn two_step_args<'a>(
+    path: &'a str,
+    predictors: &'a str,
+    selected: &'a str,
+    selection: &'a str,
+) -> Vec<&'a str> {
+    vec![
         "two-step",
-        path.to_str().unwrap(),
+        path,
         "--outcome",
         "lwage",
         "--predictors",
-        "educ,exper,expersq",
+        predictors,
         "--selected",
-        "inlf",
+        selected,
         "--selection-predictors",
-        MROZ_SELECTION,
-        "--json",
-    ];
+        selection,
+    ]
+}
+
+fn two_step(file: &str, extra: &[&str]) -> Value {
+    let path = fixtures().join(file);
+    let path = path.to_str().unwrap();
+    let mut args = two_step_args(path, "educ,exper,expersq", "inlf", MROZ_SELECTION);
+    args.push("--json");
     args.extend_from_slice(extra);
     let out = gapwise(&args);
     assert_eq!(out.code, 0, "{}", out.stderr);
@@ -368,19 +378,10 @@ fn two_step_warns_when_identified_by_functional_form_only() {
     // Common practice (Wooldridge 2010, section 19.6): with no excluded selection
     // predictor, identification rests on the probit's non-linearity alone.
     let path = fixtures().join("mroz.csv");
-    let out = gapwise(&[
-        "two-step",
-        path.to_str().unwrap(),
-        "--outcome",
-        "lwage",
-        "--predictors",
-        "educ,exper,expersq",
-        "--selected",
-        "inlf",
-        "--selection-predictors",
-        "educ,exper",
-        "--json",
-    ]);
+    let path = path.to_str().unwrap();
+    let mut args = two_step_args(path, "educ,exper,expersq", "inlf", "educ,exper");
+    args.push("--json");
+    let out = gapwise(&args);
     assert_eq!(out.code, 0, "{}", out.stderr);
     let r: Value = serde_json::from_str(&out.stdout).unwrap();
     let notes = r["notes"].as_array().unwrap();
@@ -391,18 +392,7 @@ fn two_step_warns_when_identified_by_functional_form_only() {
         "{notes:?}"
     );
     // A flag that is not 0/1 is reported with its row and column.
-    let out = gapwise(&[
-        "two-step",
-        path.to_str().unwrap(),
-        "--outcome",
-        "lwage",
-        "--predictors",
-        "educ",
-        "--selected",
-        "kidsge6",
-        "--selection-predictors",
-        "age",
-    ]);
+    let out = gapwise(&two_step_args(path, "educ", "kidsge6", "age"));
     assert_eq!(out.code, 1);
     assert!(out.stderr.contains("mroz.csv:"), "{}", out.stderr);
     assert!(out.stderr.contains("0 or 1"), "{}", out.stderr);
@@ -429,13 +419,7 @@ fn few_country_inference_uses_t_with_g_minus_one_df() {
         );
     }
     // The command's JSON carries the same for the whole panel.
-    let r = pooled(&[
-        "lwage",
-        "--predictors",
-        "educ,exper,married",
-        "--country",
-        "nr",
-    ]);
+    let r = pooled(&by_man("lwage", "educ,exper,married", &[]));
     let case = &twostep_reference()["t_inference"][1];
     assert_eq!(r["df"], case["df"]);
     assert_fields_close(&[
@@ -459,17 +443,8 @@ fn pooled_reports_bad_input_clearly() {
     let path = fixtures().join("wagepan.csv");
     let p = path.to_str().unwrap();
     fn pooled<'a>(p: &'a str, predictors: &'a str, more: &[&'a str]) -> Vec<&'a str> {
-        let mut args = vec![
-            "pooled",
-            p,
-            "--outcome",
-            "lwage",
-            "--predictors",
-            predictors,
-            "--country",
-            "nr",
-        ];
-        args.extend_from_slice(more);
+        let mut args = vec!["pooled", p, "--outcome"];
+        args.extend(by_man("lwage", predictors, more));
         args
     }
     let outs = assert_refused(&[
@@ -529,9 +504,7 @@ fn score_bootstrap_agrees_with_reference_within_monte_carlo_error() {
     agrees_with_reference_cases(
         "score_bootstrap",
         "union",
-        |x, y, cluster, j| {
-            regression::score_cluster_bootstrap(x, y, None, cluster, j, 9999, 11).unwrap()
-        },
-        |_, j| format!("term {j}"),
+        regression::score_cluster_bootstrap,
+        11,
     );
 }

@@ -352,21 +352,8 @@ fn protective_headers_on_every_response() {
 fn the_key_file_is_private_and_the_url_hands_over_the_key() {
     let dir = TempDir::new("keyfile");
     let key_file = dir.path().join("key");
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_gapwise"))
-        .args([
-            "serve",
-            demo_dir().to_str().unwrap(),
-            "--addr",
-            "127.0.0.1:0",
-            "--key-file",
-        ])
-        .arg(&key_file)
-        .stdout(std::process::Stdio::piped())
-        .spawn()
-        .expect("start the server");
-    let mut stdout = std::io::BufReader::new(child.stdout.take().unwrap());
-    let mut line = String::new();
-    std::io::BufRead::read_line(&mut stdout, &mut line).unwrap();
+    let (mut child, _stdout, line) =
+        serve_demo_process(&["--key-file", key_file.to_str().unwrap()]);
     let url = line
         .split_whitespace()
         .find(|w| w.starts_with("http://"))

@@ -122,18 +122,73 @@ pub fn other_waves(project: &Project, wave: i64) -> Vec<WaveView> {
         .collect()
 }
 
-/// The filled cells of one indicator of `view`: one a row in `missing`, with what `fill`
-/// gives for that row (the numeric values or the levels over the imputations).
-fn filled_cells(
-    view: &WaveView,
-    column: &str,
-    label: &str,
-    missing: &[usize],
-    fill: impl Fn(usize) -> (Option<Vec<f64>>, Option<Vec<String>>),
-) -> Vec<FilledCell> {
-    missing
+/// A numeric indicator's values in `view`.
+fn numeric_values(view: &WaveView, j: usize) -> &[Option<f64>] {
+    &view.numeric[j].values
+}
+
+/// A categorical indicator's level indices in `view`.
+fn categorical_values(view: &WaveView, j: usize) -> &[Option<usize>] {
+    &view.categorical[j].values
+}
+
+/// The indicators (of `count`, read by `values`) with something observed in the whole
+/// stacked frame: the others cannot be imputed and stay as they are (an analysis using
+/// them says so).
+fn observed_columns<T>(
+    stacked: &[&WaveView],
+    count: usize,
+    values: fn(&WaveView, usize) -> &[Option<T>],
+) -> Vec<usize> {
+    (0..count)
+        .filter(|&j| {
+            stacked
+                .iter()
+                .any(|v| values(v, j).iter().any(Option::is_some))
+        })
+        .collect()
+}
+
+/// Indicator `j`'s values (read by `values`) over the stacked frame, view after view.
+fn stacked_values<T: Copy>(
+    stacked: &[&WaveView],
+    j: usize,
+    values: fn(&WaveView, usize) -> &[Option<T>],
+) -> Vec<Option<T>> {
+    stacked
         .iter()
-        .map(|&i| {
+        .flat_map(|v| values(v, j).iter().copied())
+        .collect()
+}
+
+/// What was filled in the wave, indicator after indicator.
+#[derive(Default)]
+struct FilledRecord {
+    cells: Vec<FilledCell>,
+    countries: Vec<String>,
+    indicators: Vec<(String, usize)>,
+}
+
+impl FilledRecord {
+    /// Records the rows of `view` where one indicator (`values`, as observed) is missing,
+    /// each with what `fill` gives for that row (the numeric values or the levels over
+    /// the imputations), and returns those rows (none when nothing is missing).
+    fn record<T>(
+        &mut self,
+        view: &WaveView,
+        column: &str,
+        label: &str,
+        values: &[Option<T>],
+        fill: impl Fn(usize) -> (Option<Vec<f64>>, Option<Vec<String>>),
+    ) -> Vec<usize> {
+        let missing: Vec<usize> = (0..view.len()).filter(|&i| values[i].is_none()).collect();
+        if missing.is_empty() {
+            return missing;
+        }
+        self.indicators.push((column.to_string(), missing.len()));
+        self.countries
+            .extend(missing.iter().map(|&i| view.codes[i].clone()));
+        self.cells.extend(missing.iter().map(|&i| {
             let (values, levels) = fill(i);
             FilledCell {
                 code: view.codes[i].clone(),
@@ -143,8 +198,9 @@ fn filled_cells(
                 values,
                 levels,
             }
-        })
-        .collect()
+        }));
+        missing
+    }
 }
 
 /// Imputes the wave `view` jointly with `others` (the same project's other waves, whose
@@ -168,30 +224,13 @@ pub fn complete(
                 .all(|(a, b)| a.column == b.column && a.levels == b.levels)
     }));
     let n0 = view.len();
-    // Columns with nothing observed in the whole frame cannot be imputed; they stay as
-    // they are (an analysis using them says so).
-    let numeric_cols: Vec<usize> = (0..view.numeric.len())
-        .filter(|&j| {
-            stacked
-                .iter()
-                .any(|v| v.numeric[j].values.iter().any(Option::is_some))
-        })
-        .collect();
-    let categorical_cols: Vec<usize> = (0..view.categorical.len())
-        .filter(|&j| {
-            stacked
-                .iter()
-                .any(|v| v.categorical[j].values.iter().any(Option::is_some))
-        })
-        .collect();
+    let numeric_cols = observed_columns(&stacked, view.numeric.len(), numeric_values);
+    let categorical_cols = observed_columns(&stacked, view.categorical.len(), categorical_values);
     let numeric: Vec<NumericColumn> = numeric_cols
         .iter()
         .map(|&j| NumericColumn {
             name: view.numeric[j].column.clone(),
-            values: stacked
-                .iter()
-                .flat_map(|v| v.numeric[j].values.iter().copied())
-                .collect(),
+            values: stacked_values(&stacked, j, numeric_values),
         })
         .collect();
     let categorical: Vec<CategoricalColumn> = categorical_cols
@@ -199,10 +238,7 @@ pub fn complete(
         .map(|&j| CategoricalColumn {
             name: view.categorical[j].column.clone(),
             levels: view.categorical[j].levels.len(),
-            values: stacked
-                .iter()
-                .flat_map(|v| v.categorical[j].values.iter().copied())
-                .collect(),
+            values: stacked_values(&stacked, j, categorical_values),
         })
         .collect();
     let mut fixed: Vec<Vec<f64>> = vec![stacked
@@ -259,23 +295,18 @@ pub fn complete(
         })
         .collect();
 
-    let mut cells = Vec::new();
-    let mut countries = Vec::new();
-    let mut indicators_filled = Vec::new();
+    let mut filled = FilledRecord::default();
     let mut observed_vs_imputed = Vec::new();
     let mut observed_vs_imputed_levels = Vec::new();
     for (k, &j) in numeric_cols.iter().enumerate() {
         let ind = &view.numeric[j];
-        let missing: Vec<usize> = (0..n0).filter(|&i| ind.values[i].is_none()).collect();
+        let missing = filled.record(view, &ind.column, &ind.label, &ind.values, |i| {
+            let values = result.completed.iter().map(|c| c.numeric[k][i]).collect();
+            (Some(values), None)
+        });
         if missing.is_empty() {
             continue;
         }
-        indicators_filled.push((ind.column.clone(), missing.len()));
-        countries.extend(missing.iter().map(|&i| view.codes[i].clone()));
-        cells.extend(filled_cells(view, &ind.column, &ind.label, &missing, |i| {
-            let values = result.completed.iter().map(|c| c.numeric[k][i]).collect();
-            (Some(values), None)
-        }));
         observed_vs_imputed.push(ObservedImputed {
             indicator: ind.column.clone(),
             label: ind.label.clone(),
@@ -289,27 +320,24 @@ pub fn complete(
     }
     for (k, &j) in categorical_cols.iter().enumerate() {
         let ind = &view.categorical[j];
-        let missing: Vec<usize> = (0..n0).filter(|&i| ind.values[i].is_none()).collect();
-        if missing.is_empty() {
-            continue;
-        }
-        indicators_filled.push((ind.column.clone(), missing.len()));
-        countries.extend(missing.iter().map(|&i| view.codes[i].clone()));
-        cells.extend(filled_cells(view, &ind.column, &ind.label, &missing, |i| {
+        let missing = filled.record(view, &ind.column, &ind.label, &ind.values, |i| {
             let levels = result.completed.iter();
             let levels = levels.map(|c| ind.levels[c.categorical[k][i]].clone());
             (None, Some(levels.collect()))
-        }));
+        });
+        if missing.is_empty() {
+            continue;
+        }
         let mut observed = vec![0; ind.levels.len()];
         for &l in ind.values.iter().flatten() {
             if let Some(n) = observed.get_mut(l) {
                 *n += 1;
             }
         }
-        let mut filled = vec![0; ind.levels.len()];
+        let mut imputed = vec![0; ind.levels.len()];
         for c in &result.completed {
             for &i in &missing {
-                if let Some(n) = filled.get_mut(c.categorical[k][i]) {
+                if let Some(n) = imputed.get_mut(c.categorical[k][i]) {
                     *n += 1;
                 }
             }
@@ -319,9 +347,14 @@ pub fn complete(
             label: ind.label.clone(),
             levels: ind.levels.clone(),
             observed,
-            imputed: filled,
+            imputed,
         });
     }
+    let FilledRecord {
+        cells,
+        mut countries,
+        indicators: indicators_filled,
+    } = filled;
     countries.sort();
     countries.dedup();
     let traces = result

@@ -123,9 +123,9 @@ pub struct Report {
     pub inputs: Vec<LoadedFile>,
 }
 
-/// Where the report's heavier parts come from: computed here, or (on the server) from the
-/// result cache that the pages share, so that a part a page has shown is not computed
-/// again and the report shows exactly the page's numbers.
+/// Where the report's heavier parts come from: computed here (each method's default), or
+/// (on the server) from the result cache that the pages share, so that a part a page has
+/// shown is not computed again and the report shows exactly the page's numbers.
 pub trait Parts {
     fn plan(
         &self,
@@ -133,38 +133,12 @@ pub trait Parts {
         view: &WaveView,
         settings: &Settings,
         ps: &PlanSettings,
-    ) -> Result<Plan, String>;
-    fn impact(
-        &self,
-        project: &Project,
-        view: &WaveView,
-        settings: &Settings,
-        imp: &ImpactSettings,
-    ) -> Result<ImpactReport, String>;
-    fn projection(
-        &self,
-        project: &Project,
-        view: &WaveView,
-        settings: &Settings,
-        ps: &ProjectionSettings,
-    ) -> Result<ProjectionReport, String>;
-}
-
-/// Every part computed afresh (the command line).
-pub struct Compute;
-
-impl Parts for Compute {
-    fn plan(
-        &self,
-        project: &Project,
-        view: &WaveView,
-        settings: &Settings,
-        ps: &PlanSettings,
     ) -> Result<Plan, String> {
-        if super::imputed::wanted(settings) {
-            return super::imputed::plan(Some(project), view, settings, ps).map(|r| r.plan);
-        }
-        plan_for(project, view, settings, ps).map_err(|e| e.to_string())
+        observed_or_imputed(
+            settings,
+            || plan_for(project, view, settings, ps),
+            || super::imputed::plan(Some(project), view, settings, ps).map(|r| r.plan),
+        )
     }
 
     fn impact(
@@ -174,10 +148,11 @@ impl Parts for Compute {
         settings: &Settings,
         imp: &ImpactSettings,
     ) -> Result<ImpactReport, String> {
-        if super::imputed::wanted(settings) {
-            return super::imputed::impact(project, view, settings, imp).map(|r| r.report);
-        }
-        impact(project, view, settings, imp).map_err(|e| e.to_string())
+        observed_or_imputed(
+            settings,
+            || impact(project, view, settings, imp),
+            || super::imputed::impact(project, view, settings, imp).map(|r| r.report),
+        )
     }
 
     fn projection(
@@ -187,17 +162,39 @@ impl Parts for Compute {
         settings: &Settings,
         ps: &ProjectionSettings,
     ) -> Result<ProjectionReport, String> {
-        if super::imputed::wanted(settings) {
-            // One completed frame, said in the notes (as on the projection page).
-            let done = super::imputed::complete_project_wave(Some(project), view, settings)
-                .map_err(|e| e.to_string())?;
-            let mut r =
-                projection(project, &done.views[0], settings, ps).map_err(|e| e.to_string())?;
-            r.notes
-                .insert(0, super::imputed::single_frame_note(&done.summary));
-            return Ok(r);
-        }
-        projection(project, view, settings, ps).map_err(|e| e.to_string())
+        observed_or_imputed(
+            settings,
+            || projection(project, view, settings, ps),
+            || {
+                // One completed frame, said in the notes (as on the projection page).
+                let done = super::imputed::complete_project_wave(Some(project), view, settings)
+                    .map_err(|e| e.to_string())?;
+                let mut r =
+                    projection(project, &done.views[0], settings, ps).map_err(|e| e.to_string())?;
+                r.notes
+                    .insert(0, super::imputed::single_frame_note(&done.summary));
+                Ok::<_, String>(r)
+            },
+        )
+    }
+}
+
+/// Every part computed afresh (the command line).
+pub struct Compute;
+
+impl Parts for Compute {}
+
+/// A part on the observed frame, or under multiple imputation when the settings ask for
+/// it; either error as the text the report shows.
+fn observed_or_imputed<T, E: ToString, F: ToString>(
+    settings: &Settings,
+    observed: impl FnOnce() -> Result<T, E>,
+    imputed: impl FnOnce() -> Result<T, F>,
+) -> Result<T, String> {
+    if super::imputed::wanted(settings) {
+        imputed().map_err(|e| e.to_string())
+    } else {
+        observed().map_err(|e| e.to_string())
     }
 }
 
@@ -255,20 +252,16 @@ pub fn report_with(
         let (coverage, coverage_filled) = coverage_section(project, &view, &settings);
         sections.push(WaveReport {
             wave,
-            fit: if super::imputed::wanted(&settings) {
-                super::imputed::fit(Some(project), &view, &settings)
-                    .map(|r| r.report)
-                    .map_err(|e| e.to_string())
-            } else {
-                fit(&view, &settings).map_err(|e| e.to_string())
-            },
-            balance: if super::imputed::wanted(&settings) {
-                super::imputed::compare(Some(project), &view, &settings)
-                    .map(|r| r.comparison)
-                    .map_err(|e| e.to_string())
-            } else {
-                compare(&view, &settings).map_err(|e| e.to_string())
-            },
+            fit: observed_or_imputed(
+                &settings,
+                || fit(&view, &settings),
+                || super::imputed::fit(Some(project), &view, &settings).map(|r| r.report),
+            ),
+            balance: observed_or_imputed(
+                &settings,
+                || compare(&view, &settings),
+                || super::imputed::compare(Some(project), &view, &settings).map(|r| r.comparison),
+            ),
             coverage,
             coverage_filled,
             plan: parts.plan(project, &view, &settings, &request.plan),

@@ -309,15 +309,7 @@ pub fn fit(
     if let Some(bad) = w.and_then(|w| w.iter().find(|v| !(v.is_finite() && **v > 0.0))) {
         return Err(RegressionError::BadWeight(*bad));
     }
-    let groups = cluster.iter().max().map_or(0, |m| m + 1);
-    let distinct = {
-        let mut seen = vec![false; groups];
-        cluster.iter().for_each(|&c| seen[c] = true);
-        seen.iter().filter(|&&s| s).count()
-    };
-    if distinct < 2 {
-        return Err(RegressionError::OneCluster(distinct));
-    }
+    let (groups, distinct) = counted_clusters(cluster)?;
     let weight = |i: usize| w.map_or(1.0, |w| w[i]);
     let (beta, bread, u, converged, iterations) = match kind {
         Kind::Linear => {
@@ -339,17 +331,49 @@ pub fn fit(
             (beta, bread, u, converged, iterations)
         }
     };
-    let cov = cluster_covariance(&bread, &u, n);
-    Ok(RegressionFit {
-        coef: beta.to_vec(),
-        se: cov.diag().iter().map(|v| v.max(0.0).sqrt()).collect(),
-        cov,
-        bread,
-        n,
-        clusters: distinct,
-        converged,
-        iterations,
-    })
+    Ok(RegressionFit::clustered(
+        &beta, bread, &u, n, distinct, converged, iterations,
+    ))
+}
+
+/// The number of clusters G (labels run `0..G`, up to the last one used) and how many of
+/// them have rows; fewer than two clusters with rows give no clustered errors.
+fn counted_clusters(cluster: &[usize]) -> Result<(usize, usize), RegressionError> {
+    let groups = cluster.iter().max().map_or(0, |m| m + 1);
+    let mut seen = vec![false; groups];
+    cluster.iter().for_each(|&c| seen[c] = true);
+    let distinct = seen.iter().filter(|&&s| s).count();
+    if distinct < 2 {
+        return Err(RegressionError::OneCluster(distinct));
+    }
+    Ok((groups, distinct))
+}
+
+impl RegressionFit {
+    /// The fit at estimate `beta` with inverse information `bread` and per-cluster scores
+    /// `u` (one row a cluster): CR1 covariance and standard errors over `n` rows in
+    /// `clusters` clusters, with the solver's convergence and iterations.
+    fn clustered(
+        beta: &Array1<f64>,
+        bread: Array2<f64>,
+        u: &Array2<f64>,
+        n: usize,
+        clusters: usize,
+        converged: bool,
+        iterations: usize,
+    ) -> RegressionFit {
+        let cov = cluster_covariance(&bread, u, n);
+        RegressionFit {
+            coef: beta.to_vec(),
+            se: cov.diag().iter().map(|v| v.max(0.0).sqrt()).collect(),
+            cov,
+            bread,
+            n,
+            clusters,
+            converged,
+            iterations,
+        }
+    }
 }
 
 /// What [`logistic_newton`] returns.
@@ -976,17 +1000,15 @@ impl LinearSums {
         for &g in &present {
             u.row_mut(g).assign(&(&self.b[g] - &self.m[g].dot(&beta)));
         }
-        let cov = cluster_covariance(&bread, &u, n);
-        Ok(RegressionFit {
-            coef: beta.to_vec(),
-            se: cov.diag().iter().map(|v| v.max(0.0).sqrt()).collect(),
-            cov,
+        Ok(RegressionFit::clustered(
+            &beta,
             bread,
+            &u,
             n,
-            clusters: present.len(),
-            converged: true,
-            iterations: 1,
-        })
+            present.len(),
+            true,
+            1,
+        ))
     }
 
     /// [`wild_cluster_bootstrap_terms`] from the sums, with their fit.
@@ -1314,15 +1336,7 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
             (cov, &bread * s2, vg.clone(), None)
         }
         Some(cl) => {
-            let groups = cl.iter().max().map_or(0, |m| m + 1);
-            let distinct = {
-                let mut seen = vec![false; groups];
-                cl.iter().for_each(|&g| seen[g] = true);
-                seen.iter().filter(|&&s| s).count()
-            };
-            if distinct < 2 {
-                return Err(RegressionError::OneCluster(distinct));
-            }
+            let (groups, distinct) = counted_clusters(cl)?;
             let mut s1 = Array2::<f64>::zeros((groups, p));
             for i in 0..n {
                 s1.row_mut(cl[i]).scaled_add(score_unit[i], &z.row(i));
@@ -1362,20 +1376,33 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
 mod tests {
     use super::student;
 
-    /// All terms from one pass give each term's one-term p-value exactly (the same sums,
-    /// the same seed).
-    #[test]
-    fn all_terms_at_once_equal_one_term_at_a_time() {
-        let mut rng = crate::stats::random::Rng::new(11);
-        let n = 400;
+    /// Simulated clustered data, seeded: `n` rows, row i in cluster i mod `clusters`; a
+    /// design of an intercept and two standard normals (drawn row by row), then the
+    /// outcome `intercept` + 0.5 x1 + a standard normal + 0.1 g.
+    fn clustered_data(
+        seed: u64,
+        n: usize,
+        clusters: usize,
+        intercept: f64,
+    ) -> (ndarray::Array2<f64>, Vec<usize>, Vec<f64>) {
+        let mut rng = crate::stats::random::Rng::new(seed);
         let x = ndarray::Array2::from_shape_fn(
             (n, 3),
             |(_, c)| if c == 0 { 1.0 } else { rng.normal() },
         );
-        let cluster: Vec<usize> = (0..n).map(|i| i % 9).collect();
-        let y: Vec<f64> = (0..n)
-            .map(|i| 0.5 * x[[i, 1]] + rng.normal() + (cluster[i] as f64) * 0.1)
+        let cluster: Vec<usize> = (0..n).map(|i| i % clusters).collect();
+        let y = (0..n)
+            .map(|i| intercept + 0.5 * x[[i, 1]] + rng.normal() + (cluster[i] as f64) * 0.1)
             .collect();
+        (x, cluster, y)
+    }
+
+    /// All terms from one pass give each term's one-term p-value exactly (the same sums,
+    /// the same seed).
+    #[test]
+    fn all_terms_at_once_equal_one_term_at_a_time() {
+        let n = 400;
+        let (x, cluster, y) = clustered_data(11, n, 9, 0.0);
         let w: Vec<f64> = (0..n).map(|i| 0.5 + (i % 3) as f64).collect();
         let all =
             super::wild_cluster_bootstrap_terms(x.view(), &y, Some(&w), &cluster, 199, 5).unwrap();
@@ -1408,22 +1435,8 @@ mod tests {
         // rescale each cluster's sums, so the fit from sums equals the fit on the rows (QR)
         // to rounding, the intercept-only sums give the weighted mean, and a cluster whose
         // factor is 0 is left out as its rows would be.
-        let mut rng = crate::stats::random::Rng::new(12);
         let n = 600;
-        let x = ndarray::Array2::from_shape_fn(
-            (n, 3),
-            |(_, c)| {
-                if c == 0 {
-                    1.0
-                } else {
-                    rng.normal()
-                }
-            },
-        );
-        let cluster: Vec<usize> = (0..n).map(|i| i % 10).collect();
-        let y: Vec<f64> = (0..n)
-            .map(|i| 1.0 + 0.5 * x[[i, 1]] + rng.normal() + (cluster[i] as f64) * 0.1)
-            .collect();
+        let (x, cluster, y) = clustered_data(12, n, 10, 1.0);
         let base: Vec<f64> = (0..n).map(|i| 0.5 + (i % 4) as f64).collect();
         let mut factor: Vec<f64> = (0..10).map(|g| 0.2 + g as f64 / 7.0).collect();
         factor[9] = 0.0;
