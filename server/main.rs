@@ -53,8 +53,6 @@ enum Command {
     },
     /// Model participation in one wave and weight the participants to the eligible universe.
     Fit {
-        /// A project folder, or a CSV/Parquet frame in which every row is an eligible unit.
-        source: PathBuf,
         #[command(flatten)]
         universe: UniverseArgs,
         #[command(flatten)]
@@ -75,8 +73,6 @@ enum Command {
     },
     /// Plan recruitment: which absent eligible countries would most improve balance.
     Plan {
-        /// A project folder, or a CSV/Parquet frame in which every row is an eligible unit.
-        source: PathBuf,
         #[command(flatten)]
         universe: UniverseArgs,
         #[command(flatten)]
@@ -120,18 +116,15 @@ enum Command {
     },
     /// Pooled regression of a respondent outcome with standard errors clustered by country,
     /// p-values and intervals from t with (countries - 1) degrees of freedom.
+    // The outcome's help, then the country's: each change moves its option to the end of
+    // the usage line, so this order keeps it as written.
+    #[command(
+        mut_arg("outcome", |a| a.help("The outcome column")),
+        mut_arg("country", |a| a.help("The country column (standard errors are clustered by it)"))
+    )]
     Pooled {
-        /// A CSV or Parquet file with one row per respondent.
-        microdata: PathBuf,
-        /// The outcome column.
-        #[arg(long)]
-        outcome: String,
-        /// Predictor columns, comma-separated.
-        #[arg(long, value_delimiter = ',')]
-        predictors: Vec<String>,
-        /// The country column (standard errors are clustered by it).
-        #[arg(long)]
-        country: String,
+        #[command(flatten)]
+        respondents: RespondentColumns,
         /// Design weights column (each respondent's weight in the least squares).
         #[arg(long)]
         design_weight: Option<String>,
@@ -208,17 +201,8 @@ enum Command {
     },
     /// Random-intercept model of a respondent outcome, countries as the second level.
     Multilevel {
-        /// A CSV or Parquet file with one row per respondent.
-        microdata: PathBuf,
-        /// The outcome column (0/1 for --kind logistic).
-        #[arg(long)]
-        outcome: String,
-        /// Predictor columns, comma-separated.
-        #[arg(long, value_delimiter = ',')]
-        predictors: Vec<String>,
-        /// The country column.
-        #[arg(long)]
-        country: String,
+        #[command(flatten)]
+        respondents: RespondentColumns,
         /// linear or logistic.
         #[arg(long, default_value = "linear", value_parser = multilevel_kind)]
         kind: gapwise::analysis::multilevel::Kind,
@@ -273,8 +257,28 @@ enum Command {
     },
 }
 
+/// The respondent-level data of a model across countries: the file and its columns. The
+/// help is the multilevel model's; `pooled` says its own.
+#[derive(clap::Args)]
+struct RespondentColumns {
+    /// A CSV or Parquet file with one row per respondent.
+    microdata: PathBuf,
+    /// The outcome column (0/1 for --kind logistic).
+    #[arg(long)]
+    outcome: String,
+    /// Predictor columns, comma-separated.
+    #[arg(long, value_delimiter = ',')]
+    predictors: Vec<String>,
+    /// The country column.
+    #[arg(long)]
+    country: String,
+}
+
+/// Where the universe comes from: a project's wave, or a frame file with its columns.
 #[derive(clap::Args)]
 struct UniverseArgs {
+    /// A project folder, or a CSV/Parquet frame in which every row is an eligible unit.
+    source: PathBuf,
     /// The wave to analyse (project folders; default: the latest).
     #[arg(long)]
     wave: Option<i64>,
@@ -441,6 +445,19 @@ impl ReportArgs {
     }
 }
 
+impl UniverseArgs {
+    /// The universe to load, with the extra columns a frame file should also give.
+    fn source(self, extra: gapwise::project::wave::ExtraColumns) -> cli::UniverseSource {
+        cli::UniverseSource {
+            path: self.source,
+            wave: self.wave,
+            id: self.id,
+            flag: self.flag,
+            extra,
+        }
+    }
+}
+
 impl AnalysisArgs {
     fn settings(&self) -> Result<gapwise::analysis::Settings, String> {
         let mut pairs: Vec<(&str, &str)> = vec![
@@ -468,6 +485,30 @@ impl AnalysisArgs {
         }
         gapwise::analysis::Settings::from_pairs(pairs).map_err(|e| e.to_string())
     }
+}
+
+/// Runs a command with the analysis settings of its options (and its `--seed`, when
+/// given); settings that do not parse are a usage error.
+fn with_settings(
+    analysis: &AnalysisArgs,
+    seed: Option<u64>,
+    run: impl FnOnce(gapwise::analysis::Settings) -> i32,
+) -> i32 {
+    match analysis.settings() {
+        Ok(mut settings) => {
+            if let Some(seed) = seed {
+                settings.seed = seed;
+            }
+            run(settings)
+        }
+        Err(message) => usage_error(&message),
+    }
+}
+
+/// A usage error: the message on standard error, exit code 2 (as clap's own).
+fn usage_error(message: &str) -> i32 {
+    eprintln!("{message}");
+    2
 }
 
 /// Work settings above their limits (the same limits as the pages').
@@ -542,43 +583,27 @@ fn main() -> ExitCode {
             out,
             respondents,
             seed,
-        }) => match analysis.settings() {
-            Ok(mut settings) => {
-                if let Some(seed) = seed {
-                    settings.seed = seed;
-                }
-                cli::export_weights(&dir, &settings, &out, respondents)
-            }
-            Err(message) => {
-                eprintln!("{message}");
-                2
-            }
-        },
+        }) => with_settings(&analysis, seed, |settings| {
+            cli::export_weights(&dir, &settings, &out, respondents)
+        }),
         Some(Command::Report {
             dir,
             analysis,
             report,
             out,
-        }) => match analysis.settings() {
-            Ok(settings) => cli::report(&dir, &report.query(&settings), &out),
-            Err(message) => {
-                eprintln!("{message}");
-                2
-            }
-        },
+        }) => with_settings(&analysis, None, |settings| {
+            cli::report(&dir, &report.query(&settings), &out)
+        }),
         Some(Command::Pooled {
-            microdata,
-            outcome,
-            predictors,
-            country,
+            respondents: r,
             design_weight,
             kind,
             json,
         }) => cli::pooled(
-            &microdata,
-            &outcome,
-            &predictors,
-            &country,
+            &r.microdata,
+            &r.outcome,
+            &r.predictors,
+            &r.country,
             design_weight.as_deref(),
             kind,
             json,
@@ -615,47 +640,35 @@ fn main() -> ExitCode {
             wild_replicates,
             seed,
             json,
-        }) => match analysis.settings() {
-            Ok(mut settings) => {
-                settings.wave = wave;
-                if let Some(seed) = seed {
-                    settings.seed = seed;
-                }
-                let imp = gapwise::analysis::impact::ImpactSettings {
-                    outcome,
-                    predictors,
-                    kind,
-                    country_indicators,
-                    shares: population.map_or(
-                        gapwise::analysis::impact::Shares::Equal,
-                        gapwise::analysis::impact::Shares::Population,
-                    ),
-                    replicates,
-                    wild_replicates,
-                };
-                cli::impact(&dir, settings, &imp, json)
-            }
-            Err(message) => {
-                eprintln!("{message}");
-                2
-            }
-        },
+        }) => with_settings(&analysis, seed, |mut settings| {
+            settings.wave = wave;
+            let imp = gapwise::analysis::impact::ImpactSettings {
+                outcome,
+                predictors,
+                kind,
+                country_indicators,
+                shares: population.map_or(
+                    gapwise::analysis::impact::Shares::Equal,
+                    gapwise::analysis::impact::Shares::Population,
+                ),
+                replicates,
+                wild_replicates,
+            };
+            cli::impact(&dir, settings, &imp, json)
+        }),
         Some(Command::Multilevel {
-            microdata,
-            outcome,
-            predictors,
-            country,
+            respondents: r,
             kind,
             ml,
             design_weight,
             nodes,
             json,
         }) => cli::multilevel(
-            &microdata,
+            &r.microdata,
             &cli::MultilevelArgs {
-                outcome: &outcome,
-                predictors: &predictors,
-                country: &country,
+                outcome: &r.outcome,
+                predictors: &r.predictors,
+                country: &r.country,
                 kind,
                 ml,
                 weight: design_weight.as_deref(),
@@ -664,7 +677,6 @@ fn main() -> ExitCode {
             json,
         ),
         Some(Command::Plan {
-            source,
             universe,
             analysis,
             budget,
@@ -678,86 +690,49 @@ fn main() -> ExitCode {
             replicates,
             seed,
             json,
-        }) => match (
-            analysis.settings(),
-            gapwise::analysis::planner::ObjectiveKind::parse(&objective),
-        ) {
-            (Err(message), _) => {
-                eprintln!("{message}");
-                2
-            }
-            (_, None) => {
-                eprintln!("--objective must be effective-n, largest-smd or feasibility, not '{objective}'");
-                2
-            }
-            (Ok(mut settings), Some(objective)) => {
-                if let Some(seed) = seed {
-                    settings.seed = seed;
-                }
-                let feasibility = gapwise::analysis::planner::Feasibility::parse(&feasibility);
-                let extra = gapwise::project::wave::ExtraColumns {
-                    cost: cost_column.clone(),
-                    feasibility: match &feasibility {
-                        gapwise::analysis::planner::Feasibility::Column(c) => Some(c.clone()),
-                        _ => None,
-                    },
-                    support: support_cost.clone().zip(support_chance.clone()),
-                };
-                let plan_settings = gapwise::analysis::planner::PlanSettings {
-                    budget,
-                    cost_budget,
-                    cost_column,
-                    feasibility,
-                    objective,
-                    support: !without_support,
-                    replicates,
-                    ..Default::default()
-                };
-                cli::plan(
-                    &cli::UniverseSource {
-                        path: source,
-                        wave: universe.wave,
-                        id: universe.id,
-                        flag: universe.flag,
-                        extra,
-                    },
-                    settings,
-                    &plan_settings,
-                    json,
-                )
-            }
-        },
+        }) => with_settings(&analysis, seed, |settings| {
+            let Some(objective) = gapwise::analysis::planner::ObjectiveKind::parse(&objective)
+            else {
+                return usage_error(&format!(
+                    "--objective must be effective-n, largest-smd or feasibility, not '{objective}'"
+                ));
+            };
+            let feasibility = gapwise::analysis::planner::Feasibility::parse(&feasibility);
+            let extra = gapwise::project::wave::ExtraColumns {
+                cost: cost_column.clone(),
+                feasibility: match &feasibility {
+                    gapwise::analysis::planner::Feasibility::Column(c) => Some(c.clone()),
+                    _ => None,
+                },
+                support: support_cost.clone().zip(support_chance.clone()),
+            };
+            let plan_settings = gapwise::analysis::planner::PlanSettings {
+                budget,
+                cost_budget,
+                cost_column,
+                feasibility,
+                objective,
+                support: !without_support,
+                replicates,
+                ..Default::default()
+            };
+            cli::plan(&universe.source(extra), settings, &plan_settings, json)
+        }),
         Some(Command::Fit {
-            source,
             universe,
             analysis,
             outcome,
             sensitivity,
             seed,
             json,
-        }) => match analysis.settings() {
-            Ok(mut settings) => {
-                if let Some(seed) = seed {
-                    settings.seed = seed;
-                }
-                cli::fit(
-                    &cli::UniverseSource {
-                        path: source,
-                        wave: universe.wave,
-                        id: universe.id,
-                        flag: universe.flag,
-                        extra: Default::default(),
-                    },
-                    settings,
-                    outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
-                    json,
-                )
-            }
-            Err(message) => {
-                eprintln!("{message}");
-                2
-            }
-        },
+        }) => with_settings(&analysis, seed, |settings| {
+            cli::fit(
+                &universe.source(Default::default()),
+                settings,
+                outcome.as_deref().map(|o| (o, sensitivity.as_slice())),
+                json,
+            )
+        }),
     };
     ExitCode::from(code.clamp(0, 255) as u8)
 }

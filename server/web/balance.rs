@@ -1,14 +1,12 @@
 //! The balance page: SMDs and variance ratios before and after each weighting method.
 
-use std::sync::Arc;
-
 use askama::Template;
-use axum::extract::{Path, Query, State};
-use axum::response::{Html, Response};
+use axum::response::Response;
 
-use super::context::{off_thread, resolve, SettingsForm};
+use super::context::{resolve_page, Query, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::balance::{compare, BalanceComparison};
@@ -58,15 +56,14 @@ impl BalancePage<'_> {
     }
 }
 
-pub(super) fn compute(
-    state: &AppState,
-    query: &super::context::Query,
-) -> AppResult<(SettingsForm, BalanceResult)> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/balance", &project, &settings);
+/// The comparison is light work; the page, its twin and its downloads share it.
+pub(super) const COMPUTATION: Computation<(SettingsForm, BalanceResult)> =
+    Computation::light(compute);
+
+fn compute(state: &AppState, query: &Query) -> AppResult<(SettingsForm, BalanceResult)> {
+    let (project, settings, view, form) = resolve_page(state, query, "/balance")?;
     let result = if imputed::wanted(&settings) {
-        let r = imputed::compare(Some(&project), &view, &settings)
-            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let r = imputed::compare(Some(&project), &view, &settings)?;
         BalanceResult {
             b: r.comparison,
             imputed: Some(r.spread),
@@ -80,13 +77,13 @@ pub(super) fn compute(
     Ok((form, result))
 }
 
-pub async fn page(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Html<String>> {
-    let (form, result) = off_thread(&state, &query, compute).await?;
+pub(super) fn page(
+    _: &AppState,
+    query: &Query,
+    (form, result): (SettingsForm, BalanceResult),
+) -> AppResult<String> {
     let b = &result.b;
-    let form = form.presenting(&query);
+    let form = form.presenting(query);
     let eff_range = result.imputed.as_ref().map_or_else(Vec::new, |s| {
         s.effective_n_spread
             .iter()
@@ -101,7 +98,7 @@ pub async fn page(
                 .collect()
         })
         .collect();
-    let html = BalancePage {
+    Ok(BalancePage {
         equal_share: 1.0 / b.n_participants.max(1) as f64,
         before_max: Some(b.max_abs_smd_before),
         cells,
@@ -115,18 +112,15 @@ pub async fn page(
         imputed: result.imputed.as_ref(),
         eff_range,
     }
-    .render()?;
-    Ok(Html(html))
+    .render()?)
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<super::context::Query>,
+pub(super) fn artifact(
+    item: &str,
+    (_, result): &(SettingsForm, BalanceResult),
 ) -> AppResult<Response> {
-    let (_, result) = off_thread(&state, &query, compute).await?;
     let b = &result.b;
-    match item.as_str() {
+    match item {
         "smd.svg" => Ok(svg_response(
             "balance-smd.svg",
             charts::balance::smd_dots(b),

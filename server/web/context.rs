@@ -5,10 +5,10 @@ use std::sync::Arc;
 
 use serde::Serialize;
 
-use super::error::AppResult;
+use super::error::{AppError, AppResult};
 use super::state::AppState;
-use super::work::Lane;
 use crate::analysis::cache::CacheKey;
+use crate::analysis::imputed;
 use crate::analysis::settings::{model_label, MissingRule, ModelKind, Settings, WeightingKind};
 use crate::project::{Project, WaveView};
 
@@ -114,6 +114,33 @@ pub fn resolve(state: &AppState, query: &Query) -> AppResult<(Arc<Project>, Sett
     let (wave, view) = project.resolve_wave(settings.wave)?;
     settings.wave = Some(wave);
     Ok((project, settings, view))
+}
+
+/// [`resolve`], with the settings form of the page at `action`: where every analysis page's
+/// computation starts.
+pub fn resolve_page(
+    state: &AppState,
+    query: &Query,
+    action: &'static str,
+) -> AppResult<(Arc<Project>, Settings, WaveView, SettingsForm)> {
+    let (project, settings, view) = resolve(state, query)?;
+    let form = SettingsForm::new(action, &project, &settings);
+    Ok((project, settings, view, form))
+}
+
+/// Under multiple imputation, for the pages that show one completed frame rather than a
+/// combination: the wave's first completed frame, and the note that says so.
+pub fn first_completed_frame(
+    project: &Project,
+    view: &WaveView,
+    settings: &Settings,
+) -> AppResult<(WaveView, String)> {
+    let done = imputed::complete_project_wave(Some(project), view, settings)?;
+    let note = imputed::single_frame_note(&done.summary);
+    let first = done.views.into_iter().next().ok_or_else(|| {
+        AppError::Internal("multiple imputation gave no completed frame".to_string())
+    })?;
+    Ok((first, note))
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -313,7 +340,7 @@ no_own_settings!(
 /// The canonical text of a typed settings value: its JSON, fields in their declared order.
 fn canonical<T: Serialize>(settings: &T) -> AppResult<String> {
     serde_json::to_string(settings)
-        .map_err(|e| super::error::AppError::Internal(format!("settings not serialisable: {e}")))
+        .map_err(|e| AppError::Internal(format!("settings not serialisable: {e}")))
 }
 
 impl PageSettings for super::plan::PlanResult {
@@ -359,7 +386,7 @@ impl PageSettings for super::report::ReportHtml {
 /// revision, the normalised analysis settings (wave filled in) and the page's own typed
 /// settings ([`PageSettings`]). `None` when the settings do not parse; the computation
 /// then reports why.
-fn page_key<T: PageSettings>(state: &AppState, query: &Query) -> Option<CacheKey> {
+pub(super) fn page_key<T: PageSettings>(state: &AppState, query: &Query) -> Option<CacheKey> {
     let project = state.project();
     let mut settings = normalised_settings(&project, query).ok()?;
     if settings.wave.is_none() {
@@ -387,77 +414,6 @@ where
         Some(key) => state.cache.get_or_compute(&key, || compute(state, query)),
         None => compute(state, query).map(Arc::new),
     }
-}
-
-/// Runs a light page computation (a model fit, a table) on the blocking pool, through the
-/// result cache.
-pub async fn off_thread<T>(
-    state: &Arc<AppState>,
-    query: &Query,
-    compute: fn(&AppState, &Query) -> AppResult<T>,
-) -> AppResult<T>
-where
-    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
-{
-    run(Lane::Light, state, query, compute).await
-}
-
-/// Runs a heavy page computation (bootstrap replicates, the planner, the report) on the
-/// bounded heavy pool, through the result cache; answers 503 when too much is queued.
-pub async fn off_thread_heavy<T>(
-    state: &Arc<AppState>,
-    query: &Query,
-    compute: fn(&AppState, &Query) -> AppResult<T>,
-) -> AppResult<T>
-where
-    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
-{
-    run(Lane::Heavy, state, query, compute).await
-}
-
-/// The future a JSON twin handler answers with (see `json_twin`).
-pub type TwinAnswer<J> =
-    std::pin::Pin<Box<dyn std::future::Future<Output = AppResult<axum::Json<J>>> + Send>>;
-
-/// The handler of a page's JSON twin: the page's own computation on `lane`, through the
-/// same result cache as the page, answering the part `result` picks from it. One handler
-/// for the pages whose twin is their result as it stands.
-pub fn json_twin<T, J>(
-    lane: Lane,
-    compute: fn(&AppState, &Query) -> AppResult<T>,
-    result: fn(T) -> J,
-) -> impl Fn(axum::extract::State<Arc<AppState>>, axum::extract::Query<Query>) -> TwinAnswer<J>
-       + Clone
-       + Send
-       + Sync
-       + 'static
-where
-    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
-    J: Serialize + Send + 'static,
-{
-    move |axum::extract::State(state), axum::extract::Query(query)| {
-        Box::pin(async move {
-            let answer = run(lane, &state, &query, compute).await?;
-            Ok(axum::Json(result(answer)))
-        })
-    }
-}
-
-async fn run<T>(
-    lane: Lane,
-    state: &Arc<AppState>,
-    query: &Query,
-    compute: fn(&AppState, &Query) -> AppResult<T>,
-) -> AppResult<T>
-where
-    T: PageSettings + Clone + Serialize + Send + Sync + 'static,
-{
-    let key = page_key::<T>(state, query);
-    let (job_state, query) = (Arc::clone(state), query.clone());
-    Ok(state
-        .work
-        .run(lane, &state.cache, key, move || compute(&job_state, &query))
-        .await?)
 }
 
 #[cfg(test)]

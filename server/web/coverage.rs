@@ -1,15 +1,12 @@
 //! The coverage page: which kinds of countries are missing.
 
-use std::sync::Arc;
-
 use askama::Template;
-use axum::extract::{Path, Query, State};
-use axum::response::{Html, Response};
-use axum::Json;
+use axum::response::Response;
 
-use super::context::{off_thread, resolve, SettingsForm};
+use super::context::{resolve_page, Query, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
@@ -41,12 +38,13 @@ pub(crate) type CoverageResult = (
     Vec<String>,
 );
 
-fn compute(state: &AppState, query: &super::context::Query) -> AppResult<CoverageResult> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/coverage", &project, &settings);
+/// The components and rates are light work; the page, its twin and its downloads share them.
+pub(super) const COMPUTATION: Computation<CoverageResult> = Computation::light(compute);
+
+fn compute(state: &AppState, query: &Query) -> AppResult<CoverageResult> {
+    let (project, settings, view, form) = resolve_page(state, query, "/coverage")?;
     if crate::analysis::imputed::wanted(&settings) {
-        let r = crate::analysis::imputed::coverage(Some(&project), &view, &settings)
-            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let r = crate::analysis::imputed::coverage(Some(&project), &view, &settings)?;
         return Ok((form, r.coverage, None, r.filled));
     }
     Ok((
@@ -57,13 +55,13 @@ fn compute(state: &AppState, query: &super::context::Query) -> AppResult<Coverag
     ))
 }
 
-pub async fn page(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Html<String>> {
-    let (form, c, incomplete, filled) = off_thread(&state, &query, compute).await?;
-    let form = form.presenting(&query);
-    let html = CoveragePage {
+pub(super) fn page(
+    _: &AppState,
+    query: &Query,
+    (form, c, incomplete, filled): CoverageResult,
+) -> AppResult<String> {
+    let form = form.presenting(query);
+    Ok(CoveragePage {
         page: "coverage",
         nav_query: form.query.clone(),
         form,
@@ -74,8 +72,7 @@ pub async fn page(
         incomplete,
         cautions: &STANDING,
     }
-    .render()?;
-    Ok(Html(html))
+    .render()?)
 }
 
 /// The coverage twin: the report and, under multiple imputation, the countries with
@@ -88,28 +85,19 @@ pub struct CoverageTwin {
     filled: Vec<String>,
 }
 
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Json<CoverageTwin>> {
-    let (_, coverage, _, filled) = off_thread(&state, &query, compute).await?;
-    Ok(Json(CoverageTwin { coverage, filled }))
+pub(super) fn twin((_, coverage, _, filled): CoverageResult) -> CoverageTwin {
+    CoverageTwin { coverage, filled }
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Response> {
-    let (_, c, _, filled) = off_thread(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, (_, c, _, filled): &CoverageResult) -> AppResult<Response> {
+    match item {
         "map.svg" => Ok(svg_response(
             "component-map.svg",
-            charts::map::component_map_imputed(&c, &filled),
+            charts::map::component_map_imputed(c, filled),
         )),
         "spreads.svg" => Ok(svg_response(
             "indicator-spreads.svg",
-            charts::map::spreads(&c),
+            charts::map::spreads(c),
         )),
         "points.csv" => Ok(csv_response(
             "component-scores.csv",

@@ -68,6 +68,14 @@ impl From<crate::analysis::participation::AnalysisError> for AppError {
     }
 }
 
+impl From<crate::analysis::imputed::ImputedError> for AppError {
+    fn from(e: crate::analysis::imputed::ImputedError) -> Self {
+        // Multiple imputation that cannot complete or combine the frames: settings to change
+        // (fewer indicators, another missing-value rule).
+        AppError::BadRequest(e.to_string())
+    }
+}
+
 impl From<crate::analysis::impact::ImpactError> for AppError {
     fn from(e: crate::analysis::impact::ImpactError) -> Self {
         use crate::analysis::impact::ImpactError;

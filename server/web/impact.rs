@@ -4,13 +4,13 @@
 use std::sync::Arc;
 
 use askama::Template;
-use axum::extract::{Path, Query, State};
+use axum::extract::{Query, State};
 use axum::response::{Html, Response};
-use axum::Json;
 
-use super::context::{off_thread_heavy, resolve, Choice, Query as PageQuery, SettingsForm};
+use super::context::{resolve_page, Choice, Query as PageQuery, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
@@ -327,9 +327,11 @@ pub(crate) type ImpactResult = (
     Option<ImpactCombination>,
 );
 
+/// Every correction with its bootstraps is heavy work.
+pub(super) const COMPUTATION: Computation<ImpactResult> = Computation::heavy(compute);
+
 pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<ImpactResult> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/impact", &project, &settings);
+    let (project, settings, view, form) = resolve_page(state, query, "/impact")?;
     let imp = impact_settings(&project, query)?;
     // Under multiple imputation: every correction on each completed frame, combined by
     // Rubin's rules (the notes say so); nobody is left out, so nothing is incomplete.
@@ -369,7 +371,7 @@ pub async fn page(
 ) -> AppResult<Html<String>> {
     // The sensitivity bounds are a result of their own: computed beside the corrections.
     let (result, bounds) = tokio::join!(
-        off_thread_heavy(&state, &query, compute),
+        COMPUTATION.result(&state, &query),
         super::impact_bounds::section(&state, &query)
     );
     let (form, r, incomplete, imputed) = result?;
@@ -475,28 +477,19 @@ pub struct ImpactTwin {
     imputed: Option<ImpactCombination>,
 }
 
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Json<ImpactTwin>> {
-    let (_, report, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
-    Ok(Json(ImpactTwin { report, imputed }))
+pub(super) fn twin((_, report, _, imputed): ImpactResult) -> ImpactTwin {
+    ImpactTwin { report, imputed }
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Response> {
-    let (_, r, _, _) = off_thread_heavy(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, (_, r, _, _): &ImpactResult) -> AppResult<Response> {
+    match item {
         "pooled.svg" => Ok(svg_response(
             "pooled-estimates.svg",
-            charts::impact::pooled(&r),
+            charts::impact::pooled(r),
         )),
         "coefficients.svg" => Ok(svg_response(
             "coefficients-by-correction.svg",
-            charts::impact::coefficients(&r),
+            charts::impact::coefficients(r),
         )),
         "table.csv" => {
             let mut rows = Vec::new();

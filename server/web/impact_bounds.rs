@@ -4,11 +4,11 @@
 
 use std::sync::Arc;
 
-use axum::extract::{Path, Query, State};
 use axum::response::Response;
 
-use super::context::{off_thread_heavy, resolve, Query as PageQuery, BOUNDS_KEYS};
+use super::context::{resolve, Query as PageQuery, BOUNDS_KEYS};
 use super::error::{AppError, AppResult};
+use super::handlers::Computation;
 use super::impact::impact_settings;
 use super::state::AppState;
 use super::{csv_response, svg_response};
@@ -60,7 +60,10 @@ pub fn bounds_settings(
     })
 }
 
-pub(super) fn compute(state: &AppState, query: &PageQuery) -> AppResult<SelectionBounds> {
+/// The bounds' bootstrap is heavy work.
+pub(super) const COMPUTATION: Computation<SelectionBounds> = Computation::heavy(compute);
+
+fn compute(state: &AppState, query: &PageQuery) -> AppResult<SelectionBounds> {
     let (project, settings, view) = resolve(state, query)?;
     let bs = bounds_settings(&project, query)?;
     Ok(selection_bounds(Some(&project), &view, &settings, &bs)?)
@@ -82,7 +85,7 @@ pub struct Section {
 
 /// Computes (or takes from the cache) the section for the page's query.
 pub async fn section(state: &Arc<AppState>, query: &PageQuery) -> Section {
-    let result = off_thread_heavy(state, query, compute).await;
+    let result = COMPUTATION.result(state, query).await;
     let (result, error) = match result {
         Ok(r) => (Some(r), None),
         Err(e) => (None, Some(e.to_string())),
@@ -112,16 +115,11 @@ pub async fn section(state: &Arc<AppState>, query: &PageQuery) -> Section {
     }
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Response> {
-    let r = off_thread_heavy(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, r: &SelectionBounds) -> AppResult<Response> {
+    match item {
         "bounds.svg" => Ok(svg_response(
             "sensitivity-bounds.svg",
-            charts::selection_bounds::bounds(&r),
+            charts::selection_bounds::bounds(r),
         )),
         "bounds.csv" => Ok(csv_response(
             "sensitivity-bounds.csv",

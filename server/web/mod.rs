@@ -7,6 +7,7 @@ pub mod download;
 pub mod error;
 pub mod format;
 pub mod guard;
+pub mod handlers;
 pub mod impact;
 pub mod impact_bounds;
 pub mod model;
@@ -28,10 +29,8 @@ use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
 use axum::{Json, Router};
 
-use context::json_twin;
 use error::{AppError, AppResult};
 pub use state::AppState;
-use work::Lane;
 
 /// Our stylesheet and icon, compiled into the binary so that an installed `gapwise`
 /// needs no checkout.
@@ -67,54 +66,81 @@ pub fn router(state: Arc<AppState>) -> Router {
         .route("/", get(overview::page))
         .route("/api/overview", get(overview::json))
         .route("/charts/coverage.svg", get(overview::coverage_svg))
-        .route("/api/imputation", get(overview::imputation_json))
+        .route("/api/imputation", get(overview::IMPUTATION.twin(|s| s)))
         // Balance
-        .route("/balance", get(balance::page))
+        .route("/balance", get(balance::COMPUTATION.page(balance::page)))
+        .route("/api/balance", get(balance::COMPUTATION.twin(|(_, b)| b)))
         .route(
-            "/api/balance",
-            get(json_twin(Lane::Light, balance::compute, |(_, b)| b)),
+            "/balance/{item}",
+            get(balance::COMPUTATION.downloads(balance::artifact)),
         )
-        .route("/balance/{item}", get(balance::artifact))
         // Participation model
-        .route("/model", get(model::page))
+        .route("/model", get(model::COMPUTATION.page(model::page)))
+        .route("/api/model", get(model::COMPUTATION.twin(|(_, r)| r)))
         .route(
-            "/api/model",
-            get(json_twin(Lane::Light, model::compute, |(_, r)| r)),
+            "/model/{item}",
+            get(model::COMPUTATION.downloads(model::artifact)),
         )
-        .route("/model/{item}", get(model::artifact))
         // Coverage
-        .route("/coverage", get(coverage::page))
-        .route("/api/coverage", get(coverage::json))
-        .route("/coverage/{item}", get(coverage::artifact))
+        .route("/coverage", get(coverage::COMPUTATION.page(coverage::page)))
+        .route(
+            "/api/coverage",
+            get(coverage::COMPUTATION.twin(coverage::twin)),
+        )
+        .route(
+            "/coverage/{item}",
+            get(coverage::COMPUTATION.downloads(coverage::artifact)),
+        )
         // Recruitment plan
-        .route("/plan", get(plan::page))
-        .route("/api/plan", get(plan::json))
-        .route("/plan/{item}", get(plan::artifact))
+        .route("/plan", get(plan::COMPUTATION.page(plan::page)))
+        .route("/api/plan", get(plan::COMPUTATION.twin(plan::twin)))
+        .route(
+            "/plan/{item}",
+            get(plan::COMPUTATION.downloads(plan::artifact)),
+        )
         // Impact on respondent-level findings
         .route("/impact", get(impact::page))
-        .route("/api/impact", get(impact::json))
-        .route("/impact/{item}", get(impact::artifact))
+        .route("/api/impact", get(impact::COMPUTATION.twin(impact::twin)))
+        .route(
+            "/impact/{item}",
+            get(impact::COMPUTATION.downloads(impact::artifact)),
+        )
         .route(
             "/api/impact/bounds",
-            get(json_twin(Lane::Heavy, impact_bounds::compute, |b| b)),
+            get(impact_bounds::COMPUTATION.twin(|b| b)),
         )
-        .route("/impact/bounds/{item}", get(impact_bounds::artifact))
+        .route(
+            "/impact/bounds/{item}",
+            get(impact_bounds::COMPUTATION.downloads(impact_bounds::artifact)),
+        )
         // Projection to the whole eligible universe
-        .route("/projection", get(projection::page))
+        .route(
+            "/projection",
+            get(projection::COMPUTATION.page(projection::page)),
+        )
         .route(
             "/api/projection",
-            get(json_twin(Lane::Light, projection::compute, |(_, r, _)| r)),
+            get(projection::COMPUTATION.twin(|(_, r, _)| r)),
         )
-        .route("/projection/{item}", get(projection::artifact))
+        .route(
+            "/projection/{item}",
+            get(projection::COMPUTATION.downloads(projection::artifact)),
+        )
         // Meeting report
         .route("/report", get(report::download))
         // Sensitivity
-        .route("/sensitivity", get(sensitivity::page))
+        .route(
+            "/sensitivity",
+            get(sensitivity::COMPUTATION.page(sensitivity::page)),
+        )
         .route(
             "/api/sensitivity",
-            get(json_twin(Lane::Heavy, sensitivity::compute, |(_, s)| s)),
+            get(sensitivity::COMPUTATION.twin(|(_, s)| s)),
         )
-        .route("/sensitivity/{item}", get(sensitivity::artifact))
+        .route(
+            "/sensitivity/{item}",
+            get(sensitivity::COMPUTATION.downloads(sensitivity::artifact)),
+        )
         // Projects
         .route("/api/reload", post(reload))
         .route("/reload", post(reload_from_page))

@@ -1,15 +1,13 @@
 //! The participation-model page: coefficients, odds ratios, AUC, warnings, and the charts
 //! of propensity against weight and of overlap.
 
-use std::sync::Arc;
-
 use askama::Template;
-use axum::extract::{Path, Query, State};
-use axum::response::{Html, Response};
+use axum::response::Response;
 
-use super::context::{off_thread, resolve, SettingsForm};
+use super::context::{resolve_page, Query, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
@@ -34,17 +32,18 @@ struct ModelPage<'a> {
     cautions: &'a [Caution],
 }
 
-pub(super) fn compute(
-    state: &AppState,
-    query: &super::context::Query,
-) -> AppResult<(SettingsForm, FitReport)> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/model", &project, &settings);
+/// The model page's result: the form and the fit.
+pub(super) type ModelResult = (SettingsForm, FitReport);
+
+/// The fit is light work; the page, its twin and its downloads share it.
+pub(super) const COMPUTATION: Computation<ModelResult> = Computation::light(compute);
+
+fn compute(state: &AppState, query: &Query) -> AppResult<ModelResult> {
+    let (project, settings, view, form) = resolve_page(state, query, "/model")?;
     // Under multiple imputation: the fit combined over the completed frames (Rubin's
     // rules for the coefficients; weights and balance as means).
     if crate::analysis::imputed::wanted(&settings) {
-        let r = crate::analysis::imputed::fit(Some(&project), &view, &settings)
-            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let r = crate::analysis::imputed::fit(Some(&project), &view, &settings)?;
         return Ok((form, r.report));
     }
     let r = fit(&view, &settings)?;
@@ -72,13 +71,9 @@ fn estimable_cell(x: Option<f64>, c: &Coefficient) -> String {
     }
 }
 
-pub async fn page(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Html<String>> {
-    let (form, r) = off_thread(&state, &query, compute).await?;
-    let form = form.presenting(&query);
-    let html = ModelPage {
+pub(super) fn page(_: &AppState, query: &Query, (form, r): ModelResult) -> AppResult<String> {
+    let form = form.presenting(query);
+    Ok(ModelPage {
         page: "model",
         nav_query: form.query.clone(),
         form,
@@ -90,24 +85,18 @@ pub async fn page(
         r: &r,
         cautions: &STANDING,
     }
-    .render()?;
-    Ok(Html(html))
+    .render()?)
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Response> {
-    let (_, r) = off_thread(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, (_, r): &ModelResult) -> AppResult<Response> {
+    match item {
         "propensity.svg" => Ok(svg_response(
             "propensity-and-weight.svg",
-            charts::model::propensity_vs_weight(&r),
+            charts::model::propensity_vs_weight(r),
         )),
         "overlap.svg" => Ok(svg_response(
             "propensity-overlap.svg",
-            charts::model::overlap(&r),
+            charts::model::overlap(r),
         )),
         "coefficients.csv" => Ok(csv_response(
             "participation-model.csv",

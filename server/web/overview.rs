@@ -7,8 +7,9 @@ use axum::extract::{Query as QueryString, State};
 use axum::response::{Html, IntoResponse};
 use axum::Json;
 
-use super::context::{off_thread, Query};
+use super::context::Query;
 use super::error::AppResult;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::svg_response;
 use crate::analysis::cautions::Caution;
@@ -85,6 +86,14 @@ fn compute(state: &AppState, _query: &Query) -> AppResult<Overview> {
     Ok(overview(&state.project()))
 }
 
+/// The overview is one result for every query (it reads no settings).
+const OVERVIEW: Computation<Overview> = Computation::light(compute);
+
+/// What multiple imputation fills in a wave (the overview's imputation section, and its
+/// twin), with every filled value of every imputation and the convergence traces.
+pub(super) const IMPUTATION: Computation<ImputationSummary> =
+    Computation::light(compute_imputation);
+
 /// What multiple imputation fills in the query's wave (`missing=impute`).
 fn compute_imputation(state: &AppState, query: &Query) -> AppResult<ImputationSummary> {
     let (project, settings, view) = super::context::resolve(state, query)?;
@@ -122,10 +131,10 @@ pub async fn page(
     State(state): State<Arc<AppState>>,
     QueryString(query): QueryString<Query>,
 ) -> AppResult<impl IntoResponse> {
-    let o = off_thread(&state, &Query::new(), compute).await?;
+    let o = OVERVIEW.result(&state, &Query::new()).await?;
     let settings = super::context::settings_from_query(&query)?;
     let imputation = if imputed::wanted(&settings) {
-        let s = off_thread(&state, &query, compute_imputation).await?;
+        let s = IMPUTATION.result(&state, &query).await?;
         Some(ImputationView {
             rows: s
                 .cells
@@ -167,21 +176,12 @@ pub async fn page(
     Ok(Html(html))
 }
 
-/// What multiple imputation fills in a wave (the overview's imputation section), with
-/// every filled value of every imputation and the convergence traces.
-pub async fn imputation_json(
-    State(state): State<Arc<AppState>>,
-    QueryString(query): QueryString<Query>,
-) -> AppResult<Json<ImputationSummary>> {
-    Ok(Json(off_thread(&state, &query, compute_imputation).await?))
-}
-
 pub async fn json(State(state): State<Arc<AppState>>) -> AppResult<Json<Overview>> {
-    Ok(Json(off_thread(&state, &Query::new(), compute).await?))
+    Ok(Json(OVERVIEW.result(&state, &Query::new()).await?))
 }
 
 pub async fn coverage_svg(State(state): State<Arc<AppState>>) -> AppResult<impl IntoResponse> {
-    let o = off_thread(&state, &Query::new(), compute).await?;
+    let o = OVERVIEW.result(&state, &Query::new()).await?;
     Ok(svg_response(
         "coverage-by-region.svg",
         charts::coverage::coverage_by_group(&o),

@@ -1,16 +1,13 @@
 //! The recruitment-planner page: ranked candidates, the plan against its baselines, the
 //! plan on the coverage map, and a what-if view of hypothetical joiners.
 
-use std::sync::Arc;
-
 use askama::Template;
-use axum::extract::{Path, Query, State};
-use axum::response::{Html, Response};
-use axum::Json;
+use axum::response::Response;
 
-use super::context::{off_thread_heavy, resolve, Query as PageQuery, SettingsForm};
+use super::context::{resolve_page, Query as PageQuery, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
@@ -183,9 +180,11 @@ pub(crate) type PlanResult = (
     Option<ImputedPlan>,
 );
 
+/// The planner, with its bootstrap of each pick, is heavy work.
+pub(super) const COMPUTATION: Computation<PlanResult> = Computation::heavy(compute);
+
 pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResult> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/plan", &project, &settings);
+    let (project, settings, view, form) = resolve_page(state, query, "/plan")?;
     let ps = plan_settings(query)?;
     // Under multiple imputation: the plan of the first completed frame, with how often the
     // other imputations' plans agree (in its notes).
@@ -211,8 +210,7 @@ pub(crate) fn compute(state: &AppState, query: &PageQuery) -> AppResult<PlanResu
             ),
         );
         // The map of the first completed frame (the plan's), as on the coverage page.
-        let c = crate::analysis::imputed::coverage(Some(&project), &view, &settings)
-            .map_err(|e| AppError::BadRequest(e.to_string()))?;
+        let c = crate::analysis::imputed::coverage(Some(&project), &view, &settings)?;
         return Ok((form, p, c.coverage, None, Some(r)));
     }
     let p = plan_for(&project, &view, &settings, &ps)?;
@@ -232,12 +230,12 @@ fn map(p: &Plan, c: &CoverageReport, imputed: Option<&ImputedPlan>) -> String {
     charts::map::component_map_marked_imputed(c, &planned, &p.plan.joiners, filled)
 }
 
-pub async fn page(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Html<String>> {
-    let (form, p, c, incomplete, imputed) = off_thread_heavy(&state, &query, compute).await?;
-    let form = form.presenting(&query);
+pub(super) fn page(
+    state: &AppState,
+    query: &PageQuery,
+    (form, p, c, incomplete, imputed): PlanResult,
+) -> AppResult<String> {
+    let form = form.presenting(query);
     let project = state.project();
     let mut feasibility_choices = vec![
         (
@@ -259,7 +257,7 @@ pub async fn page(
     if let Some(col) = &project.manifest.recruitment.feasibility {
         feasibility_choices.push((col.clone(), format!("column {col}")));
     }
-    let html = PlanPage {
+    Ok(PlanPage {
         page: "plan",
         nav_query: form.query.clone(),
         budget: p.plan.budget.map(|b| b.to_string()).unwrap_or_default(),
@@ -291,8 +289,7 @@ pub async fn page(
         p: &p,
         cautions: &STANDING,
     }
-    .render()?;
-    Ok(Html(html))
+    .render()?)
 }
 
 /// The plan twin: the plan, or under multiple imputation the imputed result (the plan
@@ -304,31 +301,22 @@ pub enum PlanTwin {
     Imputed(Box<ImputedPlan>),
 }
 
-pub async fn json(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Json<PlanTwin>> {
-    let (_, p, _, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
-    Ok(Json(match imputed {
+pub(super) fn twin((_, p, _, _, imputed): PlanResult) -> PlanTwin {
+    match imputed {
         Some(i) => PlanTwin::Imputed(Box::new(i)),
         None => PlanTwin::Plan(Box::new(p)),
-    }))
+    }
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<PageQuery>,
-) -> AppResult<Response> {
-    let (_, p, c, _, imputed) = off_thread_heavy(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, (_, p, c, _, imputed): &PlanResult) -> AppResult<Response> {
+    match item {
         "paths.svg" => Ok(svg_response(
             "recruitment-paths.svg",
-            charts::plan::paths(&p),
+            charts::plan::paths(p),
         )),
         "map.svg" => Ok(svg_response(
             "recruitment-map.svg",
-            map(&p, &c, imputed.as_ref()),
+            map(p, c, imputed.as_ref()),
         )),
         "plan.csv" => Ok(csv_response(
             "recruitment-plan.csv",

@@ -1,15 +1,13 @@
 //! The projection page: what the whole eligible universe would say, from a multilevel
 //! model projected to the countries that did not take part.
 
-use std::sync::Arc;
-
 use askama::Template;
-use axum::extract::{Path, Query, State};
-use axum::response::{Html, Response};
+use axum::response::Response;
 
-use super::context::{off_thread, resolve, SettingsForm};
+use super::context::{first_completed_frame, resolve_page, Query, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
@@ -41,7 +39,7 @@ struct ProjectionPage<'a> {
 /// without an outcome, the project's last survey variable.
 pub(crate) fn projection_settings(
     project: &Project,
-    query: &super::context::Query,
+    query: &Query,
 ) -> AppResult<ProjectionSettings> {
     let outcome = query
         .iter()
@@ -61,7 +59,7 @@ pub(crate) fn projection_settings(
 }
 
 /// How countries count (`shares=equal|population`; population from project.toml).
-pub(crate) fn projection_options(query: &super::context::Query) -> AppResult<ProjectionOptions> {
+pub(crate) fn projection_options(query: &Query) -> AppResult<ProjectionOptions> {
     let shares = match query
         .iter()
         .find(|(k, _)| k == "shares")
@@ -78,24 +76,21 @@ pub(crate) fn projection_options(query: &super::context::Query) -> AppResult<Pro
     Ok(ProjectionOptions { shares })
 }
 
-pub(crate) fn compute(
-    state: &AppState,
-    query: &super::context::Query,
-) -> AppResult<(SettingsForm, ProjectionReport, Vec<String>)> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/projection", &project, &settings);
+/// The projection page's result: the form, the projection and the survey variables.
+pub(crate) type ProjectionResult = (SettingsForm, ProjectionReport, Vec<String>);
+
+/// One multilevel fit and its projection: light work.
+pub(super) const COMPUTATION: Computation<ProjectionResult> = Computation::light(compute);
+
+pub(crate) fn compute(state: &AppState, query: &Query) -> AppResult<ProjectionResult> {
+    let (project, settings, view, form) = resolve_page(state, query, "/projection")?;
     let ps = projection_settings(&project, query)?;
     let options = projection_options(query)?;
     let r = if crate::analysis::imputed::wanted(&settings) {
         // One completed frame (the notes say so); the combination is not computed here.
-        let done =
-            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
-                .map_err(|e| AppError::BadRequest(e.to_string()))?;
-        let mut r = projection_with(&project, &done.views[0], &settings, &ps, &options)?;
-        r.notes.insert(
-            0,
-            crate::analysis::imputed::single_frame_note(&done.summary),
-        );
+        let (first, note) = first_completed_frame(&project, &view, &settings)?;
+        let mut r = projection_with(&project, &first, &settings, &ps, &options)?;
+        r.notes.insert(0, note);
         r
     } else {
         projection_with(&project, &view, &settings, &ps, &options)?
@@ -127,14 +122,14 @@ fn own_query_of(r: &ProjectionReport) -> String {
     q
 }
 
-pub async fn page(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Html<String>> {
-    let (form, r, variables) = off_thread(&state, &query, compute).await?;
-    let form = form.presenting(&query);
+pub(super) fn page(
+    state: &AppState,
+    query: &Query,
+    (form, r, variables): ProjectionResult,
+) -> AppResult<String> {
+    let form = form.presenting(query);
     let project = state.project();
-    let html = ProjectionPage {
+    Ok(ProjectionPage {
         page: "projection",
         nav_query: form.query.clone(),
         own_query: own_query_of(&r),
@@ -149,20 +144,14 @@ pub async fn page(
             .collect(),
         cautions: &STANDING,
     }
-    .render()?;
-    Ok(Html(html))
+    .render()?)
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Response> {
-    let (_, r, _) = off_thread(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, (_, r, _): &ProjectionResult) -> AppResult<Response> {
+    match item {
         "map.svg" => Ok(svg_response(
             "projection-map.svg",
-            charts::projection::component_map(&r),
+            charts::projection::component_map(r),
         )),
         "table.csv" => Ok(csv_response(
             "projection.csv",

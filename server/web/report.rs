@@ -9,9 +9,10 @@ use axum::extract::{Query, State};
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
 
-use super::context::{self, off_thread_heavy, Query as PageQuery};
+use super::context::{self, Query as PageQuery};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::impact::{impact_query, impact_settings, side_by_side, Cell};
 use super::plan::{plan_query, plan_settings};
 use super::state::AppState;
@@ -555,7 +556,7 @@ pub async fn download(
     State(state): State<Arc<AppState>>,
     Query(query): Query<PageQuery>,
 ) -> AppResult<Response> {
-    let ReportHtml { html, filename } = off_thread_heavy(&state, &query, compute).await?;
+    let ReportHtml { html, filename } = Computation::heavy(compute).result(&state, &query).await?;
     Ok((
         [
             (header::CONTENT_TYPE, "text/html; charset=utf-8".to_string()),

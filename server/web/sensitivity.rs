@@ -1,14 +1,12 @@
 //! The sensitivity page: trimming levels, models and weighting methods compared.
 
-use std::sync::Arc;
-
 use askama::Template;
-use axum::extract::{Path, Query, State};
-use axum::response::{Html, Response};
+use axum::response::Response;
 
-use super::context::{off_thread_heavy, resolve, SettingsForm};
+use super::context::{first_completed_frame, resolve_page, Query, SettingsForm};
 use super::error::{AppError, AppResult};
 use super::format::Fmt;
+use super::handlers::Computation;
 use super::state::AppState;
 use super::{csv_response, svg_response};
 use crate::analysis::cautions::{Caution, STANDING};
@@ -29,32 +27,29 @@ struct SensitivityPage<'a> {
     cautions: &'a [Caution],
 }
 
-pub(super) fn compute(
-    state: &AppState,
-    query: &super::context::Query,
-) -> AppResult<(SettingsForm, Sensitivity)> {
-    let (project, settings, view) = resolve(state, query)?;
-    let form = SettingsForm::new("/sensitivity", &project, &settings);
+/// The sensitivity page's result: the form and the comparison.
+pub(super) type SensitivityResult = (SettingsForm, Sensitivity);
+
+/// The grid of models and weightings, with the model's draws, is heavy work.
+pub(super) const COMPUTATION: Computation<SensitivityResult> = Computation::heavy(compute);
+
+fn compute(state: &AppState, query: &Query) -> AppResult<SensitivityResult> {
+    let (project, settings, view, form) = resolve_page(state, query, "/sensitivity")?;
     if crate::analysis::imputed::wanted(&settings) {
-        let done =
-            crate::analysis::imputed::complete_project_wave(Some(&project), &view, &settings)
-                .map_err(|e| AppError::BadRequest(e.to_string()))?;
-        let mut s = with_model_uncertainty(&project, &done.views[0], &settings)
+        let (first, note) = first_completed_frame(&project, &view, &settings)?;
+        // What fails on a completed frame is the imputation's doing: a setting to change.
+        let mut s = with_model_uncertainty(&project, &first, &settings)
             .map_err(|e| AppError::BadRequest(e.to_string()))?;
-        s.missing_caveat = Some(crate::analysis::imputed::single_frame_note(&done.summary));
+        s.missing_caveat = Some(note);
         return Ok((form, s));
     }
     let s = with_model_uncertainty(&project, &view, &settings)?;
     Ok((form, s))
 }
 
-pub async fn page(
-    State(state): State<Arc<AppState>>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Html<String>> {
-    let (form, s) = off_thread_heavy(&state, &query, compute).await?;
-    let form = form.presenting(&query);
-    let html = SensitivityPage {
+pub(super) fn page(_: &AppState, query: &Query, (form, s): SensitivityResult) -> AppResult<String> {
+    let form = form.presenting(query);
+    Ok(SensitivityPage {
         page: "sensitivity",
         nav_query: form.query.clone(),
         form,
@@ -64,24 +59,18 @@ pub async fn page(
         s: &s,
         cautions: &STANDING,
     }
-    .render()?;
-    Ok(Html(html))
+    .render()?)
 }
 
-pub async fn artifact(
-    State(state): State<Arc<AppState>>,
-    Path(item): Path<String>,
-    Query(query): Query<super::context::Query>,
-) -> AppResult<Response> {
-    let (_, s) = off_thread_heavy(&state, &query, compute).await?;
-    match item.as_str() {
+pub(super) fn artifact(item: &str, (_, s): &SensitivityResult) -> AppResult<Response> {
+    match item {
         "trimming.svg" => Ok(svg_response(
             "trimming.svg",
-            charts::sensitivity::trimming(&s),
+            charts::sensitivity::trimming(s),
         )),
         "model-draws.svg" => Ok(svg_response(
             "model-draws.svg",
-            charts::sensitivity::model_draws(&s),
+            charts::sensitivity::model_draws(s),
         )),
         "model-draws.csv" => {
             let m = s.model_uncertainty.as_ref();

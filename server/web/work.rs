@@ -38,6 +38,12 @@ pub enum Lane {
     Heavy,
 }
 
+/// What a computation here gives: a result the cache keeps (as JSON-sized) and hands
+/// out again, cloned, to every request for it, on whichever thread.
+pub trait CachedResult: Clone + serde::Serialize + Send + Sync + 'static {}
+
+impl<T: Clone + serde::Serialize + Send + Sync + 'static> CachedResult for T {}
+
 /// Why a computation did not give a result.
 #[derive(Debug)]
 pub enum WorkError<E> {
@@ -93,17 +99,13 @@ impl WorkPool {
 
     /// Runs `compute` through the cache: answered at once when the result is ready, else
     /// on the blocking pool (light) or on the heavy pool with admission control (heavy).
-    pub async fn run<T, E>(
+    pub async fn run<T: CachedResult, E: Send + 'static>(
         &self,
         lane: Lane,
         cache: &Arc<ResultCache>,
         key: Option<CacheKey>,
         compute: impl FnOnce() -> Result<T, E> + Send + 'static,
-    ) -> Result<T, WorkError<E>>
-    where
-        T: Clone + serde::Serialize + Send + Sync + 'static,
-        E: Send + 'static,
-    {
+    ) -> Result<T, WorkError<E>> {
         if let Some(hit) = key.as_ref().and_then(|k| cache.peek::<T>(k)) {
             return Ok((*hit).clone());
         }
@@ -119,16 +121,12 @@ impl WorkPool {
         }
     }
 
-    async fn heavy<T, E>(
+    async fn heavy<T: CachedResult, E: Send + 'static>(
         &self,
         cache: &Arc<ResultCache>,
         key: Option<CacheKey>,
         compute: impl FnOnce() -> Result<T, E> + Send + 'static,
-    ) -> Result<T, WorkError<E>>
-    where
-        T: Clone + serde::Serialize + Send + Sync + 'static,
-        E: Send + 'static,
-    {
+    ) -> Result<T, WorkError<E>> {
         // The same result is already admitted: wait for it instead of queueing another.
         let queued = key.as_ref().and_then(|k| {
             self.pending
@@ -222,14 +220,11 @@ impl Default for WorkPool {
     }
 }
 
-fn through_cache<T, E>(
+fn through_cache<T: CachedResult, E>(
     cache: &ResultCache,
     key: Option<&CacheKey>,
     compute: impl FnOnce() -> Result<T, E>,
-) -> Result<T, E>
-where
-    T: Clone + serde::Serialize + Send + Sync + 'static,
-{
+) -> Result<T, E> {
     match key {
         Some(k) => cache.get_or_compute(k, compute).map(|v| (*v).clone()),
         None => compute(),
