@@ -160,9 +160,9 @@ pub fn run(input: &Input) -> Option<Vec<VariantBootstrap>> {
         return None;
     }
     let g = input.design.n();
-    let gmm_start = gmm_full_sample(input.design);
+    let full = FullSample::fit(input.design, input.settings.model);
     let draws = bootstrap::run(g, input.replicates, input.seed, |rows| {
-        Ok::<_, ()>(replicate(input, gmm_start.as_ref(), rows))
+        Ok::<_, ()>(replicate(input, &full, rows))
     })
     .ok()?;
     let draws: Vec<Vec<Draw>> = draws.into_iter().map(|d| d.unwrap_or_default()).collect();
@@ -219,21 +219,105 @@ pub fn run(input: &Input) -> Option<Vec<VariantBootstrap>> {
     )
 }
 
-/// The over-identified covariate-balancing fit on the full sample, as
-/// participation::weigh computes it (from the just-identified solution, else the logit):
-/// the warm start of every draw. `None` when it did not converge, and draws then start
-/// as the full sample did.
-fn gmm_full_sample(design: &Design) -> Option<GmmStart> {
-    let z = design.standardised();
-    let t = &design.participated;
-    let start = logit_start(&z, t);
-    let fit = weights::cbps_over_identified(z.view(), t, &start).ok()?;
-    fit.converged.then_some(GmmStart { coef: fit.coef })
+/// The full sample's solutions, where every draw's fits start: each draw then finds the
+/// solution that corresponds to it (the over-identified criterion has several minima; the
+/// likelihoods have one, and the start only saves steps). The fits run on a draw's
+/// distinct countries weighted by how often each was drawn ([`DrawCounts`]), which gives
+/// what the draw written out gives at the cost of its distinct rows.
+struct FullSample {
+    /// The full design, standardised (a draw's rows are rows of it).
+    standardised: Array2<f64>,
+    /// The participation model's coefficients, when its fit converged.
+    model: Option<Array1<f64>>,
+    /// The two-step's probit, when it converged.
+    probit: Option<Array1<f64>>,
+    /// The over-identified covariate-balancing fit as participation::weigh computes it
+    /// (from the just-identified solution, else the logit), when it converged.
+    gmm: Option<Array1<f64>>,
 }
 
-/// The full sample's over-identified fit: where the draws start.
-pub struct GmmStart {
-    pub coef: Array1<f64>,
+/// A binary model fitted on one draw: coefficients (standardised scale), the propensity
+/// of each drawn row, and whether the fit converged.
+struct DrawFit {
+    coef: Array1<f64>,
+    propensity: Vec<f64>,
+    converged: bool,
+}
+
+impl FullSample {
+    fn fit(design: &Design, model: ModelKind) -> FullSample {
+        let z = design.standardised();
+        let t = &design.participated;
+        let converged = |kind: ModelKind| {
+            binary::fit(kind, z.view(), t)
+                .ok()
+                .filter(|f| f.converged)
+                .map(|f| f.coef)
+        };
+        let gmm = weights::cbps_over_identified(z.view(), t, &logit_start(&z, t))
+            .ok()
+            .filter(|f| f.converged)
+            .map(|f| f.coef);
+        FullSample {
+            model: converged(model),
+            probit: converged(ModelKind::Probit),
+            gmm,
+            standardised: z,
+        }
+    }
+
+    /// A draw's distinct countries: their standardised rows and whether each took part.
+    fn distinct(&self, design: &Design, counts: &DrawCounts) -> (Array2<f64>, Vec<bool>) {
+        let z = self.standardised.select(ndarray::Axis(0), &counts.clusters);
+        let t = counts
+            .clusters
+            .iter()
+            .map(|&c| design.participated[c])
+            .collect();
+        (z, t)
+    }
+
+    /// A binary model on the draw, from `start` on the distinct countries when there is a
+    /// start, else as the full sample was fitted, on the draw written out.
+    fn binary_on_draw(
+        &self,
+        input: &Input,
+        kind: ModelKind,
+        start: Option<&Array1<f64>>,
+        draw: &Design,
+        counts: &DrawCounts,
+    ) -> Result<DrawFit, Failure> {
+        match start {
+            Some(start) => {
+                let (z, t) = self.distinct(input.design, counts);
+                let fit = binary::refit_counted(
+                    kind,
+                    z.view(),
+                    &t,
+                    &counts.counts,
+                    start,
+                    binary::SCORE_TOLERANCE,
+                )
+                .map_err(|_| Failure::ModelFailed)?;
+                let p = binary::predict(kind, z.view(), &fit.coef);
+                Ok(DrawFit {
+                    propensity: counts.expand(&p),
+                    coef: fit.coef,
+                    converged: fit.converged,
+                })
+            }
+            None => {
+                let z = draw.standardised();
+                let fit = binary::fit(kind, z.view(), &draw.participated)
+                    .map_err(|_| Failure::ModelFailed)?;
+                Ok(DrawFit {
+                    propensity: binary::predict(kind, z.view(), &fit.coef),
+                    coef: fit.coef,
+                    converged: fit.converged,
+                })
+            }
+        }
+    }
 }
 
 fn logit_start(z: &Array2<f64>, t: &[bool]) -> Array1<f64> {
@@ -251,23 +335,16 @@ fn logit_start(z: &Array2<f64>, t: &[bool]) -> Array1<f64> {
 /// cannot balance a column) fails.
 fn gmm_shares(
     input: &Input,
+    full: &FullSample,
     draw: &Design,
     counts: &DrawCounts,
-    warm: Option<&GmmStart>,
     base: &[f64],
 ) -> Result<Vec<f64>, Failure> {
-    let z = input
-        .design
-        .standardised()
-        .select(ndarray::Axis(0), &counts.clusters);
-    let t: Vec<bool> = counts
-        .clusters
-        .iter()
-        .map(|&c| input.design.participated[c])
-        .collect();
+    let warm = full.gmm.as_ref();
     let fit = match warm {
-        Some(w) => {
-            weights::cbps_over_identified_counted_from(z.view(), &t, &counts.counts, &w.coef)
+        Some(start) => {
+            let (z, t) = full.distinct(input.design, counts);
+            weights::cbps_over_identified_counted_from(z.view(), &t, &counts.counts, start)
         }
         None => {
             let zd = draw.standardised();
@@ -300,7 +377,7 @@ fn gmm_shares(
 }
 
 /// Every variant's value on one draw of countries.
-fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec<Draw> {
+fn replicate(input: &Input, full: &FullSample, rows: &[usize]) -> Vec<Draw> {
     let n_variants = variant_count();
     let design = input.design.subset(rows);
     let Some(counts) = DrawCounts::of(rows, input.design.n()) else {
@@ -316,21 +393,27 @@ fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec
     };
     let mut out = Vec::with_capacity(n_variants);
     out.push(estimate(&stats, &base, input.kind, input.k));
+    let draw_z = design.standardised();
     let all_took_part = design.participated.iter().all(|&p| p);
     let model = if all_took_part {
         Err(Failure::NoNonParticipant)
     } else {
-        participation::fit_model(&design, input.settings.model, false)
-            .map_err(|_| Failure::ModelFailed)
+        full.binary_on_draw(
+            input,
+            input.settings.model,
+            full.model.as_ref(),
+            &design,
+            &counts,
+        )
     };
     for kind in WeightingKind::ALL {
         let share: Result<Vec<f64>, Failure> = match &model {
             Err(f) => Err(*f),
             Ok(_) if kind == WeightingKind::CovariateBalancingGmm => {
-                gmm_shares(input, &design, &counts, gmm_start, &base)
+                gmm_shares(input, full, &design, &counts, &base)
             }
             Ok(model) => {
-                if kind == WeightingKind::InverseProbability && !model.report.converged {
+                if kind == WeightingKind::InverseProbability && !model.converged {
                     Err(Failure::ModelFailed)
                 } else if kind == WeightingKind::Entropy && input.population.is_some() {
                     let moments = super::impact::universe_moments(&design, &base);
@@ -346,7 +429,7 @@ fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec
                         weighting: kind,
                         ..input.settings.clone()
                     };
-                    participation::weights_only(&design, &s, model)
+                    participation::weights_from(&design, &s, &draw_z, &model.propensity)
                         .map(|w| w.iter().zip(&base).map(|(a, b)| a * b).collect())
                         .map_err(|_| Failure::Infeasible)
                 }
@@ -359,7 +442,21 @@ fn replicate(input: &Input, gmm_start: Option<&GmmStart>, rows: &[usize]) -> Vec
     } else {
         match input.mills_indicators {
             Err(()) => Err(Failure::Singular),
-            Ok(c) => mills(&design, rows, &stats, &base, c, input.k),
+            Ok(c) => full
+                .binary_on_draw(
+                    input,
+                    ModelKind::Probit,
+                    full.probit.as_ref(),
+                    &design,
+                    &counts,
+                )
+                .and_then(|probit| {
+                    if !probit.converged {
+                        return Err(Failure::ModelFailed);
+                    }
+                    let index = draw_z.dot(&probit.coef);
+                    mills(&design, rows, &stats, &base, c, &index, input.k)
+                }),
         }
     });
     out
@@ -395,25 +492,19 @@ fn estimate(stats: &[Option<&CountryStats>], share: &[f64], kind: Kind, k: usize
     Ok((mean / total, terms))
 }
 
-/// The two-step on the draw, as impact::mills_variant computes it: a probit of taking part
-/// on the drawn design, λ_c = φ(z_c'g)/Φ(z_c'g), weighted least squares of y on
-/// [x, c, λ] with every drawn participant counting the same, and the universe-averaged
-/// prediction without the selection term.
+/// The two-step on the draw, as impact::mills_variant computes it: given the probit index
+/// z_c'g of taking part fitted on the draw (per drawn row), λ_c = φ(z_c'g)/Φ(z_c'g),
+/// weighted least squares of y on [x, c, λ] with every drawn participant counting the
+/// same, and the universe-averaged prediction without the selection term.
 fn mills(
     design: &Design,
     rows: &[usize],
     stats: &[Option<&CountryStats>],
     q: &[f64],
     indicators: &[Vec<f64>],
+    index: &Array1<f64>,
     k: usize,
 ) -> Draw {
-    let z = design.standardised();
-    let probit = binary::fit(ModelKind::Probit, z.view(), &design.participated)
-        .map_err(|_| Failure::ModelFailed)?;
-    if !probit.converged {
-        return Err(Failure::ModelFailed);
-    }
-    let index = z.dot(&probit.coef);
     let q_total: f64 = q.iter().sum();
     let c_mean: Vec<f64> = indicators
         .iter()

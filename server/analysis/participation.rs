@@ -205,7 +205,18 @@ pub fn weights_only(
     settings: &Settings,
     model: &FittedModel,
 ) -> Result<Vec<f64>, AnalysisError> {
-    let raw = compute_weights(design, settings, &model.standardised, &model.propensity)?;
+    weights_from(design, settings, &model.standardised, &model.propensity)
+}
+
+/// [`weights_only`] from the standardised design and the model's propensities alone (the
+/// pipeline bootstrap fits the model on each draw without its report).
+pub fn weights_from(
+    design: &Design,
+    settings: &Settings,
+    standardised: &Array2<f64>,
+    propensity: &[f64],
+) -> Result<Vec<f64>, AnalysisError> {
+    let raw = compute_weights(design, settings, standardised, propensity)?;
     Ok(trimmed_and_normalised(design, settings, raw.weights))
 }
 

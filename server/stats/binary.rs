@@ -56,6 +56,8 @@ pub enum FitError {
     TooFewUnits { n: usize, k: usize },
     #[error("the information matrix is singular: some indicators are constant or collinear")]
     Singular,
+    #[error("the fit was given {given} unit counts for {expected} units, or a count that is not positive")]
+    Counts { given: usize, expected: usize },
 }
 
 impl From<LinalgError> for FitError {
@@ -162,14 +164,14 @@ pub fn fit(kind: ModelKind, x: ArrayView2<f64>, y: &[bool]) -> Result<BinaryFit,
     check_inputs(x, y)?;
     with_independent_columns(x, |xr| match kind {
         ModelKind::Logit => fit_logit(xr, y),
-        ModelKind::Firth => newton(kind, xr, y, None, true, SCORE_TOLERANCE),
+        ModelKind::Firth => newton(kind, xr, y, None, None, true, SCORE_TOLERANCE),
         ModelKind::Probit => {
             // Start from the logit solution scaled by 1/1.6 (Amemiya 1981's rule of thumb).
-            let start = newton(ModelKind::Logit, xr, y, None, false, SCORE_TOLERANCE)
+            let start = newton(ModelKind::Logit, xr, y, None, None, false, SCORE_TOLERANCE)
                 .ok()
                 .filter(|f| f.converged)
                 .map(|f| f.coef / 1.6);
-            newton(kind, xr, y, start, false, SCORE_TOLERANCE)
+            newton(kind, xr, y, None, start, false, SCORE_TOLERANCE)
         }
     })
 }
@@ -183,7 +185,42 @@ pub fn refit(
     start: &Array1<f64>,
     tolerance: f64,
 ) -> Result<BinaryFit, FitError> {
-    check_inputs(x, y)?;
+    refit_rows(kind, x, y, None, start, tolerance)
+}
+
+/// [`refit`] on rows that stand for `counts[i]` identical units each (a bootstrap draw's
+/// distinct countries with how often each was drawn): the log-likelihood, score and
+/// information weight each row's terms by its count, so the estimate is that of the rows
+/// written out, at the cost of the distinct ones. Only `converged`, `coef` and the
+/// directions the data do not determine carry over unchanged; `log_likelihood` is the
+/// written-out one.
+pub fn refit_counted(
+    kind: ModelKind,
+    x: ArrayView2<f64>,
+    y: &[bool],
+    counts: &[f64],
+    start: &Array1<f64>,
+    tolerance: f64,
+) -> Result<BinaryFit, FitError> {
+    if counts.len() != y.len() || counts.iter().any(|&c| !(c.is_finite() && c > 0.0)) {
+        return Err(FitError::Counts {
+            given: counts.len(),
+            expected: y.len(),
+        });
+    }
+    refit_rows(kind, x, y, Some(counts), start, tolerance)
+}
+
+fn refit_rows(
+    kind: ModelKind,
+    x: ArrayView2<f64>,
+    y: &[bool],
+    counts: Option<&[f64]>,
+    start: &Array1<f64>,
+    tolerance: f64,
+) -> Result<BinaryFit, FitError> {
+    let units = counts.map_or(x.nrows(), |c| c.iter().sum::<f64>().round() as usize);
+    check_unit_count(x, y, units)?;
     let (kept, _) = independent_columns(x);
     let start = start.select(Axis(0), &kept);
     with_independent_columns(x, |xr| {
@@ -191,6 +228,7 @@ pub fn refit(
             kind,
             xr,
             y,
+            counts,
             Some(start.clone()),
             kind == ModelKind::Firth,
             tolerance,
@@ -284,17 +322,19 @@ pub fn independent_columns(x: ArrayView2<f64>) -> (Vec<usize>, Vec<Alias>) {
 }
 
 fn check_inputs(x: ArrayView2<f64>, y: &[bool]) -> Result<(), FitError> {
+    check_unit_count(x, y, x.nrows())
+}
+
+/// Both outcomes present and more units (`n`, counted rows included) than columns.
+fn check_unit_count(x: ArrayView2<f64>, y: &[bool], n: usize) -> Result<(), FitError> {
     if y.iter().all(|&v| v) {
         return Err(FitError::OneClass("all took part"));
     }
     if y.iter().all(|&v| !v) {
         return Err(FitError::OneClass("none took part"));
     }
-    if x.nrows() <= x.ncols() {
-        return Err(FitError::TooFewUnits {
-            n: x.nrows(),
-            k: x.ncols(),
-        });
+    if n <= x.ncols() {
+        return Err(FitError::TooFewUnits { n, k: x.ncols() });
     }
     Ok(())
 }
@@ -309,7 +349,7 @@ fn check_inputs(x: ArrayView2<f64>, y: &[bool]) -> Result<(), FitError> {
 /// from linfa-logistic was used before; its line search could loop forever on a
 /// separated bootstrap resample, and Newton needs no start to converge.)
 fn fit_logit(x: ArrayView2<f64>, y: &[bool]) -> Result<BinaryFit, FitError> {
-    newton(ModelKind::Logit, x, y, None, false, SCORE_TOLERANCE)
+    newton(ModelKind::Logit, x, y, None, None, false, SCORE_TOLERANCE)
 }
 
 /// Per-unit log-likelihood, score weight s_i (score = X's) and information weight w_i
@@ -340,10 +380,13 @@ struct Evaluation {
     information: Array2<f64>,
 }
 
+/// The objective, score and information at `beta`; with `counts`, row i stands for
+/// counts[i] identical units, so that its terms count that many times.
 fn evaluate(
     kind: ModelKind,
     x: ArrayView2<f64>,
     y: &[bool],
+    counts: Option<&[f64]>,
     beta: &Array1<f64>,
     firth: bool,
 ) -> Result<Evaluation, FitError> {
@@ -354,6 +397,10 @@ fn evaluate(
     let mut w = Array1::zeros(n);
     for i in 0..n {
         let (l, si, wi) = unit_terms(kind, eta[i], y[i]);
+        let (l, si, wi) = match counts {
+            None => (l, si, wi),
+            Some(c) => (c[i] * l, c[i] * si, c[i] * wi),
+        };
         ll += l;
         s[i] = si;
         w[i] = wi;
@@ -398,19 +445,20 @@ fn newton(
     kind: ModelKind,
     x: ArrayView2<f64>,
     y: &[bool],
+    counts: Option<&[f64]>,
     start: Option<Array1<f64>>,
     firth: bool,
     tolerance: f64,
 ) -> Result<BinaryFit, FitError> {
     let k = x.ncols();
-    let mut beta = start.unwrap_or_else(|| null_start(kind, y, k));
+    let mut beta = start.unwrap_or_else(|| null_start(kind, y, counts, k));
     // A diverged starting value (e.g. from a separated fit) can make the information
     // singular; start again from the intercept-only value then.
-    let mut current = match evaluate(kind, x, y, &beta, firth) {
+    let mut current = match evaluate(kind, x, y, counts, &beta, firth) {
         Ok(e) if e.objective.is_finite() => e,
         _ => {
-            beta = null_start(kind, y, k);
-            evaluate(kind, x, y, &beta, firth)?
+            beta = null_start(kind, y, counts, k);
+            evaluate(kind, x, y, counts, &beta, firth)?
         }
     };
     let mut iterations = 0;
@@ -422,7 +470,8 @@ fn newton(
     while !criterion_met && iterations < MAX_ITERATIONS {
         iterations += 1;
         let hessian = if firth && iterations > FIRTH_SCORING_ITERATIONS {
-            penalised_hessian(kind, x, y, &beta).unwrap_or_else(|| current.information.clone())
+            penalised_hessian(kind, x, y, counts, &beta)
+                .unwrap_or_else(|| current.information.clone())
         } else {
             current.information.clone()
         };
@@ -432,10 +481,12 @@ fn newton(
         };
         let floor = current.objective - 1e-12 * current.objective.abs().max(1.0);
         let moved = super::newton::halving_step(&beta, &step, floor, |candidate| {
-            evaluate(kind, x, y, candidate, firth).ok().map(|next| {
-                let objective = next.objective;
-                (next, objective)
-            })
+            evaluate(kind, x, y, counts, candidate, firth)
+                .ok()
+                .map(|next| {
+                    let objective = next.objective;
+                    (next, objective)
+                })
         });
         let accepted = moved.is_some();
         last_step = match moved {
@@ -463,7 +514,7 @@ fn newton(
         if extreme {
             extreme_units += 1;
         } else {
-            w[i] = unit_terms(kind, eta[i], y[i]).2;
+            w[i] = unit_terms(kind, eta[i], y[i]).2 * counts.map_or(1.0, |c| c[i]);
         }
     }
     let (cov, weak_directions) = match well_conditioned_inverse(&current.information) {
@@ -593,6 +644,7 @@ fn penalised_hessian(
     kind: ModelKind,
     x: ArrayView2<f64>,
     y: &[bool],
+    counts: Option<&[f64]>,
     beta: &Array1<f64>,
 ) -> Option<Array2<f64>> {
     let k = beta.len();
@@ -603,8 +655,8 @@ fn penalised_hessian(
         let mut down = beta.clone();
         up[j] += step;
         down[j] -= step;
-        let su = evaluate(kind, x, y, &up, true).ok()?.score;
-        let sd = evaluate(kind, x, y, &down, true).ok()?.score;
+        let su = evaluate(kind, x, y, counts, &up, true).ok()?.score;
+        let sd = evaluate(kind, x, y, counts, &down, true).ok()?.score;
         for a in 0..k {
             h[[a, j]] = -(su[a] - sd[a]) / (2.0 * step);
         }
@@ -614,8 +666,14 @@ fn penalised_hessian(
 }
 
 /// Intercept at the logit (or probit) of the participation share, slopes zero.
-fn null_start(kind: ModelKind, y: &[bool], k: usize) -> Array1<f64> {
-    let share = y.iter().filter(|&&v| v).count() as f64 / y.len() as f64;
+fn null_start(kind: ModelKind, y: &[bool], counts: Option<&[f64]>, k: usize) -> Array1<f64> {
+    let share = match counts {
+        None => y.iter().filter(|&&v| v).count() as f64 / y.len() as f64,
+        Some(c) => {
+            let took: f64 = y.iter().zip(c).filter(|(&v, _)| v).map(|(_, c)| c).sum();
+            took / c.iter().sum::<f64>()
+        }
+    };
     let mut b = Array1::zeros(k);
     b[0] = match kind {
         ModelKind::Probit => normal::quantile(share),
@@ -812,6 +870,54 @@ mod tests {
         (x, y)
     }
 
+    #[test]
+    fn counted_rows_fit_as_the_rows_written_out() {
+        // Common practice: a likelihood with frequency weights is the likelihood of the
+        // repeated rows, so both fits reach the same estimate.
+        let (x, y) = frame(70, 4);
+        let rows: Vec<usize> = (0..70).map(|i| (i * 11 + i / 4) % 70).collect();
+        let draw = crate::stats::bootstrap::DrawCounts::of(&rows, 70).expect("in range");
+        assert!(
+            draw.clusters.len() < rows.len(),
+            "the draw repeats some rows"
+        );
+        let written_out = x.select(Axis(0), &rows);
+        let y_out: Vec<bool> = rows.iter().map(|&r| y[r]).collect();
+        let distinct = x.select(Axis(0), &draw.clusters);
+        let y_distinct: Vec<bool> = draw.clusters.iter().map(|&r| y[r]).collect();
+        for kind in [ModelKind::Logit, ModelKind::Firth, ModelKind::Probit] {
+            let full = fit(kind, written_out.view(), &y_out).unwrap();
+            let start = Array1::zeros(3);
+            let counted = refit_counted(
+                kind,
+                distinct.view(),
+                &y_distinct,
+                &draw.counts,
+                &start,
+                SCORE_TOLERANCE,
+            )
+            .unwrap();
+            assert!(full.converged && counted.converged, "{kind:?}");
+            assert_eq!(full.coef.len(), counted.coef.len());
+            for (a, b) in full.coef.iter().zip(counted.coef.iter()) {
+                assert!((a - b).abs() < 1e-8, "{kind:?}: {a} vs {b}");
+            }
+            assert!((full.log_likelihood - counted.log_likelihood).abs() < 1e-8);
+            for (a, b) in full.cov.iter().zip(counted.cov.iter()) {
+                assert!((a - b).abs() < 1e-8, "{kind:?}: {a} vs {b}");
+            }
+        }
+        let bad = refit_counted(
+            ModelKind::Logit,
+            distinct.view(),
+            &y_distinct,
+            &[1.0],
+            &Array1::zeros(3),
+            SCORE_TOLERANCE,
+        );
+        assert!(matches!(bad, Err(FitError::Counts { .. })));
+    }
+
     fn with_column(x: &Array2<f64>, column: impl Fn(usize) -> f64) -> Array2<f64> {
         let extra = Array2::from_shape_fn((x.nrows(), 1), |(i, _)| column(i));
         ndarray::concatenate(Axis(1), &[x.view(), extra.view()]).unwrap()
@@ -930,7 +1036,7 @@ mod tests {
             f.iterations, f.max_score
         );
         assert!(f.iterations < MAX_ITERATIONS);
-        let e = evaluate(ModelKind::Firth, x.view(), &y, &f.coef, true).unwrap();
+        let e = evaluate(ModelKind::Firth, x.view(), &y, None, &f.coef, true).unwrap();
         assert!(max_abs(e.score.view()) < FIRTH_LOOSE_SCORE);
         assert!(f.se().iter().all(|s| s.is_finite() && *s > 0.0));
     }
