@@ -554,6 +554,7 @@ fn corrections(
                 k,
                 replicates: imp.replicates,
                 seed,
+                skip: variants.iter().map(|v| v.error.is_some()).collect(),
             })
         })
         .flatten();
@@ -569,7 +570,12 @@ fn corrections(
     ];
     notes.extend(notes_extra);
     if let Some(boot) = &boot {
-        let failed: usize = boot.iter().map(|b| b.failed).sum();
+        let failed: usize = boot
+            .iter()
+            .zip(&variants)
+            .filter(|(_, v)| v.error.is_none())
+            .map(|(b, _)| b.failed)
+            .sum();
         notes.push(format!(
             "Bootstrap columns: a country bootstrap of the whole pipeline (pairs cluster bootstrap, Cameron, Gelbach & Miller 2008): {} replicates (seed {seed}) each draw {} countries with replacement from the eligible universe, participants and non-participants together, re-fit the participation model, every weighting and the two-step's probit on the draw and re-estimate; standard error = the replicates' standard deviation, interval = their 2.5% and 97.5% percentiles. Unlike the clustered standard errors, these include the uncertainty of the estimated country weights. {}",
             imp.replicates,
@@ -1016,29 +1022,15 @@ fn estimate(
         Err(e) => failed(key, label, e.to_string(), x.ncols()),
         Ok(f) => {
             let p_cluster = t_p_values(&f.coef, &f.se, df);
-            let p_bootstrap = (imp.wild_replicates > 0).then(|| match imp.kind {
+            let (xv, wv, b) = (xs.view(), Some(ws.as_slice()), imp.wild_replicates);
+            let p_bootstrap = (b > 0).then(|| match imp.kind {
                 // Every term from one pass over the respondents.
-                Kind::Linear => regression::wild_cluster_bootstrap_terms(
-                    xs.view(),
-                    &ys,
-                    Some(&ws),
-                    &cs,
-                    imp.wild_replicates,
-                    seed,
-                )
-                .unwrap_or_else(|_| vec![f64::NAN; x.ncols()]),
+                Kind::Linear => regression::wild_cluster_bootstrap_terms(xv, &ys, wv, &cs, b, seed)
+                    .unwrap_or_else(|_| vec![f64::NAN; x.ncols()]),
                 Kind::Logistic => (0..x.ncols())
                     .map(|j| {
-                        regression::score_cluster_bootstrap(
-                            xs.view(),
-                            &ys,
-                            Some(&ws),
-                            &cs,
-                            j,
-                            imp.wild_replicates,
-                            seed,
-                        )
-                        .unwrap_or(f64::NAN)
+                        regression::score_cluster_bootstrap(xv, &ys, wv, &cs, j, b, seed)
+                            .unwrap_or(f64::NAN)
                     })
                     .collect(),
             });

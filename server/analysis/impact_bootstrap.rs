@@ -145,6 +145,15 @@ pub struct Input<'a> {
     pub k: usize,
     pub replicates: usize,
     pub seed: u64,
+    /// Per variant (in [`variant_count`]'s order), whether it failed on the full sample:
+    /// its draws are not computed (a page shows no bootstrap for such a variant).
+    pub skip: Vec<bool>,
+}
+
+impl Input<'_> {
+    fn skipped(&self, variant: usize) -> bool {
+        self.skip.get(variant).copied().unwrap_or(false)
+    }
 }
 
 /// The variants' keys in the order the bootstrap returns them: unweighted, each
@@ -326,46 +335,61 @@ fn logit_start(z: &Array2<f64>, t: &[bool]) -> Array1<f64> {
         .unwrap_or_else(|_| Array1::zeros(z.ncols()))
 }
 
-/// The over-identified covariate-balancing shares on a draw: the fit started at the full
+/// The covariate-balancing shares on a draw, on its distinct countries weighted by how
+/// often each was drawn (the same conditions as on the draw written out): the
+/// just-identified fit (exact balance), or the over-identified one started at the full
 /// sample's solution (so that each draw finds the minimum that corresponds to it; the
-/// criterion has several), on the draw's distinct countries weighted by how often each
-/// was drawn (the same criterion as on the draw written out), then participation::weigh's
-/// steps on the draw: inverse-probability weights, the settings' trimming, normalisation
-/// to the number of drawn units, times the base shares. A fit that does not converge (or
-/// cannot balance a column) fails.
-fn gmm_shares(
+/// criterion has several). Then participation::weigh's steps on the draw ([`shares_from`]).
+/// A fit that does not converge (or cannot balance a column) fails.
+fn balancing_shares(
     input: &Input,
     full: &FullSample,
+    kind: WeightingKind,
     draw: &Design,
     counts: &DrawCounts,
     base: &[f64],
 ) -> Result<Vec<f64>, Failure> {
-    let warm = full.gmm.as_ref();
-    let fit = match warm {
-        Some(start) => {
+    let over_identified = kind == WeightingKind::CovariateBalancingGmm;
+    let fit = match (over_identified, full.gmm.as_ref()) {
+        (false, _) => {
+            let (z, t) = full.distinct(input.design, counts);
+            weights::cbps_just_identified_counted(z.view(), &t, &counts.counts)
+        }
+        (true, Some(start)) => {
             let (z, t) = full.distinct(input.design, counts);
             weights::cbps_over_identified_counted_from(z.view(), &t, &counts.counts, start)
         }
-        None => {
+        (true, None) => {
+            // No full-sample solution to start from: as the full sample was fitted, on
+            // the draw written out.
             let zd = draw.standardised();
-            weights::cbps_over_identified(
-                zd.view(),
-                &draw.participated,
-                &logit_start(&zd, &draw.participated),
-            )
+            let t = &draw.participated;
+            let fit = weights::cbps_over_identified(zd.view(), t, &logit_start(&zd, t))
+                .map_err(|_| Failure::Infeasible)?;
+            if !fit.converged {
+                return Err(Failure::Infeasible);
+            }
+            return shares_from(input, draw, &fit.propensity, base);
         }
     }
     .map_err(|_| Failure::Infeasible)?;
     if !fit.converged {
         return Err(Failure::Infeasible);
     }
-    let propensity = if warm.is_some() {
-        counts.expand(&fit.propensity)
-    } else {
-        fit.propensity
-    };
+    shares_from(input, draw, &counts.expand(&fit.propensity), base)
+}
+
+/// participation::weigh's steps from the propensities of the drawn rows:
+/// inverse-probability weights, the settings' trimming, normalisation to the number of
+/// drawn units, times the base shares.
+fn shares_from(
+    input: &Input,
+    draw: &Design,
+    propensity: &[f64],
+    base: &[f64],
+) -> Result<Vec<f64>, Failure> {
     let t = &draw.participated;
-    let mut w = weights::inverse_probability(&propensity, t).map_err(|_| Failure::Infeasible)?;
+    let mut w = weights::inverse_probability(propensity, t).map_err(|_| Failure::Infeasible)?;
     if let Some(q) = input.settings.trim {
         w = weights::trim(&w, t, q);
     }
@@ -406,11 +430,17 @@ fn replicate(input: &Input, full: &FullSample, rows: &[usize]) -> Vec<Draw> {
             &counts,
         )
     };
-    for kind in WeightingKind::ALL {
+    for (v, kind) in WeightingKind::ALL.into_iter().enumerate() {
         let share: Result<Vec<f64>, Failure> = match &model {
+            _ if input.skipped(v + 1) => Err(Failure::ModelFailed),
             Err(f) => Err(*f),
-            Ok(_) if kind == WeightingKind::CovariateBalancingGmm => {
-                gmm_shares(input, full, &design, &counts, &base)
+            Ok(_)
+                if matches!(
+                    kind,
+                    WeightingKind::CovariateBalancing | WeightingKind::CovariateBalancingGmm
+                ) =>
+            {
+                balancing_shares(input, full, kind, &design, &counts, &base)
             }
             Ok(model) => {
                 if kind == WeightingKind::InverseProbability && !model.converged {
@@ -437,7 +467,9 @@ fn replicate(input: &Input, full: &FullSample, rows: &[usize]) -> Vec<Draw> {
         };
         out.push(share.and_then(|s| estimate(&stats, &s, input.kind, input.k)));
     }
-    out.push(if all_took_part {
+    out.push(if input.skipped(n_variants - 1) {
+        Err(Failure::ModelFailed)
+    } else if all_took_part {
         Err(Failure::NoNonParticipant)
     } else {
         match input.mills_indicators {

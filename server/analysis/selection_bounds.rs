@@ -13,6 +13,7 @@ use super::impact::Shares;
 use super::settings::{ModelKind, Settings};
 use crate::project::{Project, WaveView};
 use crate::stats::binary;
+use crate::stats::bootstrap::DrawCounts;
 use crate::stats::selection_bounds::{self as sb, BootstrapIntervals};
 
 /// Why the bounds cannot be computed, by what the reader can do about it.
@@ -320,19 +321,14 @@ fn participants(
     out
 }
 
-/// The fitted propensities of the model on (a resample of) the standardised design.
-/// `start`: the full sample's estimate, from which a resample's Newton steps begin (the
-/// same maximum, reached in fewer steps).
+/// The fitted propensities of the model on the standardised design, whether it converged
+/// at a determined estimate, and the estimate (where the bootstrap's draws start).
 fn propensities(
     kind: ModelKind,
     z: &Array2<f64>,
     participated: &[bool],
-    start: Option<&ndarray::Array1<f64>>,
 ) -> Result<(Vec<f64>, bool, ndarray::Array1<f64>), binary::FitError> {
-    let fit = match start {
-        None => binary::fit(kind, z.view(), participated),
-        Some(s) => binary::refit(kind, z.view(), participated, s, binary::SCORE_TOLERANCE),
-    }?;
+    let fit = binary::fit(kind, z.view(), participated)?;
     let converged = fit.converged && fit.weak_directions.is_empty();
     Ok((
         binary::predict(kind, z.view(), &fit.coef),
@@ -367,7 +363,7 @@ pub fn outcome_summary(
 ) -> Result<OutcomeSummary, SelectionBoundsError> {
     let p = prepare(project, view, settings, column, &Shares::Equal)?;
     let z = p.design.standardised();
-    let (e, _, _) = propensities(settings.model, &z, &p.design.participated, None)?;
+    let (e, _, _) = propensities(settings.model, &z, &p.design.participated)?;
     let (y, e, base) = participants(&p.value, &p.design.participated, &e, &p.base);
     let (point, _) = sb::msm_bounds(&y, &e, &base, 1.0)?;
     let bounds = bounds_at(&y, &e, &base, lambdas)?;
@@ -397,7 +393,7 @@ pub fn selection_bounds(
     let design = &p.design;
     let z = design.standardised();
     let (e_all, model_converged, estimate) =
-        propensities(settings.model, &z, &design.participated, None)?;
+        propensities(settings.model, &z, &design.participated)?;
     let (y, e, base) = participants(&p.value, &design.participated, &e_all, &p.base);
     let bounds = bounds_at(&y, &e, &base, &bs.lambdas)?;
     let (weighted_mean, _) = sb::msm_bounds(&y, &e, &base, 1.0)?;
@@ -423,16 +419,32 @@ pub fn selection_bounds(
             settings.seed,
             bs.level,
             |rows| {
-                let zs = z.select(Axis(0), rows);
                 let took: Vec<bool> = rows.iter().map(|&i| design.participated[i]).collect();
                 if took.iter().all(|&t| t) || !took.iter().any(|&t| t) {
                     return None;
                 }
-                let (er, converged, _) =
-                    propensities(settings.model, &zs, &took, Some(&estimate)).ok()?;
-                if !converged {
+                // The model on the draw's distinct countries weighted by how often each was
+                // drawn: the draw's estimate at the cost of its distinct rows.
+                let counts = DrawCounts::of(rows, n)?;
+                let zs = z.select(Axis(0), &counts.clusters);
+                let took_distinct: Vec<bool> = counts
+                    .clusters
+                    .iter()
+                    .map(|&i| design.participated[i])
+                    .collect();
+                let fit = binary::refit_counted(
+                    settings.model,
+                    zs.view(),
+                    &took_distinct,
+                    &counts.counts,
+                    &estimate,
+                    binary::SCORE_TOLERANCE,
+                )
+                .ok()?;
+                if !(fit.converged && fit.weak_directions.is_empty()) {
                     return None;
                 }
+                let er = counts.expand(&binary::predict(settings.model, zs.view(), &fit.coef));
                 let vr: Vec<Option<f64>> = rows.iter().map(|&i| p.value[i]).collect();
                 let br: Vec<f64> = rows.iter().map(|&i| p.base[i]).collect();
                 let (ys, es, bss) = participants(&vr, &took, &er, &br);

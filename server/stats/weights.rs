@@ -133,19 +133,48 @@ pub fn unreachable_columns(x: ArrayView2<f64>, t: &[bool]) -> Vec<usize> {
 /// at least for itself); otherwise the iterations diverge and the fit is reported as not
 /// converged.
 pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, WeightError> {
+    just_identified(x, t, None)
+}
+
+/// [`cbps_just_identified`] on units that stand for `counts[i]` identical units each (a
+/// bootstrap draw's distinct countries with how often each was drawn): every sum over
+/// units weights its rows by their counts, so the solution is that of the rows written
+/// out, at the cost of the distinct ones.
+pub fn cbps_just_identified_counted(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    counts: &[f64],
+) -> Result<CbpsFit, WeightError> {
+    if counts.len() != t.len() || counts.iter().any(|&c| !(c.is_finite() && c > 0.0)) {
+        return Err(WeightError::CountsSize {
+            given: counts.len(),
+            expected: t.len(),
+        });
+    }
+    just_identified(x, t, Some(counts))
+}
+
+fn just_identified(
+    x: ArrayView2<f64>,
+    t: &[bool],
+    counts: Option<&[f64]>,
+) -> Result<CbpsFit, WeightError> {
     if !t.iter().any(|&v| v) {
         return Err(WeightError::NoParticipants);
     }
-    let n = t.len();
+    let rows = t.len();
+    let count = |i: usize| counts.map_or(1.0, |c| c[i]);
+    let n = counts.map_or(rows as f64, |c| c.iter().sum());
     let k = x.ncols();
     let objective = |b: &Array1<f64>| -> f64 {
         let eta = x.dot(b);
-        (0..n)
-            .map(|i| if t[i] { (-eta[i]).exp() } else { eta[i] })
+        (0..rows)
+            .map(|i| count(i) * if t[i] { (-eta[i]).exp() } else { eta[i] })
             .sum()
     };
     let mut b = Array1::<f64>::zeros(k);
-    let share = t.iter().filter(|&&v| v).count() as f64 / n as f64;
+    let took: f64 = (0..rows).filter(|&i| t[i]).map(count).sum();
+    let share = took / n;
     b[0] = (share / (1.0 - share).max(1e-12)).ln();
     let mut iterations = 0;
     let mut converged = false;
@@ -155,14 +184,14 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
         let eta = x.dot(&b);
         // gradient of f = -sum (T e^{-eta} - (1 - T)) x = -g; Hessian = sum T e^{-eta} x x'.
         let mut g = Array1::<f64>::zeros(k);
-        let mut w = Array1::<f64>::zeros(n);
-        for i in 0..n {
+        let mut w = Array1::<f64>::zeros(rows);
+        for i in 0..rows {
             let e = if t[i] { (-eta[i]).exp() } else { 0.0 };
             let coefficient = e - f64::from(u8::from(!t[i]));
-            g.scaled_add(coefficient, &x.row(i));
-            w[i] = e;
+            g.scaled_add(count(i) * coefficient, &x.row(i));
+            w[i] = count(i) * e;
         }
-        if g.iter().all(|v| v.abs() < 1e-12 * n as f64) {
+        if g.iter().all(|v| v.abs() < 1e-12 * n) {
             converged = true;
             break;
         }
@@ -185,7 +214,15 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
         f = fc;
     }
     let propensity: Vec<f64> = x.dot(&b).iter().map(|&e| logistic(e)).collect();
-    let max_imbalance = balance_conditions(x, t, &propensity)
+    let ones;
+    let counts = match counts {
+        Some(c) => c,
+        None => {
+            ones = vec![1.0; rows];
+            &ones
+        }
+    };
+    let max_imbalance = balance_conditions(x, t, counts, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
     let unreachable = unreachable_columns(x, t);
@@ -200,18 +237,9 @@ pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, W
     })
 }
 
-/// Mean balance conditions (1/n) sum_i (T_i/p_i - 1) x_i.
-fn balance_conditions(x: ArrayView2<f64>, t: &[bool], p: &[f64]) -> Array1<f64> {
-    counted_balance_conditions(x, t, &vec![1.0; t.len()], p)
-}
-
-/// [`balance_conditions`] over rows standing for `counts` units each (n = sum of counts).
-fn counted_balance_conditions(
-    x: ArrayView2<f64>,
-    t: &[bool],
-    counts: &[f64],
-    p: &[f64],
-) -> Array1<f64> {
+/// Mean balance conditions (1/n) sum_i c_i (T_i/p_i - 1) x_i over rows standing for c_i
+/// units each (n = sum of the counts).
+fn balance_conditions(x: ArrayView2<f64>, t: &[bool], counts: &[f64], p: &[f64]) -> Array1<f64> {
     let n: f64 = counts.iter().sum();
     let mut g = Array1::<f64>::zeros(x.ncols());
     for (i, row) in x.axis_iter(Axis(0)).enumerate() {
@@ -277,15 +305,6 @@ pub fn cbps_over_identified_from(
     t: &[bool],
     b0: &Array1<f64>,
 ) -> Result<CbpsFit, WeightError> {
-    if !t.iter().any(|&v| v) {
-        return Err(WeightError::NoParticipants);
-    }
-    if b0.len() != x.ncols() {
-        return Err(WeightError::StartSize {
-            given: b0.len(),
-            expected: x.ncols(),
-        });
-    }
     cbps_over_identified_counted_from(x, t, &vec![1.0; t.len()], b0)
 }
 
@@ -329,7 +348,7 @@ fn gmm_fit(problem: &GmmProblem, b0: &Array1<f64>) -> Result<CbpsFit, WeightErro
         GmmDescent::at(b0)
     };
     let propensity: Vec<f64> = x.dot(&descent.coef).iter().map(|&e| logistic(e)).collect();
-    let max_imbalance = counted_balance_conditions(x, t, &problem.counts, &propensity)
+    let max_imbalance = balance_conditions(x, t, &problem.counts, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
     let stayed_at_start = !descent.converged && !descent.moved;
@@ -1032,6 +1051,16 @@ mod tests {
             assert!((a - b).abs() < 1e-8);
         }
         assert!((full.max_imbalance - counted.max_imbalance).abs() < 1e-8);
+        // The just-identified fit likewise.
+        let exact = cbps_just_identified(written_out.view(), &t_out).unwrap();
+        let exact_counted =
+            cbps_just_identified_counted(distinct.view(), &t_distinct, &draw.counts).unwrap();
+        assert!(exact.converged && exact_counted.converged);
+        assert_eq!(exact.coef.len(), exact_counted.coef.len());
+        for (a, b) in exact.coef.iter().zip(exact_counted.coef.iter()) {
+            assert!((a - b).abs() < 1e-8, "{a} vs {b}");
+        }
+        assert!(cbps_just_identified_counted(distinct.view(), &t_distinct, &[1.0]).is_err());
         assert!(
             cbps_over_identified_counted_from(distinct.view(), &t_distinct, &[1.0], &start)
                 .is_err()
