@@ -260,19 +260,20 @@ fn corrections(
     // Respondents of this wave's participants with complete values.
     // Country codes as level indices (no text copied per respondent), with each level's
     // participant index, if it is one.
-    let (country_codes, country_levels) = micro.factorise(&roles.country);
+    let factor = micro.shared_factorise(&roles.country);
+    let (country_codes, country_levels) = (&factor.0, &factor.1);
     let participant_of_level: Vec<Option<usize>> = country_levels
         .iter()
         .map(|c| country_index.get(c.as_str()).copied())
         .collect();
     let level_of = |i: usize| country_codes.get(i).copied().flatten();
-    let waves = micro.integers(&roles.wave);
-    let design_weight = micro.numbers(&roles.design_weight);
-    let outcome = micro.numbers(&imp.outcome);
-    let mut predictor_values: Vec<Vec<Option<f64>>> = Vec::new();
+    let waves = micro.shared_integers(&roles.wave);
+    let design_weight = micro.shared_numbers(&roles.design_weight);
+    let outcome = micro.shared_numbers(&imp.outcome);
+    let mut predictor_values: Vec<std::sync::Arc<Vec<Option<f64>>>> = Vec::new();
     for p in &imp.predictors {
         if variables.contains(p) {
-            predictor_values.push(micro.numbers(p));
+            predictor_values.push(micro.shared_numbers(p));
         } else if let Some(ind) = view.numeric.iter().find(|n| &n.column == p) {
             // A country indicator, joined by country.
             let by_code: HashMap<&str, Option<f64>> = view
@@ -285,11 +286,11 @@ fn corrections(
                 .iter()
                 .map(|c| by_code.get(c.as_str()).copied().flatten())
                 .collect();
-            predictor_values.push(
+            predictor_values.push(std::sync::Arc::new(
                 (0..micro.height())
                     .map(|i| level_of(i).and_then(|l| by_level[l]))
                     .collect(),
-            );
+            ));
         } else {
             return Err(ImpactError::Request(format!(
                 "'{p}' is neither a survey variable ({}) nor a numeric country indicator",

@@ -349,11 +349,15 @@ pub fn projection_with(
     let indicators = super::design::covariate_positions(view, settings)
         .map_err(|n| req(format!("'{n}' is not a numeric indicator")))?;
     // Country codes as level numbers (no text copy per respondent).
-    let (country_codes, country_levels) = micro.factorise(&roles.country);
-    let waves = micro.integers(&roles.wave);
-    let outcome = micro.numbers(&ps.outcome);
-    let predictor_values: Vec<Vec<Option<f64>>> =
-        ps.predictors.iter().map(|p| micro.numbers(p)).collect();
+    let factor = micro.shared_factorise(&roles.country);
+    let (country_codes, country_levels) = (&factor.0, &factor.1);
+    let waves = micro.shared_integers(&roles.wave);
+    let outcome = micro.shared_numbers(&ps.outcome);
+    let predictor_values: Vec<std::sync::Arc<Vec<Option<f64>>>> = ps
+        .predictors
+        .iter()
+        .map(|p| micro.shared_numbers(p))
+        .collect();
     let unit_of_code: HashMap<&str, usize> = view
         .codes
         .iter()

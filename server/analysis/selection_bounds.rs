@@ -214,10 +214,11 @@ pub fn country_values(
         )));
     }
     // Country codes as level indices: no copy of each respondent's code.
-    let (countries, levels) = micro.factorise(&roles.country);
-    let waves = micro.integers(&roles.wave);
-    let dw = micro.numbers(&roles.design_weight);
-    let y = micro.numbers(outcome);
+    let factor = micro.shared_factorise(&roles.country);
+    let (countries, levels) = (&factor.0, &factor.1);
+    let waves = micro.shared_integers(&roles.wave);
+    let dw = micro.shared_numbers(&roles.design_weight);
+    let y = micro.shared_numbers(outcome);
     let mut sums = vec![(0.0, 0.0); levels.len()];
     for i in 0..micro.height() {
         if waves[i] != Some(view.wave) {

@@ -1,6 +1,5 @@
-//! Small dense linear algebra on top of linfa-linalg's Cholesky decomposition.
+//! Small dense linear algebra around the Cholesky decomposition.
 
-use linfa_linalg::cholesky::Cholesky;
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -18,7 +17,7 @@ pub fn cholesky(a: ArrayView2<f64>) -> Result<Array2<f64>, LinalgError> {
     if a.nrows() == 0 {
         return Ok(Array2::zeros((0, 0)));
     }
-    let l = a.to_owned().cholesky().map_err(|_| LinalgError::Singular)?;
+    let l = lower_factor(a).ok_or(LinalgError::Singular)?;
     let max_diag = a.diag().iter().fold(0.0f64, |m, &d| m.max(d.abs()));
     let tiny = l
         .diag()
@@ -28,6 +27,34 @@ pub fn cholesky(a: ArrayView2<f64>) -> Result<Array2<f64>, LinalgError> {
         return Err(LinalgError::Singular);
     }
     Ok(l)
+}
+
+/// The Cholesky-Banachiewicz recurrence (Golub & Van Loan, Matrix Computations, 4.2.5):
+/// l_jj = sqrt(a_jj - sum_{k<j} l_jk^2), l_ij = (a_ij - sum_{k<j} l_ik l_jk) / l_jj for
+/// i > j, reading the lower triangle of A; `None` when a pivot is not positive. Rows are
+/// kept contiguous so that each sum is a dot product of two row prefixes (the small
+/// factorisations of the fits' Newton steps run thousands of times per bootstrap).
+fn lower_factor(a: ArrayView2<f64>) -> Option<Array2<f64>> {
+    let n = a.nrows();
+    if a.ncols() != n {
+        return None;
+    }
+    let mut l = vec![0.0; n * n];
+    for i in 0..n {
+        let (done, rest) = l.split_at_mut(i * n);
+        let row_i = &mut rest[..n];
+        for j in 0..i {
+            let row_j = &done[j * n..j * n + j];
+            let s: f64 = row_i[..j].iter().zip(row_j).map(|(x, y)| x * y).sum();
+            row_i[j] = (a[[i, j]] - s) / done[j * n + j];
+        }
+        let d = a[[i, i]] - row_i[..i].iter().map(|x| x * x).sum::<f64>();
+        if d.is_nan() || d <= 0.0 {
+            return None;
+        }
+        row_i[i] = d.sqrt();
+    }
+    Array2::from_shape_vec((n, n), l).ok()
 }
 
 /// L^-1 B for the lower factor L and a matrix B of right-hand sides, by forward
@@ -198,6 +225,22 @@ mod tests {
             [12.0, 37.0, -43.0],
             [-16.0, -43.0, 98.0]
         ]
+    }
+
+    #[test]
+    fn the_factor_of_a_known_matrix_is_its_known_factor() {
+        // Common practice: A = L L' built from a known lower L is factorised back to L;
+        // a matrix with a non-positive pivot is refused.
+        let l = cholesky(example_spd().view()).unwrap();
+        let known = array![[2.0, 0.0, 0.0], [6.0, 1.0, 0.0], [-8.0, 5.0, 3.0]];
+        assert_eq!(l.dim(), (3, 3));
+        for (a, b) in l.iter().zip(known.iter()) {
+            assert!((a - b).abs() < 1e-12, "{a} vs {b}");
+        }
+        let indefinite = array![[1.0, 2.0], [2.0, 1.0]];
+        assert_eq!(cholesky(indefinite.view()), Err(LinalgError::Singular));
+        let not_square = Array2::<f64>::zeros((2, 3));
+        assert!(lower_factor(not_square.view()).is_none());
     }
 
     #[test]

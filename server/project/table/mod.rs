@@ -13,7 +13,10 @@
 mod cells;
 pub mod clean_csv;
 mod parquet;
+mod shared;
 mod structure;
+
+pub use shared::Factor;
 
 use std::io::Cursor;
 use std::path::Path;
@@ -75,6 +78,8 @@ pub struct Table {
     pub file: String,
     pub frame: DataFrame,
     rows: RowNumbers,
+    /// Typed copies of columns that repeated analyses share (see [`shared`]).
+    shared: std::sync::Arc<shared::SharedColumns>,
 }
 
 #[derive(Debug, Clone)]
@@ -149,6 +154,21 @@ impl Table {
     /// The values of an Int64 column.
     pub fn integers(&self, column: &str) -> Vec<Option<i64>> {
         integers(&self.frame, column)
+    }
+
+    /// [`Table::numbers`], copied once per loaded table and shared by later calls.
+    pub fn shared_numbers(&self, column: &str) -> std::sync::Arc<Vec<Option<f64>>> {
+        self.shared.numbers(column, || self.numbers(column))
+    }
+
+    /// [`Table::integers`], copied once per loaded table and shared by later calls.
+    pub fn shared_integers(&self, column: &str) -> std::sync::Arc<Vec<Option<i64>>> {
+        self.shared.integers(column, || self.integers(column))
+    }
+
+    /// [`Table::factorise`], made once per loaded table and shared by later calls.
+    pub fn shared_factorise(&self, column: &str) -> std::sync::Arc<Factor> {
+        self.shared.factor(column, || self.factorise(column))
     }
 }
 
@@ -347,6 +367,7 @@ pub fn load_table_bytes(
         file: label.to_string(),
         frame: raw,
         rows,
+        shared: Default::default(),
     };
     table.frame = typed_columns(&table, specs)?;
     Ok(table)
