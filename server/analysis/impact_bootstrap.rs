@@ -15,6 +15,12 @@
 //! outcome equation adds country-level columns (indicators c and the inverse Mills ratio
 //! λ), whose cross-products with x need only x̄_c = Σ d_r x_r / D_c.
 //!
+//! The country-level fits of a draw (the participation model, both covariate-balancing
+//! fits, the two-step's probit) run on its distinct countries weighted by how often each
+//! was drawn, from the full sample's solutions: the same likelihoods and moment
+//! conditions as on the draw written out, at about 63% of its rows. Variants that failed
+//! on the full sample are not computed on the draws.
+//!
 //! Logistic pooled regressions are not re-estimated per replicate (their terms' bootstrap
 //! values are null, and a note says so); their pooled means are.
 
