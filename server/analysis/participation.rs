@@ -197,19 +197,10 @@ pub struct Weighted {
     pub weights: Vec<f64>,
 }
 
-/// The weights of [`weigh`] alone, without its report (the pipeline bootstrap needs only
-/// these on every draw; the balance table and the warnings cost more than the weights of
-/// the cheaper methods).
-pub fn weights_only(
-    design: &Design,
-    settings: &Settings,
-    model: &FittedModel,
-) -> Result<Vec<f64>, AnalysisError> {
-    weights_from(design, settings, &model.standardised, &model.propensity)
-}
-
-/// [`weights_only`] from the standardised design and the model's propensities alone (the
-/// pipeline bootstrap fits the model on each draw without its report).
+/// The weights of [`weigh`] alone, without its report, from the standardised design and
+/// the model's propensities (the pipeline bootstrap fits the model on each draw without
+/// its report, and needs only these; the balance table and the warnings cost more than
+/// the weights of the cheaper methods).
 pub fn weights_from(
     design: &Design,
     settings: &Settings,

@@ -202,7 +202,7 @@ pub fn refit_counted(
     start: &Array1<f64>,
     tolerance: f64,
 ) -> Result<BinaryFit, FitError> {
-    if counts.len() != y.len() || counts.iter().any(|&c| !(c.is_finite() && c > 0.0)) {
+    if !crate::stats::bootstrap::are_unit_counts(counts, y.len()) {
         return Err(FitError::Counts {
             given: counts.len(),
             expected: y.len(),

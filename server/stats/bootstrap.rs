@@ -49,6 +49,12 @@ pub struct DrawCounts {
     pub position: Vec<usize>,
 }
 
+/// Whether `counts` gives one positive, finite count to each of `units` rows (what the
+/// counted fits accept).
+pub fn are_unit_counts(counts: &[f64], units: usize) -> bool {
+    counts.len() == units && counts.iter().all(|&c| c.is_finite() && c > 0.0)
+}
+
 impl DrawCounts {
     /// The counts of `rows`, a draw from `0..g`; `None` if a row lies outside `0..g`.
     pub fn of(rows: &[usize], g: usize) -> Option<DrawCounts> {

@@ -133,7 +133,7 @@ pub fn unreachable_columns(x: ArrayView2<f64>, t: &[bool]) -> Vec<usize> {
 /// at least for itself); otherwise the iterations diverge and the fit is reported as not
 /// converged.
 pub fn cbps_just_identified(x: ArrayView2<f64>, t: &[bool]) -> Result<CbpsFit, WeightError> {
-    just_identified(x, t, None)
+    just_identified(x, t, &vec![1.0; t.len()])
 }
 
 /// [`cbps_just_identified`] on units that stand for `counts[i]` identical units each (a
@@ -145,26 +145,22 @@ pub fn cbps_just_identified_counted(
     t: &[bool],
     counts: &[f64],
 ) -> Result<CbpsFit, WeightError> {
-    if counts.len() != t.len() || counts.iter().any(|&c| !(c.is_finite() && c > 0.0)) {
+    if !crate::stats::bootstrap::are_unit_counts(counts, t.len()) {
         return Err(WeightError::CountsSize {
             given: counts.len(),
             expected: t.len(),
         });
     }
-    just_identified(x, t, Some(counts))
+    just_identified(x, t, counts)
 }
 
-fn just_identified(
-    x: ArrayView2<f64>,
-    t: &[bool],
-    counts: Option<&[f64]>,
-) -> Result<CbpsFit, WeightError> {
+fn just_identified(x: ArrayView2<f64>, t: &[bool], counts: &[f64]) -> Result<CbpsFit, WeightError> {
     if !t.iter().any(|&v| v) {
         return Err(WeightError::NoParticipants);
     }
     let rows = t.len();
-    let count = |i: usize| counts.map_or(1.0, |c| c[i]);
-    let n = counts.map_or(rows as f64, |c| c.iter().sum());
+    let count = |i: usize| counts[i];
+    let n: f64 = counts.iter().sum();
     let k = x.ncols();
     let objective = |b: &Array1<f64>| -> f64 {
         let eta = x.dot(b);
@@ -214,14 +210,6 @@ fn just_identified(
         f = fc;
     }
     let propensity: Vec<f64> = x.dot(&b).iter().map(|&e| logistic(e)).collect();
-    let ones;
-    let counts = match counts {
-        Some(c) => c,
-        None => {
-            ones = vec![1.0; rows];
-            &ones
-        }
-    };
     let max_imbalance = balance_conditions(x, t, counts, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
@@ -328,7 +316,7 @@ pub fn cbps_over_identified_counted_from(
             expected: x.ncols(),
         });
     }
-    if counts.len() != t.len() || counts.iter().any(|&c| !(c.is_finite() && c > 0.0)) {
+    if !crate::stats::bootstrap::are_unit_counts(counts, t.len()) {
         return Err(WeightError::CountsSize {
             given: counts.len(),
             expected: t.len(),
@@ -348,7 +336,7 @@ fn gmm_fit(problem: &GmmProblem, b0: &Array1<f64>) -> Result<CbpsFit, WeightErro
         GmmDescent::at(b0)
     };
     let propensity: Vec<f64> = x.dot(&descent.coef).iter().map(|&e| logistic(e)).collect();
-    let max_imbalance = balance_conditions(x, t, &problem.counts, &propensity)
+    let max_imbalance = balance_conditions(x, t, problem.counts, &propensity)
         .iter()
         .fold(0.0f64, |m, v| m.max(v.abs()));
     let stayed_at_start = !descent.converged && !descent.moved;
@@ -522,18 +510,18 @@ impl UnitDerivatives {
 struct GmmProblem<'a> {
     x: ArrayView2<'a, f64>,
     t: &'a [bool],
-    counts: Vec<f64>,
+    counts: &'a [f64],
     /// The number of units, sum of the counts.
     n: f64,
     pairs: linalg::RowPairs,
 }
 
 impl<'a> GmmProblem<'a> {
-    fn new(x: ArrayView2<'a, f64>, t: &'a [bool], counts: &[f64]) -> Self {
+    fn new(x: ArrayView2<'a, f64>, t: &'a [bool], counts: &'a [f64]) -> Self {
         GmmProblem {
             x,
             t,
-            counts: counts.to_vec(),
+            counts,
             n: counts.iter().sum(),
             pairs: linalg::RowPairs::new(x),
         }
@@ -541,7 +529,7 @@ impl<'a> GmmProblem<'a> {
 }
 
 fn gmm_point(problem: &GmmProblem, b: &Array1<f64>) -> Option<GmmPoint> {
-    let (x, t, counts) = (problem.x, problem.t, &problem.counts);
+    let (x, t, counts) = (problem.x, problem.t, problem.counts);
     let n = t.len();
     let k = x.ncols();
     let nf = problem.n;
@@ -600,7 +588,8 @@ fn stacked_blocks(m11: &Array2<f64>, m12: &Array2<f64>, m22: &Array2<f64>) -> Ar
 /// S is singular.
 #[cfg(test)]
 fn gmm_objective(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> (f64, Array1<f64>) {
-    let problem = GmmProblem::new(x.view(), t, &vec![1.0; t.len()]);
+    let ones = vec![1.0; t.len()];
+    let problem = GmmProblem::new(x.view(), t, &ones);
     match gmm_point(&problem, b) {
         Some(point) => (point.q, gmm_gradient(&problem, &point)),
         None => (f64::INFINITY, Array1::zeros(x.ncols())),
@@ -1094,7 +1083,8 @@ mod tests {
         // (already checked) analytic gradient, at points near and away from a minimum.
         let (x, t) = simulated(5, 60, 4, |r| -0.2 + 0.9 * r[1] - 0.5 * r[3]);
         for b in [array![0.1, 0.6, -0.2, 0.3], array![-0.4, 1.2, 0.5, -0.8]] {
-            let problem = GmmProblem::new(x.view(), &t, &vec![1.0; t.len()]);
+            let ones = vec![1.0; t.len()];
+            let problem = GmmProblem::new(x.view(), &t, &ones);
             let h = gmm_hessian(&problem, &gmm_point(&problem, &b).expect("S regular"));
             assert_eq!(h.dim(), (4, 4));
             for j in 0..4 {
