@@ -5,6 +5,7 @@ use ndarray::Array2;
 use serde::Serialize;
 
 use super::settings::{MissingRule, Settings};
+use crate::project::manifest::PopulationScale;
 use crate::project::WaveView;
 use crate::stats::describe;
 
@@ -291,6 +292,28 @@ impl Design {
             z.column_mut(j).mapv_inplace(|v| (v - m) / s);
         }
         z
+    }
+
+    /// Each unit's number of people from the numeric country indicator `column`, read on
+    /// `scale` (NaN where the unit has no value): the base weights of countries that count
+    /// by population. Whether a missing or non-positive value matters is the caller's to
+    /// say (the impact page leaves out what needs it, the bounds refuse).
+    pub fn people(
+        &self,
+        view: &WaveView,
+        column: &str,
+        scale: PopulationScale,
+    ) -> Result<Vec<f64>, DesignError> {
+        let indicator = view
+            .numeric
+            .iter()
+            .find(|n| n.column == column)
+            .ok_or_else(|| DesignError(format!("'{column}' is not a numeric country indicator")))?;
+        Ok(self
+            .units
+            .iter()
+            .map(|&u| indicator.values[u].map_or(f64::NAN, |v| scale.people(v)))
+            .collect())
     }
 }
 

@@ -344,23 +344,11 @@ fn corrections(
     }
     let population: Option<Vec<f64>> = match &imp.shares {
         Shares::Equal => None,
-        Shares::Population(col) => {
-            let ind = view
-                .numeric
-                .iter()
-                .find(|n| &n.column == col)
-                .ok_or_else(|| {
-                    ImpactError::Request(format!("'{col}' is not a numeric country indicator"))
-                })?;
-            let scale = project.manifest.population_scale(col);
-            Some(
-                design
-                    .units
-                    .iter()
-                    .map(|&u| ind.values[u].map_or(f64::NAN, |v| scale.people(v)))
-                    .collect(),
-            )
-        }
+        Shares::Population(col) => Some(
+            design
+                .people(view, col, project.manifest.population_scale(col))
+                .map_err(|e| ImpactError::Request(e.0))?,
+        ),
     };
     let population_ok = population
         .as_ref()

@@ -11,6 +11,7 @@ use serde::Serialize;
 use super::design::{self, Design};
 use super::impact::Shares;
 use super::settings::{ModelKind, Settings};
+use crate::project::manifest::PopulationScale;
 use crate::project::{Project, WaveView};
 use crate::stats::binary;
 use crate::stats::bootstrap::DrawCounts;
@@ -264,21 +265,12 @@ pub fn prepare(
     let base = match shares {
         Shares::Equal => vec![1.0; design.n()],
         Shares::Population(col) => {
-            let ind = view
-                .numeric
-                .iter()
-                .find(|n| &n.column == col)
-                .ok_or_else(|| {
-                    SelectionBoundsError::Request(format!(
-                        "'{col}' is not a numeric country indicator"
-                    ))
-                })?;
-            let scale = project.map(|p| p.manifest.population_scale(col));
-            let people: Vec<f64> = design
-                .units
-                .iter()
-                .map(|&u| ind.values[u].map_or(f64::NAN, |v| scale.map_or(v, |s| s.people(v))))
-                .collect();
+            // Without a project (a bare frame) the column is a count of people.
+            let scale =
+                project.map_or(PopulationScale::Count, |p| p.manifest.population_scale(col));
+            let people = design
+                .people(view, col, scale)
+                .map_err(|e| SelectionBoundsError::Request(e.0))?;
             if people
                 .iter()
                 .zip(&design.participated)
