@@ -57,7 +57,7 @@ fn main() {
         let seconds = start.elapsed().as_secs_f64();
         println!(
             "{} ({}): {seconds:.2} s read included (target < {limit} s); country SD {:.4}, converged {}, {} iterations",
-            report.kind, report.method, report.country_sd, report.converged, report.iterations
+            report.fit.kind, report.method, report.fit.country_sd, report.converged, report.iterations
         );
     }
     projection_page();

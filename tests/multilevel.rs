@@ -558,15 +558,15 @@ fn logistic_projection_matches_glmer_and_numerical_integration() {
             &ProjectionOptions { shares },
         )
         .unwrap();
-        assert_eq!(r.kind, "logistic");
+        assert_eq!(r.fit.kind, "logistic");
         assert_eq!(r.method, "Laplace");
         assert!(r.converged);
-        close_abs("coef", &r.coef, &floats(&want["coef"]), 1e-4);
-        close_rel("se", &r.se, &floats(&want["se"]), 1e-3);
+        close_abs("coef", &r.fit.coef, &floats(&want["coef"]), 1e-4);
+        close_rel("se", &r.fit.se, &floats(&want["se"]), 1e-3);
         assert!(
-            (r.country_sd - f(&want["country_sd"])).abs() < 1e-4,
+            (r.fit.country_sd - f(&want["country_sd"])).abs() < 1e-4,
             "country SD {} vs {}",
-            r.country_sd,
+            r.fit.country_sd,
             want["country_sd"]
         );
         assert_eq!(r.countries.len(), codes.len());
@@ -929,11 +929,11 @@ fn logistic_projection_recovers_a_known_universe() {
                 (f64::from(y), y.to_string())
             },
         );
-        assert_eq!(r.kind, "logistic");
+        assert_eq!(r.fit.kind, "logistic");
         if !r.converged {
             println!(
                 "rep {rep}: sd {} boundary {} coef {:?}",
-                r.country_sd, r.at_boundary, r.coef
+                r.fit.country_sd, r.at_boundary, r.fit.coef
             );
         }
         assert_eq!(r.countries.len(), 80);
@@ -944,9 +944,9 @@ fn logistic_projection_recovers_a_known_universe() {
                 "diag {} {} {} {} {}",
                 r.universe_estimate - truth,
                 r.universe_high - r.universe_low,
-                r.country_sd,
-                r.coef[0],
-                r.coef[1]
+                r.fit.country_sd,
+                r.fit.coef[0],
+                r.fit.coef[1]
             );
         }
         if r.universe_low <= truth && truth <= r.universe_high {

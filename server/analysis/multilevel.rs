@@ -6,7 +6,7 @@ use std::path::Path;
 use serde::Serialize;
 
 use crate::analysis::microdata::{read_regression_file, MicrodataError};
-use crate::stats::multilevel::{self, Criterion, Data, MultilevelError};
+use crate::stats::multilevel::{self, Criterion, Data, MultilevelError, MultilevelFit};
 
 /// Linear or logistic outcome model.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -25,9 +25,12 @@ impl Kind {
     }
 }
 
-/// The result of `gapwise multilevel`.
+/// A random-intercept fit's estimates as results show them: the model, its fixed effects
+/// and the two standard deviations. `gapwise multilevel` and the projection page both
+/// report these (flattened into their JSON, so the keys stand where they always stood).
 #[derive(Debug, Clone, Serialize)]
-pub struct MultilevelReport {
+pub struct RandomInterceptSummary {
+    /// "linear" or "logistic" (a binary outcome).
     pub kind: &'static str,
     /// Intercept first.
     pub terms: Vec<String>,
@@ -38,6 +41,30 @@ pub struct MultilevelReport {
     pub country_sd: f64,
     /// Residual standard deviation (null for the logistic model).
     pub residual_sd: Option<f64>,
+}
+
+impl RandomInterceptSummary {
+    /// The summary of `fit`, a model of `kind` whose coefficients are those of `terms`.
+    pub fn new(kind: Kind, terms: Vec<String>, fit: &MultilevelFit) -> RandomInterceptSummary {
+        RandomInterceptSummary {
+            kind: match kind {
+                Kind::Linear => "linear",
+                Kind::Logistic => "logistic",
+            },
+            terms,
+            coef: fit.coef.clone(),
+            se: fit.se.clone(),
+            country_sd: fit.country_sd,
+            residual_sd: fit.residual_sd,
+        }
+    }
+}
+
+/// The result of `gapwise multilevel`.
+#[derive(Debug, Clone, Serialize)]
+pub struct MultilevelReport {
+    #[serde(flatten)]
+    pub fit: RandomInterceptSummary,
     /// Intraclass correlation (null for the logistic model).
     pub icc: Option<f64>,
     /// REML: the restricted log-likelihood; Laplace / quadrature: its approximation.
@@ -134,15 +161,7 @@ pub fn multilevel_file(path: &Path, req: &Request) -> Result<MultilevelReport, M
     .flatten()
     .collect();
     Ok(MultilevelReport {
-        kind: match req.kind {
-            Kind::Linear => "linear",
-            Kind::Logistic => "logistic",
-        },
-        terms,
-        coef: fit.coef,
-        se: fit.se,
-        country_sd: fit.country_sd,
-        residual_sd: fit.residual_sd,
+        fit: RandomInterceptSummary::new(req.kind, terms, &fit),
         icc: fit.icc,
         log_likelihood: fit.log_likelihood,
         method,

@@ -33,6 +33,7 @@ use ndarray::Array2;
 use rayon::prelude::*;
 use serde::Serialize;
 
+use super::multilevel::{Kind, RandomInterceptSummary};
 use super::settings::Settings;
 use crate::project::{Project, WaveView};
 use crate::stats::multilevel::{self, Criterion, Data, MultilevelFit};
@@ -125,14 +126,10 @@ pub struct ProjectionReport {
     pub indicator_labels: Vec<String>,
     /// Per term of `terms`, its readable label.
     pub term_labels: Vec<String>,
-    /// "linear" or "logistic" (a binary outcome).
-    pub kind: &'static str,
-    /// The model: intercept, respondent predictors, then standardised indicators.
-    pub terms: Vec<String>,
-    pub coef: Vec<f64>,
-    pub se: Vec<f64>,
-    pub country_sd: f64,
-    pub residual_sd: Option<f64>,
+    /// The model; its terms: intercept, respondent predictors, then standardised
+    /// indicators.
+    #[serde(flatten)]
+    pub fit: RandomInterceptSummary,
     pub method: &'static str,
     /// How the countries' predictions and the interval are made, in words.
     pub projection_method: String,
@@ -997,12 +994,11 @@ pub fn projection_with(
         predictor_labels,
         indicator_labels,
         term_labels,
-        kind: if binary { "logistic" } else { "linear" },
-        terms,
-        coef: fit.coef.clone(),
-        se: fit.se.clone(),
-        country_sd: fit.country_sd,
-        residual_sd: fit.residual_sd,
+        fit: RandomInterceptSummary::new(
+            if binary { Kind::Logistic } else { Kind::Linear },
+            terms,
+            &fit,
+        ),
         method: if binary { "Laplace" } else { "REML" },
         projection_method,
         converged: fit.converged,

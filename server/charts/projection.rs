@@ -73,7 +73,7 @@ pub fn component_map(r: &ProjectionReport) -> String {
             ramp(0.5)
         }
     };
-    let digits = if r.kind == "logistic" { 3 } else { 2 };
+    let digits = if r.fit.kind == "logistic" { 3 } else { 2 };
     let mut hover: Vec<((i32, i32), String)> = Vec::new();
     let svg = render(&title, SLIDE, |root| {
         let span = |f: &dyn Fn(&Shown) -> f64| {

@@ -36,9 +36,10 @@ pub fn multilevel(path: &Path, a: &MultilevelArgs, json: bool) -> i32 {
 
 /// The readable form of a random-intercept fit.
 fn multilevel_text(r: &MultilevelReport, outcome: &str) -> String {
+    let fit = &r.fit;
     let mut out = format!(
         "{} random-intercept model of {} ({}): {} respondents in {} countries ({} rows with missing values left out){}\n",
-        r.kind,
+        fit.kind,
         outcome,
         r.method,
         r.n,
@@ -47,11 +48,11 @@ fn multilevel_text(r: &MultilevelReport, outcome: &str) -> String {
         if r.converged { "" } else { "; NOT CONVERGED" }
     );
     let _ = writeln!(out, "  {:<28} {:>14} {:>14}", "term", "coefficient", "s.e.");
-    for ((t, c), s) in r.terms.iter().zip(&r.coef).zip(&r.se) {
+    for ((t, c), s) in fit.terms.iter().zip(&fit.coef).zip(&fit.se) {
         let _ = writeln!(out, "  {t:<28} {c:>14.6} {s:>14.6}");
     }
-    let _ = writeln!(out, "  country SD {:.6}", r.country_sd);
-    if let (Some(s), Some(icc)) = (r.residual_sd, r.icc) {
+    let _ = writeln!(out, "  country SD {:.6}", fit.country_sd);
+    if let (Some(s), Some(icc)) = (fit.residual_sd, r.icc) {
         let _ = writeln!(out, "  residual SD {s:.6}; intraclass correlation {icc:.4}");
     }
     let _ = writeln!(out, "  log-likelihood {:.4}", r.log_likelihood);
