@@ -195,17 +195,8 @@ fn assert_within_monte_carlo(p: f64, reference_p: f64, what: &str) {
     );
 }
 
-/// A bootstrap p-value of [`regression`]: design, outcome, weights, clusters, term,
-/// replicates, seed.
-type BootstrapP = fn(
-    ndarray::ArrayView2<f64>,
-    &[f64],
-    Option<&[f64]>,
-    &[usize],
-    usize,
-    usize,
-    u64,
-) -> Result<f64, regression::RegressionError>;
+/// A bootstrap p-value of [`regression`] for one term's test.
+type BootstrapP = fn(&regression::TermTest) -> Result<f64, regression::RegressionError>;
 
 /// Each case of `key` in reference.json (clusters G, term j, reference p): `bootstrap`
 /// (unweighted, B = 9999, `seed`) on the first G men of wagepan with `outcome` agrees
@@ -217,7 +208,8 @@ fn agrees_with_reference_cases(key: &str, outcome: &str, bootstrap: BootstrapP, 
         let g = case["clusters"].as_u64().unwrap() as usize;
         let j = case["term"].as_u64().unwrap() as usize;
         let (x, y, cluster) = wagepan_first_men(g, outcome);
-        let p = bootstrap(x.view(), &y, None, &cluster, j, 9999, seed).unwrap();
+        let data = regression::ClusteredData::new(x.view(), &y, None, &cluster).unwrap();
+        let p = bootstrap(&regression::TermTest::new(data, j, 9999, seed).unwrap()).unwrap();
         let name = format!("{key}: G = {g}, term {j}");
         assert_within_monte_carlo(p, case["p"].as_f64().unwrap(), &name);
     }
@@ -434,7 +426,9 @@ fn bootstrap_p_values_are_never_zero() {
     assert_eq!(regression::bootstrap_p(0, 99), 0.01);
     assert_eq!(regression::bootstrap_p(99, 99), 1.0);
     let (x, y, cluster) = wagepan_first_men(10, "lwage");
-    let p = regression::wild_cluster_bootstrap(x.view(), &y, None, &cluster, 1, 9, 1).unwrap();
+    let data = regression::ClusteredData::new(x.view(), &y, None, &cluster).unwrap();
+    let test = regression::TermTest::new(data, 1, 9, 1).unwrap();
+    let p = regression::wild_cluster_bootstrap(&test).unwrap();
     assert!(p >= 0.1 - 1e-12, "{p}");
 }
 
@@ -485,16 +479,15 @@ fn score_bootstrap_for_logistic_models_separates_signal_from_noise() {
             cluster.push(g);
         }
     }
-    let signal =
-        regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, 1, 999, 3).unwrap();
-    let noise =
-        regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, 2, 999, 3).unwrap();
+    let data = regression::ClusteredData::new(x.view(), &y, None, &cluster).unwrap();
+    let p_value = |term: usize| {
+        regression::score_cluster_bootstrap(&regression::TermTest::new(data, term, 999, 3).unwrap())
+            .unwrap()
+    };
+    let (signal, noise) = (p_value(1), p_value(2));
     assert!(signal < 0.01, "signal p = {signal}");
     assert!(noise > 0.05, "noise p = {noise}");
-    assert_eq!(
-        noise,
-        regression::score_cluster_bootstrap(x.view(), &y, None, &cluster, 2, 999, 3).unwrap()
-    );
+    assert_eq!(noise, p_value(2));
 }
 
 #[test]

@@ -1011,14 +1011,20 @@ fn estimate(
         Err(e) => failed(key, label, e.to_string(), x.ncols()),
         Ok(f) => {
             let p_cluster = t_p_values(&f.coef, &f.se, df);
-            let (xv, wv, b) = (xs.view(), Some(ws.as_slice()), imp.wild_replicates);
-            let p_bootstrap = (b > 0).then(|| match imp.kind {
+            let b = imp.wild_replicates;
+            let data = regression::ClusteredData::new(xs.view(), &ys, Some(&ws), &cs);
+            let p_bootstrap = (b > 0).then(|| match (data, imp.kind) {
+                // Not reached: the rows, weights and clusters were selected together.
+                (Err(_), _) => vec![f64::NAN; x.ncols()],
                 // Every term from one pass over the respondents.
-                Kind::Linear => regression::wild_cluster_bootstrap_terms(xv, &ys, wv, &cs, b, seed)
-                    .unwrap_or_else(|_| vec![f64::NAN; x.ncols()]),
-                Kind::Logistic => (0..x.ncols())
+                (Ok(data), Kind::Linear) => {
+                    regression::wild_cluster_bootstrap_terms(&data, b, seed)
+                        .unwrap_or_else(|_| vec![f64::NAN; x.ncols()])
+                }
+                (Ok(data), Kind::Logistic) => (0..x.ncols())
                     .map(|j| {
-                        regression::score_cluster_bootstrap(xv, &ys, wv, &cs, j, b, seed)
+                        regression::TermTest::new(data, j, b, seed)
+                            .and_then(|test| regression::score_cluster_bootstrap(&test))
                             .unwrap_or(f64::NAN)
                     })
                     .collect(),

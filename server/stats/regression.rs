@@ -51,6 +51,14 @@ pub enum RegressionError {
     Shape,
     #[error("the selection probit did not converge (separation or a near-singular design)")]
     NotConverged,
+    #[error("the inputs do not line up: the design has {n} rows but there are {found} {what}")]
+    Misaligned {
+        n: usize,
+        found: usize,
+        what: &'static str,
+    },
+    #[error("there is no term {term} to test: the design has {k} terms")]
+    NoSuchTerm { term: usize, k: usize },
 }
 
 /// A fitted regression with CR1 cluster-robust standard errors.
@@ -649,6 +657,69 @@ fn cluster_multipliers(rng: &mut crate::stats::random::Rng, clusters: usize) -> 
         .collect()
 }
 
+/// Respondents clustered in countries, as the bootstrap tests take them: the design x
+/// (n x k, intercept included), the outcome y, optional weights w and each row's cluster
+/// (0..G). Made by [`ClusteredData::new`] only, so that every part has one entry per row.
+#[derive(Debug, Clone, Copy)]
+pub struct ClusteredData<'a> {
+    x: ArrayView2<'a, f64>,
+    y: &'a [f64],
+    w: Option<&'a [f64]>,
+    cluster: &'a [usize],
+}
+
+impl<'a> ClusteredData<'a> {
+    /// Checks that y, w (where given) and cluster have one entry per row of x.
+    pub fn new(
+        x: ArrayView2<'a, f64>,
+        y: &'a [f64],
+        w: Option<&'a [f64]>,
+        cluster: &'a [usize],
+    ) -> Result<ClusteredData<'a>, RegressionError> {
+        let n = x.nrows();
+        let parts = [
+            (y.len(), "outcomes"),
+            (w.map_or(n, <[f64]>::len), "weights"),
+            (cluster.len(), "cluster indices"),
+        ];
+        match parts.into_iter().find(|&(found, _)| found != n) {
+            Some((found, what)) => Err(RegressionError::Misaligned { n, found, what }),
+            None => Ok(ClusteredData { x, y, w, cluster }),
+        }
+    }
+}
+
+/// A bootstrap test of H0: beta_term = 0 on `data` (term 0 the intercept), with
+/// `replicates` draws from the generator seeded by `seed`.
+#[derive(Debug, Clone, Copy)]
+pub struct TermTest<'a> {
+    data: ClusteredData<'a>,
+    term: usize,
+    replicates: usize,
+    seed: u64,
+}
+
+impl<'a> TermTest<'a> {
+    /// Checks that `term` is a column of the design.
+    pub fn new(
+        data: ClusteredData<'a>,
+        term: usize,
+        replicates: usize,
+        seed: u64,
+    ) -> Result<TermTest<'a>, RegressionError> {
+        let k = data.x.ncols();
+        if term >= k {
+            return Err(RegressionError::NoSuchTerm { term, k });
+        }
+        Ok(TermTest {
+            data,
+            term,
+            replicates,
+            seed,
+        })
+    }
+}
+
 /// Wild score bootstrap p-value for H0: beta_j = 0 in a weighted logistic model (Kline &
 /// Santos 2012, the score-based wild bootstrap; Roodman et al. 2019 for clusters). The
 /// model is fitted with the null imposed (x_j left out); its per-cluster scores S_g =
@@ -656,16 +727,10 @@ fn cluster_multipliers(rng: &mut crate::stats::random::Rng, clusters: usize) -> 
 /// t = (H^-1 S)_j / sqrt((H^-1 V H^-1)_jj), V = c sum_g S_g S_g' (c the CR1 factor). Each
 /// replicate multiplies S_g by one draw v_g per cluster (Rademacher, or Webb's six points
 /// below 12 clusters); the p-value is (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley
-/// 1997, eq. 4.11), never 0. No refits are needed.
-pub fn score_cluster_bootstrap(
-    x: ArrayView2<f64>,
-    y: &[f64],
-    w: Option<&[f64]>,
-    cluster: &[usize],
-    j: usize,
-    replicates: usize,
-    seed: u64,
-) -> Result<f64, RegressionError> {
+/// 1997, eq. 4.11), never 0. No refits are needed. j is the test's term.
+pub fn score_cluster_bootstrap(test: &TermTest) -> Result<f64, RegressionError> {
+    let ClusteredData { x, y, w, cluster } = test.data;
+    let (j, replicates, seed) = (test.term, test.replicates, test.seed);
     let (n, k) = x.dim();
     let keep: Vec<usize> = (0..k).filter(|&c| c != j).collect();
     let restricted_x = x.select(ndarray::Axis(1), &keep);
@@ -718,33 +783,22 @@ pub fn score_cluster_bootstrap(
 /// the model without x_j; for each replicate, y* = y~ + v_g u~ with one draw v_g per
 /// cluster (Rademacher +-1, or Webb's six-point distribution with fewer than 12 clusters,
 /// Webb 2014), the full model is refitted and t* = b*_j / se*_j (CR1). The p-value is
-/// (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley 1997, eq. 4.11), never 0. Refits use per-cluster sums, so a replicate costs O(G k^2).
-pub fn wild_cluster_bootstrap(
-    x: ArrayView2<f64>,
-    y: &[f64],
-    w: Option<&[f64]>,
-    cluster: &[usize],
-    j: usize,
-    replicates: usize,
-    seed: u64,
-) -> Result<f64, RegressionError> {
-    let sums = ClusterSums::new(x, y, w, cluster)?;
-    sums.wild_p(j, replicates, seed)
+/// (1 + #{|t*| >= |t|}) / (B + 1) (Davison & Hinkley 1997, eq. 4.11), never 0. Refits use per-cluster sums, so a replicate costs O(G k^2). j is the test's term.
+pub fn wild_cluster_bootstrap(test: &TermTest) -> Result<f64, RegressionError> {
+    let sums = ClusterSums::new(&test.data)?;
+    sums.wild_p(test.term, test.replicates, test.seed)
 }
 
 /// [`wild_cluster_bootstrap`] for every term at once: the respondents are read once into
 /// per-cluster sums, then each term costs O(G k^2) per replicate. Each term uses the same
 /// seed, so its p-value equals the one-term function's.
 pub fn wild_cluster_bootstrap_terms(
-    x: ArrayView2<f64>,
-    y: &[f64],
-    w: Option<&[f64]>,
-    cluster: &[usize],
+    data: &ClusteredData,
     replicates: usize,
     seed: u64,
 ) -> Result<Vec<f64>, RegressionError> {
-    let sums = ClusterSums::new(x, y, w, cluster)?;
-    (0..x.ncols())
+    let sums = ClusterSums::new(data)?;
+    (0..data.x.ncols())
         .map(|j| sums.wild_p(j, replicates, seed))
         .collect()
 }
@@ -761,12 +815,8 @@ struct ClusterSums {
 }
 
 impl ClusterSums {
-    fn new(
-        x: ArrayView2<f64>,
-        y: &[f64],
-        w: Option<&[f64]>,
-        cluster: &[usize],
-    ) -> Result<ClusterSums, RegressionError> {
+    fn new(data: &ClusteredData) -> Result<ClusterSums, RegressionError> {
+        let ClusteredData { x, y, w, cluster } = *data;
         let (n, k) = x.dim();
         let full = fit(x, y, w, cluster, Kind::Linear)?;
         let groups = cluster.iter().max().map_or(0, |m| m + 1);
@@ -1404,15 +1454,40 @@ mod tests {
         let n = 400;
         let (x, cluster, y) = clustered_data(11, n, 9, 0.0);
         let w: Vec<f64> = (0..n).map(|i| 0.5 + (i % 3) as f64).collect();
-        let all =
-            super::wild_cluster_bootstrap_terms(x.view(), &y, Some(&w), &cluster, 199, 5).unwrap();
+        let data = super::ClusteredData::new(x.view(), &y, Some(&w), &cluster).unwrap();
+        let all = super::wild_cluster_bootstrap_terms(&data, 199, 5).unwrap();
         assert_eq!(all.len(), 3);
         for (j, p) in all.iter().enumerate() {
-            let one =
-                super::wild_cluster_bootstrap(x.view(), &y, Some(&w), &cluster, j, 199, 5).unwrap();
+            let test = super::TermTest::new(data, j, 199, 5).unwrap();
+            let one = super::wild_cluster_bootstrap(&test).unwrap();
             assert_eq!(*p, one);
             assert!(*p > 0.0 && *p <= 1.0);
         }
+    }
+
+    /// Inputs that do not line up, or a term the design does not have, are refused before
+    /// any work.
+    #[test]
+    fn bootstrap_tests_check_their_inputs() {
+        use super::{ClusteredData, RegressionError, TermTest};
+        let (x, cluster, y) = clustered_data(13, 40, 4, 0.0);
+        let w = vec![1.0; 39];
+        assert_eq!(
+            ClusteredData::new(x.view(), &y, Some(&w), &cluster).unwrap_err(),
+            RegressionError::Misaligned {
+                n: 40,
+                found: 39,
+                what: "weights"
+            }
+        );
+        assert!(ClusteredData::new(x.view(), &y[1..], None, &cluster).is_err());
+        assert!(ClusteredData::new(x.view(), &y, None, &cluster[1..]).is_err());
+        let data = ClusteredData::new(x.view(), &y, None, &cluster).unwrap();
+        assert!(TermTest::new(data, 2, 9, 1).is_ok());
+        assert_eq!(
+            TermTest::new(data, 3, 9, 1).unwrap_err(),
+            RegressionError::NoSuchTerm { term: 3, k: 3 }
+        );
     }
 
     #[test]
@@ -1430,7 +1505,9 @@ mod tests {
 
     #[test]
     fn per_cluster_sums_give_the_respondent_fit() {
-        use super::{fit, wild_cluster_bootstrap_terms, Kind, LinearSums, RegressionError};
+        use super::{
+            fit, wild_cluster_bootstrap_terms, ClusteredData, Kind, LinearSums, RegressionError,
+        };
         // Common practice: weights that are a per-cluster factor times base weights only
         // rescale each cluster's sums, so the fit from sums equals the fit on the rows (QR)
         // to rounding, the intercept-only sums give the weighted mean, and a cluster whose
@@ -1456,7 +1533,8 @@ mod tests {
         }
         let mean = ys.iter().zip(&ws).map(|(a, b)| a * b).sum::<f64>() / ws.iter().sum::<f64>();
         assert!((sums.first_column().fit().unwrap().coef[0] - mean).abs() < 1e-12);
-        let p_rows = wild_cluster_bootstrap_terms(xs.view(), &ys, Some(&ws), &cs, 99, 3).unwrap();
+        let rows_data = ClusteredData::new(xs.view(), &ys, Some(&ws), &cs).unwrap();
+        let p_rows = wild_cluster_bootstrap_terms(&rows_data, 99, 3).unwrap();
         let p_sums = sums.wild_bootstrap_terms(&from_sums, 99, 3).unwrap();
         assert_eq!(p_rows.len(), p_sums.len());
         for (a, b) in p_rows.iter().zip(&p_sums) {
