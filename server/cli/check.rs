@@ -58,13 +58,16 @@ pub fn summary_text(o: &Overview) -> String {
     );
     const WAVES: TextTable = TextTable {
         indent: "",
-        columns: &[Right(6), Right(9), Right(9), Right(10), Right(9)],
+        columns: &[
+            Right("wave", 6),
+            Right("rows", 9),
+            Right("eligible", 9),
+            Right("took part", 10),
+            Right("coverage", 9),
+        ],
     };
     out.push('\n');
-    WAVES.push_header(
-        &mut out,
-        &["wave", "rows", "eligible", "took part", "coverage"],
-    );
+    WAVES.push_header(&mut out);
     for w in &o.waves {
         let coverage = format!("{:.0}%", 100.0 * w.coverage);
         WAVES.push_line(

@@ -209,9 +209,13 @@ pub fn fit_text(r: &FitReport) -> String {
     );
     const COEFFICIENTS: TextTable = TextTable {
         indent: "  ",
-        columns: &[Left(34), Right(12), Right(12)],
+        columns: &[
+            Left("term", 34),
+            Right("coefficient", 12),
+            Right("std. error", 12),
+        ],
     };
-    COEFFICIENTS.push_header(&mut out, &["term", "coefficient", "std. error"]);
+    COEFFICIENTS.push_header(&mut out);
     for c in &m.coefficients {
         let number =
             |x: Option<f64>| x.map_or_else(|| "not estimable".to_string(), |v| format!("{v:.5}"));
@@ -235,19 +239,16 @@ pub fn fit_text(r: &FitReport) -> String {
     }
     const BALANCE: TextTable = TextTable {
         indent: "  ",
-        columns: &[Left(34), Right(10), Right(10), Right(10), Right(10)],
+        columns: &[
+            Left("balance", 34),
+            Right("SMD before", 10),
+            Right("SMD after", 10),
+            Right("VR before", 10),
+            Right("VR after", 10),
+        ],
     };
     out.push('\n');
-    BALANCE.push_header(
-        &mut out,
-        &[
-            "balance",
-            "SMD before",
-            "SMD after",
-            "VR before",
-            "VR after",
-        ],
-    );
+    BALANCE.push_header(&mut out);
     for b in &r.balance {
         BALANCE.push_line(
             &mut out,

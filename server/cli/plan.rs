@@ -131,30 +131,18 @@ pub fn plan_text(p: &Plan) -> String {
     const STEPS: TextTable = TextTable {
         indent: "",
         columns: &[
-            Left(4),
-            Left(8),
-            Right(8),
-            Right(12),
-            Right(9),
-            Right(10),
-            Right(11),
-            Right(9),
+            Left("step", 4),
+            Left("country", 8),
+            Right("p(join)", 8),
+            Right("expected n", 12),
+            Right("exp. gain", 9),
+            Right("exp. max|d|", 10),
+            Right("n if all join", 11),
+            Right("stability", 9),
         ],
     };
     out.push('\n');
-    STEPS.push_header(
-        &mut out,
-        &[
-            "step",
-            "country",
-            "p(join)",
-            "expected n",
-            "exp. gain",
-            "exp. max|d|",
-            "n if all join",
-            "stability",
-        ],
-    );
+    STEPS.push_header(&mut out);
     for (j, s) in p.steps.iter().enumerate() {
         let expected_n = match s.expected_effective_n_mc_error {
             Some(e) => format!("{:.1}±{:.1}", s.expected_effective_n, e),

@@ -1,13 +1,22 @@
 //! Aligned text tables for the commands' readable output: a header and its rows laid out
-//! by one list of columns, so that a column's width and alignment are stated once.
+//! by one list of columns, so that a column's heading, width and alignment are stated
+//! once, together.
 
 use std::fmt::Display;
 
-/// One column: its width and on which side its cells are padded.
+/// One column: its heading and width, and on which side its cells are padded.
 #[derive(Clone, Copy)]
 pub(super) enum Column {
-    Left(usize),
-    Right(usize),
+    Left(&'static str, usize),
+    Right(&'static str, usize),
+}
+
+impl Column {
+    fn heading(self) -> &'static str {
+        match self {
+            Column::Left(heading, _) | Column::Right(heading, _) => heading,
+        }
+    }
 }
 
 /// Columns one space apart after an indent. A cell wider than its column is written
@@ -30,15 +39,16 @@ impl TextTable {
             // text whatever its type does with a width.
             let text = cell.to_string();
             line.push_str(&match *column {
-                Column::Left(width) => format!("{text:<width$}"),
-                Column::Right(width) => format!("{text:>width$}"),
+                Column::Left(_, width) => format!("{text:<width$}"),
+                Column::Right(_, width) => format!("{text:>width$}"),
             });
         }
         line
     }
 
-    /// Appends the header line (a heading per column) and its line break to `out`.
-    pub fn push_header(&self, out: &mut String, headings: &[&str]) {
+    /// Appends the header line (each column's heading) and its line break to `out`.
+    pub fn push_header(&self, out: &mut String) {
+        let headings: Vec<&'static str> = self.columns.iter().map(|c| c.heading()).collect();
         let cells: Vec<&dyn Display> = headings.iter().map(|h| h as &dyn Display).collect();
         self.push_line(out, &cells);
     }
@@ -60,7 +70,7 @@ mod tests {
         // Our own rule: the layout `format!` gives with the same widths, one space apart.
         let table = TextTable {
             indent: "  ",
-            columns: &[Left(6), Right(5)],
+            columns: &[Left("a", 6), Right("b", 5)],
         };
         assert_eq!(table.line(&[&"term", &1.5]), "  term     1.5");
         assert_eq!(
@@ -68,7 +78,7 @@ mod tests {
             "  a longer term 123456"
         );
         let mut out = String::new();
-        table.push_header(&mut out, &["a", "b"]);
+        table.push_header(&mut out);
         table.push_line(&mut out, &[&"", &7]);
         assert_eq!(
             out,
