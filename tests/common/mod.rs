@@ -67,12 +67,13 @@ participation = "took_part"
     };
 }
 
-pub const FRAME_COLUMNS: &str = frame_columns_section!();
-
 /// A manifest titled `title` over a frame with the test frames' columns: `sections` the
 /// TOML after `[columns]` (indicators, eligibility, microdata).
 pub fn manifest_with(title: &str, sections: &str) -> String {
-    format!("\ntitle = \"{title}\"\n{FRAME_COLUMNS}{sections}")
+    format!(
+        "\ntitle = \"{title}\"\n{}{sections}",
+        frame_columns_section!()
+    )
 }
 
 pub const MANIFEST: &str = concat!(
