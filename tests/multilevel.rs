@@ -382,22 +382,16 @@ fn project_simulated_universe(
 
 /// The manifest of the simulated universes.
 fn simulated_manifest(title: &str) -> String {
-    format!(
-        r#"
-title = "{title}"
-[columns]
-code = "iso"
-name = "name"
-wave = "wave"
-participation = "took_part"
-[indicators]
+    manifest_with(
+        title,
+        r#"[indicators]
 numeric = ["z", "noise"]
 [microdata]
 country = "iso"
 wave = "wave"
 design_weight = "dweight"
 variables = ["y"]
-"#
+"#,
     )
 }
 

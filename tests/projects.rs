@@ -122,47 +122,155 @@ fn upload_map_save_and_keep_previous_version() {
     assert_eq!(open.status, 303);
 }
 
-#[test]
-fn bad_uploads_get_the_validators_messages_and_change_nothing() {
-    let (projects, addr, origin) = projects_server("badprojects");
-    let cases: Vec<(&str, String, &str)> = vec![
-        (
+/// An upload the validators refuse: the frame posted, the mapping form saved (its `name=p1`
+/// becomes the case's name) and what the refusal says, as `gapwise check` prints it. A
+/// bad frame may already be refused at the upload; a bad mapping only at the save.
+struct Refusal {
+    name: &'static str,
+    frame: String,
+    mapping: String,
+    says: &'static str,
+    at_upload_too: bool,
+}
+
+impl Refusal {
+    /// A bad frame under the good mapping.
+    fn frame(name: &'static str, frame: String, says: &'static str) -> Self {
+        Refusal {
+            name,
+            frame,
+            mapping: MAPPING.to_string(),
+            says,
+            at_upload_too: true,
+        }
+    }
+
+    /// The test frame with its line `line` (1: the header) replaced by `text`, under the
+    /// good mapping.
+    fn frame_line(name: &'static str, line: usize, text: &str, says: &'static str) -> Self {
+        let frame = FRAME
+            .lines()
+            .enumerate()
+            .flat_map(|(j, l)| [if j + 1 == line { text } else { l }, "\n"])
+            .collect();
+        Refusal::frame(name, frame, says)
+    }
+
+    /// The good frame under a bad mapping.
+    fn mapping(name: &'static str, mapping: String, says: &'static str) -> Self {
+        Refusal {
+            name,
+            frame: FRAME.to_string(),
+            mapping,
+            says,
+            at_upload_too: false,
+        }
+    }
+}
+
+/// The uploads the validators refuse. The mappings that give one column two roles are
+/// the crash of issue 19: the country-name column also ticked as a numeric indicator was
+/// saved and then panicked every page and `gapwise check`.
+fn refusals() -> Vec<Refusal> {
+    vec![
+        Refusal::frame_line(
             "ragged",
-            FRAME.replace("XAB,Bland,1,0,8.1,6.5,South", "XAB,Bland,1,0,8.1"),
+            3,
+            "XAB,Bland,1,0,8.1",
             "frame.csv:3:democracy: the row has 5 fields",
         ),
-        (
+        Refusal::frame_line(
             "flag",
-            FRAME.replace("XAB,Bland,1,0,", "XAB,Bland,1,2,"),
+            3,
+            "XAB,Bland,1,2,8.1,6.5,South",
             "frame.csv:3:took_part:",
         ),
-        (
+        Refusal::frame_line(
             "text",
-            FRAME.replace("XAD,Dland,1,0,7.0,", "XAD,Dland,1,0,low,"),
-            "frame.csv:5:gdp: &#34;low&#34; is not a number",
+            5,
+            "XAD,Dland,1,0,low,3.0,North",
+            "frame.csv:5:gdp: \"low\" is not a number",
         ),
-        (
+        Refusal::frame(
             "duplicate",
             format!("{FRAME}XAB,Bland,2,0,8.2,6.6,South\n"),
             "appears twice in wave 2",
         ),
-        ("empty", String::new(), "choose a frame file"),
-    ];
-    for (name, frame, expected) in cases {
-        let r = upload(addr, &origin, name, frame.as_bytes());
-        if r.status == 400 {
-            assert!(r.body.contains(expected), "{name}: {}", r.body);
-            continue;
-        }
-        assert_eq!(r.status, 303, "{name}: {}", r.body);
-        let mapping = MAPPING.replace("name=p1", &format!("name={name}"));
-        let saved = save_mapping(addr, &origin, &mapping, &upload_id(&r));
-        assert_eq!(saved.status, 422, "{name}");
-        assert!(saved.body.contains(expected), "{name}: {}", saved.body);
-        assert!(
-            !projects.path().join(name).exists(),
-            "{name} was saved despite problems"
-        );
+        Refusal::frame("empty", String::new(), "choose a frame file"),
+        Refusal::mapping(
+            "crash-numeric",
+            MAPPING.replace("numeric=gdp", "numeric=gdp&numeric=name"),
+            "listed both in columns.name",
+        ),
+        Refusal::mapping(
+            "crash-categorical",
+            MAPPING.replace("categorical=region", "categorical=region&categorical=name"),
+            "listed both in columns.name",
+        ),
+        Refusal::mapping(
+            "crash-rule",
+            MAPPING.replace("rule_indicator=democracy", "rule_indicator=region"),
+            "one column cannot be both",
+        ),
+        Refusal::mapping(
+            "crash-cost",
+            format!("{MAPPING}&cost=region"),
+            "one column cannot be both",
+        ),
+        Refusal::mapping(
+            "crash-wave-rule",
+            MAPPING.replace("rule_indicator=democracy", "rule_indicator=wave"),
+            "one column cannot be both",
+        ),
+    ]
+}
+
+/// Posts `case` through the upload and mapping forms: refused, at the upload (400; a bad
+/// frame only) or at the save (422), with its message, and nothing saved. When it gets as
+/// far as a mapping, `gapwise check` on the same manifest and files refuses it too: exit
+/// 1, the same message, no panic.
+fn assert_refused_by_the_form_and_by_check(
+    projects: &TempDir,
+    addr: std::net::SocketAddr,
+    origin: &str,
+    case: &Refusal,
+) {
+    let name = case.name;
+    // The pages escape quotes (no message here holds another character they escape).
+    let on_page = case.says.replace('"', "&#34;");
+    let r = upload(addr, origin, name, case.frame.as_bytes());
+    if r.status == 400 && case.at_upload_too {
+        assert!(r.body.contains(&on_page), "{name}: {}", r.body);
+        return;
+    }
+    assert_eq!(r.status, 303, "{name}: {}", r.body);
+    let mapping = case.mapping.replace("name=p1", &format!("name={name}"));
+    let saved = save_mapping(addr, origin, &mapping, &upload_id(&r));
+    assert_eq!(saved.status, 422, "{name}: {}", saved.body);
+    assert!(saved.body.contains(&on_page), "{name}: {}", saved.body);
+    assert!(
+        !projects.path().join(name).exists(),
+        "{name} was saved despite problems"
+    );
+    let form: Vec<(String, String)> = form_urlencoded::parse(mapping.as_bytes())
+        .map(|(k, v)| (k.to_string(), v.to_string()))
+        .collect();
+    let manifest = gapwise::web::projects::manifest_from_form(&form).expect("a manifest");
+    let dir = TempDir::new(&format!("check-{name}"));
+    dir.write("project.toml", toml::to_string(&manifest).unwrap());
+    dir.write("frame.csv", &case.frame);
+    dir.write("microdata.csv", MICRODATA);
+    let out = gapwise(&["check", dir.path().to_str().unwrap()]);
+    assert_eq!(out.code, 1, "{name}: {} {}", out.stdout, out.stderr);
+    assert!(!out.stderr.contains("panicked"), "{name}: {}", out.stderr);
+    assert!(out.stderr.contains(case.says), "{name}: {}", out.stderr);
+}
+
+#[test]
+fn bad_uploads_get_the_validators_messages_and_change_nothing() {
+    let (projects, addr, origin) = projects_server("badprojects");
+    for case in &refusals() {
+        assert_refused_by_the_form_and_by_check(&projects, addr, &origin, case);
     }
     // A mapping that names a missing column.
     let r = upload(addr, &origin, "nocol", FRAME.as_bytes());
@@ -179,6 +287,8 @@ fn bad_uploads_get_the_validators_messages_and_change_nothing() {
         400
     );
     assert!(store::list(projects.path()).is_empty());
+    // Pages still answer (the open project is untouched).
+    assert_eq!(get(addr, "/").status, 200);
 }
 
 /// Stages an upload of the test project (frame with `frame`) directly on disk.
@@ -449,65 +559,6 @@ fn upload_with(
     }
     let (ct, body) = multipart(&fields, &files);
     post_from(addr, origin, "/projects/upload", &ct, &body)
-}
-
-/// The crash of issue 19: the country-name column also ticked as a numeric indicator was
-/// saved and then panicked every page and `gapwise check`. Now the save refuses it with
-/// the same message `gapwise check` prints, and neither panics.
-#[test]
-fn a_name_column_ticked_as_an_indicator_is_refused_by_the_form_and_by_check() {
-    let (projects, addr, origin) = projects_server("namecrash");
-    for (tag, mapping, expected) in [
-        (
-            "numeric",
-            MAPPING.replace("numeric=gdp", "numeric=gdp&numeric=name"),
-            "listed both in columns.name",
-        ),
-        (
-            "categorical",
-            MAPPING.replace("categorical=region", "categorical=region&categorical=name"),
-            "listed both in columns.name",
-        ),
-        (
-            "rule",
-            MAPPING.replace("rule_indicator=democracy", "rule_indicator=region"),
-            "one column cannot be both",
-        ),
-        (
-            "cost",
-            format!("{MAPPING}&cost=region"),
-            "one column cannot be both",
-        ),
-        (
-            "wave-rule",
-            MAPPING.replace("rule_indicator=democracy", "rule_indicator=wave"),
-            "one column cannot be both",
-        ),
-    ] {
-        let name = format!("crash-{tag}");
-        let r = upload(addr, &origin, &name, FRAME.as_bytes());
-        assert_eq!(r.status, 303, "{tag}: {}", r.body);
-        let mapping = mapping.replace("name=p1", &format!("name={name}"));
-        let saved = save_mapping(addr, &origin, &mapping, &upload_id(&r));
-        assert_eq!(saved.status, 422, "{tag}: {}", saved.body);
-        assert!(saved.body.contains(expected), "{tag}: {}", saved.body);
-        assert!(!projects.path().join(&name).exists(), "{tag} was saved");
-        // `gapwise check` on the same manifest: exit 1, the same message, no panic.
-        let form: Vec<(String, String)> = form_urlencoded::parse(mapping.as_bytes())
-            .map(|(k, v)| (k.to_string(), v.to_string()))
-            .collect();
-        let manifest = gapwise::web::projects::manifest_from_form(&form).expect("a manifest");
-        let dir = TempDir::new(&format!("check-{tag}"));
-        dir.write("project.toml", toml::to_string(&manifest).unwrap());
-        dir.write("frame.csv", FRAME);
-        dir.write("microdata.csv", MICRODATA);
-        let out = gapwise(&["check", dir.path().to_str().unwrap()]);
-        assert_eq!(out.code, 1, "{tag}: {} {}", out.stdout, out.stderr);
-        assert!(!out.stderr.contains("panicked"), "{tag}: {}", out.stderr);
-        assert!(out.stderr.contains(expected), "{tag}: {}", out.stderr);
-    }
-    // Pages still answer (the open project is untouched).
-    assert_eq!(get(addr, "/").status, 200);
 }
 
 /// A small seeded generator for the property test (xorshift64*, Vigna 2016).

@@ -3,6 +3,8 @@
 use std::fmt::Write as _;
 use std::path::Path;
 
+use super::text_table::Column::Right;
+use super::text_table::TextTable;
 use super::{emit, emit_json};
 use crate::analysis::overview::{overview, Overview};
 use crate::project::Project;
@@ -54,20 +56,23 @@ pub fn summary_text(o: &Overview) -> String {
         o.n_countries,
         o.waves.len()
     );
-    let _ = writeln!(
-        out,
-        "\n{:>6} {:>9} {:>9} {:>10} {:>9}",
-        "wave", "rows", "eligible", "took part", "coverage"
-    );
+    const WAVES: TextTable = TextTable {
+        indent: "",
+        columns: &[
+            Right("wave", 6),
+            Right("rows", 9),
+            Right("eligible", 9),
+            Right("took part", 10),
+            Right("coverage", 9),
+        ],
+    };
+    out.push('\n');
+    WAVES.push_header(&mut out);
     for w in &o.waves {
-        let _ = writeln!(
-            out,
-            "{:>6} {:>9} {:>9} {:>10} {:>8.0}%",
-            w.wave,
-            w.rows,
-            w.eligible,
-            w.participating,
-            100.0 * w.coverage
+        let coverage = format!("{:.0}%", 100.0 * w.coverage);
+        WAVES.push_line(
+            &mut out,
+            &[&w.wave, &w.rows, &w.eligible, &w.participating, &coverage],
         );
     }
     let _ = writeln!(

@@ -3,6 +3,8 @@
 
 use std::fmt::Write as _;
 
+use super::text_table::Column::{Left, Right};
+use super::text_table::TextTable;
 use super::universe::{load_universe, UniverseSource};
 use super::{emit, emit_json, opt};
 use crate::analysis::imputed::ImputedFit;
@@ -205,21 +207,19 @@ pub fn fit_text(r: &FitReport) -> String {
         opt(m.auc, 3),
         opt(m.auc_loo, 3)
     );
-    let _ = writeln!(
-        out,
-        "  {:<34} {:>12} {:>12}",
-        "term", "coefficient", "std. error"
-    );
+    const COEFFICIENTS: TextTable = TextTable {
+        indent: "  ",
+        columns: &[
+            Left("term", 34),
+            Right("coefficient", 12),
+            Right("std. error", 12),
+        ],
+    };
+    COEFFICIENTS.push_header(&mut out);
     for c in &m.coefficients {
         let number =
             |x: Option<f64>| x.map_or_else(|| "not estimable".to_string(), |v| format!("{v:.5}"));
-        let _ = writeln!(
-            out,
-            "  {:<34} {:>12} {:>12}",
-            c.term,
-            number(c.coef),
-            number(c.se)
-        );
+        COEFFICIENTS.push_line(&mut out, &[&c.term, &number(c.coef), &number(c.se)]);
     }
     for w in &m.warnings {
         let _ = writeln!(out, "  warning: {w}");
@@ -237,20 +237,28 @@ pub fn fit_text(r: &FitReport) -> String {
     for w in &wr.warnings {
         let _ = writeln!(out, "  warning: {w}");
     }
-    let _ = writeln!(
-        out,
-        "\n  {:<34} {:>10} {:>10} {:>10} {:>10}",
-        "balance", "SMD before", "SMD after", "VR before", "VR after"
-    );
+    const BALANCE: TextTable = TextTable {
+        indent: "  ",
+        columns: &[
+            Left("balance", 34),
+            Right("SMD before", 10),
+            Right("SMD after", 10),
+            Right("VR before", 10),
+            Right("VR after", 10),
+        ],
+    };
+    out.push('\n');
+    BALANCE.push_header(&mut out);
     for b in &r.balance {
-        let _ = writeln!(
-            out,
-            "  {:<34} {:>10} {:>10} {:>10} {:>10}",
-            b.covariate,
-            opt(b.smd_before, 3),
-            opt(b.smd_after, 3),
-            opt(b.variance_ratio_before, 2),
-            opt(b.variance_ratio_after, 2)
+        BALANCE.push_line(
+            &mut out,
+            &[
+                &b.covariate,
+                &opt(b.smd_before, 3),
+                &opt(b.smd_after, 3),
+                &opt(b.variance_ratio_before, 2),
+                &opt(b.variance_ratio_after, 2),
+            ],
         );
     }
     out

@@ -3,8 +3,9 @@
 //!
 //! One module per command group: its runner (load, run the analysis, choose text or
 //! JSON) and, beside it, the readable text of its result. What several commands share:
-//! where a universe comes from ([`universe`]), how results reach standard output (here)
-//! and how files are written ([`atomic_file`]).
+//! where a universe comes from ([`universe`]), how results reach standard output (here),
+//! how their tables are laid out ([`text_table`]) and how files are written
+//! ([`atomic_file`]).
 
 pub mod atomic_file;
 mod check;
@@ -15,6 +16,7 @@ mod plan;
 mod report;
 mod respondents;
 mod serve;
+mod text_table;
 pub mod universe;
 mod weights;
 

@@ -2,6 +2,8 @@
 
 use std::fmt::Write as _;
 
+use super::text_table::Column::{Left, Right};
+use super::text_table::TextTable;
 use super::universe::{load_project_wave, load_universe, UniverseSource};
 use super::{finish, opt};
 use crate::analysis::imputed::ImputedPlan;
@@ -125,33 +127,40 @@ pub fn plan_text(p: &Plan) -> String {
             String::new()
         }
     );
-    let _ = writeln!(
-        out,
-        "\n{:<4} {:<8} {:>8} {:>12} {:>9} {:>10} {:>11} {:>9}",
-        "step",
-        "country",
-        "p(join)",
-        "expected n",
-        "exp. gain",
-        "exp. max|d|",
-        "n if all join",
-        "stability"
-    );
+    // Two headings are wider than their columns and push the rest of the header right.
+    const STEPS: TextTable = TextTable {
+        indent: "",
+        columns: &[
+            Left("step", 4),
+            Left("country", 8),
+            Right("p(join)", 8),
+            Right("expected n", 12),
+            Right("exp. gain", 9),
+            Right("exp. max|d|", 10),
+            Right("n if all join", 11),
+            Right("stability", 9),
+        ],
+    };
+    out.push('\n');
+    STEPS.push_header(&mut out);
     for (j, s) in p.steps.iter().enumerate() {
+        let expected_n = match s.expected_effective_n_mc_error {
+            Some(e) => format!("{:.1}±{:.1}", s.expected_effective_n, e),
+            None => format!("{:.1}", s.expected_effective_n),
+        };
+        let line = STEPS.line(&[
+            &(j + 1),
+            &s.id,
+            &format!("{:.2}", s.probability),
+            &expected_n,
+            &format!("{:.2}", s.expected_gain),
+            &format!("{:.3}", s.expected_max_abs_smd),
+            &format!("{:.1}", s.effective_n_if_all_join),
+            &opt(s.stability, 2),
+        ]);
         let _ = writeln!(
             out,
-            "{:<4} {:<8} {:>8.2} {:>12} {:>9.2} {:>10.3} {:>11.1} {:>9}{}{}",
-            j + 1,
-            s.id,
-            s.probability,
-            match s.expected_effective_n_mc_error {
-                Some(e) => format!("{:.1}±{:.1}", s.expected_effective_n, e),
-                None => format!("{:.1}", s.expected_effective_n),
-            },
-            s.expected_gain,
-            s.expected_max_abs_smd,
-            s.effective_n_if_all_join,
-            opt(s.stability, 2),
+            "{line}{}{}",
             if s.supported { "  (with support)" } else { "" },
             if s.exchanged { "  (by exchange)" } else { "" }
         );

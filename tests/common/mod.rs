@@ -54,14 +54,32 @@ impl Drop for TempDir {
     }
 }
 
-pub const MANIFEST: &str = r#"
-title = "Test programme"
-[columns]
+/// The `[columns]` section over the test frames' columns (ISO code, name, wave, the 0/1
+/// participation flag). A macro, so that the constant [`MANIFEST`] is made of it too.
+macro_rules! frame_columns_section {
+    () => {
+        r#"[columns]
 code = "iso"
 name = "name"
 wave = "wave"
 participation = "took_part"
-[indicators]
+"#
+    };
+}
+
+/// A manifest titled `title` over a frame with the test frames' columns: `sections` the
+/// TOML after `[columns]` (indicators, eligibility, microdata).
+pub fn manifest_with(title: &str, sections: &str) -> String {
+    format!(
+        "\ntitle = \"{title}\"\n{}{sections}",
+        frame_columns_section!()
+    )
+}
+
+pub const MANIFEST: &str = concat!(
+    "\ntitle = \"Test programme\"\n",
+    frame_columns_section!(),
+    r#"[indicators]
 numeric = ["gdp", "democracy"]
 categorical = ["region"]
 [[eligibility]]
@@ -72,7 +90,8 @@ country = "iso"
 wave = "wave"
 design_weight = "dweight"
 variables = ["trust"]
-"#;
+"#
+);
 
 pub const FRAME: &str = "iso,name,wave,took_part,gdp,democracy,region
 XAA,Aland,1,1,9.5,8.0,North
