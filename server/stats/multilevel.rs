@@ -479,12 +479,26 @@ pub fn gauss_hermite(k: usize) -> (Vec<f64>, Vec<f64>) {
     (x, w)
 }
 
-/// Respondents sorted by country for the logistic model's per-country integrals.
+/// Respondents sorted by country for the logistic model's per-country integrals, those of
+/// a country with the same row of the design merged into one.
+///
+/// Every sum of the logistic model over a country's respondents (the conditional log
+/// density g(u), its derivatives in u, the Laplace gradient and Hessian, the quadrature's
+/// integrands, the fit at tau = 0) has the terms w_i (y_i eta_i - log(1 + e^eta_i)),
+/// w_i (y_i - p_i) x_i and w_i p_i (1 - p_i) x_i x_i', linear in w_i and w_i y_i for a
+/// given row x_i. Rows with the same x in the same country therefore enter exactly as one
+/// row of weight W = sum w_i and outcome sum w_i y_i / W (a share, not 0 or 1): the same
+/// likelihood and the same estimates up to the order of summation, at the cost of the
+/// distinct rows. Survey predictors such as age in years, sex and education levels repeat
+/// many times within a country (the demo's 2,000 respondents per country-wave have a few
+/// hundred distinct rows); continuous predictors merge nothing and cost one hash per row.
 struct Grouped {
     p: usize,
-    /// Row-major design in country order.
+    /// Row-major design in country order, one row per distinct row of the country.
     x: Vec<f64>,
+    /// The weighted share of 1s among the merged respondents.
     y: Vec<f64>,
+    /// The merged respondents' total weight.
     w: Vec<f64>,
     /// Country j's rows are start[j]..start[j + 1].
     start: Vec<usize>,
@@ -494,30 +508,88 @@ impl Grouped {
     fn new(data: &Data, weight: Option<&[f64]>) -> Grouped {
         let (n, p) = data.x.dim();
         let g = data.n_groups;
-        let mut start = vec![0usize; g + 1];
-        for &gi in data.group {
-            start[gi + 1] += 1;
+        let mut members: Vec<Vec<usize>> = vec![Vec::new(); g];
+        for (i, &gi) in data.group.iter().enumerate() {
+            members[gi].push(i);
         }
-        for j in 0..g {
-            start[j + 1] += start[j];
-        }
-        let mut next = start.clone();
-        let mut x = vec![0.0; n * p];
-        let mut y = vec![0.0; n];
-        let mut w = vec![1.0; n];
-        for i in 0..n {
-            let gi = data.group[i];
-            let r = next[gi];
-            next[gi] += 1;
-            for k in 0..p {
-                x[r * p + k] = data.x[[i, k]];
+        let mut start = Vec::with_capacity(g + 1);
+        let (mut x, mut wy, mut w) = (Vec::new(), Vec::new(), Vec::new());
+        // Distinct rows of the country at hand: the bits of a row to its merged index.
+        let mut seen: std::collections::HashMap<Vec<u64>, usize, RowHash> =
+            std::collections::HashMap::with_hasher(RowHash);
+        let mut key = Vec::with_capacity(p);
+        for rows in &members {
+            start.push(w.len());
+            seen.clear();
+            for &i in rows {
+                key.clear();
+                key.extend(data.x.row(i).iter().map(|v| v.to_bits()));
+                let wi = weight.map_or(1.0, |wt| wt[i]);
+                let merged = match seen.get(&key) {
+                    Some(&r) => r,
+                    None => {
+                        let r = w.len();
+                        seen.insert(key.clone(), r);
+                        x.extend(data.x.row(i).iter());
+                        wy.push(0.0);
+                        w.push(0.0);
+                        r
+                    }
+                };
+                wy[merged] += wi * data.y[i];
+                w[merged] += wi;
             }
-            y[r] = data.y[i];
-            if let Some(wt) = weight {
-                w[r] = wt[i];
-            }
         }
+        start.push(w.len());
+        debug_assert_eq!(x.len(), w.len() * p);
+        debug_assert!(w.len() <= n);
+        // Weights are positive (checked before), so every merged total is.
+        let y = wy.iter().zip(&w).map(|(a, b)| a / b).collect();
         Grouped { p, x, y, w, start }
+    }
+}
+
+/// A hasher for rows of the design as their bits: the multiply-rotate step of rustc's
+/// FxHasher per 64-bit word and MurmurHash3's 64-bit finaliser (common practice), much
+/// cheaper than the default hasher for short keys that no adversary chooses (a collision
+/// only costs a comparison). The finaliser matters: a small whole number's bits sit in the
+/// high end of its word, and the table indexes by the low end.
+#[derive(Clone, Copy, Default)]
+struct RowHash;
+
+impl std::hash::BuildHasher for RowHash {
+    type Hasher = RowHasher;
+    fn build_hasher(&self) -> RowHasher {
+        RowHasher(0)
+    }
+}
+
+struct RowHasher(u64);
+
+impl RowHasher {
+    fn add(&mut self, word: u64) {
+        self.0 = (self.0.rotate_left(5) ^ word).wrapping_mul(0x517c_c1b7_2722_0a95);
+    }
+}
+
+impl std::hash::Hasher for RowHasher {
+    fn finish(&self) -> u64 {
+        let mut h = self.0;
+        h ^= h >> 33;
+        h = h.wrapping_mul(0xff51_afd7_ed55_8ccd);
+        h ^= h >> 33;
+        h = h.wrapping_mul(0xc4ce_b9fe_1a85_ec53);
+        h ^ (h >> 33)
+    }
+    fn write(&mut self, bytes: &[u8]) {
+        for chunk in bytes.chunks(8) {
+            let mut word = [0u8; 8];
+            word[..chunk.len()].copy_from_slice(chunk);
+            self.add(u64::from_le_bytes(word));
+        }
+    }
+    fn write_u64(&mut self, v: u64) {
+        self.add(v);
     }
 }
 
@@ -772,7 +844,7 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     if let Some(i) = data.y.iter().position(|v| *v != 0.0 && *v != 1.0) {
         return Err(MultilevelError::NotBinary(i));
     }
-    let (n, p) = data.x.dim();
+    let p = data.x.ncols();
     let scaled = data
         .weight
         .map(|w| scaled_weights(w, data.group, data.n_groups));
@@ -787,8 +859,7 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     // model at tau = 0; log tau starts at log 0.5.
     let xtx = {
         let mut m = Array2::<f64>::zeros((p, p));
-        for r in 0..n {
-            let row = &grouped.x[r * p..(r + 1) * p];
+        for row in data.x.rows() {
             for a in 0..p {
                 for b in 0..p {
                     m[[a, b]] += row[a] * row[b];
@@ -1332,6 +1403,80 @@ fn newton(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn repeated_rows_of_a_country_merge_into_one_with_the_same_likelihood() {
+        // Two countries; rows 0, 1 and 3 of country 0 share x, as do rows 4 and 5 of
+        // country 1; row 2 is alone. Merged: country 0 keeps 2 rows, country 1 keeps 1.
+        let x = ndarray::array![
+            [1.0, 30.0, 0.0],
+            [1.0, 30.0, 0.0],
+            [1.0, 41.0, 1.0],
+            [1.0, 30.0, 0.0],
+            [1.0, 30.0, 0.0],
+            [1.0, 30.0, 0.0],
+        ];
+        let y = [1.0, 0.0, 1.0, 1.0, 0.0, 1.0];
+        let group = [0usize, 0, 0, 0, 1, 1];
+        let weight = [1.0, 2.0, 1.0, 0.5, 1.0, 3.0];
+        let data = Data {
+            x: x.view(),
+            y: &y,
+            group: &group,
+            n_groups: 2,
+            weight: None,
+        };
+        let merged = Grouped::new(&data, Some(&weight));
+        assert_eq!(merged.start, vec![0, 2, 3]);
+        assert_eq!(
+            merged.x,
+            vec![1.0, 30.0, 0.0, 1.0, 41.0, 1.0, 1.0, 30.0, 0.0]
+        );
+        assert_eq!(merged.w, vec![3.5, 1.0, 4.0]);
+        // The weighted shares of 1s: (1 + 0.5) / 3.5, 1, 3 / 4.
+        assert_eq!(merged.y, vec![1.5 / 3.5, 1.0, 0.75]);
+        // The same rows written out one by one, as before merging.
+        let written_out = Grouped {
+            p: 3,
+            x: [0usize, 1, 2, 3, 4, 5]
+                .iter()
+                .flat_map(|&i| x.row(i).to_vec())
+                .collect(),
+            y: y.to_vec(),
+            w: weight.to_vec(),
+            start: vec![0, 4, 6],
+        };
+        let beta = [-2.0, 0.05, 0.3];
+        for agq in [1usize, 5] {
+            let model = |d| Logistic {
+                data: d,
+                nodes: if agq == 1 {
+                    (vec![0.0], vec![std::f64::consts::PI.sqrt()])
+                } else {
+                    gauss_hermite(agq)
+                },
+                agq,
+            };
+            for j in 0..2 {
+                let a = model(&merged).country(j, &beta, 0.4, 0.0, true, true);
+                let b = model(&written_out).country(j, &beta, 0.4, 0.0, true, true);
+                let close = |u: f64, v: f64| (u - v).abs() <= 1e-12 * (1.0 + v.abs());
+                assert!(close(a.mode, b.mode) && close(a.curvature, b.curvature));
+                assert!(close(a.log_lik, b.log_lik), "{} {}", a.log_lik, b.log_lik);
+                assert_eq!(a.grad.len(), b.grad.len());
+                assert_eq!(a.hess.len(), b.hess.len());
+                assert!(a.grad.iter().zip(&b.grad).all(|(u, v)| close(*u, *v)));
+                assert!(a.hess.iter().zip(&b.hess).all(|(u, v)| close(*u, *v)));
+            }
+        }
+        let (a, b) = (at_zero(&merged), at_zero(&written_out));
+        assert!((a.log_lik - b.log_lik).abs() < 1e-10);
+        assert!(a
+            .beta
+            .iter()
+            .zip(&b.beta)
+            .all(|(u, v)| (u - v).abs() < 1e-8));
+    }
 
     #[test]
     fn gauss_hermite_integrates_moments() {
