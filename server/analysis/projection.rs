@@ -620,12 +620,20 @@ pub fn projection_with(
     struct Unit {
         view: usize,
         group: Option<usize>,
-        /// The composition of the point projection (absent countries) and of the draws.
+        /// The composition of the point projection (absent countries).
         point_cells: Cells,
-        cells: Cells,
+        /// The composition of the draws: its index in `draw_sets`, which every absent
+        /// country without a composition of its own shares (the pooled one), so that a
+        /// draw forms each composition's linear predictors once.
+        cells: usize,
         z: Vec<f64>,
         weight: f64,
     }
+    // The draws' compositions: each participant's own (index g), then the pooled one,
+    // then those of the composition file.
+    let mut draw_sets: Vec<Cells> = own_cells.clone();
+    let pooled_set = draw_sets.len();
+    draw_sets.push(pooled.clone());
     let mut units = Vec::new();
     let mut countries = Vec::new();
     let mut not_estimable = Vec::new();
@@ -654,16 +662,17 @@ pub fn projection_with(
                 no_population.push(view.codes[i].clone());
             }
             let (point_cells, cells) = match g {
-                Some(g) => (own_cells[g].clone(), own_cells[g].clone()),
+                Some(g) => (own_cells[g].clone(), g),
                 None => match file_cells(&view.codes[i]) {
                     Some(c) => {
                         from_file += 1;
                         source = Some("file");
-                        (c.clone(), c)
+                        draw_sets.push(c.clone());
+                        (c, draw_sets.len() - 1)
                     }
                     None => {
                         source = Some("pooled");
-                        (pooled_point.clone(), pooled.clone())
+                        (pooled_point.clone(), pooled_set)
                     }
                 },
             };
@@ -752,17 +761,25 @@ pub fn projection_with(
     let z_part = |coef: &[f64], u: &Unit| -> f64 {
         u.z.iter().zip(&coef[kr..]).map(|(z, c)| z * c).sum::<f64>()
     };
-    let over = |coef: &[f64], u: &Unit, cells: &Cells, shift: f64| -> f64 {
+    // A cell's part of the linear predictor, a'b over the respondent predictors.
+    let cell_part = |coef: &[f64], a: &[f64]| -> f64 {
+        a.iter().zip(&coef[..kr]).map(|(a, c)| a * c).sum::<f64>()
+    };
+    // The projection of a unit with the cells' parts of the linear predictor given.
+    let over_parts = |coef: &[f64], u: &Unit, parts: &[f64], share: &[f64], shift: f64| -> f64 {
         let base = z_part(coef, u) + shift;
-        cells
-            .rows
+        parts
             .iter()
-            .zip(&cells.share)
-            .map(|(a, s)| {
-                let lin = base + a.iter().zip(&coef[..kr]).map(|(a, c)| a * c).sum::<f64>();
+            .zip(share)
+            .map(|(part, s)| {
+                let lin = base + part;
                 s * if binary { inv_logit(lin) } else { lin }
             })
             .sum()
+    };
+    let over = |coef: &[f64], u: &Unit, cells: &Cells, shift: f64| -> f64 {
+        let parts: Vec<f64> = cells.rows.iter().map(|a| cell_part(coef, a)).collect();
+        over_parts(coef, u, &parts, &cells.share, shift)
     };
     let tau_hat = fit.country_sd;
     let point: Vec<f64> = units
@@ -816,6 +833,10 @@ pub fn projection_with(
             } else {
                 0.0
             };
+            let parts: Vec<Vec<f64>> = draw_sets
+                .iter()
+                .map(|c| c.rows.iter().map(|a| cell_part(&coef, a)).collect())
+                .collect();
             units
                 .iter()
                 .map(|u| {
@@ -830,7 +851,7 @@ pub fn projection_with(
                         }
                         None => tau * rng.normal(),
                     };
-                    over(&coef, u, &u.cells, effect)
+                    over_parts(&coef, u, &parts[u.cells], &draw_sets[u.cells].share, effect)
                 })
                 .collect()
         })
