@@ -491,7 +491,7 @@ pub fn gauss_hermite(k: usize) -> (Vec<f64>, Vec<f64>) {
 /// likelihood and the same estimates up to the order of summation, at the cost of the
 /// distinct rows. Survey predictors such as age in years, sex and education levels repeat
 /// many times within a country (the demo's 2,000 respondents per country-wave have a few
-/// hundred distinct rows); continuous predictors merge nothing and cost one hash per row.
+/// hundred distinct rows); where rows hardly repeat, merging stops after [`MERGE_PROBE`] rows.
 struct Grouped {
     p: usize,
     /// Row-major design in country order, one row per distinct row of the country.
@@ -521,15 +521,26 @@ impl Grouped {
         for rows in &members {
             start.push(w.len());
             seen.clear();
-            for &i in rows {
-                key.clear();
-                key.extend(data.x.row(i).iter().map(|v| v.to_bits()));
+            for (read, &i) in rows.iter().enumerate() {
                 let wi = weight.map_or(1.0, |wt| wt[i]);
-                let merged = match seen.get(&key) {
-                    Some(&r) => r,
+                // Rows that hardly repeat (continuous predictors) are not worth a lookup
+                // each: once most of a country's first rows were new, the rest go in as
+                // they are (a row may then stand twice, which changes nothing).
+                let merging = read < MERGE_PROBE || seen.len() * 2 <= MERGE_PROBE;
+                let known = if merging {
+                    key.clear();
+                    key.extend(data.x.row(i).iter().map(|v| v.to_bits()));
+                    seen.get(&key).copied()
+                } else {
+                    None
+                };
+                let merged = match known {
+                    Some(r) => r,
                     None => {
                         let r = w.len();
-                        seen.insert(key.clone(), r);
+                        if merging {
+                            seen.insert(key.clone(), r);
+                        }
                         x.extend(data.x.row(i).iter());
                         wy.push(0.0);
                         w.push(0.0);
@@ -548,6 +559,10 @@ impl Grouped {
         Grouped { p, x, y, w, start }
     }
 }
+
+/// A country's first rows from which [`Grouped`] judges whether merging pays: when more
+/// than half of them were distinct, the country's later rows are not looked up.
+const MERGE_PROBE: usize = 1024;
 
 /// A hasher for rows of the design as their bits: the multiply-rotate step of rustc's
 /// FxHasher per 64-bit word and MurmurHash3's 64-bit finaliser (common practice), much
