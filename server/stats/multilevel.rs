@@ -872,17 +872,9 @@ pub fn fit_logistic(data: &Data, nodes: usize) -> Result<MultilevelFit, Multilev
     }
     // Starting values and the boundary: the ordinary logistic regression, which is the
     // model at tau = 0; log tau starts at log 0.5.
-    let xtx = {
-        let mut m = Array2::<f64>::zeros((p, p));
-        for row in data.x.rows() {
-            for a in 0..p {
-                for b in 0..p {
-                    m[[a, b]] += row[a] * row[b];
-                }
-            }
-        }
-        m
-    };
+    // X'X of every respondent's row (unweighted): singular exactly when the predictors are
+    // collinear or constant.
+    let xtx = data.x.t().dot(&data.x);
     if linalg::cholesky(xtx.view()).is_err() {
         return Err(MultilevelError::Singular);
     }
@@ -1491,6 +1483,40 @@ mod tests {
             .iter()
             .zip(&b.beta)
             .all(|(u, v)| (u - v).abs() < 1e-8));
+    }
+
+    #[test]
+    fn rows_that_hardly_repeat_stop_being_looked_up() {
+        // 1,100 distinct rows, then row 0 ten times more: the first 1,024 rows were all new,
+        // so the rest go in as they are (1,110 rows), with the likelihood unchanged.
+        let n = 1110;
+        let x = Array2::from_shape_fn((n, 2), |(i, j)| {
+            if j == 0 {
+                1.0
+            } else {
+                (if i < 1100 { i } else { 0 }) as f64 / 1100.0
+            }
+        });
+        let y: Vec<f64> = (0..n).map(|i| f64::from(u8::from(i % 3 == 0))).collect();
+        let group = vec![0usize; n];
+        let data = Data {
+            x: x.view(),
+            y: &y,
+            group: &group,
+            n_groups: 1,
+            weight: None,
+        };
+        let grouped = Grouped::new(&data, None);
+        assert_eq!(grouped.w.len(), n);
+        assert!(grouped.w.iter().all(|&w| w == 1.0));
+        assert_eq!(grouped.y, y);
+        let model = Logistic {
+            data: &grouped,
+            nodes: (vec![0.0], vec![std::f64::consts::PI.sqrt()]),
+            agq: 1,
+        };
+        let c = model.country(0, &[-0.5, 0.2], 0.3, 0.0, false, false);
+        assert!(c.log_lik.is_finite());
     }
 
     #[test]
