@@ -5,7 +5,7 @@
 
 use std::sync::RwLock;
 
-use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
 use serde::Serialize;
 
 use crate::analysis::design::{self, Design};
@@ -126,7 +126,12 @@ impl Evaluator {
             0.0
         };
         // Feasibility: every target (0 after centring) strictly inside the members' range.
-        let d = self.moments.select(Axis(0), members);
+        // The members' rows, copied row by row (`select` takes several times as long on
+        // rows this short, and this runs for every set the search judges).
+        let mut d = Array2::<f64>::zeros((members.len(), k));
+        for (mut row, &i) in d.rows_mut().into_iter().zip(members) {
+            row.assign(&self.moments.row(i));
+        }
         // Each moment's range over the members in one pass along the rows (as they lie
         // in memory; the evaluation is the search's inner loop).
         let mut lo = vec![f64::INFINITY; k];
