@@ -720,3 +720,40 @@ fn progress_stays_off_standard_error_when_piped() {
     assert_eq!(out.code, 0, "{}", out.stderr);
     assert!(out.stderr.is_empty(), "{:?}", out.stderr);
 }
+
+/// Whether a set of countries can be balanced must not depend on where the balancing dual
+/// starts (common practice: the dual is convex, so a feasible set has one solution): a
+/// start far from the solution, which can stall Newton's first steps, gives the verdict
+/// and the effective number of the start from zero.
+#[test]
+fn a_far_warm_start_does_not_make_a_balanceable_set_infeasible() {
+    use gapwise::analysis::{design, planner::evaluate::Evaluator, settings::Settings};
+    let project = gapwise::project::Project::load(&demo_dir()).expect("demo loads");
+    let mut checked = 0;
+    for wave in 1..=4 {
+        let view = project.wave(wave).expect("wave");
+        let d = design::build(&view, &Settings::default()).expect("design");
+        let eval = Evaluator::new(&d);
+        let members: Vec<usize> = (0..d.n()).filter(|&i| d.participated[i]).collect();
+        let (cold, dual) = eval.evaluate(&members, None);
+        let Some(dual) = dual else { continue };
+        assert!(cold.feasible);
+        for scale in [-40.0, 25.0, 400.0] {
+            let far = dual.mapv(|v| v + scale);
+            let (warm, _) = eval.evaluate(&members, Some(&far));
+            assert!(warm.feasible, "wave {wave}, start shifted by {scale}");
+            let gap = (warm.effective_n - cold.effective_n).abs();
+            assert!(
+                gap < 1e-8 * cold.effective_n,
+                "wave {wave}: {} vs {}",
+                warm.effective_n,
+                cold.effective_n
+            );
+            checked += 1;
+        }
+    }
+    assert!(
+        checked >= 3,
+        "too few feasible waves ({checked}) to test anything"
+    );
+}
