@@ -197,13 +197,20 @@ pub struct Expected {
     pub exact: bool,
 }
 
+/// A set's balance and, when balancing is feasible, the dual that reaches it: the start
+/// for the sets that add one country to it.
+struct Known {
+    metrics: SetMetrics,
+    dual: Option<Array1<f64>>,
+}
+
 /// Memoised balance of M ∪ J for the current participants M and join outcomes J.
 pub struct Memo<'a> {
     pub eval: &'a Evaluator,
     pub members: &'a [usize],
     pub kind: ObjectiveKind,
     start: Option<Array1<f64>>,
-    map: HashMap<Vec<usize>, SetMetrics>,
+    map: HashMap<Vec<usize>, Known>,
     /// For a resampled design: every row of the unit's country, which join together.
     copies: Option<Vec<Vec<usize>>>,
 }
@@ -229,6 +236,11 @@ impl<'a> Memo<'a> {
 
     /// Balance of M ∪ `joined` (not memoised).
     pub fn compute(&self, joined: &[usize]) -> SetMetrics {
+        self.solve(joined, self.start_for(joined)).metrics
+    }
+
+    /// Balance of M ∪ `joined` with the dual started at `start`.
+    fn solve(&self, joined: &[usize], start: Option<&Array1<f64>>) -> Known {
         let mut set = self.members.to_vec();
         match &self.copies {
             Some(copies) => {
@@ -238,33 +250,55 @@ impl<'a> Memo<'a> {
             }
             None => set.extend_from_slice(joined),
         }
-        self.eval.evaluate(&set, self.start.as_ref()).0
+        let (metrics, dual) = self.eval.evaluate(&set, start);
+        Known { metrics, dual }
     }
 
-    /// Computes, in parallel, every set of `sets` not yet known.
+    /// Where the dual of M ∪ `joined` (sorted) starts: at the dual of a known feasible set
+    /// that lacks one of its countries, else at the participants' own. One more country
+    /// moves the dual little, so Newton's method needs few steps from there, and its
+    /// first steps need fewer halvings than from afar.
+    fn start_for(&self, joined: &[usize]) -> Option<&Array1<f64>> {
+        let mut rest = Vec::with_capacity(joined.len());
+        for skip in (0..joined.len()).rev() {
+            rest.clear();
+            rest.extend_from_slice(&joined[..skip]);
+            rest.extend_from_slice(&joined[skip + 1..]);
+            if let Some(dual) = self.map.get(&rest).and_then(|k| k.dual.as_ref()) {
+                return Some(dual);
+            }
+        }
+        self.start.as_ref()
+    }
+
+    /// Computes, in parallel, every set of `sets` not yet known: smaller sets first, so
+    /// that each set can start from the dual of one it extends.
     pub fn fill<'s>(&mut self, sets: impl Iterator<Item = &'s Vec<usize>>) {
         let mut missing: Vec<&Vec<usize>> = sets.filter(|s| !self.map.contains_key(*s)).collect();
-        missing.sort();
+        missing.sort_by(|a, b| a.len().cmp(&b.len()).then_with(|| a.cmp(b)));
         missing.dedup();
-        let computed: Vec<(Vec<usize>, SetMetrics)> = missing
-            .par_iter()
-            .map(|s| ((*s).clone(), self.compute(s)))
-            .collect();
-        self.map.extend(computed);
+        for layer in missing.chunk_by(|a, b| a.len() == b.len()) {
+            let computed: Vec<(Vec<usize>, Known)> = layer
+                .par_iter()
+                .map(|s| ((*s).clone(), self.solve(s, self.start_for(s))))
+                .collect();
+            self.map.extend(computed);
+        }
     }
 
     pub fn get(&mut self, joined: &[usize]) -> SetMetrics {
-        if let Some(m) = self.map.get(joined) {
-            return *m;
+        if let Some(k) = self.map.get(joined) {
+            return k.metrics;
         }
-        let m = self.compute(joined);
-        self.map.insert(joined.to_vec(), m);
+        let known = self.solve(joined, self.start_for(joined));
+        let m = known.metrics;
+        self.map.insert(joined.to_vec(), known);
         m
     }
 
     /// A known set's balance (after `fill`).
     pub fn known(&self, joined: &[usize]) -> Option<SetMetrics> {
-        self.map.get(joined).copied()
+        self.map.get(joined).map(|k| k.metrics)
     }
 
     /// The expectation over `outcomes`.
@@ -283,7 +317,7 @@ impl<'a> Memo<'a> {
         let mut square = 0.0;
         let mut score_square = 0.0;
         for (set, w) in &outcomes.sets {
-            let m = self.map[set];
+            let m = self.map[set].metrics;
             e.effective_n += w * m.effective_n;
             square += w * m.effective_n * m.effective_n;
             e.max_abs_smd += w * m.max_abs_smd;
@@ -310,15 +344,21 @@ impl<'a> Memo<'a> {
         let mut value = 0.0;
         let mut tie = 0.0;
         for (set, w) in &base.sets {
-            let without = self
-                .map
-                .get(set)
-                .copied()
-                .unwrap_or_else(|| self.compute(set));
+            let fresh;
+            let known = match self.map.get(set) {
+                Some(k) => k,
+                None => {
+                    fresh = self.solve(set, self.start_for(set));
+                    &fresh
+                }
+            };
+            let without = known.metrics;
+            // The offer's country added to the outcome: started from that outcome's dual.
             let with = if p > 0.0 {
                 let mut joined = set.clone();
                 joined.push(offer.unit);
-                self.compute(&joined)
+                self.solve(&joined, known.dual.as_ref().or(self.start.as_ref()))
+                    .metrics
             } else {
                 without
             };
@@ -334,7 +374,7 @@ impl<'a> Memo<'a> {
         let mut value = 0.0;
         let mut tie = 0.0;
         for (set, w) in &base.sets {
-            let m = self.map[set];
+            let m = self.map[set].metrics;
             value += w * self.kind.score(&m);
             tie -= w * m.mean_abs_smd;
         }
