@@ -4,7 +4,7 @@
 
 use std::collections::HashMap;
 
-use ndarray::Array2;
+use ndarray::{Array1, Array2};
 use serde::Serialize;
 
 use super::design;
@@ -12,6 +12,7 @@ use super::impact_bootstrap::{self, CountryStats};
 use super::participation::{self, AnalysisError};
 use super::settings::{Settings, WeightingKind};
 use crate::project::{Project, WaveView};
+use crate::stats::binary::{self, ModelKind};
 use crate::stats::regression::{self, Kind, TwoStepInput};
 use crate::stats::weights;
 
@@ -461,10 +462,13 @@ fn corrections(
     // The weightings are independent of each other and of the two-step: fitted side by
     // side, kept in order.
     use rayon::prelude::*;
-    let weightings = || -> Vec<Variant> {
+    // Each with the GMM fit's coefficients where it converged (the bootstrap's draws start
+    // there).
+    let weightings = || -> Vec<(Variant, Option<Array1<f64>>)> {
         WeightingKind::ALL
         .par_iter()
         .map(|&kind| {
+            let mut balancing_coef = None;
             let s = Settings {
                 weighting: kind,
                 ..settings.clone()
@@ -475,7 +479,10 @@ fn corrections(
                 population_entropy(&design, &q, &moments, settings.match_variances)
             } else {
                 participation::weigh(&design, &s, &model)
-                    .map(|w| (0..n_units).map(|u| w.weights[u] * base(u)).collect())
+                    .map(|w| {
+                        balancing_coef = w.balancing_coef;
+                        (0..n_units).map(|u| w.weights[u] * base(u)).collect()
+                    })
                     .map_err(|e| e.to_string())
             };
             let label = if kind == WeightingKind::Entropy && population.is_some() {
@@ -486,13 +493,20 @@ fn corrections(
             } else {
                 kind.label().to_string()
             };
-            run(kind.as_str(), &label, share, cr1)
+            (run(kind.as_str(), &label, share, cr1), balancing_coef)
         })
         .collect()
     };
     // Heckman-type: the two-step with the country-level probit.
+    // Its probit is fitted once, here, for both outcome equations and the bootstrap.
     let two_step = || {
         let mut notes = Vec::new();
+        let probit = binary::fit(
+            ModelKind::Probit,
+            design.standardised().view(),
+            &design.participated,
+        )
+        .ok();
         let variant = mills_variant(
             &MillsInput {
                 design: &design,
@@ -503,15 +517,21 @@ fn corrections(
                 unit_of: &unit_of,
                 q: &q,
                 df,
+                probit: probit.as_ref(),
             },
             imp,
             &mut notes,
         )
         .unwrap_or_else(|e| failed("mills-ratio", MILLS_LABEL, e, k + 1));
-        (variant, notes)
+        (variant, notes, probit)
     };
-    let (weighted, (mills, notes_extra)) = rayon::join(weightings, two_step);
-    variants.extend(weighted);
+    let (weighted, (mills, notes_extra, probit)) = rayon::join(weightings, two_step);
+    let gmm_coef = WeightingKind::ALL
+        .iter()
+        .zip(&weighted)
+        .find(|(kind, _)| **kind == WeightingKind::CovariateBalancingGmm)
+        .and_then(|(_, (_, coef))| coef.clone());
+    variants.extend(weighted.into_iter().map(|(v, _)| v));
     variants.push(mills);
 
     flag_changes(&mut variants, k);
@@ -544,6 +564,11 @@ fn corrections(
                 replicates: imp.replicates,
                 seed,
                 skip: variants.iter().map(|v| v.error.is_some()).collect(),
+                starts: impact_bootstrap::Starts {
+                    model: model.converged.then(|| model.coef.clone()),
+                    probit: probit.filter(|p| p.converged).map(|p| p.coef),
+                    gmm: gmm_coef,
+                },
             })
         })
         .flatten();
@@ -744,6 +769,9 @@ struct MillsInput<'a> {
     /// Each eligible country's weight in the universe average.
     q: &'a [f64],
     df: usize,
+    /// The country probit of taking part on the standardised design, when it could be
+    /// fitted (else the two-step fits it and reports why it cannot).
+    probit: Option<&'a binary::BinaryFit>,
 }
 
 /// The two-step variant (Heckman 1979 with a country-level probit; Wooldridge 2010, ch. 19):
@@ -796,6 +824,7 @@ fn mills_variant(
             w: Some(m.w),
             unit: m.unit_of,
             cluster: Some(&clusters),
+            probit: m.probit,
         })
         .map_err(|e| e.to_string())
     };

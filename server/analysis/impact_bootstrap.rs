@@ -154,6 +154,19 @@ pub struct Input<'a> {
     /// Per variant (in [`variant_count`]'s order), whether it failed on the full sample:
     /// its draws are not computed (a page shows no bootstrap for such a variant).
     pub skip: Vec<bool>,
+    /// The full sample's solutions, as the impact view fitted them.
+    pub starts: Starts,
+}
+
+/// The full sample's solutions on the standardised design, where every draw's fits start,
+/// each where its fit converged: the participation model, the two-step's probit, and the
+/// over-identified covariate-balancing fit (as participation::weigh computes it, from the
+/// just-identified solution, else the logit).
+#[derive(Debug, Clone, Default)]
+pub struct Starts {
+    pub model: Option<Array1<f64>>,
+    pub probit: Option<Array1<f64>>,
+    pub gmm: Option<Array1<f64>>,
 }
 
 impl Input<'_> {
@@ -175,7 +188,7 @@ pub fn run(input: &Input) -> Option<Vec<VariantBootstrap>> {
         return None;
     }
     let g = input.design.n();
-    let full = FullSample::fit(input.design, input.settings.model);
+    let full = FullSample::new(input.design, &input.starts);
     let draws = bootstrap::run(g, input.replicates, input.seed, |rows| {
         Ok::<_, ()>(replicate(input, &full, rows))
     })
@@ -246,8 +259,7 @@ struct FullSample {
     model: Option<Array1<f64>>,
     /// The two-step's probit, when it converged.
     probit: Option<Array1<f64>>,
-    /// The over-identified covariate-balancing fit as participation::weigh computes it
-    /// (from the just-identified solution, else the logit), when it converged.
+    /// The over-identified covariate-balancing fit, when it converged.
     gmm: Option<Array1<f64>>,
 }
 
@@ -260,24 +272,12 @@ struct DrawFit {
 }
 
 impl FullSample {
-    fn fit(design: &Design, model: ModelKind) -> FullSample {
-        let z = design.standardised();
-        let t = &design.participated;
-        let converged = |kind: ModelKind| {
-            binary::fit(kind, z.view(), t)
-                .ok()
-                .filter(|f| f.converged)
-                .map(|f| f.coef)
-        };
-        let gmm = weights::cbps_over_identified(z.view(), t, &logit_start(&z, t))
-            .ok()
-            .filter(|f| f.converged)
-            .map(|f| f.coef);
+    fn new(design: &Design, starts: &Starts) -> FullSample {
         FullSample {
-            model: converged(model),
-            probit: converged(ModelKind::Probit),
-            gmm,
-            standardised: z,
+            standardised: design.standardised(),
+            model: starts.model.clone(),
+            probit: starts.probit.clone(),
+            gmm: starts.gmm.clone(),
         }
     }
 

@@ -482,6 +482,7 @@ pub fn two_step_file(path: &Path, cols: &TwoStepColumns) -> Result<TwoStepReport
         w: None,
         unit: &unit,
         cluster: cluster.as_deref(),
+        probit: None,
     })?;
     let mut selection_terms = vec!["intercept".to_string()];
     selection_terms.extend(cols.selection_predictors.iter().cloned());

@@ -170,6 +170,11 @@ pub struct FittedModel {
     pub report: ModelReport,
     pub propensity: Vec<f64>,
     pub standardised: Array2<f64>,
+    /// The coefficients on the standardised design and whether the fit converged, for
+    /// the fits that start from them (the GMM weighting's logit start, the pipeline
+    /// bootstrap's draws) instead of fitting the model again.
+    pub coef: Array1<f64>,
+    pub converged: bool,
 }
 
 /// Fits the participation model; `leave_one_out` adds the leave-one-out AUC (n refits).
@@ -186,6 +191,8 @@ pub fn fit_model(
         report,
         propensity,
         standardised: z,
+        coef: fit.coef,
+        converged: fit.converged,
     })
 }
 
@@ -195,6 +202,9 @@ pub struct Weighted {
     pub report: WeightingReport,
     /// Aligned with the design's units; zero for non-participants.
     pub weights: Vec<f64>,
+    /// The covariate-balancing fit's coefficients on the standardised design, when it
+    /// converged (the pipeline bootstrap's draws start there).
+    pub balancing_coef: Option<Array1<f64>>,
 }
 
 /// The weights of [`weigh`] alone, without its report, from the standardised design and
@@ -207,7 +217,7 @@ pub fn weights_from(
     standardised: &Array2<f64>,
     propensity: &[f64],
 ) -> Result<Vec<f64>, AnalysisError> {
-    let raw = compute_weights(design, settings, standardised, propensity)?;
+    let raw = compute_weights(design, settings, standardised, propensity, None)?;
     Ok(trimmed_and_normalised(design, settings, raw.weights))
 }
 
@@ -227,7 +237,16 @@ pub fn weigh(
     model: &FittedModel,
 ) -> Result<Weighted, AnalysisError> {
     let y = &design.participated;
-    let raw = compute_weights(design, settings, &model.standardised, &model.propensity)?;
+    // The GMM weighting starts from the logit, which is the model itself when the model is
+    // a logit.
+    let logit = (settings.model == ModelKind::Logit).then_some(&model.coef);
+    let raw = compute_weights(
+        design,
+        settings,
+        &model.standardised,
+        &model.propensity,
+        logit,
+    )?;
     let (converged, cbps_coef) = (raw.converged, raw.coef);
     let mut warnings = raw.warnings;
     if let Some(q) = settings.trim {
@@ -289,6 +308,7 @@ pub fn weigh(
             warnings,
         },
         weights: w,
+        balancing_coef: raw.balancing_coef,
     })
 }
 
@@ -650,6 +670,8 @@ struct RawWeights {
     converged: bool,
     /// CBPS coefficients (original scale).
     coef: Option<Vec<f64>>,
+    /// The same on the standardised design, when the fit converged.
+    balancing_coef: Option<Array1<f64>>,
     fell_back_to: Option<&'static str>,
     warnings: Vec<String>,
 }
@@ -660,17 +682,21 @@ impl RawWeights {
             weights,
             converged,
             coef: None,
+            balancing_coef: None,
             fell_back_to: None,
             warnings: Vec::new(),
         }
     }
 }
 
+/// `logit`: the logit's coefficients on `z` when already fitted (the GMM weighting starts
+/// there); `None`: fitted here when needed.
 fn compute_weights(
     design: &Design,
     settings: &Settings,
     z: &Array2<f64>,
     propensity: &[f64],
+    logit: Option<&Array1<f64>>,
 ) -> Result<RawWeights, AnalysisError> {
     let y = &design.participated;
     let method = settings.weighting.as_str();
@@ -683,9 +709,12 @@ fn compute_weights(
             let cbps = if settings.weighting == WeightingKind::CovariateBalancing {
                 weights::cbps_just_identified(z.view(), y)
             } else {
-                let start = binary::fit(ModelKind::Logit, z.view(), y)
-                    .map(|f| f.coef)
-                    .unwrap_or_else(|_| Array1::zeros(z.ncols()));
+                let start = match logit {
+                    Some(coef) => coef.clone(),
+                    None => binary::fit(ModelKind::Logit, z.view(), y)
+                        .map(|f| f.coef)
+                        .unwrap_or_else(|_| Array1::zeros(z.ncols())),
+                };
                 weights::cbps_over_identified(z.view(), y, &start)
             }
             .map_err(|e| fail(e.to_string()))?;
@@ -718,10 +747,12 @@ fn compute_weights(
                     if unreachable.len() == 1 { "it" } else { "them" }
                 ));
             }
+            let converged = cbps.converged && !cbps.stayed_at_start;
             Ok(RawWeights {
                 weights: w,
-                converged: cbps.converged && !cbps.stayed_at_start,
+                converged,
                 coef: Some(coef),
+                balancing_coef: converged.then(|| cbps.coef.clone()),
                 fell_back_to,
                 warnings,
             })

@@ -1238,6 +1238,10 @@ pub struct TwoStepInput<'a> {
     /// The cluster of each selection unit, in 0..G; `None`: Heckman's (1979) formula,
     /// which needs one unweighted outcome row per selected unit.
     pub cluster: Option<&'a [usize]>,
+    /// The selection probit of `selected` on `z`, when the caller has fitted it already
+    /// (several outcome equations on one selection, or a bootstrap that starts from it);
+    /// `None`: fitted here. Either way it must have converged.
+    pub probit: Option<&'a super::binary::BinaryFit>,
 }
 
 /// A fitted two-step selection model.
@@ -1295,6 +1299,7 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
         w,
         unit,
         cluster,
+        probit,
     } = *input;
     let (n, p) = z.dim();
     let (rows, k) = x.dim();
@@ -1317,8 +1322,15 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
     if rows <= k + 1 {
         return Err(RegressionError::TooFew { n: rows, k: k + 1 });
     }
-    let probit = super::binary::fit(super::binary::ModelKind::Probit, z, selected)
-        .map_err(|_| RegressionError::Singular)?;
+    let fitted;
+    let probit = match probit {
+        Some(given) => given,
+        None => {
+            fitted = super::binary::fit(super::binary::ModelKind::Probit, z, selected)
+                .map_err(|_| RegressionError::Singular)?;
+            &fitted
+        }
+    };
     if !probit.converged {
         return Err(RegressionError::NotConverged);
     }
