@@ -777,29 +777,37 @@ pub fn projection_with(
             })
             .sum()
     };
-    let over = |coef: &[f64], u: &Unit, cells: &Cells, shift: f64| -> f64 {
-        let parts: Vec<f64> = cells.rows.iter().map(|a| cell_part(coef, a)).collect();
-        over_parts(coef, u, &parts, &cells.share, shift)
+    let parts_of = |coef: &[f64], cells: &Cells| -> Vec<f64> {
+        cells.rows.iter().map(|a| cell_part(coef, a)).collect()
     };
     let tau_hat = fit.country_sd;
     let point: Vec<f64> = units
         .iter()
-        .map(|u| match u.group {
-            Some(g) => own_point[g],
-            None if binary => gh_nodes
-                .iter()
-                .zip(&gh_weights)
-                .map(|(t, w)| {
-                    w / std::f64::consts::PI.sqrt()
-                        * over(
-                            &fit.coef,
-                            u,
-                            &u.point_cells,
-                            std::f64::consts::SQRT_2 * tau_hat * t,
-                        )
-                })
-                .sum(),
-            None => over(&fit.coef, u, &u.point_cells, 0.0),
+        .map(|u| {
+            let share = &u.point_cells.share;
+            let parts = || parts_of(&fit.coef, &u.point_cells);
+            match u.group {
+                Some(g) => own_point[g],
+                // The cells' parts once per country, for every quadrature node.
+                None if binary => {
+                    let parts = parts();
+                    gh_nodes
+                        .iter()
+                        .zip(&gh_weights)
+                        .map(|(t, w)| {
+                            w / std::f64::consts::PI.sqrt()
+                                * over_parts(
+                                    &fit.coef,
+                                    u,
+                                    &parts,
+                                    share,
+                                    std::f64::consts::SQRT_2 * tau_hat * t,
+                                )
+                        })
+                        .sum()
+                }
+                None => over_parts(&fit.coef, u, &parts(), share, 0.0),
+            }
         })
         .collect();
     let total_weight: f64 = units.iter().map(|u| u.weight).sum();
@@ -833,10 +841,7 @@ pub fn projection_with(
             } else {
                 0.0
             };
-            let parts: Vec<Vec<f64>> = draw_sets
-                .iter()
-                .map(|c| c.rows.iter().map(|a| cell_part(&coef, a)).collect())
-                .collect();
+            let parts: Vec<Vec<f64>> = draw_sets.iter().map(|c| parts_of(&coef, c)).collect();
             units
                 .iter()
                 .map(|u| {

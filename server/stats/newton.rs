@@ -37,10 +37,24 @@ pub fn halving_step_to<S>(
     halvings: usize,
     mut evaluate: impl FnMut(&Array1<f64>) -> Option<(S, f64)>,
 ) -> Option<(Array1<f64>, S, f64)> {
+    halving_step_told(from, step, floor, halvings, |candidate, _| {
+        evaluate(candidate)
+    })
+}
+
+/// [`halving_step_to`] with `evaluate` told each try's factor t beside its candidate (a
+/// caller that can refuse some tries from what it learnt at earlier ones).
+pub fn halving_step_told<S>(
+    from: &Array1<f64>,
+    step: &Array1<f64>,
+    floor: f64,
+    halvings: usize,
+    mut evaluate: impl FnMut(&Array1<f64>, f64) -> Option<(S, f64)>,
+) -> Option<(Array1<f64>, S, f64)> {
     let mut t = 1.0;
     for _ in 0..halvings {
         let candidate = from + &(step * t);
-        if let Some((state, objective)) = evaluate(&candidate) {
+        if let Some((state, objective)) = evaluate(&candidate, t) {
             if objective.is_finite() && objective >= floor {
                 return Some((candidate, state, t));
             }

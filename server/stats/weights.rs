@@ -791,8 +791,25 @@ pub struct DualSolution {
 /// Newton's method on the entropy-balancing dual L(lambda) = log sum_r q_r exp(-lambda'd_r),
 /// d the moment rows already centred at their targets (and scaled); see
 /// [`entropy_balance`]. The gradient is -sum w_r d_r, the Hessian the w-weighted covariance
-/// of d. Starts from `start` (a warm start from a neighbouring problem) or zero.
+/// of d. Starts from `start` (a warm start from a neighbouring problem) or zero. A warm
+/// start far from this problem's solution can stall Newton's first steps (every halving
+/// refused); whether the targets can be met must not depend on where the search started,
+/// so such a start is followed by a search from zero before the dual counts as unsolved.
 pub fn entropy_dual(
+    d: ArrayView2<f64>,
+    q: &[f64],
+    start: Option<&Array1<f64>>,
+    max_iter: usize,
+) -> DualSolution {
+    let warm = entropy_dual_from(d, q, start, max_iter);
+    if warm.converged || start.is_none() {
+        return warm;
+    }
+    entropy_dual_from(d, q, None, max_iter)
+}
+
+/// [`entropy_dual`]'s Newton search from one start.
+fn entropy_dual_from(
     d: ArrayView2<f64>,
     q: &[f64],
     start: Option<&Array1<f64>>,
@@ -850,21 +867,20 @@ pub fn entropy_dual(
             limit: -floor,
             slack: 1e-8 * (1.0 + dual.abs() + largest_d * (l1(&lambda) + l1(&step))),
         };
-        // `halving_step` tries t = 1, 1/2, 1/4, ... in turn: the full step is evaluated,
-        // and gives lambda'd_r there for the quick test of the shorter ones.
-        let mut t = 1.0;
-        let Some((candidate, (wc, dc, zc), _)) = newton::halving_step(&lambda, &step, floor, |c| {
-            let tried = t;
-            t *= 0.5;
-            if rises.clearly(tried) {
-                return None;
-            }
-            let (wc, dc, zc) = weights_at(c);
-            if tried == 1.0 {
-                rises.z_full = Some(zc.clone());
-            }
-            Some(((wc, dc, zc), -dc))
-        }) else {
+        // The full step (t = 1, tried first) is evaluated and gives lambda'd_r there for
+        // the quick test of the shorter ones.
+        let Some((candidate, (wc, dc, zc), _)) =
+            newton::halving_step_told(&lambda, &step, floor, newton::MAX_HALVINGS, |c, t| {
+                if rises.clearly(t) {
+                    return None;
+                }
+                let (wc, dc, zc) = weights_at(c);
+                if t == 1.0 {
+                    rises.z_full = Some(zc.clone());
+                }
+                Some(((wc, dc, zc), -dc))
+            })
+        else {
             break;
         };
         lambda = candidate;

@@ -164,13 +164,7 @@ impl Evaluator {
             return (infeasible, None);
         }
         let q = vec![1.0; members.len()];
-        let mut solution = weights::entropy_dual(d.view(), &q, start, 60);
-        if !solution.converged && start.is_some() {
-            // A warm start far from this set's dual can stall Newton's first steps (every
-            // halving refused); whether the set can be balanced must not depend on where
-            // the search started, so it is asked again from zero before saying no.
-            solution = weights::entropy_dual(d.view(), &q, None, 60);
-        }
+        let solution = weights::entropy_dual(d.view(), &q, start, 60);
         if !solution.converged {
             // Where the targets lie outside the hull, the dual's minimiser runs off along
             // a separating direction, and the weighted mean approaches the hull's point
