@@ -221,9 +221,9 @@ fn refit_rows(
 ) -> Result<BinaryFit, FitError> {
     let units = counts.map_or(x.nrows(), |c| c.iter().sum::<f64>().round() as usize);
     check_unit_count(x, y, units)?;
-    let (kept, _) = independent_columns(x);
-    let start = start.select(Axis(0), &kept);
-    with_independent_columns(x, |xr| {
+    let columns = independent_columns(x);
+    let start = start.select(Axis(0), &columns.0);
+    fit_on_columns(x, columns, |xr| {
         newton(
             kind,
             xr,
@@ -241,7 +241,16 @@ fn with_independent_columns(
     x: ArrayView2<f64>,
     fit_on: impl Fn(ArrayView2<f64>) -> Result<BinaryFit, FitError>,
 ) -> Result<BinaryFit, FitError> {
-    let (kept, aliased) = independent_columns(x);
+    fit_on_columns(x, independent_columns(x), fit_on)
+}
+
+/// [`with_independent_columns`] given the columns' split into kept and aliased (a refit
+/// needs the kept ones first, to select its start).
+fn fit_on_columns(
+    x: ArrayView2<f64>,
+    (kept, aliased): (Vec<usize>, Vec<Alias>),
+    fit_on: impl Fn(ArrayView2<f64>) -> Result<BinaryFit, FitError>,
+) -> Result<BinaryFit, FitError> {
     if aliased.is_empty() {
         return fit_on(x);
     }

@@ -32,8 +32,8 @@ pub fn cholesky(a: ArrayView2<f64>) -> Result<Array2<f64>, LinalgError> {
 /// The Cholesky-Banachiewicz recurrence (Golub & Van Loan, Matrix Computations, 4.2.5):
 /// l_jj = sqrt(a_jj - sum_{k<j} l_jk^2), l_ij = (a_ij - sum_{k<j} l_ik l_jk) / l_jj for
 /// i > j, reading the lower triangle of A; `None` when a pivot is not positive. Rows are
-/// kept contiguous so that each sum is a dot product of two row prefixes (the small
-/// factorisations of the fits' Newton steps run thousands of times per bootstrap).
+/// kept contiguous so that each sum is a dot product of two row prefixes ([`dot`]; the
+/// small factorisations of the fits' Newton steps run thousands of times per bootstrap).
 fn lower_factor(a: ArrayView2<f64>) -> Option<Array2<f64>> {
     let n = a.nrows();
     if a.ncols() != n {
@@ -45,16 +45,35 @@ fn lower_factor(a: ArrayView2<f64>) -> Option<Array2<f64>> {
         let row_i = &mut rest[..n];
         for j in 0..i {
             let row_j = &done[j * n..j * n + j];
-            let s: f64 = row_i[..j].iter().zip(row_j).map(|(x, y)| x * y).sum();
+            let s = dot(&row_i[..j], row_j);
             row_i[j] = (a[[i, j]] - s) / done[j * n + j];
         }
-        let d = a[[i, i]] - row_i[..i].iter().map(|x| x * x).sum::<f64>();
+        let d = a[[i, i]] - dot(&row_i[..i], &row_i[..i]);
         if d.is_nan() || d <= 0.0 {
             return None;
         }
         row_i[i] = d.sqrt();
     }
     Array2::from_shape_vec((n, n), l).ok()
+}
+
+/// The dot product of two equally long slices, summed in four interleaved partial sums:
+/// the additions of one long chain wait on each other, four chains overlap (the
+/// factorisations and solves of the Newton steps are made of such short products).
+pub fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let n = a.len().min(b.len());
+    let (a, b) = (&a[..n], &b[..n]);
+    let mut acc = [0.0f64; 4];
+    let (a4, b4) = (a.chunks_exact(4), b.chunks_exact(4));
+    let (ra, rb) = (a4.remainder(), b4.remainder());
+    for (x, y) in a4.zip(b4) {
+        acc[0] += x[0] * y[0];
+        acc[1] += x[1] * y[1];
+        acc[2] += x[2] * y[2];
+        acc[3] += x[3] * y[3];
+    }
+    let tail: f64 = ra.iter().zip(rb).map(|(x, y)| x * y).sum();
+    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
 }
 
 /// L^-1 B for the lower factor L and a matrix B of right-hand sides, by forward
@@ -85,20 +104,31 @@ pub fn forward_substitute(l: &Array2<f64>, b: ArrayView2<f64>) -> Array2<f64> {
     y
 }
 
-/// Solves L L' x = b given the lower factor L.
+/// Solves L L' x = b given the lower factor L: forward substitution by rows of L, then
+/// back substitution by columns of L' (rows of L again), so that every pass reads L
+/// contiguously.
 pub fn cholesky_solve(l: &Array2<f64>, b: ArrayView1<f64>) -> Array1<f64> {
     let n = b.len();
-    let mut y = Array1::<f64>::zeros(n);
+    let lower = l.as_standard_layout();
+    let Some(ls) = lower.as_slice() else {
+        return Array1::from_elem(n, f64::NAN);
+    };
+    let mut y: Vec<f64> = b.to_vec();
     for i in 0..n {
-        let s: f64 = (0..i).map(|k| l[[i, k]] * y[k]).sum();
-        y[i] = (b[i] - s) / l[[i, i]];
+        let row = &ls[i * n..i * n + i];
+        y[i] = (y[i] - dot(row, &y[..i])) / ls[i * n + i];
     }
-    let mut x = Array1::<f64>::zeros(n);
+    // L' x = y: x_i = (y_i - sum_{k>i} l_ki x_k) / l_ii, with each solved x_i taken out of
+    // the remaining right-hand sides along row i of L.
     for i in (0..n).rev() {
-        let s: f64 = (i + 1..n).map(|k| l[[k, i]] * x[k]).sum();
-        x[i] = (y[i] - s) / l[[i, i]];
+        let xi = y[i] / ls[i * n + i];
+        y[i] = xi;
+        let row = &ls[i * n..i * n + i];
+        for (yk, lik) in y[..i].iter_mut().zip(row) {
+            *yk -= lik * xi;
+        }
     }
-    x
+    Array1::from_vec(y)
 }
 
 /// Solves A x = b for symmetric positive-definite A.
@@ -164,23 +194,44 @@ impl RowPairs {
 
     /// X' diag(w_c) X for every column w_c of `w` (n × c), in column order.
     pub fn weighted(&self, w: ArrayView2<f64>) -> Vec<Array2<f64>> {
-        let sums = self.pairs.t().dot(&w);
+        let sums = self.sums(w);
         let k = self.k;
-        sums.columns()
-            .into_iter()
-            .map(|col| {
+        (0..w.ncols())
+            .map(|c| {
                 let mut out = Array2::<f64>::zeros((k, k));
-                let mut c = 0;
-                for a in 0..k {
-                    for b in a..k {
-                        out[[a, b]] = col[c];
-                        out[[b, a]] = col[c];
-                        c += 1;
-                    }
-                }
+                self.place(&sums, c, &mut out, 0, 0);
                 out
             })
             .collect()
+    }
+
+    /// The pair sums sum_i w_ic x_ia x_ib of every column c of `w` (n × c), one column of
+    /// k(k+1)/2 pairs each: one matrix product for all of them.
+    pub fn sums(&self, w: ArrayView2<f64>) -> Array2<f64> {
+        self.pairs.t().dot(&w)
+    }
+
+    /// Writes column `c` of [`RowPairs::sums`] as the symmetric k × k matrix X' diag(w_c) X
+    /// into `out` with its top-left corner at (`row`, `col`), so that a fit can assemble a
+    /// matrix of such blocks without a copy per block.
+    pub fn place(
+        &self,
+        sums: &Array2<f64>,
+        c: usize,
+        out: &mut Array2<f64>,
+        row: usize,
+        col: usize,
+    ) {
+        let k = self.k;
+        let column = sums.column(c);
+        let mut i = 0;
+        for a in 0..k {
+            for b in a..k {
+                out[[row + a, col + b]] = column[i];
+                out[[row + b, col + a]] = column[i];
+                i += 1;
+            }
+        }
     }
 }
 
@@ -241,6 +292,30 @@ mod tests {
         assert_eq!(cholesky(indefinite.view()), Err(LinalgError::Singular));
         let not_square = Array2::<f64>::zeros((2, 3));
         assert!(lower_factor(not_square.view()).is_none());
+    }
+
+    #[test]
+    fn a_larger_known_factor_and_solution_come_back() {
+        // Common practice: A = L L' from a known 9 x 9 lower L of small integers (every
+        // product and partial sum exact in floating point, so the four-way sums of `dot`
+        // reproduce L and x exactly), and b = A x for a known x.
+        let n = 9;
+        let l = Array2::from_shape_fn((n, n), |(i, j)| match i.cmp(&j) {
+            std::cmp::Ordering::Less => 0.0,
+            std::cmp::Ordering::Equal => (i + 2) as f64,
+            std::cmp::Ordering::Greater => ((i * 3 + j * 5) % 7) as f64 - 3.0,
+        });
+        let a = l.dot(&l.t());
+        assert_eq!(cholesky(a.view()).unwrap(), l);
+        let x = Array1::from_shape_fn(n, |i| i as f64 - 4.0);
+        assert_eq!(solve_spd(a.view(), a.dot(&x).view()).unwrap(), x);
+        let (u, v) = (
+            [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0],
+            [7.0, 6.0, 5.0, 4.0, 3.0, 2.0, 1.0],
+        );
+        assert_eq!(dot(&u, &v), 84.0);
+        assert_eq!(dot(&u[..3], &v[..3]), 34.0);
+        assert_eq!(dot(&[], &[]), 0.0);
     }
 
     #[test]

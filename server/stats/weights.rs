@@ -380,8 +380,9 @@ fn gmm_newton(problem: &GmmProblem, b0: &Array1<f64>) -> GmmDescent {
     };
     for iteration in 1..=GMM_MAX_ITERATIONS {
         out.iterations = iteration;
-        let grad = gmm_gradient(problem, &point);
-        let hessian = gmm_hessian(problem, &point);
+        let units = point.loadings(problem.x);
+        let grad = gmm_gradient(problem, &point, &units);
+        let hessian = gmm_hessian(problem, &point, &units);
         let Some((step, positive_definite)) = modified_newton_step(&hessian, &grad) else {
             break;
         };
@@ -477,9 +478,25 @@ struct GmmPoint {
     /// Lower Cholesky factor of S.
     s_factor: Array2<f64>,
     q: f64,
-    /// u_i = a1'x_i and r_i = a2'x_i, where [a1; a2] = S^-1 g.
+    /// [a1; a2] = S^-1 g.
+    a: Array1<f64>,
+}
+
+/// Per unit, u_i = a1'x_i and r_i = a2'x_i of a [`GmmPoint`]: the gradient and the Hessian
+/// need them, the halvings that only judge Q do not.
+struct UnitLoadings {
     u: Array1<f64>,
     r: Array1<f64>,
+}
+
+impl GmmPoint {
+    fn loadings(&self, x: ArrayView2<f64>) -> UnitLoadings {
+        let k = x.ncols();
+        UnitLoadings {
+            u: x.dot(&self.a.slice(ndarray::s![..k])),
+            r: x.dot(&self.a.slice(ndarray::s![k..])),
+        }
+    }
 }
 
 /// Derivatives with respect to eta of one unit's psi and v of [`GmmPoint`].
@@ -546,40 +563,25 @@ fn gmm_point(problem: &GmmProblem, b: &Array1<f64>) -> Option<GmmPoint> {
     let mut g = Array1::<f64>::zeros(2 * k);
     g.slice_mut(ndarray::s![..k]).assign(&x.t().dot(&score));
     g.slice_mut(ndarray::s![k..]).assign(&x.t().dot(&balance));
-    // Columns v11, v12, v22 of S's blocks.
-    let v = Array2::from_shape_fn((n, 3), |(i, c)| {
+    // Columns v11, v12, v22 of S's blocks, placed straight into S = [B11 B12; B12 B22]
+    // (B12 is symmetric).
+    let mut v = Array2::<f64>::zeros((n, 3));
+    for (i, mut row) in v.rows_mut().into_iter().enumerate() {
         let (p, count) = (p[i], counts[i]);
-        match c {
-            0 => count * p * (1.0 - p) / nf,
-            1 => count * (1.0 - p) / nf,
-            _ => count * (1.0 - p) / p / nf,
-        }
-    });
-    let blocks = problem.pairs.weighted(v.view());
-    let s = stacked_blocks(&blocks[0], &blocks[1], &blocks[2]);
+        row[0] = count * p * (1.0 - p) / nf;
+        row[1] = count * (1.0 - p) / nf;
+        row[2] = count * (1.0 - p) / p / nf;
+    }
+    let sums = problem.pairs.sums(v.view());
+    let mut s = Array2::<f64>::zeros((2 * k, 2 * k));
+    problem.pairs.place(&sums, 0, &mut s, 0, 0);
+    problem.pairs.place(&sums, 1, &mut s, 0, k);
+    problem.pairs.place(&sums, 1, &mut s, k, 0);
+    problem.pairs.place(&sums, 2, &mut s, k, k);
     let s_factor = linalg::cholesky(s.view()).ok()?;
     let a = linalg::cholesky_solve(&s_factor, g.view());
     let q = g.dot(&a);
-    let u = x.dot(&a.slice(ndarray::s![..k]));
-    let r = x.dot(&a.slice(ndarray::s![k..]));
-    Some(GmmPoint {
-        p,
-        s_factor,
-        q,
-        u,
-        r,
-    })
-}
-
-/// The symmetric 2k x 2k matrix [m11 m12; m12' m22] of k x k blocks (m12 symmetric here).
-fn stacked_blocks(m11: &Array2<f64>, m12: &Array2<f64>, m22: &Array2<f64>) -> Array2<f64> {
-    let k = m11.nrows();
-    let mut s = Array2::<f64>::zeros((2 * k, 2 * k));
-    s.slice_mut(ndarray::s![..k, ..k]).assign(m11);
-    s.slice_mut(ndarray::s![..k, k..]).assign(m12);
-    s.slice_mut(ndarray::s![k.., ..k]).assign(&m12.t());
-    s.slice_mut(ndarray::s![k.., k..]).assign(m22);
-    s
+    Some(GmmPoint { p, s_factor, q, a })
 }
 
 /// The criterion Q of [`GmmPoint`] at b and its gradient
@@ -591,19 +593,19 @@ fn gmm_objective(x: ArrayView2<f64>, t: &[bool], b: &Array1<f64>) -> (f64, Array
     let ones = vec![1.0; t.len()];
     let problem = GmmProblem::new(x.view(), t, &ones);
     match gmm_point(&problem, b) {
-        Some(point) => (point.q, gmm_gradient(&problem, &point)),
+        Some(point) => (point.q, gmm_gradient(&problem, &point, &point.loadings(x))),
         None => (f64::INFINITY, Array1::zeros(x.ncols())),
     }
 }
 
 /// The gradient of [`gmm_objective`] at a point.
-fn gmm_gradient(problem: &GmmProblem, point: &GmmPoint) -> Array1<f64> {
+fn gmm_gradient(problem: &GmmProblem, point: &GmmPoint, units: &UnitLoadings) -> Array1<f64> {
     let (x, t) = (problem.x, problem.t);
     let nf = problem.n;
     let per_unit: Array1<f64> = (0..t.len())
         .map(|i| {
             let d = UnitDerivatives::at(point.p[i], f64::from(u8::from(t[i])));
-            let (u, r) = (point.u[i], point.r[i]);
+            let (u, r) = (units.u[i], units.r[i]);
             let j_term = u * d.dpsi1 + r * d.dpsi2;
             let s_term = d.dv11 * u * u + 2.0 * d.dv12 * u * r + d.dv22 * r * r;
             problem.counts[i] * (2.0 * j_term - s_term) / nf
@@ -623,7 +625,7 @@ fn gmm_gradient(problem: &GmmProblem, point: &GmmPoint) -> Array1<f64> {
 /// second derivatives with respect to eta: d2psi1 = -p(1-p)(1-2p), d2psi2 = t(1-p)/p,
 /// d2v11 = p(1-p)(1-6p+6p^2), d2v12 = -p(1-p)(1-2p), d2v22 = (1-p)/p. It costs about two
 /// evaluations of the criterion where forward differences cost k + 1.
-fn gmm_hessian(problem: &GmmProblem, point: &GmmPoint) -> Array2<f64> {
+fn gmm_hessian(problem: &GmmProblem, point: &GmmPoint, units: &UnitLoadings) -> Array2<f64> {
     let (x, t) = (problem.x, problem.t);
     let (n, k) = (t.len(), x.ncols());
     // Columns: the weights of M's two blocks and of the second-derivative term c.
@@ -632,7 +634,7 @@ fn gmm_hessian(problem: &GmmProblem, point: &GmmPoint) -> Array2<f64> {
         let nf = problem.n / problem.counts[i];
         let (p, ti) = (point.p[i], f64::from(u8::from(t[i])));
         let d = UnitDerivatives::at(p, ti);
-        let (u, r) = (point.u[i], point.r[i]);
+        let (u, r) = (units.u[i], units.r[i]);
         weights[[i, 0]] = (d.dpsi1 - d.dv11 * u - d.dv12 * r) / nf;
         weights[[i, 1]] = (d.dpsi2 - d.dv12 * u - d.dv22 * r) / nf;
         let dp = p * (1.0 - p);
@@ -1161,7 +1163,8 @@ mod tests {
         for b in [array![0.1, 0.6, -0.2, 0.3], array![-0.4, 1.2, 0.5, -0.8]] {
             let ones = vec![1.0; t.len()];
             let problem = GmmProblem::new(x.view(), &t, &ones);
-            let h = gmm_hessian(&problem, &gmm_point(&problem, &b).expect("S regular"));
+            let point = gmm_point(&problem, &b).expect("S regular");
+            let h = gmm_hessian(&problem, &point, &point.loadings(x.view()));
             assert_eq!(h.dim(), (4, 4));
             for j in 0..4 {
                 let step = 1e-5;
