@@ -1352,9 +1352,11 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
         })
         .collect();
     let mut xs = Array2::<f64>::zeros((rows, k + 1));
-    for r in 0..rows {
-        xs.slice_mut(ndarray::s![r, ..k]).assign(&x.row(r));
-        xs[[r, k]] = lambda[unit[r]];
+    for ((mut out, row), &u) in xs.rows_mut().into_iter().zip(x.rows()).zip(unit) {
+        for (o, v) in out.iter_mut().zip(row) {
+            *o = *v;
+        }
+        out[k] = lambda[u];
     }
     let (beta, bread) = weighted_least_squares(xs.view(), y, w)?;
     let weight = |r: usize| w.map_or(1.0, |w| w[r]);
@@ -1367,15 +1369,27 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
     let sigma2 = sse / sum_w + b_l * b_l * mean_delta;
     let sigma = sigma2.sqrt();
     let rho = b_l / sigma;
-    // C = sum_r w_r x*_r b_l delta_r z_r'.
+    // C = sum_r w_r x*_r b_l delta_r z_r' = b_l sum_u delta_u (sum_{r in u} w_r x*_r) z_u':
+    // delta and z are the unit's, so each unit's weighted row sum is formed first and
+    // multiplied out once per unit rather than once per respondent.
+    let mut unit_sums = Array2::<f64>::zeros((n, k + 1));
+    for (r, (row, &u)) in xs.rows().into_iter().zip(unit).enumerate() {
+        let wr = weight(r);
+        for (o, v) in unit_sums.row_mut(u).iter_mut().zip(row) {
+            *o += wr * v;
+        }
+    }
     let mut c = Array2::<f64>::zeros((k + 1, p));
-    for r in 0..rows {
-        let f = weight(r) * b_l * delta[unit[r]];
-        let zr = z.row(unit[r]);
+    for (u, sums) in unit_sums.rows().into_iter().enumerate() {
+        if !selected[u] {
+            continue;
+        }
+        let f = b_l * delta[u];
+        let zu = z.row(u);
         for a in 0..=k {
-            let xa = f * xs[[r, a]];
+            let xa = f * sums[a];
             for b in 0..p {
-                c[[a, b]] += xa * zr[b];
+                c[[a, b]] += xa * zu[b];
             }
         }
     }
@@ -1404,9 +1418,11 @@ pub fn heckman_two_step(input: &TwoStepInput) -> Result<TwoStepFit, RegressionEr
                 s1.row_mut(cl[i]).scaled_add(score_unit[i], &z.row(i));
             }
             let mut s2 = Array2::<f64>::zeros((groups, k + 1));
-            for r in 0..rows {
-                s2.row_mut(cl[unit[r]])
-                    .scaled_add(weight(r) * e[r], &xs.row(r));
+            for (r, (row, &u)) in xs.rows().into_iter().zip(unit).enumerate() {
+                let f = weight(r) * e[r];
+                for (o, v) in s2.row_mut(cl[u]).iter_mut().zip(row) {
+                    *o += f * v;
+                }
             }
             let u = &s2 + &s1.dot(vg).dot(&c.t());
             let cov = cluster_covariance(&bread, &u, rows);
