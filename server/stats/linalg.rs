@@ -17,24 +17,19 @@ pub fn cholesky(a: ArrayView2<f64>) -> Result<Array2<f64>, LinalgError> {
     if a.nrows() == 0 {
         return Ok(Array2::zeros((0, 0)));
     }
-    let l = lower_factor(a).ok_or(LinalgError::Singular)?;
     let max_diag = a.diag().iter().fold(0.0f64, |m, &d| m.max(d.abs()));
-    let tiny = l
-        .diag()
-        .iter()
-        .any(|&d| !d.is_finite() || d * d <= PIVOT_TOLERANCE * max_diag);
-    if tiny {
-        return Err(LinalgError::Singular);
-    }
-    Ok(l)
+    lower_factor(a, PIVOT_TOLERANCE * max_diag).ok_or(LinalgError::Singular)
 }
 
 /// The Cholesky-Banachiewicz recurrence (Golub & Van Loan, Matrix Computations, 4.2.5):
 /// l_jj = sqrt(a_jj - sum_{k<j} l_jk^2), l_ij = (a_ij - sum_{k<j} l_ik l_jk) / l_jj for
-/// i > j, reading the lower triangle of A; `None` when a pivot is not positive. Rows are
-/// kept contiguous so that each sum is a dot product of two row prefixes ([`dot`]; the
-/// small factorisations of the fits' Newton steps run thousands of times per bootstrap).
-fn lower_factor(a: ArrayView2<f64>) -> Option<Array2<f64>> {
+/// i > j, reading the lower triangle of A; `None` as soon as a diagonal element l_jj is
+/// not finite or l_jj^2 is not above `floor` (a pivot that is not positive, or too small
+/// to trust: the rest of the factor would not be used). Rows are kept contiguous so that
+/// each sum is a dot product of two row prefixes ([`dot`]; the small factorisations of
+/// the fits' Newton steps run thousands of times per bootstrap, and the over-identified
+/// balancing fit's halvings often stop at a nearly singular one).
+fn lower_factor(a: ArrayView2<f64>, floor: f64) -> Option<Array2<f64>> {
     let n = a.nrows();
     if a.ncols() != n {
         return None;
@@ -52,7 +47,11 @@ fn lower_factor(a: ArrayView2<f64>) -> Option<Array2<f64>> {
         if d.is_nan() || d <= 0.0 {
             return None;
         }
-        row_i[i] = d.sqrt();
+        let lii = d.sqrt();
+        if !lii.is_finite() || lii * lii <= floor {
+            return None;
+        }
+        row_i[i] = lii;
     }
     Array2::from_shape_vec((n, n), l).ok()
 }
@@ -291,7 +290,13 @@ mod tests {
         let indefinite = array![[1.0, 2.0], [2.0, 1.0]];
         assert_eq!(cholesky(indefinite.view()), Err(LinalgError::Singular));
         let not_square = Array2::<f64>::zeros((2, 3));
-        assert!(lower_factor(not_square.view()).is_none());
+        assert!(lower_factor(not_square.view(), 0.0).is_none());
+        // A pivot of 1e-14 against a largest diagonal element of 1 is below the relative
+        // tolerance of 1e-13 and refused; one of 1e-12 is kept.
+        let nearly = array![[1.0, 1.0], [1.0, 1.0 + 1e-14]];
+        assert_eq!(cholesky(nearly.view()), Err(LinalgError::Singular));
+        let barely = array![[1.0, 1.0], [1.0, 1.0 + 1e-12]];
+        assert!(cholesky(barely.view()).is_ok());
     }
 
     #[test]

@@ -555,16 +555,9 @@ fn gmm_point(problem: &GmmProblem, b: &Array1<f64>) -> Option<GmmPoint> {
         .iter()
         .map(|&e| logistic(e).clamp(1e-12, 1.0 - 1e-12))
         .collect();
-    let tf = |i: usize| f64::from(u8::from(t[i]));
-    let score: Array1<f64> = (0..n).map(|i| counts[i] * (tf(i) - p[i]) / nf).collect();
-    let balance: Array1<f64> = (0..n)
-        .map(|i| counts[i] * (tf(i) / p[i] - 1.0) / nf)
-        .collect();
-    let mut g = Array1::<f64>::zeros(2 * k);
-    g.slice_mut(ndarray::s![..k]).assign(&x.t().dot(&score));
-    g.slice_mut(ndarray::s![k..]).assign(&x.t().dot(&balance));
     // Columns v11, v12, v22 of S's blocks, placed straight into S = [B11 B12; B12 B22]
-    // (B12 is symmetric).
+    // (B12 is symmetric). S first: where it is singular the point has no criterion, and
+    // the moments are not needed.
     let mut v = Array2::<f64>::zeros((n, 3));
     for (i, mut row) in v.rows_mut().into_iter().enumerate() {
         let (p, count) = (p[i], counts[i]);
@@ -579,6 +572,14 @@ fn gmm_point(problem: &GmmProblem, b: &Array1<f64>) -> Option<GmmPoint> {
     problem.pairs.place(&sums, 1, &mut s, k, 0);
     problem.pairs.place(&sums, 2, &mut s, k, k);
     let s_factor = linalg::cholesky(s.view()).ok()?;
+    let tf = |i: usize| f64::from(u8::from(t[i]));
+    let score: Array1<f64> = (0..n).map(|i| counts[i] * (tf(i) - p[i]) / nf).collect();
+    let balance: Array1<f64> = (0..n)
+        .map(|i| counts[i] * (tf(i) / p[i] - 1.0) / nf)
+        .collect();
+    let mut g = Array1::<f64>::zeros(2 * k);
+    g.slice_mut(ndarray::s![..k]).assign(&x.t().dot(&score));
+    g.slice_mut(ndarray::s![k..]).assign(&x.t().dot(&balance));
     let a = linalg::cholesky_solve(&s_factor, g.view());
     let q = g.dot(&a);
     Some(GmmPoint { p, s_factor, q, a })
