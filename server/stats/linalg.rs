@@ -59,9 +59,8 @@ fn lower_factor(a: ArrayView2<f64>, floor: f64) -> Option<Array2<f64>> {
 /// The dot product of two equally long slices, summed in four interleaved partial sums:
 /// the additions of one long chain wait on each other, four chains overlap (the
 /// factorisations and solves of the Newton steps are made of such short products).
-pub fn dot(a: &[f64], b: &[f64]) -> f64 {
-    let n = a.len().min(b.len());
-    let (a, b) = (&a[..n], &b[..n]);
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    debug_assert_eq!(a.len(), b.len());
     let mut acc = [0.0f64; 4];
     let (a4, b4) = (a.chunks_exact(4), b.chunks_exact(4));
     let (ra, rb) = (a4.remainder(), b4.remainder());
